@@ -1,0 +1,1 @@
+"""Speed measurements against in-process baselines (run with `make bench`)."""

@@ -1,0 +1,54 @@
+"""stopwise: fit models of risk preference and strategic play to stopping and lottery data.
+
+Importing the package switches JAX to 64-bit floats: every likelihood runs in float64.
+Public names are resolved lazily so that ``import stopwise`` stays fast and the command
+line starts quickly.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+import jax
+
+jax.config.update("jax_enable_x64", True)
+
+__version__ = "0.1.0"
+
+# public name -> "module:attribute"
+_EXPORTS: dict[str, str] = {
+    # data
+    "load": "stopwise.data_schemas.load:load",
+    "validate": "stopwise.data_schemas.validate:validate",
+    "trials_to_decisions": "stopwise.data_schemas.convert:trials_to_decisions",
+    "decisions_to_trials": "stopwise.data_schemas.convert:decisions_to_trials",
+    "describe": "stopwise.describe:describe",
+    # models
+    "model": "stopwise.models.spec:build_model",
+    "simulate": "stopwise.models.simulate:simulate",
+    # estimation
+    "fit": "stopwise.api:fit",
+    "compare": "stopwise.api:compare",
+    "recover": "stopwise.api:recover",
+    # demo
+    "demo_data": "stopwise.demo:demo_data",
+}
+
+__all__ = [*sorted(_EXPORTS), "__version__", "contest"]
+
+
+def __getattr__(name: str) -> Any:
+    if name == "contest":
+        return importlib.import_module("stopwise.contest")
+    target = _EXPORTS.get(name)
+    if target is None:
+        raise AttributeError(f"module 'stopwise' has no attribute {name!r}")
+    module_name, attribute = target.split(":")
+    value = getattr(importlib.import_module(module_name), attribute)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

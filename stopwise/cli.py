@@ -1,0 +1,75 @@
+"""The ``stopwise`` command line.
+
+Each command lives in ``stopwise/commands/<name>.py`` and exposes
+``register(subparsers) -> argparse.ArgumentParser`` which sets ``func=run`` on its parser,
+with ``run(args) -> int``. Exit codes (DESIGN.md): 0 success; 2 bad input or usage (message
+on stderr, no traceback, nothing written); 1 anything else.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import os
+import sys
+from collections.abc import Sequence
+
+from stopwise.data_schemas.errors import StopwiseInputError
+
+COMMANDS = ("validate", "describe", "fit", "compare", "simulate", "equilibrium", "demo")
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse parser whose usage errors raise instead of exiting (we choose the exit code)."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        raise StopwiseInputError(f"{self.prog}: {message}\n{self.format_usage().strip()}")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="stopwise",
+        description="Fit models of risk preference and strategic play to stopping and "
+        "lottery-choice data.",
+    )
+    parser.add_argument("--version", action="version", version=_version())
+    subparsers = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name in COMMANDS:
+        module = importlib.import_module(f"stopwise.commands.{name}")
+        module.register(subparsers)
+    return parser
+
+
+def _version() -> str:
+    from stopwise import __version__
+
+    return f"stopwise {__version__}"
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point; returns the process exit code."""
+    try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if not getattr(args, "func", None):
+            parser.print_help(sys.stderr)
+            return 2
+        return int(args.func(args) or 0)
+    except StopwiseInputError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 1
+    except BrokenPipeError:
+        return 1
+    except Exception as exc:  # anything else: exit 1, traceback only on request
+        if os.environ.get("STOPWISE_DEBUG"):
+            raise
+        print(f"internal error: {type(exc).__name__}: {exc}\n"
+              "(set STOPWISE_DEBUG=1 for a traceback)", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
