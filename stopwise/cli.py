@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import importlib.util
 import os
 import sys
 from collections.abc import Sequence
@@ -34,10 +35,19 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=_version())
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for name in COMMANDS:
-        module = importlib.import_module(f"stopwise.commands.{name}")
-        module.register(subparsers)
+    for name in available_commands():
+        importlib.import_module(f"stopwise.commands.{name}").register(subparsers)
     return parser
+
+
+def available_commands() -> list[str]:
+    """The commands whose modules are installed (all of COMMANDS in a complete install;
+    tests/test_package.py checks that none is missing)."""
+    found = []
+    for name in COMMANDS:
+        if importlib.util.find_spec(f"stopwise.commands.{name}") is not None:
+            found.append(name)
+    return found
 
 
 def _version() -> str:
