@@ -1,0 +1,228 @@
+"""Build the immutable array bundles (StoppingData, LotteryData) from validated frames.
+
+Row i of a bundle is row i of the frame. Subjects are numbered 0..n_subjects-1 in sorted
+label order, trials 0..n_trials-1 sorted by (subject, trial id), and each distinct trial
+configuration (p_survive, gain, start, bust_keep, contest, n_players, prize, keep_bank)
+gets one entry of the condition table. Solo trials have n_players 1, prize 0, keep_bank 1.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from . import columns as C
+from .arrays import LotteryData, StoppingData
+from .errors import StopwiseInputError
+
+
+def to_stopping_data(
+    frame: pd.DataFrame, covariates: Sequence[str] = (), horizon: int | None = None
+) -> StoppingData:
+    """Decision-level frame -> StoppingData; ``horizon`` defaults to max(step) + 1."""
+    _require_columns(frame, C.DECISION_REQUIRED)
+    if isinstance(covariates, str):
+        covariates = (covariates,)
+    subject, subject_labels = _codes(frame["subject"])
+    trial_ids = frame["trial"].to_numpy()
+    trial, trial_labels = _trial_index(subject, trial_ids, subject_labels)
+    step = frame["step"].to_numpy(dtype=np.int64)
+    max_step = int(step.max()) if len(step) else 0
+    if horizon is None:
+        horizon = max_step + 1
+    elif horizon < max_step + 1:
+        raise StopwiseInputError(
+            f"horizon {horizon} is too short: the data reach step {max_step}, so the horizon "
+            f"must be at least {max_step + 1}"
+        )
+    contest = _contest_flags(frame)
+    config = _trial_config(frame, contest)
+    cond, table = _condition_table(config, trial)
+    group = _group_index(frame, contest)
+    action = frame["action"].to_numpy(dtype=object)
+    outcome = frame["outcome"].to_numpy(dtype=object)
+    return StoppingData(
+        subject=subject.astype(np.int32),
+        trial=trial.astype(np.int32),
+        step=step.astype(np.int32),
+        draw=(action == "draw").astype(np.float64),
+        bust=(outcome == "bust").astype(np.float64),
+        cond=cond.astype(np.int32),
+        group=group.astype(np.int32),
+        **{name: table[:, i].copy() for i, name in enumerate(_COND_ORDER)},
+        covariates=numeric_covariates(frame, covariates),
+        horizon=int(horizon),
+        subject_labels=subject_labels,
+        trial_labels=trial_labels,
+    )
+
+
+_COND_ORDER = (
+    "cond_p_survive",
+    "cond_gain",
+    "cond_start",
+    "cond_bust_keep",
+    "cond_contest",
+    "cond_n_players",
+    "cond_prize",
+    "cond_keep_bank",
+)
+
+
+def to_lottery_data(frame: pd.DataFrame, covariates: Sequence[str] = ()) -> LotteryData:
+    """Lottery frame -> LotteryData; outcomes padded to the widest option with p = 0 and the
+    option's first outcome value."""
+    _require_columns(frame, C.LOTTERY_REQUIRED)
+    if isinstance(covariates, str):
+        covariates = (covariates,)
+    subject, subject_labels = _codes(frame["subject"])
+    indices = C.lottery_outcome_indices(frame.columns)
+    width = max(max(indices["a"], default=1), max(indices["b"], default=1))
+    a_x, a_p = _option_arrays(frame, "a", indices["a"], width)
+    b_x, b_p = _option_arrays(frame, "b", indices["b"], width)
+    choice = frame["choice"].to_numpy(dtype=object)
+    return LotteryData(
+        subject=subject.astype(np.int32),
+        choice_b=(choice == "B").astype(np.float64),
+        a_x=a_x,
+        a_p=a_p,
+        b_x=b_x,
+        b_p=b_p,
+        covariates=numeric_covariates(frame, covariates),
+        subject_labels=subject_labels,
+        item_labels=frame["item"].to_numpy(),
+    )
+
+
+def numeric_covariates(frame: pd.DataFrame, names: Sequence[str]) -> dict[str, np.ndarray]:
+    """Requested covariate columns as float64 arrays: they must exist, be numeric (or
+    boolean) and have no missing values. Categorical covariates are encoded by the
+    estimation engine, not here."""
+    out: dict[str, np.ndarray] = {}
+    for name in names:
+        if name not in frame.columns:
+            available = [c for c in frame.columns if c not in C.DECISION_REQUIRED]
+            raise StopwiseInputError(
+                f"covariate '{name}' is not a column of the data; other columns: "
+                f"{', '.join(map(str, available)) or 'none'}"
+            )
+        column = frame[name]
+        if not (
+            pd.api.types.is_numeric_dtype(column.dtype) or pd.api.types.is_bool_dtype(column.dtype)
+        ):
+            example = column.dropna().iloc[0] if column.notna().any() else None
+            raise StopwiseInputError(
+                f"covariate '{name}' is not numeric (e.g. {example!r}); expected numbers. "
+                "Encode categories as numbers, or let the fitting engine encode them"
+            )
+        values = column.to_numpy(dtype=np.float64, na_value=np.nan)
+        if np.isnan(values).any():
+            row = int(np.flatnonzero(np.isnan(values))[0])
+            raise StopwiseInputError(
+                f"covariate '{name}' has {int(np.isnan(values).sum())} missing value(s) "
+                f"(first at row {row + 2} as in a CSV with a header); expected a number on "
+                "every row"
+            )
+        out[name] = values
+    return out
+
+
+def _require_columns(frame: pd.DataFrame, names: Sequence[str]) -> None:
+    missing = [n for n in names if n not in frame.columns]
+    if missing:
+        raise StopwiseInputError(
+            f"the frame lacks the column(s) {', '.join(missing)}; load it with "
+            "stopwise.load to validate it first"
+        )
+
+
+def _codes(labels: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Integer codes in sorted label order (order of appearance for unsortable labels)."""
+    try:
+        codes, uniques = pd.factorize(labels, sort=True)
+    except TypeError:
+        codes, uniques = pd.factorize(labels, sort=False)
+    return codes.astype(np.int64), np.asarray(uniques, dtype=object)
+
+
+def _trial_index(
+    subject: np.ndarray, trial_ids: np.ndarray, subject_labels: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Global trial index sorted by (subject, trial) and its (subject, trial) labels."""
+    trial_codes, trial_uniques = _codes(pd.Series(trial_ids))
+    key = subject * max(len(trial_uniques), 1) + trial_codes
+    index, keys = pd.factorize(key, sort=True)
+    labels = np.empty((len(keys), 2), dtype=object)
+    labels[:, 0] = subject_labels[keys // max(len(trial_uniques), 1)]
+    labels[:, 1] = trial_uniques[keys % max(len(trial_uniques), 1)]
+    return index.astype(np.int64), labels
+
+
+def _contest_flags(frame: pd.DataFrame) -> np.ndarray:
+    if "task" in frame.columns:
+        return frame["task"].to_numpy(dtype=object) == "contest"
+    if "n_players" in frame.columns:
+        return frame["n_players"].to_numpy(dtype=np.float64, na_value=1.0) > 1
+    return np.zeros(len(frame), dtype=bool)
+
+
+def _float_column(frame: pd.DataFrame, name: str, default: float) -> np.ndarray:
+    if name not in frame.columns:
+        return np.full(len(frame), default, dtype=np.float64)
+    values = frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
+    return np.where(np.isnan(values), default, values)
+
+
+def _trial_config(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:
+    """(n_obs, 8) per-row configuration in the order of the condition table."""
+    config = np.empty((len(frame), len(_COND_ORDER)), dtype=np.float64)
+    config[:, 0] = frame["p_survive"].to_numpy(dtype=np.float64)
+    config[:, 1] = frame["gain"].to_numpy(dtype=np.float64)
+    config[:, 2] = _float_column(frame, "start", 0.0)
+    config[:, 3] = _float_column(frame, "bust_keep", 0.0)
+    config[:, 4] = contest.astype(np.float64)
+    config[:, 5] = np.where(contest, _float_column(frame, "n_players", 1.0), 1.0)
+    config[:, 6] = np.where(contest, _float_column(frame, "prize", 0.0), 0.0)
+    config[:, 7] = np.where(contest, _float_column(frame, "keep_bank", 1.0), 1.0)
+    return config
+
+
+def _condition_table(config: np.ndarray, trial: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct configurations (one lookup per trial, since design is constant within a
+    trial) and each row's index into them."""
+    n_trials = int(trial.max()) + 1 if len(trial) else 0
+    first = np.full(n_trials, -1, dtype=np.int64)
+    rows = np.arange(len(trial))[::-1]
+    first[trial[rows]] = rows
+    per_trial = config[first]
+    if n_trials == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros((0, config.shape[1]))
+    table, inverse = np.unique(per_trial, axis=0, return_inverse=True)
+    return np.asarray(inverse).reshape(-1)[trial], table
+
+
+def _group_index(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:
+    group = np.full(len(frame), -1, dtype=np.int64)
+    if "group" not in frame.columns or not contest.any():
+        return group
+    codes, _ = _codes(frame["group"][contest])
+    group[contest] = codes
+    return group
+
+
+def _option_arrays(
+    frame: pd.DataFrame, option: str, indices: Sequence[int], width: int
+) -> tuple[np.ndarray, np.ndarray]:
+    n = len(frame)
+    x = np.full((n, width), np.nan)
+    p = np.zeros((n, width))
+    for k in indices:
+        x[:, k - 1] = frame[f"{option}_x{k}"].to_numpy(dtype=np.float64, na_value=np.nan)
+        p[:, k - 1] = np.nan_to_num(
+            frame[f"{option}_p{k}"].to_numpy(dtype=np.float64, na_value=np.nan), nan=0.0
+        )
+    first = x[:, 0:1]
+    x = np.where(np.isnan(x) | (p == 0.0) & np.isnan(x), first, x)
+    return np.nan_to_num(x, nan=0.0), p

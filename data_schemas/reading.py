@@ -1,0 +1,142 @@
+"""Read a data source (CSV, Parquet or DataFrame) into a raw DataFrame, untouched in meaning.
+
+Line numbers: row ``i`` of the returned frame (its index label) sits on file line ``i + 2``
+(header = line 1); blank lines are read as empty rows and then dropped, so the index keeps
+counting them and line numbers stay exact. A DataFrame or Parquet row at position ``i`` is
+reported as line ``i + 2``, the line it would have in a CSV with a header.
+"""
+
+from __future__ import annotations
+
+import codecs
+import os
+import re
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from .errors import StopwiseInputError
+
+PARQUET_SUFFIXES = (".parquet", ".pq")
+COMPRESSED_SUFFIXES = (".gz", ".bz2", ".zip", ".xz", ".zst")
+SPREADSHEET_SUFFIXES = (".xlsx", ".xls", ".ods", ".json", ".feather", ".pkl", ".pickle")
+_SNIFF_BYTES = 65536
+_PARSER_LINE = re.compile(r"line (\d+)")
+
+
+@dataclass(frozen=True)
+class RawTable:
+    """A read table (None when unreadable) and, if so, why: (problem kind, message, line)."""
+
+    frame: pd.DataFrame | None
+    source: str
+    failure: tuple[str, str, int | None] | None = None
+
+
+def source_name(source: object) -> str:
+    if isinstance(source, pd.DataFrame):
+        return "<DataFrame>"
+    return str(source)
+
+
+def read_table(source: str | os.PathLike[str] | pd.DataFrame) -> RawTable:
+    """Read ``source``; the frame's index counts data rows from 0 (line = index + 2)."""
+    if isinstance(source, pd.DataFrame):
+        frame = source.reset_index(drop=True)
+        frame.columns = [str(c).strip() for c in frame.columns]
+        return RawTable(frame, "<DataFrame>")
+    if not isinstance(source, (str, os.PathLike)):
+        raise StopwiseInputError(
+            f"cannot read data from a {type(source).__name__}: expected a file path "
+            "(CSV or Parquet) or a pandas DataFrame"
+        )
+    path = Path(source)
+    name = str(source)
+    if not path.exists():
+        raise StopwiseInputError(f"{name}: no such file")
+    if path.is_dir():
+        raise StopwiseInputError(f"{name}: is a folder; expected a CSV or Parquet file")
+    suffix = path.suffix.lower()
+    with open(path, "rb") as fh:
+        head = fh.read(_SNIFF_BYTES)
+    if suffix in PARQUET_SUFFIXES or head.startswith(b"PAR1"):
+        return _read_parquet(path, name)
+    if suffix in SPREADSHEET_SUFFIXES:
+        return RawTable(
+            None, name, ("not_a_table", f"a {suffix} file; save the data as CSV or Parquet", None)
+        )
+    compressed = suffix in COMPRESSED_SUFFIXES
+    if not compressed:
+        if not head.strip():
+            return RawTable(None, name, ("empty_file", "an empty file", None))
+        why = _not_text(head)
+        if why:
+            return RawTable(None, name, ("not_a_table", why, None))
+    return _read_csv(path, name, head if not compressed else b"")
+
+
+def _not_text(head: bytes) -> str:
+    """Why these leading bytes are not a UTF-8 text table ('' when they look fine)."""
+    if b"\x00" in head:
+        return "binary data (NUL bytes)"
+    try:
+        codecs.getincrementaldecoder("utf-8")().decode(head, final=False)
+    except UnicodeDecodeError as exc:
+        return f"not UTF-8 text (undecodable byte at offset {exc.start})"
+    text = head.decode("utf-8", errors="ignore")
+    controls = sum(1 for ch in text if ord(ch) < 32 and ch not in "\r\n\t\f")
+    if controls > max(2, len(text) // 100):
+        return "binary data (control characters)"
+    return ""
+
+
+def _guess_separator(head: bytes) -> str:
+    """',' unless the header line clearly uses ';' or a tab."""
+    first = head.split(b"\n", 1)[0]
+    counts = {",": first.count(b","), ";": first.count(b";"), "\t": first.count(b"\t")}
+    best = max(counts, key=lambda k: counts[k])
+    return best if counts[best] > counts[","] else ","
+
+
+def _read_csv(path: Path, name: str, head: bytes) -> RawTable:
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", pd.errors.DtypeWarning)
+            frame = pd.read_csv(
+                path,
+                sep=_guess_separator(head),
+                skip_blank_lines=False,
+                encoding="utf-8-sig",
+            )
+    except pd.errors.EmptyDataError:
+        return RawTable(None, name, ("empty_file", "an empty file", None))
+    except pd.errors.ParserError as exc:
+        match = _PARSER_LINE.search(str(exc))
+        line = int(match.group(1)) if match else None
+        return RawTable(None, name, ("bad_row", _parser_message(str(exc)), line))
+    except (UnicodeDecodeError, ValueError, OSError) as exc:
+        return RawTable(None, name, ("not_a_table", f"unreadable as CSV ({exc})", None))
+    frame.columns = [str(c).strip() for c in frame.columns]
+    blank = frame.isna().all(axis=1)
+    if bool(blank.any()):
+        frame = frame.loc[~blank.to_numpy()]
+    return RawTable(frame, name)
+
+
+def _parser_message(text: str) -> str:
+    match = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", text)
+    if match:
+        return f"{match.group(1)} fields as in the header (found {match.group(3)})"
+    return f"a well-formed CSV row ({text.strip().splitlines()[-1]})"
+
+
+def _read_parquet(path: Path, name: str) -> RawTable:
+    try:
+        frame = pd.read_parquet(path)
+    except Exception as exc:  # pyarrow raises many types for corrupt files
+        return RawTable(None, name, ("not_a_table", f"unreadable as Parquet ({exc})", None))
+    frame = frame.reset_index(drop=True)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    return RawTable(frame, name)
