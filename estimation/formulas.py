@@ -1,0 +1,114 @@
+"""Covariate formulas: a parameter as a linear function of data columns on its unconstrained
+scale, ``r ~ 1 + treatment + age`` meaning
+
+    z_r[i] = b_0 + b_treatment * treatment[i] + b_age * age[i],   r[i] = to_natural(z_r[i]).
+
+Design matrices are built with patsy (categorical columns get treatment coding). Rows with the
+same design rows across every formula form one cell: the likelihood is evaluated once per cell
+with that cell's parameters (see estimation/cells.py).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from stopwise.data_schemas.errors import StopwiseInputError
+
+
+@dataclass(frozen=True)
+class ParamFormula:
+    """One parsed formula: the parameter, the right-hand side, the design and its columns."""
+
+    param: str
+    rhs: str
+    design: np.ndarray  # (n_obs, n_coef)
+    columns: tuple[str, ...]
+
+
+def parse_lhs(formula: str, param_names: Sequence[str]) -> tuple[str, str]:
+    """Split ``param ~ rhs``; the parameter must belong to the model."""
+    if formula.count("~") != 1:
+        raise StopwiseInputError(
+            f"formula {formula!r}: expected 'PARAM ~ 1 + column + ...' with exactly one '~'"
+        )
+    lhs, rhs = (part.strip() for part in formula.split("~"))
+    if lhs not in param_names:
+        raise StopwiseInputError(
+            f"formula {formula!r}: {lhs!r} is not a parameter of the model; "
+            f"its parameters are {', '.join(param_names)}"
+        )
+    if not rhs:
+        raise StopwiseInputError(f"formula {formula!r}: the right-hand side is empty")
+    return lhs, rhs
+
+
+def build_designs(
+    formulas: Sequence[str] | Mapping[str, str],
+    param_names: Sequence[str],
+    columns: Mapping[str, Any] | pd.DataFrame,
+) -> dict[str, ParamFormula]:
+    """Parse formulas (a list of 'param ~ rhs' strings or a mapping param -> rhs) against
+    the per-row covariate ``columns``; an unknown column is an error listing the known ones."""
+    import patsy
+
+    items = (
+        [f"{k} ~ {v}" for k, v in formulas.items()] if isinstance(formulas, Mapping)
+        else list(formulas)
+    )
+    frame = columns if isinstance(columns, pd.DataFrame) else pd.DataFrame(
+        {k: np.asarray(v) for k, v in columns.items()})
+    known = ", ".join(map(str, frame.columns)) or "(none)"
+    out: dict[str, ParamFormula] = {}
+    for formula in items:
+        param, rhs = parse_lhs(formula, param_names)
+        if param in out:
+            raise StopwiseInputError(f"parameter {param!r} has more than one formula")
+        try:
+            matrix = patsy.dmatrix(rhs, frame, NA_action="raise", return_type="dataframe",
+                                   eval_env=patsy.EvalEnvironment([{}]))
+        except patsy.PatsyError as exc:
+            raise StopwiseInputError(
+                f"formula {formula!r}: {str(exc).splitlines()[0]}; "
+                f"known covariate columns: {known}"
+            ) from None
+        design = np.asarray(matrix, dtype=np.float64)
+        if np.linalg.matrix_rank(design) < design.shape[1]:
+            raise StopwiseInputError(
+                f"formula {formula!r}: the design columns {list(matrix.columns)} are collinear "
+                "(an effect cannot be told apart from the others)"
+            )
+        out[param] = ParamFormula(param, rhs, design, tuple(map(str, matrix.columns)))
+    return out
+
+
+def formula_variables(formulas: Sequence[str] | Mapping[str, str] | None) -> list[str]:
+    """Bare column names mentioned on the right-hand sides (to pick covariate columns)."""
+    import re
+
+    if not formulas:
+        return []
+    items = formulas.values() if isinstance(formulas, Mapping) else [
+        f.split("~", 1)[-1] for f in formulas]
+    names: list[str] = []
+    for rhs in items:
+        for token in re.findall(r"[A-Za-z_][A-Za-z0-9_.]*", rhs):
+            if token not in names and token not in {"C", "np", "I", "Treatment", "Sum", "log",
+                                                    "exp", "center", "standardize", "scale"}:
+                names.append(token)
+    return names
+
+
+def cells_from_designs(designs: Mapping[str, ParamFormula], n_obs: int) -> tuple[
+        np.ndarray, np.ndarray]:
+    """Cell index of each row (rows with equal design rows across formulas share a cell) and
+    the distinct combined design rows, shape (n_cells, total columns)."""
+    if not designs:
+        return np.zeros(n_obs, dtype=np.int64), np.ones((1, 0))
+    combined = np.concatenate([f.design for f in designs.values()], axis=1)
+    unique, inverse = np.unique(combined, axis=0, return_inverse=True)
+    return np.asarray(inverse).reshape(-1).astype(np.int64), unique
