@@ -17,7 +17,6 @@ from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
-
 from stopwise.estimation.covariance import RowTable
 from stopwise.estimation.optimize import batched_newton
 from stopwise.estimation.problem import Problem, _negll, report_values
@@ -45,8 +44,13 @@ def gradient_tolerance(n_obs: int) -> float:
 
 
 def bootstrap_estimates(
-    problem: Problem, z_hat: np.ndarray, reps: int, seed: int, progress: bool = True,
-    chunk: int = 16, max_iter: int = 50,
+    problem: Problem,
+    z_hat: np.ndarray,
+    reps: int,
+    seed: int,
+    progress: bool = True,
+    chunk: int = 16,
+    max_iter: int = 50,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Re-estimated z for every replication (reps x k) and whether each converged."""
     from tqdm import tqdm
@@ -55,10 +59,11 @@ def bootstrap_estimates(
     fun = WeightedNegll(problem.rows)
     gtol = gradient_tolerance(problem.n_obs)
     zs, conv = [], []
-    bar = tqdm(total=reps, desc="bootstrap", unit="rep", file=sys.stderr,
-               disable=not progress, leave=False)
+    bar = tqdm(
+        total=reps, desc="bootstrap", unit="rep", file=sys.stderr, disable=not progress, leave=False
+    )
     for lo in range(0, reps, chunk):
-        block = counts[lo: lo + chunk]
+        block = counts[lo : lo + chunk]
         n_real = len(block)
         if n_real < chunk:  # keep one batch shape: pad with copies (discarded)
             block = np.vstack([block, np.repeat(block[:1], chunk - n_real, axis=0)])
@@ -84,20 +89,34 @@ def bootstrap_table(
     est = report_values(problem.reported, z_hat)
     n_ok = int(ok.sum())
     if n_ok < reps:
-        warnings.append(f"{reps - n_ok} of {reps} bootstrap replications did not converge "
-                        "and were dropped")
+        warnings.append(
+            f"{reps - n_ok} of {reps} bootstrap replications did not converge and were dropped"
+        )
     if problem.n_clusters < 30:
         warnings.append(f"only {problem.n_clusters} subjects: bootstrap intervals are rough")
     if n_ok < 2:
         nan = np.full(len(est), np.nan)
-        table = RowTable([r.name for r in problem.reported], est, nan, nan.copy(), nan.copy(),
-                         [r.scale for r in problem.reported])
-    else:
         table = RowTable(
-            [r.name for r in problem.reported], est, values.std(axis=0, ddof=1),
-            np.percentile(values, 2.5, axis=0), np.percentile(values, 97.5, axis=0),
+            [r.name for r in problem.reported],
+            est,
+            nan,
+            nan.copy(),
+            nan.copy(),
             [r.scale for r in problem.reported],
         )
-    info = {"replications": reps, "converged": n_ok, "seed": seed,
-            "parallelism": "jax.vmap over replications (XLA multithreaded)"}
+    else:
+        table = RowTable(
+            [r.name for r in problem.reported],
+            est,
+            values.std(axis=0, ddof=1),
+            np.percentile(values, 2.5, axis=0),
+            np.percentile(values, 97.5, axis=0),
+            [r.scale for r in problem.reported],
+        )
+    info = {
+        "replications": reps,
+        "converged": n_ok,
+        "seed": seed,
+        "parallelism": "jax.vmap over replications (XLA multithreaded)",
+    }
     return table, info, warnings

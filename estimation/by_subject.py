@@ -20,7 +20,6 @@ from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
-
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
@@ -90,12 +89,18 @@ def fit_by_subject(
     batch = (cells.data, jnp.asarray(cells.mask))
     z0 = start_vector(layout)
     n = cells.n_cells
-    z, v, _g, h, iters, ok = (np.asarray(a) for a in batched_newton(
-        fun, jnp.tile(jnp.asarray(z0), (n, 1)), batch, None, max_iter, 1e-6))
+    z, v, _g, h, iters, ok = (
+        np.asarray(a)
+        for a in batched_newton(fun, jnp.tile(jnp.asarray(z0), (n, 1)), batch, None, max_iter, 1e-6)
+    )
     if retry and not ok.all():  # a second start for the subjects that did not converge
         z_alt = start_design(z0, 2, seed)[1]
-        z2, v2, _g2, h2, it2, ok2 = (np.asarray(a) for a in batched_newton(
-            fun, jnp.tile(jnp.asarray(z_alt), (n, 1)), batch, None, max_iter, 1e-6))
+        z2, v2, _g2, h2, it2, ok2 = (
+            np.asarray(a)
+            for a in batched_newton(
+                fun, jnp.tile(jnp.asarray(z_alt), (n, 1)), batch, None, max_iter, 1e-6
+            )
+        )
         better = (~ok & ok2) | (ok2 & (v2 < v - 1e-9))
         z = np.where(better[:, None], z2, z)
         v = np.where(better, v2, v)
@@ -121,21 +126,37 @@ def fit_by_subject(
         if not ok[c]:
             subject_flags.append("did not converge")
             warnings.append("the optimiser did not converge")
-        fits.append((label, Fit(
-            model=model.name, method="mle", converged=bool(ok[c]), n_obs=int(len(rows)),
-            n_subjects=1, loglik=-float(v[c]), k=layout.size, table=table,
-            se_method="hessian" if se is not None else None, warnings=warnings, seed=seed,
-            optimizer={"algorithm": "vmapped damped Newton", "iterations": int(iters[c])},
-            at_bound=at_bound, z=z[c], cov_z=cov)))
+        fits.append(
+            (
+                label,
+                Fit(
+                    model=model.name,
+                    method="mle",
+                    converged=bool(ok[c]),
+                    n_obs=len(rows),
+                    n_subjects=1,
+                    loglik=-float(v[c]),
+                    k=layout.size,
+                    table=table,
+                    se_method="hessian" if se is not None else None,
+                    warnings=warnings,
+                    seed=seed,
+                    optimizer={"algorithm": "vmapped damped Newton", "iterations": int(iters[c])},
+                    at_bound=at_bound,
+                    z=z[c],
+                    cov_z=cov,
+                ),
+            )
+        )
         flags[label] = subject_flags
     n_flag = sum(bool(f) for f in flags.values())
     warnings = [f"{n_flag} of {n} subjects are flagged (see flags)"] if n_flag else []
-    return FitBySubject(model=model.name, fits=fits, flags=flags, seed=seed,
-                        warnings=warnings)
+    return FitBySubject(model=model.name, fits=fits, flags=flags, seed=seed, warnings=warnings)
 
 
 def _at_bound(spec: Any, z: float) -> bool:
     value = float(natural_np(spec, z))
-    near = any(np.isfinite(b) and abs(value - b) <= 1e-6 * (1.0 + abs(b))
-               for b in (spec.lower, spec.upper))
+    near = any(
+        np.isfinite(b) and abs(value - b) <= 1e-6 * (1.0 + abs(b)) for b in (spec.lower, spec.upper)
+    )
     return bool(near or (spec.transform != "identity" and abs(z) > BOUND_Z) or abs(z) > 25)

@@ -15,7 +15,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
-
 from stopwise.estimation.problem import Problem, Reported, report_derivatives, report_values
 
 NORMAL_95 = float(stats.norm.ppf(0.975))
@@ -70,8 +69,14 @@ def wald_rows(reported: list[Reported], z: np.ndarray, cov: np.ndarray | None) -
     n = len(reported)
     if cov is None:
         nan = np.full(n, np.nan)
-        return RowTable([r.name for r in reported], est, nan, nan.copy(), nan.copy(),
-                        [r.scale for r in reported])
+        return RowTable(
+            [r.name for r in reported],
+            est,
+            nan,
+            nan.copy(),
+            nan.copy(),
+            [r.scale for r in reported],
+        )
     se_z = np.sqrt(np.clip(np.diag(cov), 0.0, None))[[r.index for r in reported]]
     deriv = report_derivatives(reported, z)
     se = np.abs(deriv) * se_z
@@ -82,12 +87,12 @@ def wald_rows(reported: list[Reported], z: np.ndarray, cov: np.ndarray | None) -
         zh[r.index] = z[r.index] + NORMAL_95 * se_z[j]
         a, b = report_values([r], zl)[0], report_values([r], zh)[0]
         lows[j], highs[j] = min(a, b), max(a, b)
-    return RowTable([r.name for r in reported], est, se, lows, highs,
-                    [r.scale for r in reported])
+    return RowTable([r.name for r in reported], est, se, lows, highs, [r.scale for r in reported])
 
 
-def covariance_for(problem: Problem, z: np.ndarray, h: np.ndarray, method: str | None
-                   ) -> tuple[np.ndarray | None, list[str], dict[str, object]]:
+def covariance_for(
+    problem: Problem, z: np.ndarray, h: np.ndarray, method: str | None
+) -> tuple[np.ndarray | None, list[str], dict[str, object]]:
     """Covariance of z by ``method`` ("hessian" or "robust"), warnings, and details."""
     warnings: list[str] = []
     info: dict[str, object] = {}

@@ -16,7 +16,6 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -57,11 +56,15 @@ def build_designs(
     import patsy
 
     items = (
-        [f"{k} ~ {v}" for k, v in formulas.items()] if isinstance(formulas, Mapping)
+        [f"{k} ~ {v}" for k, v in formulas.items()]
+        if isinstance(formulas, Mapping)
         else list(formulas)
     )
-    frame = columns if isinstance(columns, pd.DataFrame) else pd.DataFrame(
-        {k: np.asarray(v) for k, v in columns.items()})
+    frame = (
+        columns
+        if isinstance(columns, pd.DataFrame)
+        else pd.DataFrame({k: np.asarray(v) for k, v in columns.items()})
+    )
     known = ", ".join(map(str, frame.columns)) or "(none)"
     out: dict[str, ParamFormula] = {}
     for formula in items:
@@ -69,12 +72,16 @@ def build_designs(
         if param in out:
             raise StopwiseInputError(f"parameter {param!r} has more than one formula")
         try:
-            matrix = patsy.dmatrix(rhs, frame, NA_action="raise", return_type="dataframe",
-                                   eval_env=patsy.EvalEnvironment([{}]))
+            matrix = patsy.dmatrix(
+                rhs,
+                frame,
+                NA_action="raise",
+                return_type="dataframe",
+                eval_env=patsy.EvalEnvironment([{}]),
+            )
         except patsy.PatsyError as exc:
             raise StopwiseInputError(
-                f"formula {formula!r}: {str(exc).splitlines()[0]}; "
-                f"known covariate columns: {known}"
+                f"formula {formula!r}: {str(exc).splitlines()[0]}; known covariate columns: {known}"
             ) from None
         design = np.asarray(matrix, dtype=np.float64)
         if np.linalg.matrix_rank(design) < design.shape[1]:
@@ -92,19 +99,33 @@ def formula_variables(formulas: Sequence[str] | Mapping[str, str] | None) -> lis
 
     if not formulas:
         return []
-    items = formulas.values() if isinstance(formulas, Mapping) else [
-        f.split("~", 1)[-1] for f in formulas]
+    items = (
+        formulas.values()
+        if isinstance(formulas, Mapping)
+        else [f.split("~", 1)[-1] for f in formulas]
+    )
     names: list[str] = []
     for rhs in items:
         for token in re.findall(r"[A-Za-z_][A-Za-z0-9_.]*", rhs):
-            if token not in names and token not in {"C", "np", "I", "Treatment", "Sum", "log",
-                                                    "exp", "center", "standardize", "scale"}:
+            if token not in names and token not in {
+                "C",
+                "np",
+                "I",
+                "Treatment",
+                "Sum",
+                "log",
+                "exp",
+                "center",
+                "standardize",
+                "scale",
+            }:
                 names.append(token)
     return names
 
 
-def cells_from_designs(designs: Mapping[str, ParamFormula], n_obs: int) -> tuple[
-        np.ndarray, np.ndarray]:
+def cells_from_designs(
+    designs: Mapping[str, ParamFormula], n_obs: int
+) -> tuple[np.ndarray, np.ndarray]:
     """Cell index of each row (rows with equal design rows across formulas share a cell) and
     the distinct combined design rows, shape (n_cells, total columns)."""
     if not designs:

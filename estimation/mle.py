@@ -18,7 +18,6 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pandas as pd
-
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
@@ -72,13 +71,22 @@ def build_problem(
         weights[: data.n_obs] = 1.0
         cluster = np.zeros(size, dtype=np.int64)
         cluster[: data.n_obs] = subject_index(data)
-        problem = Problem(PooledRows(layout), args, weights, cluster, data.n_subjects,
-                          data.n_obs, start_vector(layout), reported_rows(layout),
-                          list(_coef_names(layout, {})))
+        problem = Problem(
+            PooledRows(layout),
+            args,
+            weights,
+            cluster,
+            data.n_subjects,
+            data.n_obs,
+            start_vector(layout),
+            reported_rows(layout),
+            list(_coef_names(layout, {})),
+        )
         return problem, layout, {}
     columns = covariate_frame if covariate_frame is not None else data.covariates
-    designs = build_designs(formulas, [n for n in model.param_names
-                                       if n not in (fixed or {})], columns)
+    designs = build_designs(
+        formulas, [n for n in model.param_names if n not in (fixed or {})], columns
+    )
     if covariate_frame is not None and len(covariate_frame) != data.n_obs:
         raise StopwiseInputError(
             f"the covariate table has {len(covariate_frame)} rows but the data have "
@@ -96,19 +104,27 @@ def build_problem(
         col += widths[p]
     for name in layout.free:
         if name in designs:
-            blocks.append(jnp.asarray(unique[:, offsets[name]: offsets[name] + widths[name]]))
+            blocks.append(jnp.asarray(unique[:, offsets[name] : offsets[name] + widths[name]]))
         else:
             blocks.append(jnp.ones((cells.n_cells, 1)))
     coef_names = {p: f.columns for p, f in designs.items()}
     z0 = start_vector(layout)
     for spec, off, n in zip(layout.specs(), layout.offsets, layout.n_coef):
         if spec.name in coef_names and "Intercept" not in coef_names[spec.name]:
-            z0[off: off + n] = float(spec.to_unconstrained(spec.start))
+            z0[off : off + n] = float(spec.to_unconstrained(spec.start))
     weights = cells.mask.reshape(-1).astype(np.float64)
     cluster = np.asarray(cells.data.subject).reshape(-1).astype(np.int64)
-    problem = Problem(CellRows(layout), (cells.data, tuple(blocks)), weights, cluster,
-                      data.n_subjects, data.n_obs, z0, reported_rows(layout, coef_names),
-                      list(_coef_names(layout, coef_names)))
+    problem = Problem(
+        CellRows(layout),
+        (cells.data, tuple(blocks)),
+        weights,
+        cluster,
+        data.n_subjects,
+        data.n_obs,
+        z0,
+        reported_rows(layout, coef_names),
+        list(_coef_names(layout, coef_names)),
+    )
     return problem, layout, {"cells": cells, "designs": designs, "blocks": blocks}
 
 
@@ -132,17 +148,24 @@ def starts_from(problem: Problem, layout: Layout, starts: Any, seed: int) -> np.
                 value = float(theta[spec.name])
                 if not spec.lower < value < spec.upper:
                     raise StopwiseInputError(
-                        f"start {spec.name}={value} lies outside ({spec.lower}, {spec.upper})")
+                        f"start {spec.name}={value} lies outside ({spec.lower}, {spec.upper})"
+                    )
                 z[off] = float(spec.to_unconstrained(value))
         rows.append(z)
     return np.vstack(rows)
 
 
-def optimise(problem: Problem, starts: np.ndarray, max_iter: int = 200,
-             weights: np.ndarray | None = None) -> tuple[OptimumRecord, list[OptimumRecord]]:
+def optimise(
+    problem: Problem, starts: np.ndarray, max_iter: int = 200, weights: np.ndarray | None = None
+) -> tuple[OptimumRecord, list[OptimumRecord]]:
     """Best of several trust-exact runs on negll (optionally with other row weights)."""
-    return multistart(lambda z: problem.value(z, weights), lambda z: problem.grad(z, weights),
-                      lambda z: problem.hess(z, weights), starts, max_iter)
+    return multistart(
+        lambda z: problem.value(z, weights),
+        lambda z: problem.grad(z, weights),
+        lambda z: problem.hess(z, weights),
+        starts,
+        max_iter,
+    )
 
 
 def bound_flags(problem: Problem, z: np.ndarray) -> list[str]:
@@ -153,8 +176,11 @@ def bound_flags(problem: Problem, z: np.ndarray) -> list[str]:
             continue
         zi = float(z[r.index])
         value = float(natural_np(r.spec, zi))
-        near = [b for b in (r.spec.lower, r.spec.upper) if np.isfinite(b)
-                and abs(value - b) <= 1e-6 * (1.0 + abs(b))]
+        near = [
+            b
+            for b in (r.spec.lower, r.spec.upper)
+            if np.isfinite(b) and abs(value - b) <= 1e-6 * (1.0 + abs(b))
+        ]
         if near or (r.spec.transform != "identity" and abs(zi) > BOUND_Z) or abs(zi) > 25:
             out.append(r.name)
     return out
@@ -175,8 +201,10 @@ def run_fit(
 ) -> Fit:
     """Optimise a Problem and compute standard errors: the engine behind every pooled fit."""
     if se not in SE_METHODS:
-        raise StopwiseInputError(f"unknown standard-error method {se!r}; choose one of "
-                                 "robust, hessian, bootstrap (or none)")
+        raise StopwiseInputError(
+            f"unknown standard-error method {se!r}; choose one of "
+            "robust, hessian, bootstrap (or none)"
+        )
     if se == "auto":
         se = "robust" if n_subjects > 1 else "hessian"
     if se == "robust" and problem.n_clusters < 2:
@@ -195,8 +223,10 @@ def run_fit(
     spread = float(max(conv_values) - min(conv_values)) if len(conv_values) > 1 else 0.0
     if spread > 1e-3:
         n_other = sum(1 for v in conv_values if -best.value - v > 1e-3)
-        notes.append(f"{n_other} of {len(runs)} starts stopped at a lower optimum "
-                     f"(up to {spread:.3g} log-likelihood units below); the best is kept")
+        notes.append(
+            f"{n_other} of {len(runs)} starts stopped at a lower optimum "
+            f"(up to {spread:.3g} log-likelihood units below); the best is kept"
+        )
     clusters = None
     extras: dict[str, Any] = {"problem": problem}
     se_label = se
@@ -208,30 +238,54 @@ def run_fit(
         clusters = problem.n_clusters
         cov = None
         extras["bootstrap"] = info
-        notes.append(f"subject-level bootstrap: {info['replications']} replications "
-                     f"({info['converged']} converged), percentile 95% intervals, "
-                     "vectorised with jax.vmap over replications")
+        notes.append(
+            f"subject-level bootstrap: {info['replications']} replications "
+            f"({info['converged']} converged), percentile 95% intervals, "
+            "vectorised with jax.vmap over replications"
+        )
     else:
         cov, cov_warn, info = covariance_for(problem, z, h, se)
         warnings += cov_warn
         clusters = info.get("clusters")  # type: ignore[assignment]
-        table = wald_rows(problem.reported, z, cov) if se is not None else wald_rows(
-            problem.reported, z, None)
+        table = (
+            wald_rows(problem.reported, z, cov)
+            if se is not None
+            else wald_rows(problem.reported, z, None)
+        )
     at_bound = bound_flags(problem, z)
     for name in at_bound:
-        warnings.append(f"{name} is at (or runs off to) a bound of its range: its standard "
-                        "error and interval are not meaningful")
+        warnings.append(
+            f"{name} is at (or runs off to) a bound of its range: its standard "
+            "error and interval are not meaningful"
+        )
     optimizer = {
         "algorithm": "scipy trust-exact (exact JAX gradient and Hessian)",
-        "grad_norm": best.grad_norm, "iterations": best.iterations, "message": best.message,
-        "starts": len(runs), "spread": spread,
+        "grad_norm": best.grad_norm,
+        "iterations": best.iterations,
+        "message": best.message,
+        "starts": len(runs),
+        "spread": spread,
         "start_logliks": [-r.value for r in runs],
     }
     return Fit(
-        model=model_name, method=method, converged=best.converged, n_obs=problem.n_obs,
-        n_subjects=n_subjects, loglik=-best.value, k=problem.k, table=table,
-        se_method=se_label, warnings=warnings, seed=int(seed), clusters=clusters,
-        optimizer=optimizer, at_bound=at_bound, notes=notes, z=z, cov_z=cov, extras=extras,
+        model=model_name,
+        method=method,
+        converged=best.converged,
+        n_obs=problem.n_obs,
+        n_subjects=n_subjects,
+        loglik=-best.value,
+        k=problem.k,
+        table=table,
+        se_method=se_label,
+        warnings=warnings,
+        seed=int(seed),
+        clusters=clusters,
+        optimizer=optimizer,
+        at_bound=at_bound,
+        notes=notes,
+        z=z,
+        cov_z=cov,
+        extras=extras,
     )
 
 
@@ -253,11 +307,21 @@ def fit_mle(
     with more than one subject, else Hessian), "robust", "hessian", "bootstrap" or None.
     ``formulas``: e.g. ["r ~ 1 + treatment"]; covariate columns come from ``covariate_frame``
     (rows aligned with the data) or the bundle's covariates."""
-    problem, layout, extra = build_problem(model, data, formulas=formulas,
-                                           covariate_frame=covariate_frame, fixed=fixed)
+    problem, layout, extra = build_problem(
+        model, data, formulas=formulas, covariate_frame=covariate_frame, fixed=fixed
+    )
     start_matrix = starts_from(problem, layout, starts, seed)
-    fit = run_fit(problem, model.name, data.n_subjects, se=se, starts=start_matrix, seed=seed,
-                  max_iter=max_iter, bootstrap_reps=bootstrap_reps, progress=progress)
+    fit = run_fit(
+        problem,
+        model.name,
+        data.n_subjects,
+        se=se,
+        starts=start_matrix,
+        seed=seed,
+        max_iter=max_iter,
+        bootstrap_reps=bootstrap_reps,
+        progress=progress,
+    )
     fit.extras.update(extra)
     fit.extras["layout"] = layout
     if fixed:
@@ -276,8 +340,11 @@ def _response_probability(model: Any, theta: Mapping[str, Any], data: Any) -> np
     if model.predict is not None:
         return np.asarray(model.predict(theta, data))
     if isinstance(data, StoppingData):
-        probe = replace(data, draw=np.ones_like(np.asarray(data.draw)),
-                        bust=np.zeros_like(np.asarray(data.bust)))
+        probe = replace(
+            data,
+            draw=np.ones_like(np.asarray(data.draw)),
+            bust=np.zeros_like(np.asarray(data.bust)),
+        )
     else:
         probe = replace(data, choice_b=np.ones_like(np.asarray(data.choice_b)))
     return np.exp(np.asarray(model.loglik_obs(theta, probe)))
@@ -293,41 +360,64 @@ def stop_step_table(model: Any, theta: Mapping[str, Any], data: StoppingData) ->
     step = np.tile(np.arange(horizon), n_cond).astype(np.int32)
     n = len(cond)
     probe = replace(
-        _strip(data), subject=np.zeros(n, np.int32), trial=np.zeros(n, np.int32), step=step,
-        draw=np.ones(n), bust=np.zeros(n), cond=cond, group=np.full(n, -1, np.int32),
-        subject_labels=None, trial_labels=None,
+        _strip(data),
+        subject=np.zeros(n, np.int32),
+        trial=np.zeros(n, np.int32),
+        step=step,
+        draw=np.ones(n),
+        bust=np.zeros(n),
+        cond=cond,
+        group=np.full(n, -1, np.int32),
+        subject_labels=None,
+        trial_labels=None,
     )
     h = _response_probability(model, theta, probe).reshape(n_cond, horizon)
     p = np.asarray(data.cond_p_survive)[:, None]
     log_reach = np.concatenate(
         [np.zeros((n_cond, 1)), np.cumsum(np.log(np.clip(h * p, 1e-300, None)), axis=1)[:, :-1]],
-        axis=1)
+        axis=1,
+    )
     reach = np.exp(log_reach)
-    return pd.DataFrame({
-        "cond": cond, "p_survive": np.asarray(data.cond_p_survive)[cond],
-        "gain": np.asarray(data.cond_gain)[cond], "step": step, "p_draw": h.reshape(-1),
-        "p_reach": reach.reshape(-1), "p_stop_here": (reach * (1 - h)).reshape(-1),
-        "p_bust_here": (reach * h * (1 - p)).reshape(-1),
-    })
+    return pd.DataFrame(
+        {
+            "cond": cond,
+            "p_survive": np.asarray(data.cond_p_survive)[cond],
+            "gain": np.asarray(data.cond_gain)[cond],
+            "step": step,
+            "p_draw": h.reshape(-1),
+            "p_reach": reach.reshape(-1),
+            "p_stop_here": (reach * (1 - h)).reshape(-1),
+            "p_bust_here": (reach * h * (1 - p)).reshape(-1),
+        }
+    )
 
 
-def _make_predictor(model: Any, layout: Layout, fit: Fit, fitted: Any,
-                    extra: Mapping[str, Any]) -> Any:
+def _make_predictor(
+    model: Any, layout: Layout, fit: Fit, fitted: Any, extra: Mapping[str, Any]
+) -> Any:
     z = jnp.asarray(fit.z)
 
     def predict(data: Any = None) -> dict[str, pd.DataFrame]:
         data = fitted if data is None else data
         if "cells" in extra:
             if data is not fitted:
-                raise StopwiseInputError("predictions on new data are available for fits "
-                                         "without formulas; refit on the new data")
+                raise StopwiseInputError(
+                    "predictions on new data are available for fits "
+                    "without formulas; refit on the new data"
+                )
             cells = extra["cells"]
             theta = theta_per_cell(layout, z, tuple(extra["blocks"]))
             cell_thetas = [{k: v[c] for k, v in theta.items()} for c in range(cells.n_cells)]
-            per_cell = np.stack([
-                _response_probability(model, cell_thetas[c], jax.tree_util.tree_map(
-                    lambda a, c=c: np.asarray(a)[c], cells.data))
-                for c in range(cells.n_cells)])
+            per_cell = np.stack(
+                [
+                    _response_probability(
+                        model,
+                        cell_thetas[c],
+                        jax.tree_util.tree_map(lambda a, c=c: np.asarray(a)[c], cells.data),
+                    )
+                    for c in range(cells.n_cells)
+                ]
+            )
             from stopwise.estimation.cells import scatter_rows
 
             prob = scatter_rows(per_cell, cells, data.n_obs)
@@ -336,15 +426,25 @@ def _make_predictor(model: Any, layout: Layout, fit: Fit, fitted: Any,
             theta0 = theta_scalars(layout, z)
             prob = _response_probability(model, theta0, _strip(data))
             cell_thetas = [theta0]
-        labels = (np.asarray(data.subject_labels)[subject_index(data)]
-                  if data.subject_labels is not None else subject_index(data))
+        labels = (
+            np.asarray(data.subject_labels)[subject_index(data)]
+            if data.subject_labels is not None
+            else subject_index(data)
+        )
         if isinstance(data, LotteryData):
-            rows = pd.DataFrame({"subject": labels, "p_choose_b": prob,
-                                 "chose_b": np.asarray(data.choice_b)})
+            rows = pd.DataFrame(
+                {"subject": labels, "p_choose_b": prob, "chose_b": np.asarray(data.choice_b)}
+            )
             return {"rows": rows}
-        rows = pd.DataFrame({"subject": labels, "step": np.asarray(data.step),
-                             "cond": np.asarray(data.cond), "p_draw": prob,
-                             "drew": np.asarray(data.draw)})
+        rows = pd.DataFrame(
+            {
+                "subject": labels,
+                "step": np.asarray(data.step),
+                "cond": np.asarray(data.cond),
+                "p_draw": prob,
+                "drew": np.asarray(data.draw),
+            }
+        )
         tables = []
         for c, theta in enumerate(cell_thetas):
             t = stop_step_table(model, theta, data)

@@ -58,13 +58,20 @@ def minimize_one(
     max_iter: int = 200,
 ) -> OptimumRecord:
     """scipy trust-exact with exact gradient and Hessian; never raises on a bad start."""
+
     def safe_fun(z: np.ndarray) -> float:
         v = fun(np.clip(z, -Z_LIMIT, Z_LIMIT))
         return v if np.isfinite(v) else 1e300
 
     try:
-        res = sopt.minimize(safe_fun, z_start, jac=grad, hess=hess, method="trust-exact",
-                            options={"maxiter": max_iter, "gtol": 1e-8})
+        res = sopt.minimize(
+            safe_fun,
+            z_start,
+            jac=grad,
+            hess=hess,
+            method="trust-exact",
+            options={"maxiter": max_iter, "gtol": 1e-8},
+        )
         z = np.asarray(res.x, dtype=np.float64)
         message, nit = str(res.message), int(res.nit)
     except (ValueError, np.linalg.LinAlgError, FloatingPointError) as exc:
@@ -105,7 +112,11 @@ def _eig_step(g: Any, h: Any, mu: Any) -> Any:
 
 @partial(jax.jit, static_argnums=(0, 4))
 def batched_newton(
-    fun: Callable[..., Any], z0: Any, batch: Any, shared: Any, max_iter: int,
+    fun: Callable[..., Any],
+    z0: Any,
+    batch: Any,
+    shared: Any,
+    max_iter: int,
     gtol: float = 1e-6,
 ) -> tuple[Any, Any, Any, Any, Any, Any]:
     """Minimise fun(z, batch[b], shared) for every b; returns (z, value, grad, hess,

@@ -24,7 +24,6 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
-
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model, ParamSpec
@@ -182,8 +181,12 @@ class Reported:
     scale: str = "natural"
 
 
-def reported_rows(layout: Layout, coef_names: Mapping[str, tuple[str, ...]] | None = None,
-                  prefix: str = "", offset: int = 0) -> list[Reported]:
+def reported_rows(
+    layout: Layout,
+    coef_names: Mapping[str, tuple[str, ...]] | None = None,
+    prefix: str = "",
+    offset: int = 0,
+) -> list[Reported]:
     """Reported rows for a layout: a parameter without a formula on its natural scale; with a
     formula its intercept on the natural scale (named after the parameter) and each effect
     ``param:column`` on the unconstrained scale."""
@@ -196,8 +199,14 @@ def reported_rows(layout: Layout, coef_names: Mapping[str, tuple[str, ...]] | No
             if cname == "Intercept":
                 out.append(Reported(f"{prefix}{spec.name}", offset + off + j, spec))
             else:
-                out.append(Reported(f"{prefix}{spec.name}:{cname}", offset + off + j, None,
-                                    scale=f"unconstrained ({spec.transform})"))
+                out.append(
+                    Reported(
+                        f"{prefix}{spec.name}:{cname}",
+                        offset + off + j,
+                        None,
+                        scale=f"unconstrained ({spec.transform})",
+                    )
+                )
     return out
 
 
@@ -228,18 +237,22 @@ def natural_derivative_np(spec: ParamSpec, z: Any) -> np.ndarray:
 
 
 def report_values(rows: list[Reported], z: np.ndarray) -> np.ndarray:
-    return np.array([
-        float(natural_np(r.spec, z[r.index])) if r.spec is not None else float(z[r.index])
-        for r in rows
-    ])
+    return np.array(
+        [
+            float(natural_np(r.spec, z[r.index])) if r.spec is not None else float(z[r.index])
+            for r in rows
+        ]
+    )
 
 
 def report_derivatives(rows: list[Reported], z: np.ndarray) -> np.ndarray:
     """d estimate / d z[index] for each reported row (delta method)."""
-    return np.array([
-        float(natural_derivative_np(r.spec, z[r.index])) if r.spec is not None else 1.0
-        for r in rows
-    ])
+    return np.array(
+        [
+            float(natural_derivative_np(r.spec, z[r.index])) if r.spec is not None else 1.0
+            for r in rows
+        ]
+    )
 
 
 # ---------------------------------------------------------------------------------------
@@ -252,8 +265,11 @@ def check_kind(model: Model, data: Any) -> None:
         model.data_kind
     )
     if want is not None and not isinstance(data, want):
-        got = "lottery" if isinstance(data, LotteryData) else (
-            "stopping" if isinstance(data, StoppingData) else type(data).__name__)
+        got = (
+            "lottery"
+            if isinstance(data, LotteryData)
+            else ("stopping" if isinstance(data, StoppingData) else type(data).__name__)
+        )
         raise StopwiseInputError(
             f"model {model.name} is a {model.data_kind} model but the data are {got} data; "
             f"choose a {got} model (e.g. {'crra+logit' if got == 'lottery' else 'crra+planner+logit'})"
@@ -264,7 +280,7 @@ def padded_size(n: int) -> int:
     """Round n up to a bucket (within 1/8) so data sets of similar size share compiled code."""
     if n <= 64:
         return 64
-    step = 2 ** max(int(math.floor(math.log2(n))) - 3, 0)
+    step = 2 ** max(math.floor(math.log2(n)) - 3, 0)
     return int(math.ceil(n / step) * step)
 
 
@@ -309,16 +325,25 @@ class Problem:
         return len(self.z0)
 
     def value(self, z: np.ndarray, w: np.ndarray | None = None) -> float:
-        return float(negll(self.rows, jnp.asarray(z), self.args,
-                           jnp.asarray(self.weights if w is None else w)))
+        return float(
+            negll(
+                self.rows, jnp.asarray(z), self.args, jnp.asarray(self.weights if w is None else w)
+            )
+        )
 
     def grad(self, z: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
-        return np.asarray(negll_grad(self.rows, jnp.asarray(z), self.args,
-                                     jnp.asarray(self.weights if w is None else w)))
+        return np.asarray(
+            negll_grad(
+                self.rows, jnp.asarray(z), self.args, jnp.asarray(self.weights if w is None else w)
+            )
+        )
 
     def hess(self, z: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
-        return np.asarray(negll_hess(self.rows, jnp.asarray(z), self.args,
-                                     jnp.asarray(self.weights if w is None else w)))
+        return np.asarray(
+            negll_hess(
+                self.rows, jnp.asarray(z), self.args, jnp.asarray(self.weights if w is None else w)
+            )
+        )
 
     def row_loglik(self, z: np.ndarray) -> np.ndarray:
         return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.args))

@@ -19,11 +19,11 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-
 from stopwise.estimation.covariance import RowTable
 
-DISCLAIMER = ("Research estimates, not a basis for individual financial, clinical or hiring "
-              "decisions.")
+DISCLAIMER = (
+    "Research estimates, not a basis for individual financial, clinical or hiring decisions."
+)
 
 
 @functools.lru_cache(maxsize=1)
@@ -32,8 +32,7 @@ def package_versions() -> dict[str, str]:
     import importlib.metadata as md
 
     out = {"python": platform.python_version()}
-    for name in ("stopwise", "numpy", "scipy", "pandas", "jax", "jaxlib", "statsmodels",
-                 "patsy"):
+    for name in ("stopwise", "numpy", "scipy", "pandas", "jax", "jaxlib", "statsmodels", "patsy"):
         try:
             out[name] = md.version(name)
         except md.PackageNotFoundError:
@@ -68,8 +67,7 @@ class Fit:
     notes: list[str] = field(default_factory=list)
     z: np.ndarray | None = field(default=None, repr=False)
     cov_z: np.ndarray | None = field(default=None, repr=False)
-    predictor: Callable[[Any], dict[str, pd.DataFrame]] | None = field(default=None,
-                                                                         repr=False)
+    predictor: Callable[[Any], dict[str, pd.DataFrame]] | None = field(default=None, repr=False)
     extras: dict[str, Any] = field(default_factory=dict, repr=False)
 
     @property
@@ -85,8 +83,13 @@ class Fit:
         """One row per reported quantity: estimate, se, ci_low, ci_high (95%), scale."""
         t = self.table
         frame = pd.DataFrame(
-            {"estimate": t.estimate, "se": t.se, "ci_low": t.ci_low, "ci_high": t.ci_high,
-             "scale": t.scale},
+            {
+                "estimate": t.estimate,
+                "se": t.se,
+                "ci_low": t.ci_low,
+                "ci_high": t.ci_high,
+                "scale": t.scale,
+            },
             index=pd.Index(t.names, name="name"),
         )
         frame["at_bound"] = [n in self.at_bound for n in t.names]
@@ -98,8 +101,7 @@ class Fit:
     def to_dict(self) -> dict[str, Any]:
         t = self.table
         params = [
-            {"name": n, "estimate": _num(e), "se": _num(s), "ci_low": _num(lo),
-             "ci_high": _num(hi)}
+            {"name": n, "estimate": _num(e), "se": _num(s), "ci_low": _num(lo), "ci_high": _num(hi)}
             for n, e, s, lo, hi in zip(t.names, t.estimate, t.se, t.ci_low, t.ci_high)
         ]
         return {
@@ -144,29 +146,38 @@ class Fit:
             f"Log-likelihood: {self.loglik:.4f}    k: {self.k}    AIC: {self.aic:.2f}    "
             f"BIC: {self.bic:.2f}",
             f"Converged: {'yes' if self.converged else 'NO'}"
-            + (f"    max|gradient|: {self.optimizer['grad_norm']:.2e}"
-               if "grad_norm" in self.optimizer else "")
-            + (f"    iterations: {self.optimizer['iterations']}"
-               if "iterations" in self.optimizer else ""),
+            + (
+                f"    max|gradient|: {self.optimizer['grad_norm']:.2e}"
+                if "grad_norm" in self.optimizer
+                else ""
+            )
+            + (
+                f"    iterations: {self.optimizer['iterations']}"
+                if "iterations" in self.optimizer
+                else ""
+            ),
         ]
         if "starts" in self.optimizer:
-            lines.append(f"Starts: {self.optimizer['starts']}    spread of optima (loglik): "
-                         f"{self.optimizer.get('spread', 0.0):.3g}")
+            lines.append(
+                f"Starts: {self.optimizer['starts']}    spread of optima (loglik): "
+                f"{self.optimizer.get('spread', 0.0):.3g}"
+            )
         frame = self.params
         width = max([len("parameter")] + [len(str(n)) for n in frame.index])
         header = f"{'parameter':<{width}}  {'estimate':>11}  {'se':>10}  {'95% CI':>25}"
         rule = "-" * len(header)
         lines += [rule, header, rule]
         for name, row in frame.iterrows():
-            ci = (f"[{row.ci_low:.4g}, {row.ci_high:.4g}]" if np.isfinite(row.ci_low)
-                  else "-")
+            ci = f"[{row.ci_low:.4g}, {row.ci_high:.4g}]" if np.isfinite(row.ci_low) else "-"
             flag = "  (at bound)" if row.at_bound else ""
             se = f"{row.se:10.4g}" if np.isfinite(row.se) else f"{'nan':>10}"
             lines.append(f"{name:<{width}}  {row.estimate:11.5g}  {se}  {ci:>25}{flag}")
         lines.append(rule)
         if any(s != "natural" for s in frame["scale"]):
-            lines.append("Effects named param:column are on the unconstrained scale "
-                         "(log for positive parameters, logit for bounded ones).")
+            lines.append(
+                "Effects named param:column are on the unconstrained scale "
+                "(log for positive parameters, logit for bounded ones)."
+            )
         for note in self.notes:
             lines.append(f"Note: {note}")
         for w in self.warnings:
@@ -200,9 +211,15 @@ class FitBySubject:
         return pd.concat(frames, ignore_index=True)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"by": "subject", "model": self.model, "warnings": list(self.warnings),
-                "fits": [{"subject": _plain(s), **f.to_dict(),
-                          "flags": self.flags.get(s, [])} for s, f in self.fits]}
+        return {
+            "by": "subject",
+            "model": self.model,
+            "warnings": list(self.warnings),
+            "fits": [
+                {"subject": _plain(s), **f.to_dict(), "flags": self.flags.get(s, [])}
+                for s, f in self.fits
+            ],
+        }
 
     def to_json(self) -> str:
         from stopwise._io import dumps_json
@@ -212,14 +229,17 @@ class FitBySubject:
     def summary(self) -> str:
         """Distribution of estimates across subjects and the flagged subjects."""
         frame = self.params
-        lines = [f"Model: {self.model}    per-subject maximum likelihood    "
-                 f"subjects: {len(self.fits)}",
-                 f"converged: {sum(f.converged for _, f in self.fits)}    flagged: "
-                 f"{sum(bool(v) for v in self.flags.values())}"]
-        desc = frame.groupby("name", sort=False)["estimate"].describe(
-            percentiles=[0.25, 0.5, 0.75])
-        lines.append(desc[["count", "mean", "std", "25%", "50%", "75%"]].to_string(
-            float_format=lambda v: f"{v:.4g}"))
+        lines = [
+            f"Model: {self.model}    per-subject maximum likelihood    subjects: {len(self.fits)}",
+            f"converged: {sum(f.converged for _, f in self.fits)}    flagged: "
+            f"{sum(bool(v) for v in self.flags.values())}",
+        ]
+        desc = frame.groupby("name", sort=False)["estimate"].describe(percentiles=[0.25, 0.5, 0.75])
+        lines.append(
+            desc[["count", "mean", "std", "25%", "50%", "75%"]].to_string(
+                float_format=lambda v: f"{v:.4g}"
+            )
+        )
         flagged = [(s, v) for s, v in self.flags.items() if v]
         for s, v in flagged[:20]:
             lines.append(f"subject {s}: {'; '.join(v)}")
