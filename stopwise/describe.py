@@ -1,0 +1,299 @@
+"""The descriptive summary: the first table a researcher looks at.
+
+Stopping data, per condition (p_survive, gain, task, prize, keep_bank, and start/bust_keep
+when present): subjects, trials, draws attempted (mean and quartiles), final bank (mean and
+quartiles), bust rate, mean stop step, and the risk-neutral benchmark beside them: the
+optimal target n* (draw while bank < p g / ((1 - p)(1 - k)); p g / (1 - p) with start 0)
+and its expected bank E[bank | n*]. For contests that benchmark is the solo one.
+Lottery data: per item the share choosing B with both expected values, and per subject the
+number of switches between A and B along each list (items in sorted order).
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from stopwise.data_schemas.load import Dataset, load
+from stopwise.models.normative import risk_neutral_benchmark
+
+CONDITION_KEYS = ("p_survive", "gain", "task", "prize", "keep_bank")
+OPTIONAL_KEYS = ("start", "bust_keep")
+
+
+@dataclass(frozen=True)
+class Description:
+    """Summary tables of one data set (see the module docstring for the columns)."""
+
+    kind: str
+    source: str
+    table: pd.DataFrame
+    stop_steps: pd.DataFrame | None = None
+    switching: pd.DataFrame | None = None
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    def __str__(self) -> str:
+        title = (
+            "Stopping data by condition" if self.kind == "stopping" else "Lottery choices by item"
+        )
+        parts = [f"{title} ({self.source})", _frame_text(self.table)]
+        if self.stop_steps is not None and len(self.stop_steps):
+            parts += [
+                "",
+                "Stop steps (stopped trials: step -> count)",
+                _stop_step_lines(self.stop_steps),
+            ]
+        if self.switching is not None and len(self.switching):
+            parts += [
+                "",
+                "Switching between A and B per subject and list",
+                _frame_text(_switch_summary(self.switching)),
+            ]
+        parts += [f"Note: {n}" for n in self.notes]
+        return "\n".join(parts)
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "kind": self.kind,
+            "source": self.source,
+            "table": _records(self.table),
+            "notes": list(self.notes),
+        }
+        if self.stop_steps is not None:
+            out["stop_steps"] = _records(self.stop_steps)
+        if self.switching is not None:
+            out["switching"] = _records(_switch_summary(self.switching))
+        return out
+
+
+def describe(data: str | os.PathLike[str] | pd.DataFrame | Dataset) -> Description:
+    """Describe a path, DataFrame or Dataset (validated on the way in)."""
+    dataset = load(data)
+    if dataset.kind == "stopping":
+        return _describe_stopping(dataset)
+    return _describe_lottery(dataset)
+
+
+# ---------------------------------------------------------------------------------------
+# stopping
+# ---------------------------------------------------------------------------------------
+
+
+def trial_summary(frame: pd.DataFrame) -> pd.DataFrame:
+    """One row per trial: condition keys, subject, draws attempted, successful draws,
+    busted, stopped and the final bank (k * bank at a bust, the bank otherwise)."""
+    keys = _condition_frame(frame)
+    trial_id = frame.groupby(["subject", "trial"], sort=False, observed=True).ngroup()
+    trial_id = trial_id.to_numpy()
+    n_trials = int(trial_id.max()) + 1
+    action = frame["action"].astype(object).to_numpy()
+    outcome = frame["outcome"].astype(object).to_numpy()
+    attempted = np.bincount(trial_id, weights=action == "draw", minlength=n_trials)
+    successes = np.bincount(trial_id, weights=outcome == "success", minlength=n_trials)
+    busted = np.bincount(trial_id, weights=outcome == "bust", minlength=n_trials) > 0
+    stopped = np.bincount(trial_id, weights=action == "stop", minlength=n_trials) > 0
+    first = np.full(n_trials, -1, dtype=np.int64)
+    rows = np.arange(len(trial_id))[::-1]
+    first[trial_id[rows]] = rows
+    per_trial = keys.iloc[first].reset_index(drop=True)
+    per_trial.insert(0, "subject", frame["subject"].to_numpy()[first])
+    bank = per_trial["start"].to_numpy() + successes * per_trial["gain"].to_numpy()
+    per_trial["draws_attempted"] = attempted.astype(np.int64)
+    per_trial["successes"] = successes.astype(np.int64)
+    per_trial["busted"] = busted
+    per_trial["stopped"] = stopped
+    per_trial["final_bank"] = np.where(busted, per_trial["bust_keep"].to_numpy() * bank, bank)
+    return per_trial
+
+
+def _condition_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """Condition keys per row, with defaults for absent columns; solo rows get prize 0 and
+    keep_bank 1 (their values do not matter)."""
+    n = len(frame)
+    task = (
+        frame["task"].astype(object).to_numpy()
+        if "task" in frame.columns
+        else np.full(n, "solo", dtype=object)
+    )
+    if "task" not in frame.columns and "n_players" in frame.columns:
+        task = np.where(
+            frame["n_players"].to_numpy(dtype=np.float64, na_value=1.0) > 1, "contest", "solo"
+        ).astype(object)
+    solo = task == "solo"
+
+    def column(name: str, default: float) -> np.ndarray:
+        if name not in frame.columns:
+            return np.full(n, default, dtype=np.float64)
+        values = frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
+        return np.where(np.isnan(values), default, values)
+
+    return pd.DataFrame(
+        {
+            "p_survive": frame["p_survive"].to_numpy(dtype=np.float64),
+            "gain": frame["gain"].to_numpy(dtype=np.float64),
+            "task": task,
+            "prize": np.where(solo, 0.0, column("prize", 0.0)),
+            "keep_bank": np.where(solo, 1, column("keep_bank", 1.0)).astype(np.int64),
+            "start": column("start", 0.0),
+            "bust_keep": column("bust_keep", 0.0),
+        }
+    )
+
+
+def _describe_stopping(dataset: Dataset) -> Description:
+    frame = dataset.frame
+    trials = trial_summary(frame)
+    keys = list(CONDITION_KEYS) + [k for k in OPTIONAL_KEYS if k in frame.columns]
+    grouped = trials.groupby(keys, sort=True)
+    table = grouped.agg(
+        n_subjects=("subject", "nunique"),
+        n_trials=("draws_attempted", "size"),
+        draws_mean=("draws_attempted", "mean"),
+        draws_q25=("draws_attempted", lambda s: s.quantile(0.25)),
+        draws_median=("draws_attempted", "median"),
+        draws_q75=("draws_attempted", lambda s: s.quantile(0.75)),
+        bank_mean=("final_bank", "mean"),
+        bank_q25=("final_bank", lambda s: s.quantile(0.25)),
+        bank_median=("final_bank", "median"),
+        bank_q75=("final_bank", lambda s: s.quantile(0.75)),
+        bust_rate=("busted", "mean"),
+        stop_step_mean=("successes", lambda s: np.nan),
+    ).reset_index()
+    stopped = trials[trials["stopped"]]
+    mean_stop = stopped.groupby(keys, sort=True)["successes"].mean().rename("stop_step_mean")
+    table = table.drop(columns="stop_step_mean").merge(mean_stop.reset_index(), on=keys, how="left")
+    benchmark = [
+        risk_neutral_benchmark(
+            row.p_survive, row.gain, getattr(row, "start", 0.0), getattr(row, "bust_keep", 0.0)
+        )
+        for row in table.itertuples(index=False)
+    ]
+    table["rn_target"] = [b[0] for b in benchmark]
+    table["rn_bank"] = [b[1] for b in benchmark]
+    stop_steps = (
+        stopped.groupby([*keys, "successes"], sort=True)
+        .size()
+        .rename("n")
+        .reset_index()
+        .rename(columns={"successes": "stop_step"})
+    )
+    totals = stop_steps.groupby(keys)["n"].transform("sum")
+    stop_steps["share"] = stop_steps["n"] / totals
+    notes = [
+        "rn_target = risk-neutral optimal number of successful draws (the smaller one "
+        "in a tie); rn_bank = its expected bank; draws = draws attempted; bank = final "
+        "bank."
+    ]
+    if (table["task"] == "contest").any():
+        notes.append(
+            "for contest rows rn_target/rn_bank are the solo benchmark, not a contest equilibrium."
+        )
+    return Description("stopping", dataset.source, table, stop_steps, None, tuple(notes))
+
+
+def _stop_step_lines(stop_steps: pd.DataFrame) -> str:
+    keys = [c for c in stop_steps.columns if c not in ("stop_step", "n", "share")]
+    lines = []
+    for key, part in stop_steps.groupby(keys, sort=True):
+        label = ", ".join(f"{k}={_short(v)}" for k, v in zip(keys, key))
+        counts = " ".join(f"{int(s)}:{int(n)}" for s, n in zip(part["stop_step"], part["n"]))
+        lines.append(f"  {label}: {counts}")
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------------------
+# lottery
+# ---------------------------------------------------------------------------------------
+
+
+def _expected_value(frame: pd.DataFrame, option: str) -> np.ndarray:
+    total = np.zeros(len(frame))
+    for name in frame.columns:
+        if name.startswith(f"{option}_x"):
+            k = name[len(option) + 2 :]
+            x = frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
+            p = frame[f"{option}_p{k}"].to_numpy(dtype=np.float64, na_value=np.nan)
+            total += np.where(np.isnan(p) | (p == 0), 0.0, p * np.nan_to_num(x))
+    return total
+
+
+def _describe_lottery(dataset: Dataset) -> Description:
+    frame = dataset.frame.copy()
+    frame["chose_b"] = (frame["choice"].astype(object) == "B").astype(np.float64)
+    frame["ev_a"] = _expected_value(frame, "a")
+    frame["ev_b"] = _expected_value(frame, "b")
+    keys = ["block", "item"] if "block" in frame.columns else ["item"]
+    table = (
+        frame.groupby(keys, sort=True)
+        .agg(
+            n=("chose_b", "size"),
+            share_b=("chose_b", "mean"),
+            ev_a=("ev_a", "mean"),
+            ev_b=("ev_b", "mean"),
+        )
+        .reset_index()
+    )
+    switching = switching_by_subject(frame)
+    notes = (
+        "switches = changes between A and B along a list ordered by item; a single "
+        "switch (or none) is a consistent response pattern.",
+    )
+    return Description("lottery", dataset.source, table, None, switching, notes)
+
+
+def switching_by_subject(frame: pd.DataFrame) -> pd.DataFrame:
+    """Per subject (and block, when present): choices of B, number of A/B switches along
+    the items in sorted order, and the first item chosen B."""
+    keys = ["subject", "block"] if "block" in frame.columns else ["subject"]
+    ordered = frame.sort_values([*keys, "item"], kind="stable")
+    chose_b = (ordered["choice"].astype(object) == "B").to_numpy()
+    same_list = (ordered[keys].shift() == ordered[keys]).all(axis=1).to_numpy()
+    switched = same_list & (chose_b != np.r_[False, chose_b[:-1]])
+    ordered = ordered.assign(_b=chose_b, _switch=switched)
+    result = ordered.groupby(keys, sort=True).agg(
+        n_items=("_b", "size"), n_b=("_b", "sum"), n_switches=("_switch", "sum")
+    )
+    first_b = ordered[ordered["_b"]].groupby(keys, sort=True)["item"].first()
+    result["first_b_item"] = first_b
+    return result.reset_index()
+
+
+def _switch_summary(switching: pd.DataFrame) -> pd.DataFrame:
+    keys = ["block"] if "block" in switching.columns else []
+    data = switching.assign(multiple=switching["n_switches"] > 1)
+    if not keys:
+        data = data.assign(block="all")
+        keys = ["block"]
+    return (
+        data.groupby(keys, sort=True)
+        .agg(
+            n_subjects=("subject", "nunique"),
+            mean_b=("n_b", "mean"),
+            median_switches=("n_switches", "median"),
+            share_multiple=("multiple", "mean"),
+        )
+        .reset_index()
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# printing
+# ---------------------------------------------------------------------------------------
+
+
+def _short(value: Any) -> str:
+    if isinstance(value, (float, np.floating)):
+        return f"{float(value):g}"
+    return str(value)
+
+
+def _frame_text(frame: pd.DataFrame) -> str:
+    return frame.to_string(index=False, float_format=lambda v: f"{v:.3g}")
+
+
+def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
+    return frame.to_dict(orient="records")
