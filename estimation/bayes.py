@@ -1,0 +1,602 @@
+"""Bayesian estimation with NumPyro's NUTS: any model's ``loglik_obs`` wrapped automatically.
+
+Rows are grouped in cells (estimation/cells.py) that share one parameter vector; with k the
+model's parameters on their unconstrained scale z (x = ParamSpec.to_natural(z)):
+
+  pooled:        z_k[c] = X_k[c] @ b_k
+  hierarchical:  z_k[c] = X_k[c] @ b_k + u[s(c), k],   u_s = diag(sd) L eta_s,
+                 eta_s ~ Normal(0, I)  (non-centred),  L L^T = Omega ~ LKJ(2),
+                 sd_k ~ HalfNormal(1)
+
+where X_k is the patsy design of the formula ``k ~ rhs`` (a column of ones without one), s(c)
+the subject of cell c, and the intercept of b_k carries the parameter's natural-scale prior
+(estimation/priors.py) through the change of variables; other effects ~ Normal(0, 1). The
+log-likelihood added to the joint density is
+
+  sum_c sum_i mask[c, i] * loglik_obs(theta_c, data_c)[i],    theta_c = to_natural(z[c]).
+
+No sampler is written here: NumPyro's NUTS runs on the CPU. Chains: "auto" runs them in
+parallel (one per device) when JAX sees at least as many devices as chains, otherwise
+"vectorized" (all chains batched through one compiled program on one device). ``import
+stopwise`` imports JAX, but JAX creates its CPU devices only at the first computation, so
+numpyro.set_host_device_count (XLA_FLAGS=--xla_force_host_platform_device_count=N) works only
+when set before any array is made; we do not force it because by the time data are loaded
+the backend exists, and on a 2-core machine parallel chains can use at most 2 of 4 chains at
+once. benchmarks/bench_bayes.py measures the choice.
+
+The pointwise log-likelihood for ArviZ is computed after sampling (vmapped over draws in
+chunks), not stored during sampling, and is summed per *unit*: a trial for stopping data (the
+trial is the observation a stop-step distribution describes), a choice row for lottery data.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from functools import partial
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import numpyro
+import numpyro.distributions as dist
+from numpyro.distributions import constraints
+from numpyro.infer import MCMC, NUTS, init_to_uniform
+from stopwise.data_schemas.arrays import LotteryData, StoppingData
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.cells import Cells, split_into_cells
+from stopwise.estimation.priors import (
+    COEF_SD,
+    HYPER_SD_SCALE,
+    LKJ_CONCENTRATION,
+    Prior,
+    resolve_priors,
+)
+from stopwise.models.base import Model, ParamSpec
+
+# ---------------------------------------------------------------------------------------
+# Static description of a fit (hashable by identity: a static argument of jitted functions).
+
+
+@dataclass(frozen=True, eq=False)
+class Setup:
+    """Parameters, priors, formula columns and the pooled/hierarchical switch."""
+
+    model: Model
+    priors: Mapping[str, Prior]
+    coef_names: Mapping[str, tuple[str, ...]]  # per parameter: design column names
+    hierarchical: bool
+    n_subjects: int
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return self.model.param_names
+
+    @property
+    def specs(self) -> tuple[ParamSpec, ...]:
+        return self.model.params
+
+    def has_intercept(self, name: str) -> bool:
+        return "Intercept" in self.coef_names[name]
+
+    def effect_columns(self, name: str) -> tuple[int, ...]:
+        return tuple(j for j, c in enumerate(self.coef_names[name]) if c != "Intercept")
+
+
+@dataclass(frozen=True)
+class CellArgs:
+    """Arrays the NumPyro model reads (a pytree, so new data of the same shape reuse code)."""
+
+    data: Any  # cells-batched bundle, leading axis = cell
+    mask: Any  # (n_cells, width)
+    designs: Mapping[str, Any]  # name -> (n_cells, n_coef)
+    cell_subject: Any  # (n_cells,) subject index of each cell
+    unit: Any  # (n_cells, width) pointwise unit of each padded row (0 for padding)
+
+
+jax.tree_util.register_pytree_node(
+    CellArgs,
+    lambda a: ((a.data, a.mask, dict(a.designs), a.cell_subject, a.unit), None),
+    lambda _, c: CellArgs(*c),
+)
+
+
+# ---------------------------------------------------------------------------------------
+# The model: site values -> per-cell unconstrained parameters -> log-likelihood.
+
+
+def cell_z(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> dict[str, Any]:
+    """z_k[c] = X_k[c] @ b_k (+ u[s(c), k] when hierarchical), one array (n_cells,) per k."""
+    out: dict[str, Any] = {}
+    offsets = subject_offsets(setup, sites) if setup.hierarchical else None
+    for k, name in enumerate(setup.names):
+        coef = coefficients(setup, sites, name)
+        z = args.designs[name] @ coef
+        if offsets is not None:
+            z = z + offsets[args.cell_subject, k]
+        out[name] = z
+    return out
+
+
+def coefficients(setup: Setup, sites: Mapping[str, Any], name: str) -> Any:
+    """b_k in design-column order from the intercept site z_<k> and effect site b_<k>."""
+    parts = []
+    effects = setup.effect_columns(name)
+    e = 0
+    for column in setup.coef_names[name]:
+        if column == "Intercept":
+            parts.append(jnp.reshape(sites[f"z_{name}"], (1,)))
+        else:
+            parts.append(jnp.reshape(sites[f"b_{name}"][e], (1,)))
+            e += 1
+    assert e == len(effects)
+    return jnp.concatenate(parts)
+
+
+def subject_offsets(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """u = eta @ (diag(sd) L)^T, shape (n_subjects, K): u_s ~ Normal(0, diag(sd) Omega diag(sd))."""
+    sd = sites["sd_z"]
+    chol = sites["L_corr"] if len(setup.names) > 1 else jnp.ones((1, 1))
+    return sites["eta"] @ (sd[:, None] * chol).T
+
+
+def cell_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
+    """mask[c, i] * loglik_obs(theta_c, data_c)[i], shape (n_cells, width)."""
+    z = cell_z(setup, sites, args)
+    theta = {spec.name: spec.to_natural(z[spec.name]) for spec in setup.specs}
+    ll = jax.vmap(setup.model.loglik_obs)(theta, args.data)
+    return jnp.where(args.mask > 0, ll, 0.0)
+
+
+def numpyro_model(setup: Setup, args: CellArgs) -> None:
+    """The joint density: priors (module docstring) plus the summed log-likelihood."""
+    sites: dict[str, Any] = {}
+    for spec in setup.specs:
+        name = spec.name
+        if setup.has_intercept(name):
+            z0 = numpyro.sample(f"z_{name}", dist.ImproperUniform(constraints.real, (), ()))
+            numpyro.factor(f"prior_{name}", setup.priors[name].log_density_unconstrained(spec, z0))
+            sites[f"z_{name}"] = z0
+        n_eff = len(setup.effect_columns(name))
+        if n_eff:
+            sites[f"b_{name}"] = numpyro.sample(
+                f"b_{name}", dist.Normal(0.0, COEF_SD).expand([n_eff]).to_event(1)
+            )
+    if setup.hierarchical:
+        k = len(setup.names)
+        sites["sd_z"] = numpyro.sample(
+            "sd_z", dist.HalfNormal(HYPER_SD_SCALE).expand([k]).to_event(1)
+        )
+        if k > 1:
+            sites["L_corr"] = numpyro.sample("L_corr", dist.LKJCholesky(k, LKJ_CONCENTRATION))
+        sites["eta"] = numpyro.sample(
+            "eta", dist.Normal(0.0, 1.0).expand([setup.n_subjects, k]).to_event(2)
+        )
+    numpyro.factor("loglik", jnp.sum(cell_loglik(setup, sites, args)))
+
+
+def init_near(
+    site: Any = None,
+    values: Mapping[str, float] | None = None,
+    radius: float = 0.5,
+    jitter: float = 0.1,
+) -> Any:
+    """Initialisation: named sites at ``values`` plus Uniform(-jitter, jitter) per chain (so
+    chains start apart), other sites Uniform(-radius, radius) on the unconstrained scale."""
+    if site is None:
+        return partial(init_near, values=dict(values or {}), radius=radius, jitter=jitter)
+    if site["type"] == "sample" and not site["is_observed"] and site["name"] in (values or {}):
+        key = site["kwargs"].get("rng_key")
+        shape = site["kwargs"].get("sample_shape", ())
+        base = jnp.asarray(values[site["name"]])
+        return base + jax.random.uniform(key, shape + base.shape, minval=-jitter, maxval=jitter)
+    return init_to_uniform(site, radius=radius)
+
+
+# ---------------------------------------------------------------------------------------
+# Data preparation.
+
+
+def as_bundle(data: Any) -> Any:
+    """A StoppingData/LotteryData bundle from a bundle or a loaded Dataset (``.arrays()``)."""
+    if isinstance(data, (StoppingData, LotteryData)):
+        return data
+    if hasattr(data, "arrays"):
+        return data.arrays()
+    raise StopwiseInputError(
+        f"Bayesian fit: expected a StoppingData/LotteryData bundle or a loaded data set, "
+        f"got {type(data).__name__}"
+    )
+
+
+def as_model(model: Model | str) -> Model:
+    if isinstance(model, Model):
+        return model
+    if isinstance(model, str):
+        from stopwise.models.spec import build_model
+
+        return build_model(model)
+    raise StopwiseInputError(f"expected a Model or a model spec string, got {type(model).__name__}")
+
+
+def check_kind(model: Model, data: Any) -> None:
+    want = LotteryData if model.data_kind == "lottery" else StoppingData
+    if not isinstance(data, want):
+        got = "lottery" if isinstance(data, LotteryData) else "stopping"
+        raise StopwiseInputError(
+            f"model {model.name} is a {model.data_kind} model but the data are {got} data"
+        )
+
+
+def unit_of_rows(data: Any, pointwise: str) -> tuple[np.ndarray, np.ndarray, str]:
+    """Pointwise unit index per row (0..n_units-1), the unit labels and the unit name."""
+    if pointwise == "row":
+        n = data.n_obs
+        return np.arange(n), np.arange(n), "row"
+    if pointwise == "trial" and isinstance(data, StoppingData):
+        labels, index = np.unique(np.asarray(data.trial), return_inverse=True)
+        return index.reshape(-1), labels, "trial"
+    if pointwise == "subject":
+        labels, index = np.unique(np.asarray(data.subject), return_inverse=True)
+        return index.reshape(-1), labels, "subject"
+    raise StopwiseInputError(
+        f"pointwise={pointwise!r}: expected 'row', 'subject' or (stopping data) 'trial'"
+    )
+
+
+def build_designs_for(model: Model, data: Any, formulas: Any) -> dict[str, Any]:
+    """Per-row design matrices and column names for every parameter (ones without formula)."""
+    from stopwise.estimation.formulas import build_designs
+
+    n = data.n_obs
+    parsed = build_designs(formulas, model.param_names, dict(data.covariates)) if formulas else {}
+    out = {}
+    for name in model.param_names:
+        if name in parsed:
+            out[name] = (parsed[name].design, parsed[name].columns)
+        else:
+            out[name] = (np.ones((n, 1)), ("Intercept",))
+    return out
+
+
+def prepare(
+    model: Model,
+    data: Any,
+    *,
+    hierarchical: bool,
+    formulas: Any,
+    priors: Mapping[str, Any] | None,
+    pointwise: str,
+) -> tuple[Setup, CellArgs, Cells, np.ndarray, str]:
+    """Cells (subject x distinct design row when hierarchical, distinct design row when
+    pooled), their designs and subjects, and the static setup."""
+    designs = build_designs_for(model, data, formulas)
+    combined = np.concatenate([d for d, _ in designs.values()], axis=1)
+    _, design_row = np.unique(combined, axis=0, return_inverse=True)
+    design_row = design_row.reshape(-1)
+    subject = np.asarray(data.subject).astype(np.int64)
+    key = subject * (int(design_row.max()) + 1) + design_row if hierarchical else design_row
+    cells = split_into_cells(data, key)
+    first = cells.rows[:, 0]
+    unit_index, unit_labels, unit_name = unit_of_rows(data, pointwise)
+    unit = np.where(cells.rows >= 0, unit_index[np.maximum(cells.rows, 0)], 0)
+    args = CellArgs(
+        data=jax.tree_util.tree_map(jnp.asarray, cells.data),
+        mask=jnp.asarray(cells.mask),
+        designs={n: jnp.asarray(d[first]) for n, (d, _) in designs.items()},
+        cell_subject=jnp.asarray(subject[first]),
+        unit=jnp.asarray(unit),
+    )
+    setup = Setup(
+        model=model,
+        priors=resolve_priors(model, priors),
+        coef_names={n: tuple(c) for n, (_, c) in designs.items()},
+        hierarchical=hierarchical,
+        n_subjects=int(data.n_subjects),
+    )
+    return setup, args, cells, unit_labels, unit_name
+
+
+# ---------------------------------------------------------------------------------------
+# Initial values.
+
+
+def initial_values(
+    setup: Setup, model: Model, data: Any, init: Any, formulas: Any, notes: list[str]
+) -> dict[str, Any]:
+    """Unconstrained starting values of the intercept sites: the model's start values,
+    the ML estimate (init="mle"), or a user mapping name -> natural value."""
+    natural = model.start_theta()
+    if isinstance(init, Mapping):
+        unknown = sorted(set(init) - set(model.param_names))
+        if unknown:
+            raise StopwiseInputError(
+                f"init gives {unknown}, not parameters of {model.name} {list(model.param_names)}"
+            )
+        natural.update({k: float(v) for k, v in init.items()})
+    elif init == "mle":
+        natural.update(mle_estimates(model, data, formulas, notes))
+    elif init not in (None, "start"):
+        raise StopwiseInputError(f"init={init!r}: expected None, 'start', 'mle' or a mapping")
+    values = {}
+    for spec in model.params:
+        x = float(natural[spec.name])
+        if not spec.lower < x < spec.upper:
+            raise StopwiseInputError(
+                f"initial value {spec.name}={x:g} lies outside ({spec.lower:g}, {spec.upper:g})"
+            )
+        if setup.has_intercept(spec.name):
+            values[f"z_{spec.name}"] = float(spec.to_unconstrained(x))
+    return values
+
+
+def mle_estimates(model: Model, data: Any, formulas: Any, notes: list[str]) -> dict[str, float]:
+    """Natural-scale ML estimates of the parameters (intercepts), or {} with a note."""
+    try:
+        from stopwise.estimation.mle import fit_mle
+    except ImportError:
+        notes.append(
+            "init='mle': the ML engine is not available; started at the model's start values"
+        )
+        return {}
+    try:
+        fit = fit_mle(model, data, se=None, formulas=formulas)
+        frame = fit.params
+        if "name" in getattr(frame, "columns", ()):
+            frame = frame.set_index("name")
+        out = {}
+        for spec in model.params:
+            if spec.name in frame.index:
+                x = float(frame.loc[spec.name, "estimate"])
+                if spec.lower < x < spec.upper and math.isfinite(x):
+                    out[spec.name] = x
+        return out
+    except StopwiseInputError:
+        raise
+    except Exception as exc:  # the ML fit is only a starting point
+        notes.append(
+            f"init='mle': the ML fit failed ({type(exc).__name__}: {exc}); started "
+            "at the model's start values"
+        )
+        return {}
+
+
+# ---------------------------------------------------------------------------------------
+# Running the sampler.
+
+
+def choose_chain_method(chain_method: str, chains: int) -> str:
+    """'auto' -> 'parallel' if JAX has a device per chain, else 'vectorized'."""
+    if chain_method == "auto":
+        return "parallel" if jax.local_device_count() >= chains and chains > 1 else "vectorized"
+    if chain_method not in ("parallel", "vectorized", "sequential"):
+        raise StopwiseInputError(
+            f"chain_method={chain_method!r}: expected auto, parallel, vectorized or sequential"
+        )
+    return chain_method
+
+
+def run_nuts(
+    setup: Setup,
+    args: CellArgs,
+    *,
+    chains: int,
+    draws: int,
+    warmup: int,
+    seed: int,
+    init_values: Mapping[str, Any],
+    progress: bool,
+    target_accept: float,
+    max_tree_depth: int,
+    chain_method: str,
+) -> MCMC:
+    """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations."""
+    kernel = NUTS(
+        partial(numpyro_model, setup),
+        target_accept_prob=target_accept,
+        max_tree_depth=max_tree_depth,
+        init_strategy=init_near(values=init_values),
+    )
+    mcmc = MCMC(
+        kernel,
+        num_warmup=warmup,
+        num_samples=draws,
+        num_chains=chains,
+        chain_method=chain_method,
+        progress_bar=progress,
+        jit_model_args=True,
+    )
+    with warnings.catch_warnings():
+        # numpyro warns when it switches parallel -> sequential; we choose the method ourselves
+        warnings.filterwarnings("ignore", message="There are not enough devices")
+        mcmc.run(
+            jax.random.PRNGKey(seed),
+            args,
+            extra_fields=(
+                "diverging",
+                "num_steps",
+                "energy",
+                "accept_prob",
+                "adapt_state.step_size",
+                "potential_energy",
+            ),
+        )
+    return mcmc
+
+
+def draws_pointwise(
+    setup: Setup, samples: Mapping[str, Any], args: CellArgs, n_units: int, chunk: int = 64
+) -> np.ndarray:
+    """Log-likelihood per unit for every draw: sum over the unit's rows, shape
+    (n_draws_total, n_units); computed in chunks of draws to bound memory."""
+    flat = {k: jnp.reshape(v, (-1, *v.shape[2:])) for k, v in samples.items()}
+    total = next(iter(flat.values())).shape[0]
+
+    @jax.jit
+    def one_chunk(block: Mapping[str, Any]) -> Any:
+        def per_draw(sites: Mapping[str, Any]) -> Any:
+            ll = cell_loglik(setup, sites, args)
+            return jax.ops.segment_sum(ll.reshape(-1), args.unit.reshape(-1), n_units)
+
+        return jax.vmap(per_draw)(block)
+
+    out = np.empty((total, n_units))
+    for start in range(0, total, chunk):
+        stop = min(start + chunk, total)
+        block = {k: v[start:stop] for k, v in flat.items()}
+        if stop - start < chunk:  # pad the last block so one compiled shape serves all
+            block = {
+                k: jnp.concatenate([v, jnp.repeat(v[-1:], chunk - (stop - start), 0)])
+                for k, v in block.items()
+            }
+        out[start:stop] = np.asarray(one_chunk(block))[: stop - start]
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# Public entry point.
+
+
+def fit_bayes(
+    model: Model | str,
+    data: Any,
+    *,
+    hierarchical: bool = False,
+    chains: int = 4,
+    draws: int = 1000,
+    warmup: int = 1000,
+    seed: int = 0,
+    priors: Mapping[str, Any] | None = None,
+    formulas: Sequence[str] | Mapping[str, str] | None = None,
+    init: Any = None,
+    progress: bool = True,
+    target_accept: float = 0.8,
+    max_tree_depth: int = 10,
+    chain_method: str = "auto",
+    hdi_prob: float = 0.95,
+    pointwise: str | None = None,
+    se: Any = None,
+    by: Any = None,
+    **ignored: Any,
+) -> Any:
+    """Posterior of ``model`` given ``data`` by NUTS (see the module docstring).
+
+    init: None/"start" (model start values), "mle" (the ML estimate when the ML engine is
+    available) or a mapping name -> natural value; chains start near it with a small jitter.
+    pointwise: unit of the ArviZ log-likelihood: "trial" (stopping default), "row" (lottery
+    default) or "subject". Returns a :class:`stopwise.estimation.posterior.Posterior`.
+    """
+    from stopwise.estimation.posterior import build_posterior
+
+    if se not in (None, "posterior") or by is not None:
+        raise StopwiseInputError(
+            "Bayesian fits report posterior sds and HDIs: --se and --by do not apply "
+            "(use hierarchical=True for subject-level parameters)"
+        )
+    unknown = sorted(k for k, v in ignored.items() if v is not None)
+    if unknown:
+        raise StopwiseInputError(f"Bayesian fit: unknown option(s) {unknown}")
+    _check_counts(chains=chains, draws=draws, warmup=warmup)
+    if not 0.0 < hdi_prob < 1.0:
+        raise StopwiseInputError(f"hdi_prob={hdi_prob}: expected a number in (0, 1)")
+    model = as_model(model)
+    data = as_bundle(data)
+    check_kind(model, data)
+    if pointwise is None:
+        pointwise = "trial" if isinstance(data, StoppingData) else "row"
+    notes: list[str] = []
+    setup, args, cells, unit_labels, unit_name = prepare(
+        model,
+        data,
+        hierarchical=hierarchical,
+        formulas=formulas,
+        priors=priors,
+        pointwise=pointwise,
+    )
+    values = initial_values(setup, model, data, init, formulas, notes)
+    method = choose_chain_method(chain_method, chains)
+    t0 = time.perf_counter()
+    mcmc = run_nuts(
+        setup,
+        args,
+        chains=chains,
+        draws=draws,
+        warmup=warmup,
+        seed=seed,
+        init_values=values,
+        progress=progress,
+        target_accept=target_accept,
+        max_tree_depth=max_tree_depth,
+        chain_method=method,
+    )
+    elapsed = time.perf_counter() - t0
+    samples = mcmc.get_samples(group_by_chain=True)
+    pointwise_ll = draws_pointwise(setup, samples, args, len(unit_labels))
+    return build_posterior(
+        setup=setup,
+        data=data,
+        args=args,
+        cells=cells,
+        samples=samples,
+        extra=mcmc.get_extra_fields(group_by_chain=True),
+        pointwise_ll=pointwise_ll,
+        unit_labels=unit_labels,
+        unit_name=unit_name,
+        run={
+            "chains": chains,
+            "draws": draws,
+            "warmup": warmup,
+            "seed": seed,
+            "chain_method": method,
+            "target_accept": target_accept,
+            "max_tree_depth": max_tree_depth,
+            "init": _init_text(init),
+            "sampling_seconds": elapsed,
+            "formulas": _formula_list(formulas),
+        },
+        hdi_prob=hdi_prob,
+        notes=notes,
+    )
+
+
+def _check_counts(**counts: int) -> None:
+    for name, value in counts.items():
+        if not isinstance(value, (int, np.integer)) or value < 1:
+            raise StopwiseInputError(f"{name}={value!r}: expected a positive whole number")
+
+
+def _init_text(init: Any) -> str:
+    if isinstance(init, Mapping):
+        return "user values"
+    return "model start values" if init in (None, "start") else str(init)
+
+
+def _formula_list(formulas: Any) -> list[str]:
+    if not formulas:
+        return []
+    if isinstance(formulas, Mapping):
+        return [f"{k} ~ {v}" for k, v in formulas.items()]
+    return list(formulas)
+
+
+def compare_bayes(
+    models: Sequence[Any], data: Any = None, *, names: Sequence[str] | None = None, **kw: Any
+) -> Any:
+    """Rank models by PSIS-LOO expected log predictive density (ArviZ), see
+    :func:`stopwise.estimation.posterior.loo_compare`. ``models`` may hold fitted
+    Posterior objects or models/specs, which are fitted here with ``fit_bayes(**kw)``."""
+    from stopwise.estimation.posterior import Posterior, loo_compare
+
+    fits = []
+    for m in models:
+        if isinstance(m, Posterior):
+            fits.append(m)
+        else:
+            if data is None:
+                raise StopwiseInputError("compare_bayes: data are needed to fit unfitted models")
+            fits.append(fit_bayes(m, data, **kw))
+    return loo_compare(fits, names=names)
