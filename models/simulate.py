@@ -1,0 +1,335 @@
+"""Simulators: decision-level stopping data and lottery choices drawn from a model.
+
+Stopping trials are drawn from the same per-condition P(draw) tables the likelihood uses.
+For each condition the end of a trial is one categorical draw over "stop at s" and
+"bust at s" (s = 0..H-1) and "forced stop at H":
+    P(reach s) = prod_{j<s} P(draw | j) p,  P(stop at s) = P(reach s) P(stop | s),
+    P(bust at s) = P(reach s) P(draw | s) (1 - p),  P(forced stop) = P(reach H),
+sampled by inverse CDF with one uniform per trial (vectorised over trials). H is the
+planner cap (ceil(log(1e-15)/log(max p)), at least that of the model's ``max_p_survive``)
+or the model option ``max_target``, which then acts as a task cap for every policy.
+"""
+
+from __future__ import annotations
+
+import re
+import warnings
+from collections.abc import Mapping
+from typing import Any
+
+import jax
+import numpy as np
+import pandas as pd
+from stopwise.data_schemas.arrays import LotteryData
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.stopping import (
+    PLANNER_TOLERANCE,
+    Caps,
+    Conditions,
+    RiskParts,
+    policy_tables,
+    tolerance_steps,
+)
+
+STOPPING_DESIGN_REQUIRED = ("subject", "trial", "p_survive", "gain")
+LOTTERY_DESIGN_REQUIRED = ("subject", "item")
+_LOTTERY_COLUMN = re.compile(r"^([ab])_([xp])(\d+)$")
+
+
+# ----------------------------------------------------------------------------- stopping
+def _require(design: pd.DataFrame, columns: tuple[str, ...], what: str) -> None:
+    if not isinstance(design, pd.DataFrame):
+        raise StopwiseInputError(f"{what} design must be a pandas DataFrame, got {type(design)}")
+    missing = [c for c in columns if c not in design.columns]
+    if missing:
+        raise StopwiseInputError(
+            f"{what} design lacks column(s) {', '.join(missing)}; expected "
+            f"{', '.join(columns)} (one row per {'trial' if what == 'stopping' else 'item'})"
+        )
+
+
+def _numeric_column(design: pd.DataFrame, name: str, default: float | None = None) -> np.ndarray:
+    if name not in design.columns:
+        return np.full(len(design), float(default), dtype=np.float64)
+    values = pd.to_numeric(design[name], errors="coerce").to_numpy(dtype=np.float64)
+    bad = np.flatnonzero(~np.isfinite(values))
+    if bad.size:
+        row = int(bad[0])
+        raise StopwiseInputError(
+            f"design row {row}, column '{name}': expected a number, got {design[name].iloc[row]!r}"
+        )
+    return values
+
+
+def _check_range(values: np.ndarray, name: str, ok: np.ndarray, expected: str) -> None:
+    bad = np.flatnonzero(~ok)
+    if bad.size:
+        row = int(bad[0])
+        raise StopwiseInputError(
+            f"design row {row}, column '{name}': expected {expected}, got {values[row]!r}"
+        )
+
+
+def stopping_design_arrays(design: pd.DataFrame) -> tuple[Conditions, np.ndarray]:
+    """Check a per-trial design; return its condition table and each trial's condition."""
+    _require(design, STOPPING_DESIGN_REQUIRED, "stopping")
+    p = _numeric_column(design, "p_survive")
+    gain = _numeric_column(design, "gain")
+    start = _numeric_column(design, "start", 0.0)
+    keep = _numeric_column(design, "bust_keep", 0.0)
+    _check_range(p, "p_survive", (p > 0) & (p < 1), "a probability strictly between 0 and 1")
+    _check_range(gain, "gain", gain > 0, "a positive amount")
+    _check_range(start, "start", start >= 0, "an amount >= 0")
+    _check_range(keep, "bust_keep", (keep >= 0) & (keep <= 1), "a share between 0 and 1")
+    if "task" in design.columns:
+        contest = design["task"].astype(str).str.lower().eq("contest").to_numpy()
+        _check_range(
+            design["task"].to_numpy(), "task", ~contest, "'solo' (use a contest model for contests)"
+        )
+    duplicated = design.duplicated(["subject", "trial"]).to_numpy()
+    _check_range(
+        design["trial"].to_numpy(), "trial", ~duplicated, "a trial id unique within its subject"
+    )
+    config = np.stack([p, gain, start, keep], axis=1)
+    table, cond = np.unique(config, axis=0, return_inverse=True)
+    cond = np.asarray(cond).reshape(-1)
+    return Conditions(table[:, 0], table[:, 1], table[:, 2], table[:, 3]), cond
+
+
+def simulation_steps(policy: str, caps: Caps, max_p_survive: float) -> int:
+    """Table length H for simulation (forced stop at H); see the module docstring."""
+    if caps.max_target is not None:
+        return int(caps.max_target)
+    if policy == "target":
+        return caps.n_targets(0) - 1
+    return max(caps.planner_cap(0), tolerance_steps(max_p_survive, PLANNER_TOLERANCE))
+
+
+def end_log_probs(log_draw: np.ndarray, log_stop: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """log P(trial ends as [stop_0, bust_0, ..., stop_{H-1}, bust_{H-1}, forced stop_H])."""
+    log_p = np.log(p)[:, None]
+    log_lose = np.log1p(-p)[:, None]
+    step_on = log_draw + log_p
+    log_reach = np.concatenate(
+        [np.zeros((len(p), 1)), np.cumsum(step_on, axis=1)], axis=1
+    )  # (n_cond, H+1)
+    stop = log_reach[:, :-1] + log_stop
+    bust = log_reach[:, :-1] + log_draw + log_lose
+    ends = np.stack([stop, bust], axis=2).reshape(len(p), -1)
+    return np.concatenate([ends, log_reach[:, -1:]], axis=1)
+
+
+def sample_trial_ends(
+    log_draw: np.ndarray, log_stop: np.ndarray, p: np.ndarray, cond: np.ndarray, key: Any
+) -> tuple[np.ndarray, np.ndarray]:
+    """(end step, busted) per trial by inverse CDF over :func:`end_log_probs`."""
+    log_end = end_log_probs(log_draw, log_stop, p)
+    uniforms = np.asarray(jax.random.uniform(key, (len(cond),), dtype=np.float64))
+    index = np.empty(len(cond), dtype=np.int64)
+    for c in np.unique(cond):
+        probs = np.exp(log_end[c] - np.max(log_end[c]))
+        cdf = np.cumsum(probs)
+        trials = np.flatnonzero(cond == c)
+        index[trials] = np.searchsorted(cdf, uniforms[trials] * cdf[-1], side="right")
+    index = np.minimum(index, log_end.shape[1] - 1)
+    return index // 2, (index % 2 == 1)
+
+
+def expand_trials(design: pd.DataFrame, end_step: np.ndarray, busted: np.ndarray) -> pd.DataFrame:
+    """Decision rows for each trial: draws with outcome success, then a stop or a bust."""
+    n_rows = end_step + 1
+    trial_of_row = np.repeat(np.arange(len(design)), n_rows)
+    first_row = np.concatenate([[0], np.cumsum(n_rows)[:-1]])
+    step = np.arange(int(n_rows.sum())) - np.repeat(first_row, n_rows)
+    last = step == end_step[trial_of_row]
+    bust_row = last & busted[trial_of_row]
+    action = np.where(last & ~bust_row, "stop", "draw").astype(object)
+    outcome = np.where(bust_row, "bust", np.where(last, "", "success")).astype(object)
+    outcome[outcome == ""] = np.nan
+    rows = design.iloc[trial_of_row].reset_index(drop=True)
+    start = _numeric_column(rows, "start", 0.0)
+    front = pd.DataFrame(
+        {
+            "subject": rows["subject"].to_numpy(),
+            "trial": rows["trial"].to_numpy(),
+            "step": step.astype(np.int64),
+            "p_survive": _numeric_column(rows, "p_survive"),
+            "gain": _numeric_column(rows, "gain"),
+            "action": action,
+            "outcome": outcome,
+            "bank": start + step * _numeric_column(rows, "gain"),
+            "start": start,
+            "bust_keep": _numeric_column(rows, "bust_keep", 0.0),
+        }
+    )
+    extra = rows.drop(columns=[c for c in front.columns if c in rows.columns])
+    return pd.concat([front, extra], axis=1)
+
+
+def simulate_stopping(
+    policy: str,
+    parts: RiskParts,
+    caps: Caps,
+    theta: Mapping[str, Any],
+    design: pd.DataFrame,
+    key: Any,
+    tables_fn: Any = None,
+) -> pd.DataFrame:
+    """Decision-level data for one parameter vector over a per-trial design."""
+    cond_table, cond = stopping_design_arrays(design)
+    n_steps = simulation_steps(policy, caps, float(np.max(cond_table.p_survive)))
+    theta = {k: float(v) for k, v in theta.items()}
+    if tables_fn is None:
+        log_draw, log_stop = policy_tables(policy, parts, theta, cond_table, n_steps, caps, 0)
+    else:
+        log_draw, log_stop = tables_fn(theta, cond_table, n_steps)
+    end_step, busted = sample_trial_ends(
+        np.asarray(log_draw), np.asarray(log_stop), np.asarray(cond_table.p_survive), cond, key
+    )
+    return expand_trials(design.reset_index(drop=True), end_step, busted)
+
+
+# ----------------------------------------------------------------------------- lottery
+def lottery_design_arrays(design: pd.DataFrame) -> LotteryData:
+    """Check a per-item lottery design; outcome arrays padded with p = 0 (first outcome)."""
+    _require(design, LOTTERY_DESIGN_REQUIRED, "lottery")
+    found: dict[str, set[int]] = {"a": set(), "b": set()}
+    for name in design.columns:
+        match = _LOTTERY_COLUMN.match(str(name))
+        if match:
+            found[match.group(1)].add(int(match.group(3)))
+    if not found["a"] or not found["b"]:
+        raise StopwiseInputError(
+            "lottery design needs outcome columns a_x1, a_p1, ... and b_x1, b_p1, ..."
+        )
+    width = max(max(found["a"]), max(found["b"]))
+    arrays = {}
+    for option in ("a", "b"):
+        xs, ps = [], []
+        for k in range(1, width + 1):
+            if k in found[option]:
+                x = _numeric_column(design, f"{option}_x{k}")
+                prob = _numeric_column(design, f"{option}_p{k}")
+            else:
+                x = _numeric_column(design, f"{option}_x1")
+                prob = np.zeros(len(design))
+            _check_range(prob, f"{option}_p{k}", (prob >= 0) & (prob <= 1), "a probability")
+            xs.append(x)
+            ps.append(prob)
+        x_arr, p_arr = np.stack(xs, axis=1), np.stack(ps, axis=1)
+        total = p_arr.sum(axis=1)
+        _check_range(total, f"{option}_p*", np.abs(total - 1) < 1e-6, "probabilities summing to 1")
+        arrays[option] = (x_arr, p_arr)
+    n = len(design)
+    return LotteryData(
+        subject=np.zeros(n, np.int32),
+        choice_b=np.zeros(n),
+        a_x=arrays["a"][0],
+        a_p=arrays["a"][1],
+        b_x=arrays["b"][0],
+        b_p=arrays["b"][1],
+    )
+
+
+def simulate_lottery(
+    predict: Any, theta: Mapping[str, Any], design: pd.DataFrame, key: Any
+) -> pd.DataFrame:
+    """Lottery choices ("A"/"B") for one parameter vector: B with probability P(B)."""
+    data = lottery_design_arrays(design)
+    prob_b = np.asarray(predict({k: float(v) for k, v in theta.items()}, data))
+    uniforms = np.asarray(jax.random.uniform(key, (len(design),), dtype=np.float64))
+    out = design.reset_index(drop=True).copy()
+    out["choice"] = np.where(uniforms < prob_b, "B", "A")
+    return out
+
+
+# ----------------------------------------------------------------------------- public
+def _resolve_theta(model: Any, given: Mapping[str, Any], where: str) -> dict[str, float]:
+    names = model.param_names
+    unknown = [k for k in given if k not in names]
+    if unknown:
+        raise StopwiseInputError(
+            f"{where}: unknown parameter(s) {', '.join(map(str, unknown))} for model "
+            f"{model.name}; its parameters are {', '.join(names) or 'none'}"
+        )
+    theta = {}
+    for spec in model.params:
+        if spec.name not in given or pd.isna(given[spec.name]):
+            theta[spec.name] = spec.start
+            continue
+        try:
+            value = float(given[spec.name])
+        except (TypeError, ValueError):
+            raise StopwiseInputError(
+                f"{where}: parameter {spec.name} must be a number, got {given[spec.name]!r}"
+            ) from None
+        if not spec.lower < value < spec.upper:
+            raise StopwiseInputError(
+                f"{where}: parameter {spec.name} = {value} lies outside its range "
+                f"({spec.lower}, {spec.upper})"
+            )
+        theta[spec.name] = value
+    return theta
+
+
+def _missing_names(model: Any, given: Any) -> list[str]:
+    return [n for n in model.param_names if n not in given]
+
+
+def simulate(model: Any, params: Any, design: pd.DataFrame, seed: int = 0) -> pd.DataFrame:
+    """Simulate data from ``model`` (a Model or a spec string) over ``design``.
+
+    ``params``: a mapping name -> value for everyone, or a DataFrame with one row per subject
+    (column ``subject`` plus parameter columns) for a heterogeneous population. Parameters
+    not given take the model's start values (with a warning). ``design``: one row per trial
+    (stopping: subject, trial, p_survive, gain, optional start, bust_keep, covariates) or per
+    lottery item (subject, item, a_x1, a_p1, ..., b_x1, b_p1, ...). Reproducible by ``seed``.
+    """
+    if isinstance(model, str):
+        from stopwise.models.spec import build_model
+
+        model = build_model(model)
+    if not isinstance(design, pd.DataFrame):
+        raise StopwiseInputError(f"design must be a pandas DataFrame, got {type(design)}")
+    key = jax.random.PRNGKey(int(seed))
+    if isinstance(params, pd.DataFrame):
+        return _simulate_population(model, params, design, key)
+    if not isinstance(params, Mapping):
+        raise StopwiseInputError(
+            f"params must be a mapping name -> value or a DataFrame, got {type(params)}"
+        )
+    missing = _missing_names(model, params)
+    if missing:
+        warnings.warn(
+            f"parameters {', '.join(missing)} not given; using the start values of {model.name}",
+            stacklevel=2,
+        )
+    theta = _resolve_theta(model, params, "params")
+    return model.simulate(theta, design, key)
+
+
+def _simulate_population(
+    model: Any, params: pd.DataFrame, design: pd.DataFrame, key: Any
+) -> pd.DataFrame:
+    if "subject" not in params.columns:
+        raise StopwiseInputError("params DataFrame needs a 'subject' column")
+    if params["subject"].duplicated().any():
+        raise StopwiseInputError("params DataFrame has more than one row for a subject")
+    if "subject" not in design.columns:
+        raise StopwiseInputError("design lacks the column 'subject'")
+    given = [c for c in params.columns if c != "subject"]
+    missing = _missing_names(model, given)
+    if missing:
+        warnings.warn(
+            f"parameters {', '.join(missing)} not given; using the start values of {model.name}",
+            stacklevel=3,
+        )
+    by_subject = {row["subject"]: row for row in params.to_dict("records")}
+    pieces = []
+    for index, (subject, rows) in enumerate(design.groupby("subject", sort=True)):
+        if subject not in by_subject:
+            raise StopwiseInputError(f"params DataFrame has no row for subject {subject!r}")
+        values = {k: v for k, v in by_subject[subject].items() if k != "subject"}
+        theta = _resolve_theta(model, values, f"params row of subject {subject!r}")
+        pieces.append(model.simulate(theta, rows, jax.random.fold_in(key, index)))
+    return pd.concat(pieces, ignore_index=True)

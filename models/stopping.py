@@ -1,0 +1,280 @@
+"""Stopping policies: P(draw | condition, step) tables for the "draw again or stop" task.
+
+A trial starts with bank b_0 = start; each draw succeeds with probability p (adding ``gain`` g
+to the bank) or busts, ending the trial with bust_keep * b_s (the share kept of the bank held
+before the draw). A stop ends the trial with the bank. Utilities are over wealth + amount
+(model option ``wealth``); prospect-theory values are around the reference point (model
+option ``reference``: "start" = the bank at the start of the trial, or a fixed amount).
+
+Every policy computes, for each condition c and step s < n_steps, the pair
+(log P(draw | c, s), log P(stop | c, s)); models gather rows from these tables, so the
+likelihood of a row never runs a dynamic programme of its own.
+
+- ``myopic``: compare the bank with one more draw followed by a stop:
+  d(s) = W[u(b_{s+1}) w.p. p; u(k b_s) otherwise] - u(b_s), P(draw) = noise(d).
+- ``planner``: backward induction with the noise inside (the participant anticipates their
+  own future noise): V(H) = u(b_H);
+  Q(s) = W[V(s+1) w.p. p; u(k b_s) otherwise], P(s) = noise(Q(s) - u(b_s)),
+  V(s) = u(b_s) + P(s) (Q(s) - u(b_s)).
+  W is the expected value, or the rank-dependent / cumulative value of the two-outcome gamble
+  when a weighting is named (the continuation value ranks as an outcome).
+  The cap H is a numerical truncation: H = horizon + ceil(log(1e-15) / log(max_p_survive))
+  (max_p_survive a model option, default 0.99, i.e. 3,437 extra steps), so reaching the cap
+  from any observed step has probability below 1e-15 for every p <= max_p_survive; a model
+  option ``max_target`` replaces it by a task cap max(horizon, max_target).
+- ``target``: a target T in {0..cap_c} is chosen once per trial by the noise rule over
+  V_T = pi_bank(T) u(b_T) + sum_{k<T} pi_k u(k b_k)  (the lottery "reach T, else bust at k"),
+  with decision weights from the decumulative probabilities P(X >= b_T) = p^T,
+  P(X >= k b_k) = p^k (EU: pi_k = p^k (1-p)); then the participant draws until T.
+  Row factorisation by the hazard: P(draw at s) = P(T > s) / P(T >= s),
+  P(stop at s) = P(T = s) / P(T >= s) (log space, cumulative log-sum-exp), so a bust after k
+  successes contributes P(T > k) only. The set of targets is part of the model (with logit
+  every extra target takes probability mass): cap_c = max(horizon, ceil(log(tol)/log p_c)),
+  the targets that succeed with chance at least tol (``target_tolerance``, default 1e-4),
+  extended to the longest observed trial, within a static bound computed with max_p_survive;
+  ``max_target`` fixes cap_c = max(horizon, max_target) instead.
+
+Contextual utility (Wilcox 2011, option ``contextual``): value differences are divided by the
+utility range of the outcomes of the one-step gamble, u(b_{s+1}) - u(k b_s) (target: at s = 0).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+from stopwise.models.noise import NoiseRule, contextual_divisor, log_p_choose
+from stopwise.models.noise import log_choice_probs as noise_log_choice_probs
+from stopwise.models.utility import UtilityFamily
+from stopwise.models.weighting import WeightingFamily, two_outcome_value, weight_functions
+
+Theta = Mapping[str, Any]
+POLICIES = ("target", "myopic", "planner")
+PLANNER_TOLERANCE = 1e-15
+
+
+@dataclass(frozen=True)
+class RiskParts:
+    """The risk-preference parts of a model and its fixed options."""
+
+    utility: UtilityFamily
+    weighting: WeightingFamily | None
+    noise: NoiseRule
+    wealth: float = 0.0
+    reference: str | float = "start"
+    contextual: bool = False
+
+    @property
+    def sign_dependent(self) -> bool:
+        """True for prospect-theory values (cumulative weighting of gains and losses)."""
+        return self.utility.uses_reference
+
+
+@dataclass(frozen=True)
+class Conditions:
+    """Per-condition arrays (n_cond,): survival chance, gain, start bank, share kept on bust."""
+
+    p_survive: Any
+    gain: Any
+    start: Any
+    bust_keep: Any
+
+    @classmethod
+    def from_data(cls, data: Any) -> Conditions:
+        return cls(data.cond_p_survive, data.cond_gain, data.cond_start, data.cond_bust_keep)
+
+
+jax.tree_util.register_dataclass(
+    Conditions, data_fields=["p_survive", "gain", "start", "bust_keep"], meta_fields=[]
+)
+
+
+@dataclass(frozen=True)
+class Caps:
+    """Static sizes: planner cap H and number of targets considered (options decide)."""
+
+    max_p_survive: float = 0.99
+    target_tolerance: float = 1e-4
+    max_target: int | None = None
+
+    def planner_cap(self, n_steps: int) -> int:
+        """H = n_steps + ceil(log(1e-15)/log(max_p_survive)), or max(n_steps, max_target)."""
+        if self.max_target is not None:
+            return max(n_steps, self.max_target)
+        return n_steps + tolerance_steps(self.max_p_survive, PLANNER_TOLERANCE)
+
+    def n_targets(self, n_steps: int) -> int:
+        """Static count of targets 0..K-1: K - 1 = max(n_steps, cap at max_p_survive)."""
+        if self.max_target is not None:
+            return max(n_steps, self.max_target) + 1
+        return max(n_steps, tolerance_steps(self.max_p_survive, self.target_tolerance)) + 1
+
+
+def tolerance_steps(p_survive: float, tolerance: float) -> int:
+    """Smallest n with p_survive^n <= tolerance: ceil(log(tolerance) / log(p_survive))."""
+    return max(1, math.ceil(math.log(tolerance) / math.log(p_survive)))
+
+
+def outcome_utility(parts: RiskParts, theta: Theta, amount: Any, start: Any) -> Any:
+    """u(wealth + amount); prospect values around wealth + reference (start or fixed)."""
+    x = parts.wealth + amount
+    if not parts.utility.uses_reference:
+        return parts.utility.fn(x, theta)
+    ref_amount = start if parts.reference == "start" else float(parts.reference)
+    return parts.utility.fn(x, theta, parts.wealth + ref_amount)
+
+
+def _bank_utilities(parts: RiskParts, theta: Theta, cond: Conditions, n: int) -> tuple[Any, Any]:
+    """u(b_s) and u(k b_s) for s = 0..n-1, each (n_cond, n), with b_s = start + s gain."""
+    steps = jnp.arange(n, dtype=jnp.float64)
+    start = jnp.asarray(cond.start, jnp.float64)[:, None]
+    bank = start + steps[None, :] * jnp.asarray(cond.gain, jnp.float64)[:, None]
+    keep = jnp.asarray(cond.bust_keep, jnp.float64)[:, None]
+    return (
+        outcome_utility(parts, theta, bank, start),
+        outcome_utility(parts, theta, keep * bank, start),
+    )
+
+
+def _gamble_value(parts: RiskParts, theta: Theta, v_success: Any, p: Any, v_bust: Any) -> Any:
+    """W[v_success w.p. p; v_bust otherwise] (expected, rank-dependent or cumulative)."""
+    if parts.weighting is None and not parts.sign_dependent:
+        return p * v_success + (1.0 - p) * v_bust
+    w_gain, w_loss = weight_functions(parts.weighting, theta)
+    return two_outcome_value(v_success, p, v_bust, w_gain, w_loss, parts.sign_dependent)
+
+
+def _scaled_difference(parts: RiskParts, diff: Any, u_best: Any, u_worst: Any) -> Any:
+    return diff / contextual_divisor(u_best, u_worst) if parts.contextual else diff
+
+
+def myopic_tables(
+    parts: RiskParts, theta: Theta, cond: Conditions, n_steps: int
+) -> tuple[Any, Any]:
+    """(log P(draw), log P(stop)), (n_cond, n_steps): one draw then stop vs stop now."""
+    u_bank, u_bust = _bank_utilities(parts, theta, cond, n_steps + 1)
+    p = jnp.asarray(cond.p_survive, jnp.float64)[:, None]
+    now, after, bust = u_bank[:, :-1], u_bank[:, 1:], u_bust[:, :-1]
+    diff = _gamble_value(parts, theta, after, p, bust) - now
+    return log_p_choose(_scaled_difference(parts, diff, after, bust), theta, parts.noise)
+
+
+def planner_tables(
+    parts: RiskParts, theta: Theta, cond: Conditions, n_steps: int, cap: int
+) -> tuple[Any, Any]:
+    """(log P(draw), log P(stop)), (n_cond, n_steps), by noisy backward induction to ``cap``."""
+    cap = max(cap, n_steps)
+    u_bank, u_bust = _bank_utilities(parts, theta, cond, cap + 1)
+    p = jnp.asarray(cond.p_survive, jnp.float64)
+
+    def step(v_next: Any, xs: tuple[Any, Any, Any]) -> tuple[Any, tuple[Any, Any]]:
+        u_now, u_after, u_lost = xs
+        q_draw = _gamble_value(parts, theta, v_next, p, u_lost)
+        diff = q_draw - u_now
+        log_draw, log_stop = log_p_choose(
+            _scaled_difference(parts, diff, u_after, u_lost), theta, parts.noise
+        )
+        return u_now + jnp.exp(log_draw) * diff, (log_draw, log_stop)
+
+    xs = (u_bank[:, :-1].T, u_bank[:, 1:].T, u_bust[:, :-1].T)
+    _, (log_draw, log_stop) = jax.lax.scan(step, u_bank[:, -1], xs, reverse=True)
+    return log_draw[:n_steps].T, log_stop[:n_steps].T
+
+
+def target_values(parts: RiskParts, theta: Theta, cond: Conditions, n_targets: int) -> Any:
+    """V_T for T = 0..n_targets-1, shape (n_cond, n_targets) (see the module docstring)."""
+    u_bank, u_bust = _bank_utilities(parts, theta, cond, n_targets)
+    targets = jnp.arange(n_targets, dtype=jnp.float64)
+    log_p = jnp.log(jnp.asarray(cond.p_survive, jnp.float64))[:, None]
+    reach = jnp.exp(targets[None, :] * log_p)  # P(X >= b_T) = p^T
+    reach_next = jnp.exp((targets[None, :] + 1.0) * log_p)
+    w_gain, w_loss = weight_functions(parts.weighting, theta)
+    bank_weight = w_gain(reach)
+    bust_weight = w_gain(reach) - w_gain(reach_next)
+    if parts.sign_dependent:
+        bank_weight = jnp.where(u_bank >= 0, bank_weight, 1.0 - w_loss(1.0 - reach))
+        loss_weight = w_loss(1.0 - reach_next) - w_loss(1.0 - reach)
+        bust_weight = jnp.where(u_bust >= 0, bust_weight, loss_weight)
+    bust_terms = bust_weight * u_bust
+    before = jnp.cumsum(bust_terms, axis=-1) - bust_terms  # sum over k < T
+    return bank_weight * u_bank + before
+
+
+def target_caps(cond: Conditions, observed: int, n_targets: int, caps: Caps) -> Any:
+    """cap_c per condition (n_cond,), at least ``observed`` (see the module docstring)."""
+    if caps.max_target is not None:
+        return jnp.full(jnp.shape(cond.p_survive), n_targets - 1)
+    log_p = jnp.log(jnp.asarray(cond.p_survive, jnp.float64))
+    by_tolerance = jnp.ceil(math.log(caps.target_tolerance) / log_p)
+    return jnp.clip(jnp.maximum(by_tolerance, observed), 1, n_targets - 1)
+
+
+def target_log_probs(
+    parts: RiskParts, theta: Theta, cond: Conditions, observed: int, caps: Caps
+) -> Any:
+    """log P(T = t), shape (n_cond, K) with K = caps.n_targets(observed); 0 beyond cap_c."""
+    n_targets = caps.n_targets(observed)
+    values = target_values(parts, theta, cond, n_targets)
+    if parts.contextual:
+        u_bank, u_bust = _bank_utilities(parts, theta, cond, 2)
+        values = values / contextual_divisor(u_bank[:, 1:2], u_bust[:, 0:1])
+    cap = target_caps(cond, observed, n_targets, caps)
+    mask = jnp.arange(n_targets)[None, :] <= cap[:, None]
+    return noise_log_choice_probs(values, theta, parts.noise, axis=-1, mask=mask)
+
+
+def target_tables(
+    parts: RiskParts,
+    theta: Theta,
+    cond: Conditions,
+    n_steps: int,
+    caps: Caps,
+    observed: int | None = None,
+) -> tuple[Any, Any]:
+    """(log P(draw), log P(stop)), (n_cond, n_steps), from the hazard of the target.
+
+    ``observed`` (default n_steps) is the data horizon the target caps are extended to;
+    n_steps may be at most caps.n_targets(observed) - 1.
+    """
+    observed = n_steps if observed is None else observed
+    log_target = target_log_probs(parts, theta, cond, observed, caps)
+    log_at_least = jax.lax.cumlogsumexp(log_target, axis=1, reverse=True)  # log P(T >= t)
+    log_draw = log_at_least[:, 1 : n_steps + 1] - log_at_least[:, :n_steps]
+    log_stop = log_target[:, :n_steps] - log_at_least[:, :n_steps]
+    return log_draw, log_stop
+
+
+def policy_tables(
+    policy: str,
+    parts: RiskParts,
+    theta: Theta,
+    cond: Conditions,
+    n_steps: int,
+    caps: Caps,
+    observed: int | None = None,
+) -> tuple[Any, Any]:
+    """Dispatch to the named policy's tables (log P(draw), log P(stop)), (n_cond, n_steps).
+
+    ``observed`` (default n_steps) is the data horizon: the planner's cap is
+    caps.planner_cap(observed) and the target caps extend to it (simulators pass 0).
+    """
+    observed = n_steps if observed is None else observed
+    if policy == "myopic":
+        return myopic_tables(parts, theta, cond, n_steps)
+    if policy == "planner":
+        return planner_tables(parts, theta, cond, n_steps, caps.planner_cap(observed))
+    if policy == "target":
+        return target_tables(parts, theta, cond, n_steps, caps, observed)
+    raise ValueError(f"unknown stopping policy {policy!r}; known: {', '.join(POLICIES)}")
+
+
+def gather_rows(log_draw: Any, log_stop: Any, data: Any) -> Any:
+    """Per row: log P(draw | cond, step) where draw = 1, else log P(stop | cond, step)."""
+    n_steps = log_draw.shape[-1]
+    table = jnp.stack([log_stop, log_draw], axis=-1).reshape(-1)
+    index = (jnp.asarray(data.cond) * n_steps + jnp.asarray(data.step)) * 2
+    return table[index + (jnp.asarray(data.draw) > 0.5).astype(index.dtype)]
