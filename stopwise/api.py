@@ -1,0 +1,176 @@
+"""The public verbs for estimation: ``fit``, ``compare`` and ``recover``.
+
+They accept a model as a spec string ("crra+planner+logit") or a Model value, and data as a
+file path, a DataFrame, a loaded Dataset or an array bundle; they wire the data loader, the
+model builder and the estimation engines together.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import pandas as pd
+
+from stopwise.data_schemas.arrays import LotteryData, StoppingData
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.base import Model
+
+METHODS = ("mle", "bayes")
+
+
+def resolve_model(model: str | Model, max_target: int | None = None) -> Model:
+    """A Model from a spec string (stopwise.models.spec.build_model) or a Model as given."""
+    if isinstance(model, Model):
+        return model
+    if not isinstance(model, str):
+        raise StopwiseInputError(f"model must be a spec string or a Model, not {type(model)}")
+    from stopwise.models.spec import build_model
+
+    options = {} if max_target is None else {"max_target": int(max_target)}
+    return build_model(model, **options)
+
+
+def resolve_data(
+    data: Any, covariates: Sequence[str] = (), horizon: int | None = None
+) -> tuple[Any, pd.DataFrame | None]:
+    """(array bundle, aligned decision/lottery frame or None) from any accepted data form."""
+    if isinstance(data, (StoppingData, LotteryData)):
+        return data, None
+    from stopwise.data_schemas.load import Dataset, load
+
+    if isinstance(data, (str, os.PathLike, pd.DataFrame, Dataset)):
+        dataset = load(data)
+        return dataset.arrays(horizon=horizon) if horizon else dataset.arrays(), dataset.frame
+    raise StopwiseInputError(
+        "data must be a file path (CSV or Parquet), a DataFrame, a loaded Dataset or an "
+        f"array bundle, not {type(data).__name__}"
+    )
+
+
+def _check_method(method: str) -> None:
+    if method not in METHODS:
+        raise StopwiseInputError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
+
+
+def fit(
+    model: str | Model,
+    data: Any,
+    *,
+    method: str = "mle",
+    se: str | None = "auto",
+    by: str | None = None,
+    formulas: Sequence[str] | Mapping[str, str] | None = None,
+    max_target: int | None = None,
+    seed: int = 0,
+    **kw: Any,
+) -> Any:
+    """Fit ``model`` to ``data``. method="mle" (default): a Fit (or FitBySubject with
+    by="subject"); method="bayes": stopwise.estimation.bayes.fit_bayes(model, data, **kw).
+    ``se``: "auto" (clustered sandwich with several subjects), "robust", "hessian",
+    "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]."""
+    _check_method(method)
+    the_model = resolve_model(model, max_target)
+    bundle, frame = resolve_data(data)
+    if method == "bayes":
+        from stopwise.estimation.bayes import fit_bayes
+
+        if formulas:
+            kw["formulas"] = formulas
+        return fit_bayes(the_model, bundle, seed=seed, **kw)
+    if by not in (None, "subject"):
+        raise StopwiseInputError(f"by must be 'subject' or None, not {by!r}")
+    if by == "subject":
+        if formulas:
+            raise StopwiseInputError(
+                "formulas and by='subject' cannot be combined: a "
+                "per-subject fit already gives every subject its own "
+                "parameters"
+            )
+        from stopwise.estimation.by_subject import fit_by_subject
+
+        return fit_by_subject(
+            the_model, bundle, se="hessian" if se == "auto" else se, seed=seed, **kw
+        )
+    from stopwise.estimation.mle import fit_mle
+
+    return fit_mle(
+        the_model,
+        bundle,
+        se=se,
+        formulas=formulas,
+        covariate_frame=frame if formulas else None,
+        seed=seed,
+        **kw,
+    )
+
+
+def compare(
+    models: Sequence[str | Model],
+    data: Any,
+    *,
+    method: str = "mle",
+    max_target: int | None = None,
+    seed: int = 0,
+    **kw: Any,
+) -> Any:
+    """Compare several models on the same data. method="mle": a Comparison (AIC, BIC, LR,
+    Vuong, Clarke, k-fold CV log score); method="bayes": stopwise.estimation.bayes.
+    compare_bayes(models, data, **kw)."""
+    _check_method(method)
+    if len(models) < 2:
+        raise StopwiseInputError("compare needs at least two models")
+    resolved = [resolve_model(m, max_target) for m in models]
+    bundle, frame = resolve_data(data)
+    if method == "bayes":
+        from stopwise.estimation.bayes import compare_bayes
+
+        return compare_bayes(resolved, bundle, seed=seed, **kw)
+    from stopwise.estimation.compare import compare_fits
+
+    formulas = kw.pop("formulas", None)
+    return compare_fits(
+        resolved,
+        bundle,
+        seed=seed,
+        formulas=formulas,
+        covariate_frame=frame if formulas else None,
+        **kw,
+    )
+
+
+def recover(
+    model: str | Model,
+    truths: Mapping[str, float] | Sequence[Mapping[str, float]],
+    design: pd.DataFrame | None = None,
+    *,
+    n_reps: int = 50,
+    subjects: int = 120,
+    trials: int = 60,
+    p_survive: Sequence[float] = (0.7, 0.8, 0.9),
+    gain: float = 1.0,
+    seed: int = 0,
+    max_target: int | None = None,
+    **kw: Any,
+) -> Any:
+    """Parameter recovery: simulate ``n_reps`` data sets from ``truths`` on ``design``
+    (default: ``subjects`` x ``trials`` with the given survival probabilities), refit each,
+    and report bias, RMSE, 95% coverage, the correlation of estimates and unidentified
+    parameters (stopwise.estimation.recovery)."""
+    from stopwise.data_schemas.bundle import to_lottery_data, to_stopping_data
+    from stopwise.estimation.recovery import recover as run_recovery
+    from stopwise.estimation.recovery import stopping_design
+
+    the_model = resolve_model(model, max_target)
+    if design is None:
+        if the_model.data_kind == "lottery":
+            raise StopwiseInputError("a lottery model needs a design (the lottery list)")
+        design = stopping_design(subjects, trials, p_survive, gain, seed)
+
+    def to_bundle(frame: pd.DataFrame, horizon: int | None = None) -> Any:
+        if the_model.data_kind == "lottery":
+            return to_lottery_data(frame)
+        return to_stopping_data(frame, horizon=horizon)
+
+    return run_recovery(the_model, truths, design, to_bundle, n_reps=n_reps, seed=seed, **kw)
