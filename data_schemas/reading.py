@@ -15,6 +15,7 @@ import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from .errors import StopwiseInputError
@@ -100,16 +101,43 @@ def _guess_separator(head: bytes) -> str:
     return best if counts[best] > counts[","] else ","
 
 
+LABEL_COLUMNS = ("action", "outcome", "task", "choice")
+
+
+def _header_names(head: bytes, sep: str) -> list[str]:
+    first = head.split(b"\n", 1)[0].decode("utf-8", errors="ignore").lstrip("\ufeff")
+    return [name.strip().strip('"') for name in first.rstrip("\r").split(sep)]
+
+
+def _has_blank_lines(path: Path) -> bool:
+    """True when the file holds an empty line (read in 16 MiB blocks)."""
+    tail = b""
+    with open(path, "rb") as fh:
+        while block := fh.read(1 << 24):
+            chunk = tail + block
+            if b"\n\n" in chunk or b"\n\r\n" in chunk:
+                return True
+            tail = chunk[-2:]
+    return False
+
+
 def _read_csv(path: Path, name: str, head: bytes) -> RawTable:
+    """Read with pandas' C parser. Blank lines are kept as empty rows (then dropped) only
+    when the file has any, so that line numbers stay exact; label columns are read as
+    categoricals, which is faster and smaller than text."""
+    sep = _guess_separator(head) if head else ","
+    options: dict = {"sep": sep}
+    if not head or _has_blank_lines(path):
+        options["skip_blank_lines"] = False
+    if head.startswith(b"\xef\xbb\xbf") or not head:
+        options["encoding"] = "utf-8-sig"
+    labels = [c for c in _header_names(head, sep) if c in LABEL_COLUMNS] if head else []
+    if labels:
+        options["dtype"] = dict.fromkeys(labels, "category")
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", pd.errors.DtypeWarning)
-            frame = pd.read_csv(
-                path,
-                sep=_guess_separator(head),
-                skip_blank_lines=False,
-                encoding="utf-8-sig",
-            )
+            frame = pd.read_csv(path, **options)
     except pd.errors.EmptyDataError:
         return RawTable(None, name, ("empty_file", "an empty file", None))
     except pd.errors.ParserError as exc:
@@ -119,10 +147,20 @@ def _read_csv(path: Path, name: str, head: bytes) -> RawTable:
     except (UnicodeDecodeError, ValueError, OSError) as exc:
         return RawTable(None, name, ("not_a_table", f"unreadable as CSV ({exc})", None))
     frame.columns = [str(c).strip() for c in frame.columns]
-    blank = frame.isna().all(axis=1)
-    if bool(blank.any()):
-        frame = frame.loc[~blank.to_numpy()]
+    if options.get("skip_blank_lines") is False and len(frame.columns):
+        frame = _drop_blank_rows(frame)
     return RawTable(frame, name)
+
+
+def _drop_blank_rows(frame: pd.DataFrame) -> pd.DataFrame:
+    """Drop rows that are empty in every column (blank lines), keeping the index."""
+    candidates = np.flatnonzero(frame.iloc[:, 0].isna().to_numpy())
+    if len(candidates) == 0:
+        return frame
+    blank = frame.iloc[candidates].isna().all(axis=1).to_numpy()
+    if not blank.any():
+        return frame
+    return frame.drop(index=frame.index[candidates[blank]])
 
 
 def _parser_message(text: str) -> str:

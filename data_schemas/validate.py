@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import difflib
 import os
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -175,12 +176,17 @@ class _Checker:
         )
 
     def _empty_mask(self, series: pd.Series) -> np.ndarray:
-        missing = series.isna().to_numpy()
-        if series.dtype == object:
-            present = ~missing
-            text = series[present].astype(str).str.strip() == ""
-            missing[np.flatnonzero(present)[text.to_numpy()]] = True
-        return missing
+        """Missing or blank (whitespace-only text) cells; text is checked once per
+        distinct value."""
+        if isinstance(series.dtype, pd.CategoricalDtype):
+            codes = series.cat.codes.to_numpy()
+            blank = _blank_labels(series.cat.categories)
+            return (codes < 0) | (blank[codes] & (codes >= 0))
+        if series.dtype != object:
+            return series.isna().to_numpy()
+        codes, uniques = pd.factorize(series)
+        blank = _blank_labels(uniques)
+        return (codes < 0) | (blank[codes] & (codes >= 0))
 
     def numeric(
         self,
@@ -269,11 +275,9 @@ class _Checker:
         """An identifier column (any non-empty value) as integer codes (-1 = empty)."""
         if not self.has(name):
             return None
-        series = self.frame[name]
-        codes, _ = pd.factorize(series)
-        empty = codes < 0
-        if series.dtype == object:
-            empty |= self._empty_mask(series)
+        codes, uniques = pd.factorize(self.frame[name])
+        blank = _blank_labels(uniques)
+        empty = (codes < 0) | (blank[codes] & (codes >= 0))
         if empty.any():
             idx = np.flatnonzero(empty)
             self.collector.add_rows(
@@ -283,17 +287,28 @@ class _Checker:
         return _Column(codes.astype(np.int64), ~empty)
 
     def clean_frame(self, integer_columns: Sequence[str]) -> pd.DataFrame:
-        """The frame with checked columns replaced by their typed values."""
-        out = {}
-        for name in self.frame.columns:
-            value = self.typed.get(name)
-            if value is None:
-                out[name] = self.frame[name].to_numpy()
-            elif name in integer_columns:
-                out[name] = np.asarray(value, dtype=np.float64).astype(np.int64)
-            else:
-                out[name] = value
-        return pd.DataFrame(out)
+        """The frame with checked columns replaced by their typed values (columns whose
+        type is already right are kept as they are)."""
+        frame = self.frame.copy(deep=False)
+        for name, value in self.typed.items():
+            current = frame[name].dtype
+            if name in integer_columns:
+                if current != np.int64:
+                    frame[name] = np.asarray(value, dtype=np.float64).astype(np.int64)
+            elif isinstance(value, pd.Categorical):
+                if not (
+                    isinstance(current, pd.CategoricalDtype)
+                    and list(current.categories) == list(value.categories)
+                ):
+                    frame[name] = value
+            elif current != np.float64:
+                frame[name] = value
+        return frame
+
+
+def _blank_labels(uniques: Any) -> np.ndarray:
+    """Per distinct value: is it whitespace-only text?"""
+    return np.array([isinstance(u, str) and not u.strip() for u in uniques], dtype=bool)
 
 
 def _suggestions(raw: np.ndarray, allowed: Sequence[str]) -> list[str]:
@@ -360,10 +375,9 @@ def _check_design_columns(ch: _Checker) -> dict[str, _Column | None]:
 
 
 def _factorize_optional(series: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    codes, _ = pd.factorize(series)
-    if series.dtype == object:
-        text = series.astype(str).str.strip().to_numpy()
-        codes = np.where(text == "", -1, codes)
+    codes, uniques = pd.factorize(series)
+    blank = _blank_labels(uniques)
+    codes = np.where((codes >= 0) & blank[codes], -1, codes)
     return codes.astype(np.int64), codes >= 0
 
 
@@ -529,7 +543,7 @@ def _check_decisions(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, 
     if subject is not None and trial is not None and step is not None:
         valid = subject.ok & trial.ok & step.ok
         rows = np.flatnonzero(valid)
-        order = rows[np.lexsort((step.values[rows], trial.values[rows], subject.values[rows]))]
+        order = _sort_rows(rows, subject.values, trial.values, step.values)
         new_trial, first = _trial_starts(subject.values[order], trial.values[order])
         terminal = _terminal(action, outcome, stop_code, bust_code, order)
         _check_steps(
@@ -549,6 +563,20 @@ def _check_decisions(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, 
         stats = _stopping_stats(ch, cols, subject.values, int(new_trial.sum()))
     clean = ch.clean_frame(("trial", "step", "n_players", "keep_bank"))
     return clean, stats
+
+
+def _sort_rows(rows: np.ndarray, *keys: np.ndarray) -> np.ndarray:
+    """``rows`` ordered by the keys (first key most significant); files are usually sorted
+    already, which is checked in one pass before sorting."""
+    columns = [k[rows] for k in keys]
+    ordered = np.ones(max(len(rows) - 1, 0), dtype=bool)
+    tied = np.ones(max(len(rows) - 1, 0), dtype=bool)
+    for column in columns:
+        ordered &= ~tied | (column[1:] >= column[:-1])
+        tied &= column[1:] == column[:-1]
+    if bool(ordered.all()):
+        return rows
+    return rows[np.lexsort(columns[::-1])]
 
 
 def _check_bank(
@@ -690,7 +718,7 @@ def _check_steps(
         unfinished,
         order,
         "action",
-        np.full(n, "draw/success", dtype=object),
+        "draw/success",
         lambda i: (
             "the trial to end with 'stop' or a 'bust' (pass "
             "allow_censored=True or --allow-censored to keep unfinished trials as "
@@ -717,8 +745,8 @@ def _add_sorted(
     flags: np.ndarray,
     order: np.ndarray,
     column: str,
-    values: np.ndarray,
-    expected_at,
+    values: np.ndarray | str,
+    expected_at: Callable[[int], str],
 ) -> None:
     """Report rows flagged in sorted order, listed by file line; ``expected_at(i)`` builds
     the expectation for sorted position i (called only for the rows that are kept)."""
@@ -731,7 +759,16 @@ def _add_sorted(
     keep = max(ch.collector.max_per_kind - ch.collector.counts.get(kind, 0), 0)
     expected = [expected_at(i) for i in positions[:keep]]
     expected += [""] * (len(positions) - len(expected))
-    ch.collector.add_rows(kind, ch.lines[rows], column, values[positions], expected)
+    shown = (
+        np.full(len(positions), values, dtype=object)
+        if isinstance(values, str)
+        else (values[positions])
+    )
+    ch.collector.add_rows(kind, ch.lines[rows], column, shown, expected)
+
+
+def _distinct(values: np.ndarray, limit: int = 12) -> list[float]:
+    return sorted(float(v) for v in pd.unique(values))[:limit]
 
 
 def _stopping_stats(
@@ -740,10 +777,10 @@ def _stopping_stats(
     stats: dict = {"subjects": int(subject.max()) + 1 if len(subject) else 0, "trials": n_trials}
     p = cols.get("p_survive")
     if p is not None:
-        stats["p_survive values"] = [float(v) for v in np.unique(p.values[p.ok])][:12]
+        stats["p_survive values"] = _distinct(p.values[p.ok])
     g = cols.get("gain")
     if g is not None:
-        stats["gain values"] = [float(v) for v in np.unique(g.values[g.ok])][:12]
+        stats["gain values"] = _distinct(g.values[g.ok])
     task = cols.get("task")
     if task is not None:
         counts = np.bincount(task.values[task.ok], minlength=len(C.TASKS))
@@ -821,7 +858,7 @@ def _check_trials(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, dic
     stats: dict = {}
     if subject is not None and trial is not None:
         rows = np.flatnonzero(subject.ok & trial.ok)
-        order = rows[np.lexsort((trial.values[rows], subject.values[rows]))]
+        order = _sort_rows(rows, subject.values, trial.values)
         s, t = subject.values[order], trial.values[order]
         dup = np.zeros(len(order), dtype=bool)
         dup[1:] = (s[1:] == s[:-1]) & (t[1:] == t[:-1])
