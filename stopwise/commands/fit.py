@@ -1,0 +1,173 @@
+"""``stopwise fit DATA --model SPEC ...``: fit one model and print its summary table."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Any
+
+from stopwise._io import write_json
+from stopwise.data_schemas.errors import StopwiseInputError
+
+
+def register(subparsers: Any) -> argparse.ArgumentParser:
+    parser = subparsers.add_parser(
+        "fit",
+        help="fit a model to choice data (maximum likelihood or Bayes)",
+        description="Fit one model (SPEC such as crra+planner+logit) to stopping or "
+        "lottery-choice data and print a summary table: estimates, standard errors, 95%% "
+        "intervals, log-likelihood, AIC, BIC and convergence. Results are research "
+        "estimates, not a basis for individual financial, clinical or hiring decisions.",
+    )
+    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file")
+    parser.add_argument(
+        "--model",
+        required=True,
+        metavar="SPEC",
+        help="model spec, parts joined by '+', e.g. crra+planner+logit",
+    )
+    parser.add_argument(
+        "--method",
+        choices=("mle", "bayes"),
+        default="mle",
+        help="maximum likelihood (default) or Bayesian posterior sampling",
+    )
+    parser.add_argument(
+        "--by",
+        choices=("subject",),
+        default=None,
+        help="one fit per subject (maximum likelihood only)",
+    )
+    parser.add_argument(
+        "--se",
+        choices=("hessian", "robust", "bootstrap", "none"),
+        default=None,
+        help="standard errors: subject-clustered sandwich (default with "
+        "several subjects), inverse Hessian, subject bootstrap, or none",
+    )
+    parser.add_argument(
+        "--bootstrap-reps",
+        type=int,
+        default=200,
+        metavar="B",
+        help="bootstrap replications with --se bootstrap (default 200)",
+    )
+    parser.add_argument(
+        "--formula",
+        action="append",
+        default=[],
+        metavar="FORMULA",
+        help="a parameter as a linear function of data columns on its "
+        "unconstrained scale, e.g. 'r ~ 1 + treatment' (repeatable)",
+    )
+    parser.add_argument(
+        "--fix",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="hold a parameter at a value (repeatable)",
+    )
+    parser.add_argument(
+        "--starts", type=int, default=3, metavar="N", help="optimiser starts (default 3)"
+    )
+    parser.add_argument(
+        "--max-target",
+        type=int,
+        default=None,
+        metavar="M",
+        help="cap on the targets a contest model considers",
+    )
+    parser.add_argument(
+        "--hierarchical",
+        action="store_true",
+        help="Bayes: subject-level parameters with population hyperpriors",
+    )
+    parser.add_argument("--chains", type=int, default=4, metavar="C", help="Bayes: chains")
+    parser.add_argument(
+        "--draws", type=int, default=1000, metavar="D", help="Bayes: draws per chain"
+    )
+    parser.add_argument(
+        "--warmup", type=int, default=1000, metavar="W", help="Bayes: warm-up iterations per chain"
+    )
+    parser.add_argument(
+        "--seed", type=int, default=0, metavar="S", help="random seed (starts, bootstrap, sampler)"
+    )
+    parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
+    parser.add_argument(
+        "--json",
+        metavar="FILE",
+        default=None,
+        help="write the result as JSON to FILE ('-' for stdout)",
+    )
+    parser.set_defaults(func=run)
+    return parser
+
+
+def parse_fixed(items: list[str]) -> dict[str, float]:
+    """NAME=VALUE pairs -> dict; a malformed pair is a usage error."""
+    out: dict[str, float] = {}
+    for item in items:
+        name, sep, value = item.partition("=")
+        try:
+            if not sep or not name.strip():
+                raise ValueError
+            out[name.strip()] = float(value)
+        except ValueError:
+            raise StopwiseInputError(
+                f"--fix {item!r}: expected NAME=VALUE with a number, e.g. --fix r=0.5"
+            ) from None
+    return out
+
+
+def emit(result: Any, json_path: str | None) -> None:
+    """Summary to stdout (stderr when the JSON goes to stdout); JSON written atomically."""
+    text = result.summary() if hasattr(result, "summary") else str(result)
+    print(text, file=sys.stderr if json_path == "-" else sys.stdout)
+    if json_path:
+        write_json(json_path, result.to_dict())
+
+
+def run(args: argparse.Namespace) -> int:
+    from stopwise.api import fit
+
+    se = {"none": None, None: "auto"}.get(args.se, args.se)
+    if args.method == "bayes":
+        if args.by or args.se or args.fix:
+            raise StopwiseInputError("--by, --se and --fix apply to --method mle only")
+        result = fit(
+            args.model,
+            args.data,
+            method="bayes",
+            max_target=args.max_target,
+            seed=args.seed,
+            hierarchical=args.hierarchical,
+            chains=args.chains,
+            draws=args.draws,
+            warmup=args.warmup,
+            progress=not args.no_progress,
+            formulas=args.formula or None,
+        )
+    else:
+        if args.hierarchical:
+            raise StopwiseInputError("--hierarchical applies to --method bayes")
+        kw: dict[str, Any] = {}
+        if args.fix:
+            kw["fixed"] = parse_fixed(args.fix)
+        if args.by is None:
+            kw.update(
+                starts=args.starts,
+                bootstrap_reps=args.bootstrap_reps,
+                progress=not args.no_progress,
+            )
+        result = fit(
+            args.model,
+            args.data,
+            se=se,
+            by=args.by,
+            formulas=args.formula or None,
+            max_target=args.max_target,
+            seed=args.seed,
+            **kw,
+        )
+    emit(result, args.json)
+    return 0
