@@ -55,6 +55,7 @@ def check_source(
         )
     if max_per_kind < 1:
         raise StopwiseInputError("max_per_kind must be at least 1")
+    allow_censored = bool(allow_censored)
     raw = read_table(source)
     collector = ProblemCollector(raw.source, max_per_kind)
     if raw.frame is None:
@@ -181,12 +182,12 @@ class _Checker:
         if isinstance(series.dtype, pd.CategoricalDtype):
             codes = series.cat.codes.to_numpy()
             blank = _blank_labels(series.cat.categories)
-            return (codes < 0) | (blank[codes] & (codes >= 0))
+            return (codes < 0) | _blank_at(codes, blank)
         if series.dtype != object:
             return series.isna().to_numpy()
         codes, uniques = pd.factorize(series)
         blank = _blank_labels(uniques)
-        return (codes < 0) | (blank[codes] & (codes >= 0))
+        return (codes < 0) | _blank_at(codes, blank)
 
     def numeric(
         self,
@@ -277,7 +278,7 @@ class _Checker:
             return None
         codes, uniques = pd.factorize(self.frame[name])
         blank = _blank_labels(uniques)
-        empty = (codes < 0) | (blank[codes] & (codes >= 0))
+        empty = (codes < 0) | _blank_at(codes, blank)
         if empty.any():
             idx = np.flatnonzero(empty)
             self.collector.add_rows(
@@ -304,6 +305,11 @@ class _Checker:
             elif current != np.float64:
                 frame[name] = value
         return frame
+
+
+def _blank_at(codes: np.ndarray, blank: np.ndarray) -> np.ndarray:
+    """blank[codes] with code -1 (missing) mapped to False."""
+    return np.append(blank, False)[codes]
 
 
 def _blank_labels(uniques: Any) -> np.ndarray:
@@ -377,7 +383,7 @@ def _check_design_columns(ch: _Checker) -> dict[str, _Column | None]:
 def _factorize_optional(series: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     codes, uniques = pd.factorize(series)
     blank = _blank_labels(uniques)
-    codes = np.where((codes >= 0) & blank[codes], -1, codes)
+    codes = np.where(_blank_at(codes, blank), -1, codes)
     return codes.astype(np.int64), codes >= 0
 
 
@@ -546,13 +552,15 @@ def _check_decisions(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, 
         order = _sort_rows(rows, subject.values, trial.values, step.values)
         new_trial, first = _trial_starts(subject.values[order], trial.values[order])
         terminal = _terminal(action, outcome, stop_code, bust_code, order)
+        hidden = subject.ok & trial.ok & ~step.ok
+        uncertain = _in_trials_of(hidden, subject.values, trial.values, order)
         _check_steps(
             ch,
             step.values[order],
             order,
             new_trial,
             terminal,
-            allow_censored,
+            allow_censored or uncertain,
             action,
             outcome,
             draw_code,
@@ -561,8 +569,19 @@ def _check_decisions(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, 
         contest = _contest_rows(ch, cols)
         _check_contest(ch, cols, subject.values, contest)
         stats = _stopping_stats(ch, cols, subject.values, int(new_trial.sum()))
-    clean = ch.clean_frame(("trial", "step", "n_players", "keep_bank"))
+    clean = ch.clean_frame(("trial", "step", "n_players", "keep_bank")) if ch.collector.ok else None
     return clean, stats
+
+
+def _in_trials_of(
+    flags: np.ndarray, subject: np.ndarray, trial: np.ndarray, order: np.ndarray
+) -> bool | np.ndarray:
+    """For the rows in ``order``: does their trial also hold a flagged row (a row left out
+    of the step checks)? False when nothing is flagged."""
+    if not flags.any():
+        return False
+    flagged = pd.MultiIndex.from_arrays([subject[flags], trial[flags]])
+    return pd.MultiIndex.from_arrays([subject[order], trial[order]]).isin(flagged)
 
 
 def _sort_rows(rows: np.ndarray, *keys: np.ndarray) -> np.ndarray:
@@ -636,7 +655,7 @@ def _check_steps(
     order: np.ndarray,
     new_trial: np.ndarray,
     terminal: np.ndarray,
-    allow_censored: bool,
+    allow_censored: bool | np.ndarray,
     action: _Column | None,
     outcome: _Column | None,
     draw_code: int,
@@ -702,8 +721,9 @@ def _check_steps(
             f"{lines[first_end[trial_id[i]]]}"
         ),
     )
-    if allow_censored or action is None or outcome is None:
+    if allow_censored is True or action is None or outcome is None:
         return
+    excused = np.zeros(n, dtype=bool) if allow_censored is False else allow_censored
     last = np.r_[new_trial[1:], True]
     never_ended = (counted[last] - (counted - terminal)[starts]) == 0
     last_rows = np.flatnonzero(last)
@@ -711,7 +731,7 @@ def _check_steps(
         outcome.values[order[last_rows]] == C.OUTCOMES.index("success")
     )
     unfinished = np.zeros(n, dtype=bool)
-    unfinished[last_rows[never_ended & clean_draw]] = True
+    unfinished[last_rows[never_ended & clean_draw & ~excused[last_rows]]] = True
     _add_sorted(
         ch,
         "unfinished_trial",
@@ -877,7 +897,8 @@ def _check_trials(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, dic
         contest = _contest_rows(ch, cols)
         _check_contest(ch, cols, subject.values, contest)
         stats = _stopping_stats(ch, cols, subject.values, len(order))
-    clean = ch.clean_frame(("trial", "draws", "busted", "n_players", "keep_bank", C.CENSORED))
+    integers = ("trial", "draws", "busted", "n_players", "keep_bank", C.CENSORED)
+    clean = ch.clean_frame(integers) if ch.collector.ok else None
     return clean, stats
 
 
@@ -907,7 +928,7 @@ def _check_lottery(ch: _Checker) -> tuple[pd.DataFrame, dict]:
             "items": int(ch.frame["item"].nunique()) if ch.has("item") else 0,
             "share choosing B": float(np.mean(choice.values == 1)) if ch.n else 0.0,
         }
-    return ch.clean_frame(()), stats
+    return (ch.clean_frame(()) if ch.collector.ok else None), stats
 
 
 def _check_option(ch: _Checker, option: str, indices: list[int]) -> None:

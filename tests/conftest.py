@@ -1,0 +1,57 @@
+"""Shared fixtures. ``import stopwise`` first, so JAX runs in float64 everywhere."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+import stopwise  # noqa: F401
+
+BAD_FILES = Path(__file__).with_name("bad_files")
+
+
+@pytest.fixture(scope="session")
+def bad_files_dir() -> Path:
+    """The corpus of bad data files (see tests/bad_files/README.md)."""
+    return BAD_FILES
+
+
+@pytest.fixture
+def decision_frame() -> pd.DataFrame:
+    """A tiny valid decision-level frame: two subjects, four trials, solo and contest."""
+    rows = [
+        # subject, trial, step, p, gain, action, outcome, task, group, n_players, prize, keep, age
+        ("a", 1, 0, 0.9, 1.0, "draw", "success", "solo", None, 1, 0.0, 1, 30),
+        ("a", 1, 1, 0.9, 1.0, "draw", "success", "solo", None, 1, 0.0, 1, 30),
+        ("a", 1, 2, 0.9, 1.0, "stop", None, "solo", None, 1, 0.0, 1, 30),
+        ("a", 2, 0, 0.8, 2.0, "draw", "bust", "contest", "g1", 2, 10.0, 0, 30),
+        ("b", 1, 0, 0.9, 1.0, "stop", None, "solo", None, 1, 0.0, 1, 41),
+        ("b", 2, 0, 0.8, 2.0, "draw", "success", "contest", "g1", 2, 10.0, 0, 41),
+        ("b", 2, 1, 0.8, 2.0, "stop", None, "contest", "g1", 2, 10.0, 0, 41),
+    ]
+    columns = [
+        "subject",
+        "trial",
+        "step",
+        "p_survive",
+        "gain",
+        "action",
+        "outcome",
+        "task",
+        "group",
+        "n_players",
+        "prize",
+        "keep_bank",
+        "age",
+    ]
+    return pd.DataFrame(rows, columns=columns)
+
+
+@pytest.fixture(scope="session")
+def small_demo() -> dict[str, pd.DataFrame]:
+    """The demo data with 12 subjects (fast)."""
+    from stopwise.demo import demo_data
+
+    return demo_data(n_subjects=12)
