@@ -227,6 +227,21 @@ def target_log_probs(
     return noise_log_choice_probs(values, theta, parts.noise, axis=-1, mask=mask)
 
 
+def reverse_cumulative_logsumexp(log_values: Any) -> Any:
+    """out[:, t] = log sum_{j >= t} exp(log_values[:, j]), by a sequential scan (logaddexp).
+
+    A scan rather than lax.cumlogsumexp: its gradient compiles in a fraction of the time.
+    """
+
+    def step(acc: Any, column: Any) -> tuple[Any, Any]:
+        total = jnp.logaddexp(acc, column)
+        return total, total
+
+    start = jnp.full(log_values.shape[:-1], -jnp.inf)
+    _, totals = jax.lax.scan(step, start, jnp.moveaxis(log_values, -1, 0), reverse=True)
+    return jnp.moveaxis(totals, 0, -1)
+
+
 def target_tables(
     parts: RiskParts,
     theta: Theta,
@@ -242,7 +257,7 @@ def target_tables(
     """
     observed = n_steps if observed is None else observed
     log_target = target_log_probs(parts, theta, cond, observed, caps)
-    log_at_least = jax.lax.cumlogsumexp(log_target, axis=1, reverse=True)  # log P(T >= t)
+    log_at_least = reverse_cumulative_logsumexp(log_target)  # log P(T >= t)
     log_draw = log_at_least[:, 1 : n_steps + 1] - log_at_least[:, :n_steps]
     log_stop = log_target[:, :n_steps] - log_at_least[:, :n_steps]
     return log_draw, log_stop
