@@ -127,5 +127,5 @@ def fit_joint(
         progress=progress,
     )
     shared = [n for n in names if sum(n in lay.free for lay in layouts) > 1]
-    fit.notes += notes + [f"shared across data sets: {', '.join(shared) or 'none'}"]
+    fit.notes += [*notes, f"shared across data sets: {', '.join(shared) or 'none'}"]
     return fit
