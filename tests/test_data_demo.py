@@ -1,0 +1,54 @@
+"""The demo scenario: reproducible, valid, the promised design, and the demo command."""
+
+from __future__ import annotations
+
+import pandas as pd
+from stopwise.data_schemas.validate import validate
+
+from stopwise.cli import main
+from stopwise.demo import demo_data, demo_design
+
+
+def test_demo_is_reproducible_and_seeded(small_demo) -> None:
+    again = demo_data(n_subjects=12)
+    for name in ("stopping", "lottery"):
+        pd.testing.assert_frame_equal(small_demo[name], again[name])
+    other = demo_data(seed=1, n_subjects=12)
+    assert not small_demo["stopping"].equals(other["stopping"])
+
+
+def test_demo_data_are_valid(small_demo) -> None:
+    assert validate(small_demo["stopping"]).ok
+    assert validate(small_demo["lottery"]).ok
+
+
+def test_full_demo_design() -> None:
+    design = demo_design(n_subjects=120)
+    trials, items = design["stopping"], design["lottery"]
+    assert "action" not in trials and "draws" not in trials and "choice" not in items
+    assert trials["subject"].nunique() == 120
+    assert trials.groupby("subject").size().eq(60).all()
+    assert set(trials["p_survive"]) == {0.75, 0.85, 0.95}
+    contest = trials[trials["task"] == "contest"]
+    assert contest.groupby("group")["subject"].nunique().eq(2).all()
+    assert set(zip(contest["prize"], contest["keep_bank"])) == {(10.0, 0), (5.0, 1)}
+    assert {"treatment", "age"} <= set(trials.columns)
+    assert items.groupby("subject").size().eq(14).all()
+
+
+def test_odd_number_of_subjects_forms_one_group_of_three() -> None:
+    data = demo_data(n_subjects=5)
+    assert validate(data["stopping"]).ok
+    contest = data["stopping"][data["stopping"]["task"] == "contest"]
+    sizes = contest.groupby("group")["subject"].nunique()
+    assert sorted(sizes.unique()) == [2, 3]
+
+
+def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert sorted(p.name for p in out.iterdir()) == ["lottery.csv", "stopping.csv"]
+    assert "OK (decision-level stopping data" in printed
+    assert "Stopping data by condition" in printed and "Lottery choices by item" in printed
+    assert validate(out / "stopping.csv").stats["subjects"] == 120
