@@ -137,6 +137,12 @@ class Fit:
             raise ValueError("this fit has no predictor (it was not made from a model)")
         return self.predictor(data)
 
+    def profile(self, name: str, level: float = 0.95) -> tuple[float, float]:
+        """Profile-likelihood interval of parameter ``name`` (estimation/profile.py)."""
+        from stopwise.estimation.profile import profile_interval
+
+        return profile_interval(self, name, level)
+
     def summary(self) -> str:
         """A plain-text table for a paper's appendix."""
         lines = [
