@@ -1,0 +1,158 @@
+"""``stopwise fit`` / ``stopwise compare`` and the public face ``stopwise.fit``/``compare``."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import jax
+import pytest
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.recovery import stopping_design
+from stopwise.models.spec import build_model
+
+import stopwise
+from stopwise import cli
+
+DESIGN_KEYS = {
+    "model",
+    "method",
+    "converged",
+    "n_obs",
+    "n_subjects",
+    "loglik",
+    "aic",
+    "bic",
+    "params",
+    "se_method",
+    "warnings",
+    "versions",
+    "seed",
+}
+
+
+@pytest.fixture(scope="module")
+def data_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    design = stopping_design(24, 20, (0.6, 0.75, 0.9), 1.0, 11)
+    frame = build_model("linear+myopic+logit").simulate(
+        {"precision": 0.8}, design, jax.random.PRNGKey(11)
+    )
+    frame["treatment"] = frame["subject"].str[-1].astype(int) % 2
+    path = tmp_path_factory.mktemp("cli") / "choices.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+def test_fit_writes_the_design_json(
+    data_file: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "fit.json"
+    code = cli.main(
+        [
+            "fit",
+            str(data_file),
+            "--model",
+            "linear+myopic+logit",
+            "--formula",
+            "precision ~ 1 + treatment",
+            "--json",
+            str(out),
+        ]
+    )
+    assert code == 0
+    text = capsys.readouterr().out
+    assert "precision:treatment" in text and "Clusters: 24" in text
+    result = json.loads(out.read_text())
+    assert DESIGN_KEYS <= set(result)
+    assert [p["name"] for p in result["params"]] == ["precision", "precision:treatment"]
+    assert any("below about 30" in w for w in result["warnings"])
+
+
+def test_fit_by_subject_json(data_file: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert (
+        cli.main(
+            [
+                "fit",
+                str(data_file),
+                "--model",
+                "linear+myopic+logit",
+                "--by",
+                "subject",
+                "--json",
+                "-",
+            ]
+        )
+        == 0
+    )
+    result = json.loads(capsys.readouterr().out)
+    assert result["by"] == "subject" and len(result["fits"]) == 24
+    assert DESIGN_KEYS <= set(result["fits"][0]) and "subject" in result["fits"][0]
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (
+            ["--model", "linear+myopic+logit", "--formula", "precision ~ 1 + shoe_size"],
+            "known covariate columns",
+        ),
+        (["--model", "crra+logit"], "lottery model"),
+        (["--model", "linear+myopic+logit", "--fix", "precision"], "NAME=VALUE"),
+        (
+            ["--model", "linear+myopic+logit", "--by", "subject", "--se", "bootstrap"],
+            "Hessian standard errors",
+        ),
+    ],
+)
+def test_bad_input_exits_2_and_writes_nothing(
+    data_file: Path,
+    tmp_path: Path,
+    argv: list[str],
+    message: str,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    out = tmp_path / "never.json"
+    assert cli.main(["fit", str(data_file), *argv, "--json", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert message in err and "Traceback" not in err
+    assert not out.exists()
+
+
+def test_compare_command(
+    data_file: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "cmp.json"
+    assert (
+        cli.main(
+            [
+                "compare",
+                str(data_file),
+                "--model",
+                "linear+myopic+logit",
+                "--model",
+                "linear+myopic+probit",
+                "--cv-folds",
+                "3",
+                "--json",
+                str(out),
+            ]
+        )
+        == 0
+    )
+    assert "Model comparison" in capsys.readouterr().out
+    result = json.loads(out.read_text())
+    assert {m["model"] for m in result["models"]} == {"linear+myopic+logit", "linear+myopic+probit"}
+    assert {t["test"] for t in result["tests"]} == {
+        "Vuong (Schwarz-corrected)",
+        "Clarke sign (Schwarz-corrected)",
+    }
+    assert cli.main(["compare", str(data_file), "--model", "linear+myopic+logit"]) == 2
+
+
+def test_public_fit_accepts_paths_and_refuses_bad_options(data_file: Path) -> None:
+    fit = stopwise.fit("linear+myopic+logit", str(data_file), se="hessian")
+    assert fit.converged and fit.se_method == "hessian"
+    with pytest.raises(StopwiseInputError, match="unknown method"):
+        stopwise.fit("linear+myopic+logit", str(data_file), method="magic")
+    with pytest.raises(StopwiseInputError, match="standard-error method"):
+        stopwise.fit("linear+myopic+logit", str(data_file), se="jackknife")
