@@ -12,6 +12,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from stopwise.data_schemas import columns as C
 from stopwise.data_schemas.errors import StopwiseDataError, StopwiseInputError
 from stopwise.data_schemas.load import load
@@ -246,3 +248,46 @@ def test_contest_group_with_right_size_passes(decision_frame) -> None:
     frame.loc[frame["group"] == "g1", "n_players"] = 3
     report = validate(frame)
     assert set(report.counts) == {"group_size"}
+
+
+def test_row_order_does_not_matter(decision_frame) -> None:
+    shuffled = decision_frame.sample(frac=1.0, random_state=3)
+    assert validate(shuffled).ok
+    broken = shuffled.reset_index(drop=True)
+    row = int(
+        np.flatnonzero((broken["subject"] == "a") & (broken["trial"] == 1) & (broken["step"] == 1))[
+            0
+        ]
+    )
+    broken.loc[row, "step"] = 5
+    report = validate(broken)
+    assert {(p.kind, p.line) for p in report.problems} >= {("step_gap", row + 2)}
+
+
+@settings(
+    max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(row=st.integers(0, 6), column=st.sampled_from(["p_survive", "gain", "step", "action"]))
+def test_a_corrupted_cell_is_found_on_its_line(decision_frame, row: int, column: str) -> None:
+    frame = decision_frame.copy()
+    bad = {"p_survive": 1.5, "gain": 0.0, "step": -2, "action": "halt"}[column]
+    frame[column] = frame[column].astype(object)
+    frame.loc[row, column] = bad
+    report = validate(frame)
+    assert any(p.line == row + 2 and p.column == column for p in report.problems)
+
+
+@pytest.mark.parametrize(
+    ("name", "content", "fragment"),
+    [
+        ("x.parquet", b"PAR1 not really parquet", "unreadable as Parquet"),
+        ("x.xlsx", b"PK\x03\x04", "save the data as CSV or Parquet"),
+        ("x.csv", "é,ü\n".encode("latin-1") * 3, "not UTF-8 text"),
+    ],
+)
+def test_files_that_are_not_tables(tmp_path, name: str, content: bytes, fragment: str) -> None:
+    path = tmp_path / name
+    path.write_bytes(content)
+    report = validate(path)
+    assert set(report.counts) == {"not_a_table"}
+    assert fragment in report.format()
