@@ -40,7 +40,8 @@ class Description:
         title = (
             "Stopping data by condition" if self.kind == "stopping" else "Lottery choices by item"
         )
-        parts = [f"{title} ({self.source})", _frame_text(self.table)]
+        table = _stopping_text(self.table) if self.kind == "stopping" else _frame_text(self.table)
+        parts = [f"{title} ({self.source})", table]
         if self.stop_steps is not None and len(self.stop_steps):
             parts += [
                 "",
@@ -289,6 +290,28 @@ def _short(value: Any) -> str:
     if isinstance(value, (float, np.floating)):
         return f"{float(value):g}"
     return str(value)
+
+
+def _stopping_text(table: pd.DataFrame, max_columns: int = 6) -> str:
+    """Few conditions: one column per condition (reads down); many: one row each."""
+    if len(table) > max_columns:
+        return _frame_text(table)
+    keys = [k for k in (*CONDITION_KEYS, *OPTIONAL_KEYS) if k in table.columns]
+    labels = [
+        " ".join(
+            f"{_KEY_LABELS.get(k, k)}={_short(v)}"
+            for k, v in zip(keys, row)
+            if not (k in ("prize", "keep_bank") and row[keys.index("task")] == "solo")
+        )
+        for row in table[keys].itertuples(index=False)
+    ]
+    body = table.drop(columns=keys).T
+    body.columns = [f"({i + 1})" for i in range(len(labels))]
+    legend = "\n".join(f"  ({i + 1}) {label}" for i, label in enumerate(labels))
+    return f"{legend}\n{body.to_string(float_format=lambda v: f'{v:.3g}')}"
+
+
+_KEY_LABELS = {"p_survive": "p", "keep_bank": "keep_bank"}
 
 
 def _frame_text(frame: pd.DataFrame) -> str:
