@@ -260,7 +260,8 @@ class _Checker:
             bad = np.flatnonzero(unknown & ~empty)
             if len(bad):
                 raw = series.to_numpy()[bad]
-                hints = _suggestions(raw, allowed)
+                shown = self.collector.max_per_kind
+                hints = _suggestions(raw[:shown], allowed) + [""] * max(len(raw) - shown, 0)
                 self.collector.add_rows(
                     "unknown_label", self.lines[bad], name, raw, expected, hints
                 )
