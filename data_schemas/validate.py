@@ -18,7 +18,7 @@ import pandas as pd
 
 from . import columns as C
 from .errors import StopwiseInputError
-from .reading import read_table, source_name
+from .reading import read_table
 from .report import ProblemCollector, ValidationReport, show_value, suggest_label
 
 Source = str | os.PathLike[str] | pd.DataFrame
@@ -977,8 +977,3 @@ def _check_option(ch: _Checker, option: str, indices: list[int]) -> None:
         f"the probabilities of option {option.upper()} to sum to 1 "
         f"(within {PROBABILITY_TOLERANCE:g})",
     )
-
-
-def source_label(source: Source) -> str:
-    """The name used for ``source`` in messages."""
-    return source_name(source)

@@ -42,7 +42,11 @@ def trial_frames(draw: st.DrawFn) -> pd.DataFrame:
                 row["start"] = draw(st.sampled_from([0.0, 3.0]))
             if "bust_keep" in optional:
                 row["bust_keep"] = draw(st.sampled_from([0.0, 0.5]))
-            if "contest" in optional:
+            if "contest" in optional and draw(st.booleans()):  # one-player groups keep
+                row.update(
+                    task="contest", group=f"g{s}", n_players=1, prize=5.0, keep_bank=0
+                )  # the group-size rule simple
+            elif "contest" in optional:
                 row.update(task="solo", group=None, n_players=1, prize=0.0, keep_bank=1)
             if "age" in optional:
                 row["age"] = age
