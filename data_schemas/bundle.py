@@ -199,8 +199,24 @@ def _condition_table(config: np.ndarray, trial: np.ndarray) -> tuple[np.ndarray,
     per_trial = config[first]
     if n_trials == 0:
         return np.zeros(0, dtype=np.int64), np.zeros((0, config.shape[1]))
-    table, inverse = np.unique(per_trial, axis=0, return_inverse=True)
-    return np.asarray(inverse).reshape(-1)[trial], table
+    inverse, table = _unique_rows(per_trial)
+    return inverse[trial], table
+
+
+def _unique_rows(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct rows in lexicographic order and each row's index into them (one 1-d unique
+    per column, then a mixed-radix key: faster than np.unique(axis=0) on many rows)."""
+    key = np.zeros(len(values), dtype=np.int64)
+    radix = 1
+    for j in range(values.shape[1]):
+        uniques, codes = np.unique(values[:, j], return_inverse=True)
+        radix *= max(len(uniques), 1)
+        if radix > 2**62:  # too many combinations for one integer key
+            table, inverse = np.unique(values, axis=0, return_inverse=True)
+            return np.asarray(inverse).reshape(-1), table
+        key = key * len(uniques) + codes.reshape(-1)
+    _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    return inverse.reshape(-1), values[first]
 
 
 def _group_index(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:

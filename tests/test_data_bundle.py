@@ -109,3 +109,16 @@ def test_lottery_bundle_pads_outcomes() -> None:
     assert data.b_x[0].tolist() == [12.0, -6.0, 12.0]
     assert data.choice_b.tolist() == [0.0, 1.0]
     assert to_lottery_data(frame).n_subjects == 2
+
+
+def test_unique_rows_matches_numpy() -> None:
+    from stopwise.data_schemas.bundle import _unique_rows
+
+    values = np.random.default_rng(1).integers(0, 3, (500, 8)).astype(float)
+    inverse, table = _unique_rows(values)
+    reference, reference_inverse = np.unique(values, axis=0, return_inverse=True)
+    np.testing.assert_array_equal(table, reference)
+    np.testing.assert_array_equal(inverse, reference_inverse.reshape(-1))
+    wide = np.random.default_rng(2).normal(size=(300, 8))  # too many values for one key
+    inverse, table = _unique_rows(wide)
+    np.testing.assert_array_equal(table[inverse], wide)
