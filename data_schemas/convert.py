@@ -53,7 +53,7 @@ def trials_to_decisions(
     if bank:
         start = repeated["start"].to_numpy(np.float64) if "start" in repeated else 0.0
         out["bank"] = start + step * repeated["gain"].to_numpy(np.float64)
-    skip = set(C.TRIAL_REQUIRED) | {C.CENSORED}
+    skip = set(C.TRIAL_REQUIRED) | {C.CENSORED, "bank"}  # a bank varies within a trial
     for name in trials.columns:
         if name not in skip:
             out[name] = repeated[name].to_numpy()
