@@ -37,6 +37,7 @@ from __future__ import annotations
 
 import math
 import re
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -204,7 +205,9 @@ def _describe(d: Any) -> str:
 
 def _check_prior_inside_bounds(prior: Prior, spec: ParamSpec) -> None:
     """The prior must give the start value a finite density (else the sampler cannot start)."""
-    value = float(prior.distribution.log_prob(jnp.asarray(spec.start)))
+    with warnings.catch_warnings():  # out-of-support values are what we test for
+        warnings.simplefilter("ignore")
+        value = float(prior.distribution.log_prob(jnp.asarray(spec.start)))
     if not math.isfinite(value):
         raise StopwiseInputError(
             f"prior for {spec.name} ({prior.text}) has zero density at the start value "
