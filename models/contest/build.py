@@ -1,0 +1,411 @@
+"""Contest models: a utility plus a play concept (plus an optional tremble), as a Model.
+
+Specs (parts joined by "+", parsed by stopwise.models.spec): ``linear+qre``, ``crra+qre``,
+``linear+levelk``, ``crra+ch``, ``crra+nash+tremble``, ``linear+aqre``. Concepts:
+
+    nash   symmetric Nash equilibrium (always mixed with a tremble: an exact equilibrium gives
+           most targets probability zero); derivatives by the implicit function theorem on
+           the indifference system of its support
+    qre    symmetric logit QRE on the principal branch (``precision``)
+    aqre   agent logit QRE on the draw/stop decisions (``precision``)
+    levelk level-k with logit responses (``precision``; ``level`` estimated in [0, max_level]
+           as a hat-weight mixture of adjacent levels, or fixed by the option ``level=K``)
+    ch     Poisson cognitive hierarchy (``precision``, ``tau``; levels truncated at 15)
+
+Likelihood of contest rows (cond_contest == 1; other rows contribute 0): per contest
+condition the concept gives a target distribution sigma over 0..cap; with the survival
+function S(s) = P(T >= s) = sum_{t>=s} sigma_t (log space, cumulative log-sum-exp),
+
+    P(draw at step s) = S(s+1) / S(s),      P(stop at s) = sigma_s / S(s),
+
+so the rows of a trial that busts after k successes multiply to exactly P(T > k) (exact
+censoring). With a tremble eps: sigma' = (1 - eps) sigma + eps / (cap + 1).
+
+The cap on targets is the option ``max_target``, else the rule of
+``game.default_max_target`` at the largest contest p_survive of the data (read when the
+likelihood first sees concrete data, or when an engine calls ``model.options["prepare"](data)``
+before tracing, then remembered), and never below the data's horizon (every observed draw
+needs a target above its step).
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Mapping
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pandas as pd
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.base import Model, ParamSpec
+from stopwise.models.contest.agent import agent_qre_log_probs
+from stopwise.models.contest.game import (
+    ContestGame,
+    default_max_target,
+    make_game,
+    resolve_utility,
+    target_payoffs,
+)
+from stopwise.models.contest.levelk import (
+    ch_population,
+    level0_strategy,
+    levelk_mixture,
+    levelk_strategies,
+)
+from stopwise.models.contest.nash import _support_equations, symmetric_nash
+from stopwise.models.contest.qre import _continuation, symmetric_residual
+
+CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
+CH_DEPTH = 15
+MAX_LEVEL = 6
+
+_PRECISION = ParamSpec("precision", 0.0, np.inf, 1.0, "logit precision of responses")
+_TAU = ParamSpec("tau", 0.0, 8.0, 1.5, "cognitive-hierarchy mean thinking steps")
+_LEVEL = ParamSpec("level", 0.0, float(MAX_LEVEL), 1.5, "level-k depth")
+_TREMBLE = ParamSpec("tremble", 0.0, 1.0, 0.05, "share of uniformly random targets")
+# money outcomes include 0, so CRRA needs r < 1 for a finite u(0)
+_CRRA_R = ParamSpec("r", -1.5, 0.95, 0.3, "CRRA curvature (u = x^(1-r)/(1-r))")
+
+
+def utility_params(name: str) -> tuple[ParamSpec, ...]:
+    """Parameters of the utility family `name` (CRRA bounded to r < 1 in contests)."""
+    if name == "linear":
+        return ()
+    if name == "crra":
+        return (_CRRA_R,)
+    try:
+        from stopwise.models.utility import UTILITIES
+    except ImportError:
+        UTILITIES = {}
+    if name in UTILITIES:
+        return tuple(getattr(UTILITIES[name], "params", ()))
+    resolve_utility(name)  # raises with the list of known utilities
+    return ()
+
+
+# ----------------------------------------------------------------------------- Nash in JAX
+
+
+def _nash_host(
+    log_q: Any, scores: Any, below: Any, equal: Any, du: Any, u0: Any, n_players: Any
+) -> np.ndarray:
+    """Symmetric Nash sigma on the host (pure callback)."""
+    game = ContestGame(*(jnp.asarray(v) for v in (log_q, scores, below, equal, du, u0, n_players)))
+    return np.asarray(symmetric_nash(game).sigma, dtype=np.float64)
+
+
+@jax.custom_jvp
+def nash_sigma(game: ContestGame) -> Any:
+    """Symmetric Nash equilibrium of the contest (host solver through a pure callback)."""
+    shape = jax.ShapeDtypeStruct((game.n_targets,), jnp.float64)
+    return jax.pure_callback(_nash_host, shape, *game, vmap_method="sequential")
+
+
+@nash_sigma.defjvp
+def _nash_sigma_jvp(primals: tuple[ContestGame], tangents: tuple[ContestGame]) -> tuple[Any, Any]:
+    """Implicit derivative of the indifference system G(sigma, v; game) = 0 on the support."""
+    (game,), (game_dot,) = primals, tangents
+    sigma = nash_sigma(game)
+    mask = sigma > 1e-12
+    value = sigma @ target_payoffs(game, sigma)
+    z = jnp.concatenate([sigma, value[None]])
+    jac = jax.jacfwd(_support_equations)(z, game, mask)
+    _, g_dot = jax.jvp(lambda g: _support_equations(z, g, mask), (game,), (game_dot,))
+    dz = -jnp.linalg.lstsq(jac, g_dot)[0]
+    return sigma, dz[:-1]
+
+
+# ----------------------------------------------------------------------------- concepts
+
+
+def concept_log_probs(
+    concept: str, theta: Mapping[str, Any], game: ContestGame, options: Mapping[str, Any]
+) -> Any:
+    """log sigma_t over targets 0..cap for one contest under `concept` (module docstring)."""
+    n = game.n_targets
+    if concept == "qre":
+        x0 = jnp.full(n, -jnp.log(n))
+        log_sigma = _continuation(symmetric_residual, x0, theta["precision"], (game,), 24, 3, 6)
+    elif concept == "aqre":
+        log_sigma = agent_qre_log_probs(theta["precision"], game)
+    elif concept == "nash":  # mixed with the tremble in probability space (sigma_t may be 0)
+        eps = theta["tremble"]
+        return jnp.log((1.0 - eps) * jnp.maximum(nash_sigma(game), 0.0) + eps / n)
+    else:
+        sigma0 = level0_strategy(game, options.get("level0", "uniform"))
+
+        def payoffs(s: Any) -> Any:
+            return target_payoffs(game, s)
+
+        if concept == "levelk":
+            strategies = levelk_strategies(payoffs, sigma0, theta["precision"], MAX_LEVEL)
+            level = options.get("level")
+            sigma = (
+                strategies[int(level)]
+                if level is not None
+                else levelk_mixture(strategies, theta["level"])
+            )
+        else:
+            sigma = ch_population(payoffs, sigma0, theta["precision"], theta["tau"], CH_DEPTH)
+        log_sigma = jnp.log(sigma)
+    if "tremble" in theta:
+        eps = theta["tremble"]
+        log_sigma = jnp.logaddexp(jnp.log1p(-eps) + log_sigma, jnp.log(eps) - jnp.log(n))
+    return log_sigma
+
+
+def hazard_loglik(log_sigma: Any, step: Any, draw: Any) -> Any:
+    """log P(draw at s) = log S(s+1) - log S(s), log P(stop at s) = log sigma_s - log S(s)."""
+    log_surv = jax.lax.cumlogsumexp(log_sigma, reverse=True)
+    log_surv = jnp.concatenate([log_surv, jnp.full(1, -jnp.inf)])
+    s = jnp.clip(step, 0, log_sigma.shape[-1] - 1)
+    here = log_surv[s]
+    return jnp.where(draw > 0.5, log_surv[s + 1] - here, log_sigma[s] - here)
+
+
+# ----------------------------------------------------------------------------- the model
+
+
+def build_contest_model(parts: list[str], **options: Any) -> Model:
+    """A contest Model from spec parts: one utility, one concept, optionally "tremble"."""
+    parts = [p.strip().lower() for p in parts]
+    concepts = [p for p in parts if p in CONCEPTS]
+    if len(concepts) != 1:
+        raise StopwiseInputError(
+            f"a contest model needs exactly one play concept among {', '.join(CONCEPTS)}; "
+            f"got {'+'.join(parts)!r}"
+        )
+    concept = concepts[0]
+    rest = [p for p in parts if p != concept]
+    tremble = "tremble" in rest or concept == "nash"
+    rest = [p for p in rest if p != "tremble"]
+    if len(rest) > 1:
+        raise StopwiseInputError(
+            f"a contest model takes one utility, a concept and optionally 'tremble'; "
+            f"could not place {', '.join(rest[1:])!r} in {'+'.join(parts)!r}"
+        )
+    utility_name = rest[0] if rest else "linear"
+    utility = resolve_utility(utility_name)
+    level = options.get("level")
+    if level is not None and not (isinstance(level, (int, np.integer)) and 0 <= level <= MAX_LEVEL):
+        raise StopwiseInputError(f"level must be an integer in 0..{MAX_LEVEL}, got {level!r}")
+    if options.get("level0", "uniform") not in ("uniform", "solo"):
+        raise StopwiseInputError("level0 must be 'uniform' or 'solo'")
+    params = list(utility_params(utility_name))
+    if concept in ("qre", "aqre", "levelk", "ch"):
+        params.append(_PRECISION)
+    if concept == "levelk" and level is None:
+        params.append(_LEVEL)
+    if concept == "ch":
+        params.append(_TAU)
+    if tremble:
+        params.append(_TREMBLE)
+    cap_memory: dict[str, int] = {}
+    if options.get("max_target") is not None:
+        cap_memory["cap"] = int(options["max_target"])
+        if cap_memory["cap"] < 1:
+            raise StopwiseInputError("max_target must be at least 1")
+
+    def resolve_cap(data: Any) -> int:
+        cap = cap_memory.get("cap")
+        if cap is None or "from_data" in cap_memory:
+            try:
+                p = np.asarray(data.cond_p_survive)
+                contest = np.asarray(data.cond_contest) > 0.5
+            except (jax.errors.TracerArrayConversionError, jax.errors.ConcretizationTypeError):
+                if cap is None:
+                    raise StopwiseInputError(
+                        "the contest model's cap on targets could not be derived inside a JAX "
+                        "transformation; build the model with max_target=M (--max-target) or "
+                        "evaluate it once on concrete data first"
+                    ) from None
+            else:
+                p_max = float(np.max(p[contest])) if contest.any() else float(np.max(p))
+                cap = max(cap or 0, default_max_target(p_max))
+                cap_memory.update(cap=cap, from_data=1)
+                _warn_identification(utility_name, data)
+        return max(int(cap), int(data.horizon))
+
+    def condition_log_probs(theta: Mapping[str, Any], data: Any, cap: int) -> Any:
+        contest = data.cond_contest > 0.5
+
+        def one(
+            p: Any, gain: Any, start: Any, keep: Any, n: Any, prize: Any, kb: Any, is_contest: Any
+        ) -> Any:
+            game = make_game(
+                p,
+                jnp.where(is_contest, n, 2.0),
+                jnp.where(is_contest, prize, 1.0),
+                jnp.where(is_contest, kb, 0.0),
+                cap,
+                gain,
+                start,
+                keep,
+                utility,
+                theta,
+            )
+            return concept_log_probs(concept, theta, game, options)
+
+        return jax.vmap(one)(
+            data.cond_p_survive,
+            data.cond_gain,
+            data.cond_start,
+            data.cond_bust_keep,
+            data.cond_n_players,
+            data.cond_prize,
+            data.cond_keep_bank,
+            contest,
+        )
+
+    def loglik_obs(theta: Mapping[str, Any], data: Any) -> Any:
+        cap = resolve_cap(data)
+        log_sigma = condition_log_probs(theta, data, cap)
+        ll = jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, data.draw)
+        return jnp.where(data.cond_contest[data.cond] > 0.5, ll, 0.0)
+
+    def predict(theta: Mapping[str, Any], data: Any) -> Any:
+        cap = resolve_cap(data)
+        log_sigma = condition_log_probs(theta, data, cap)
+        ones = jnp.ones_like(data.draw)
+        return jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
+
+    def target_distribution(
+        theta: Mapping[str, Any],
+        p_survive: float,
+        n_players: int,
+        prize: float,
+        keep_bank: float,
+        cap: int,
+        gain: float = 1.0,
+        start: float = 0.0,
+        bust_keep: float = 0.0,
+    ) -> np.ndarray:
+        game = make_game(
+            p_survive,
+            n_players,
+            prize,
+            keep_bank,
+            cap,
+            gain,
+            start,
+            bust_keep,
+            utility,
+            {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()},
+        )
+        return np.exp(np.asarray(concept_log_probs(concept, theta, game, options)))
+
+    def simulate(theta: Mapping[str, Any], design: pd.DataFrame, key: Any) -> pd.DataFrame:
+        return simulate_contest(target_distribution, theta, design, key, options)
+
+    name = "+".join([utility_name, concept] + (["tremble"] if tremble else []))
+    return Model(
+        name=name,
+        params=tuple(params),
+        loglik_obs=loglik_obs,
+        simulate=simulate,
+        data_kind="contest",
+        predict=predict,
+        options={
+            **options,
+            "concept": concept,
+            "utility": utility_name,
+            "target_distribution": target_distribution,
+            "prepare": resolve_cap,
+        },
+        description=f"contest play: {concept} with {utility_name} utility"
+        + (" and trembles" if tremble else ""),
+    )
+
+
+def identification_warnings(utility_name: str, data: Any) -> list[str]:
+    """Parameters the contest data cannot identify (checked on concrete data)."""
+    notes = []
+    contest = np.asarray(data.cond_contest) > 0.5
+    keep = np.asarray(data.cond_keep_bank)[contest]
+    if utility_params(utility_name) and contest.any() and np.all(keep < 0.5):
+        notes.append(
+            "utility curvature is not identified by winner-take-all contests with a single "
+            "prize: money is 0 or the prize, and any utility is affine on {0, prize}; its "
+            "estimate only reflects the starting value and the precision's scale"
+        )
+    return notes
+
+
+def _warn_identification(utility_name: str, data: Any) -> None:
+    for note in identification_warnings(utility_name, data):
+        warnings.warn(note, UserWarning, stacklevel=3)
+
+
+# ----------------------------------------------------------------------------- simulation
+
+
+def simulate_contest(
+    target_distribution: Any,
+    theta: Mapping[str, Any],
+    design: pd.DataFrame,
+    key: Any,
+    options: Mapping[str, Any],
+) -> pd.DataFrame:
+    """Decision rows of contest play: each trial's target drawn from the concept's
+    distribution for its condition, then draws succeed with probability p_survive until the
+    target is reached (stop) or a draw fails (bust). Players are grouped n_players at a time
+    within each condition unless the design has a ``group`` column."""
+    needed = {"subject", "trial", "p_survive", "gain"}
+    missing = needed - set(design.columns)
+    if missing:
+        raise StopwiseInputError(f"contest design lacks column(s) {sorted(missing)}")
+    d = design.copy()
+    for column, default in (
+        ("start", 0.0),
+        ("bust_keep", 0.0),
+        ("n_players", 2),
+        ("prize", 1.0),
+        ("keep_bank", 0),
+    ):
+        if column not in d:
+            d[column] = default
+    seed = int(jax.random.randint(key, (), 0, 2**31 - 1))
+    rng = np.random.default_rng(seed)
+    keys = ["p_survive", "gain", "start", "bust_keep", "n_players", "prize", "keep_bank"]
+    if "group" not in d:
+        d["group"] = d.groupby(keys, sort=False).cumcount() // d["n_players"].astype(int)
+        d["group"] = d.groupby(keys, sort=False).ngroup() * 100000 + d["group"]
+    rows: list[dict] = []
+    for values, block in d.groupby(keys, sort=False):
+        cond = dict(zip(keys, values))
+        cap = options.get("max_target") or default_max_target(cond["p_survive"])
+        sigma = target_distribution(
+            theta,
+            cond["p_survive"],
+            int(cond["n_players"]),
+            cond["prize"],
+            float(cond["keep_bank"]),
+            int(cap),
+            cond["gain"],
+            cond["start"],
+            cond["bust_keep"],
+        )
+        sigma = np.clip(sigma, 0.0, None)
+        targets = rng.choice(len(sigma), size=len(block), p=sigma / sigma.sum())
+        for trial, target in zip(block.to_dict("records"), targets):
+            rows.extend(_play_trial(trial, int(target), rng))
+    return pd.DataFrame(rows)
+
+
+def _play_trial(trial: dict, target: int, rng: np.random.Generator) -> list[dict]:
+    out = []
+    base = {k: v for k, v in trial.items() if k not in ("draws", "busted")}
+    base["task"] = "contest"
+    for step in range(target + 1):
+        if step == target:
+            out.append({**base, "step": step, "action": "stop", "outcome": ""})
+            break
+        success = rng.random() < trial["p_survive"]
+        out.append(
+            {**base, "step": step, "action": "draw", "outcome": "success" if success else "bust"}
+        )
+        if not success:
+            break
+    return out
