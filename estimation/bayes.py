@@ -13,7 +13,13 @@ the subject of cell c, and the intercept of b_k carries the parameter's natural-
 (estimation/priors.py) through the change of variables; other effects ~ Normal(0, 1). The
 log-likelihood added to the joint density is
 
-  sum_c sum_i mask[c, i] * loglik_obs(theta_c, data_c)[i],    theta_c = to_natural(z[c]).
+  sum_c sum_i w[c, i] * loglik_obs(theta_c, data_c)[i],    theta_c = to_natural(z[c]),
+
+where the rows of a cell are its *distinct* rows (rows equal in every field the model reads
+-- step, action, bust, condition, group; or the lottery item and choice -- are evaluated once)
+and w[c, i] counts the data rows each stands for (0 on padding). Aggregation is checked at the
+start values against the plain row sum and dropped if it does not reproduce it; contest
+models are never aggregated.
 
 No sampler is written here: NumPyro's NUTS runs on the CPU. Chains: "auto" runs them in
 parallel (one per device) when JAX sees at least as many devices as chains, otherwise
@@ -35,7 +41,7 @@ import math
 import time
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import partial
 from typing import Any
 
@@ -91,16 +97,21 @@ class Setup:
 class CellArgs:
     """Arrays the NumPyro model reads (a pytree, so new data of the same shape reuse code)."""
 
-    data: Any  # cells-batched bundle, leading axis = cell
-    mask: Any  # (n_cells, width)
+    data: Any  # cells-batched bundle of distinct rows, leading axis = cell
+    weight: Any  # (n_cells, width) how many data rows each distinct row stands for; 0 = pad
     designs: Mapping[str, Any]  # name -> (n_cells, n_coef)
     cell_subject: Any  # (n_cells,) subject index of each cell
-    unit: Any  # (n_cells, width) pointwise unit of each padded row (0 for padding)
+    row_cell: Any  # (n_obs,) cell of each original data row
+    row_pos: Any  # (n_obs,) position of each original row's distinct row in its cell
+    row_unit: Any  # (n_obs,) pointwise unit of each original row
 
 
 jax.tree_util.register_pytree_node(
     CellArgs,
-    lambda a: ((a.data, a.mask, dict(a.designs), a.cell_subject, a.unit), None),
+    lambda a: (
+        (a.data, a.weight, dict(a.designs), a.cell_subject, a.row_cell, a.row_pos, a.row_unit),
+        None,
+    ),
     lambda _, c: CellArgs(*c),
 )
 
@@ -145,11 +156,21 @@ def subject_offsets(setup: Setup, sites: Mapping[str, Any]) -> Any:
 
 
 def cell_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
-    """mask[c, i] * loglik_obs(theta_c, data_c)[i], shape (n_cells, width)."""
+    """loglik_obs(theta_c, data_c)[i] of each distinct row, 0 on padding; (n_cells, width)."""
     z = cell_z(setup, sites, args)
     theta = {spec.name: spec.to_natural(z[spec.name]) for spec in setup.specs}
     ll = jax.vmap(setup.model.loglik_obs)(theta, args.data)
-    return jnp.where(args.mask > 0, ll, 0.0)
+    return jnp.where(args.weight > 0, ll, 0.0)
+
+
+def total_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
+    """sum_c sum_i weight[c, i] * loglik_obs(theta_c, data_c)[i] (= the sum over data rows)."""
+    return jnp.sum(args.weight * cell_loglik(setup, sites, args))
+
+
+def row_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
+    """Log-likelihood of every original data row, shape (n_obs,)."""
+    return cell_loglik(setup, sites, args)[args.row_cell, args.row_pos]
 
 
 def numpyro_model(setup: Setup, args: CellArgs) -> None:
@@ -176,7 +197,7 @@ def numpyro_model(setup: Setup, args: CellArgs) -> None:
         sites["eta"] = numpyro.sample(
             "eta", dist.Normal(0.0, 1.0).expand([setup.n_subjects, k]).to_event(2)
         )
-    numpyro.factor("loglik", jnp.sum(cell_loglik(setup, sites, args)))
+    numpyro.factor("loglik", total_loglik(setup, sites, args))
 
 
 def init_near(
@@ -248,6 +269,40 @@ def unit_of_rows(data: Any, pointwise: str) -> tuple[np.ndarray, np.ndarray, str
     )
 
 
+ROW_SIGNATURE = {
+    "stopping": ("step", "draw", "bust", "cond", "group"),
+    "lottery": ("choice_b", "a_x", "a_p", "b_x", "b_p"),
+}
+
+
+def distinct_rows(data: Any, key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """First index of each distinct (cell key, row fields) combination and, per row, the
+    index of its distinct combination."""
+    kind = "lottery" if isinstance(data, LotteryData) else "stopping"
+    columns = [np.asarray(key, np.float64).reshape(len(key), 1)]
+    for name in ROW_SIGNATURE[kind]:
+        value = np.asarray(getattr(data, name), np.float64)
+        columns.append(value.reshape(len(key), -1))
+    _, first, inverse = np.unique(
+        np.hstack(columns), axis=0, return_index=True, return_inverse=True
+    )
+    return first, inverse.reshape(-1)
+
+
+def aggregation_is_exact(model: Model, data: Any, args: CellArgs, setup: Setup) -> bool:
+    """Check at the start values that weighted distinct rows reproduce the row sum (a model
+    whose rows depend on other rows, e.g. through the trial, would fail this)."""
+    theta = model.start_theta()
+    direct = float(jnp.sum(model.loglik_obs(theta, replace(data, covariates={}))))
+    sites = {f"z_{s.name}": s.to_unconstrained(theta[s.name]) for s in setup.specs}
+    sites.update({f"b_{n}": jnp.zeros(len(setup.effect_columns(n))) for n in setup.names})
+    if setup.hierarchical:
+        k = len(setup.names)
+        sites.update(sd_z=jnp.zeros(k), L_corr=jnp.eye(k), eta=jnp.zeros((setup.n_subjects, k)))
+    pooled = float(total_loglik(setup, sites, args))
+    return math.isfinite(direct) and abs(direct - pooled) <= 1e-9 * max(1.0, abs(direct))
+
+
 def build_designs_for(model: Model, data: Any, formulas: Any) -> dict[str, Any]:
     """Per-row design matrices and column names for every parameter (ones without formula)."""
     from stopwise.estimation.formulas import build_designs
@@ -271,25 +326,39 @@ def prepare(
     formulas: Any,
     priors: Mapping[str, Any] | None,
     pointwise: str,
+    aggregate: bool = True,
 ) -> tuple[Setup, CellArgs, Cells, np.ndarray, str]:
     """Cells (subject x distinct design row when hierarchical, distinct design row when
-    pooled), their designs and subjects, and the static setup."""
+    pooled), their designs and subjects, and the static setup. With ``aggregate``, rows that
+    agree in every field the model reads (all but trial) and in their cell are evaluated
+    once and weighted by their count."""
+    data = replace(data, covariates={})  # formulas have read them; models do not
     designs = build_designs_for(model, data, formulas)
     combined = np.concatenate([d for d, _ in designs.values()], axis=1)
     _, design_row = np.unique(combined, axis=0, return_inverse=True)
     design_row = design_row.reshape(-1)
     subject = np.asarray(data.subject).astype(np.int64)
     key = subject * (int(design_row.max()) + 1) + design_row if hierarchical else design_row
-    cells = split_into_cells(data, key)
-    first = cells.rows[:, 0]
+    if aggregate:
+        first, inverse = distinct_rows(data, key)
+    else:
+        first, inverse = np.arange(data.n_obs), np.arange(data.n_obs)
+    counts = np.bincount(inverse, minlength=len(first)).astype(np.float64)
+    cells = split_into_cells(data.take(first), key[first])
+    cell_of, pos_of = np.zeros(len(first), np.int64), np.zeros(len(first), np.int64)
+    filled = cells.rows >= 0
+    cell_of[cells.rows[filled]] = np.nonzero(filled)[0]
+    pos_of[cells.rows[filled]] = np.nonzero(filled)[1]
+    head = first[cells.rows[:, 0]]  # an original row of each cell
     unit_index, unit_labels, unit_name = unit_of_rows(data, pointwise)
-    unit = np.where(cells.rows >= 0, unit_index[np.maximum(cells.rows, 0)], 0)
     args = CellArgs(
         data=jax.tree_util.tree_map(jnp.asarray, cells.data),
-        mask=jnp.asarray(cells.mask),
-        designs={n: jnp.asarray(d[first]) for n, (d, _) in designs.items()},
-        cell_subject=jnp.asarray(subject[first]),
-        unit=jnp.asarray(unit),
+        weight=jnp.asarray(np.where(filled, counts[np.maximum(cells.rows, 0)], 0.0)),
+        designs={n: jnp.asarray(d[head]) for n, (d, _) in designs.items()},
+        cell_subject=jnp.asarray(subject[head]),
+        row_cell=jnp.asarray(cell_of[inverse]),
+        row_pos=jnp.asarray(pos_of[inverse]),
+        row_unit=jnp.asarray(unit_index),
     )
     setup = Setup(
         model=model,
@@ -439,8 +508,7 @@ def draws_pointwise(
     @jax.jit
     def one_chunk(block: Mapping[str, Any]) -> Any:
         def per_draw(sites: Mapping[str, Any]) -> Any:
-            ll = cell_loglik(setup, sites, args)
-            return jax.ops.segment_sum(ll.reshape(-1), args.unit.reshape(-1), n_units)
+            return jax.ops.segment_sum(row_loglik(setup, sites, args), args.row_unit, n_units)
 
         return jax.vmap(per_draw)(block)
 
@@ -479,6 +547,7 @@ def fit_bayes(
     chain_method: str = "auto",
     hdi_prob: float = 0.95,
     pointwise: str | None = None,
+    aggregate: bool = True,
     se: Any = None,
     by: Any = None,
     **ignored: Any,
@@ -509,6 +578,7 @@ def fit_bayes(
     if pointwise is None:
         pointwise = "trial" if isinstance(data, StoppingData) else "row"
     notes: list[str] = []
+    aggregate = model.data_kind != "contest" and aggregate
     setup, args, cells, unit_labels, unit_name = prepare(
         model,
         data,
@@ -516,7 +586,22 @@ def fit_bayes(
         formulas=formulas,
         priors=priors,
         pointwise=pointwise,
+        aggregate=aggregate,
     )
+    if aggregate and not aggregation_is_exact(model, data, args, setup):
+        notes.append(
+            "rows were not aggregated: the model's row log-likelihoods depend on more "
+            "than the row's own fields"
+        )
+        setup, args, cells, unit_labels, unit_name = prepare(
+            model,
+            data,
+            hierarchical=hierarchical,
+            formulas=formulas,
+            priors=priors,
+            pointwise=pointwise,
+            aggregate=False,
+        )
     values = initial_values(setup, model, data, init, formulas, notes)
     method = choose_chain_method(chain_method, chains)
     t0 = time.perf_counter()

@@ -387,8 +387,6 @@ class Posterior:
         """Posterior mean and sd of the modelled response probability per fitted row:
         P(draw) for stopping rows, P(choose B) for lottery rows (``n_draws`` evenly spaced
         posterior draws)."""
-        from stopwise.estimation.cells import scatter_rows
-
         theta = self.cell_theta_draws(n_draws)
         prob = np.asarray(
             jax.jit(
@@ -399,8 +397,9 @@ class Posterior:
                 )
             )({k: jnp.asarray(v) for k, v in theta.items()})
         )
-        mean = scatter_rows(prob.mean(axis=0), self.cells, self.n_obs)
-        sd = scatter_rows(prob.std(axis=0), self.cells, self.n_obs)
+        at = (np.asarray(self.args.row_cell), np.asarray(self.args.row_pos))
+        mean = prob.mean(axis=0)[at]
+        sd = prob.std(axis=0)[at]
         data = self.data
         labels = (
             np.asarray(data.subject_labels)[np.asarray(data.subject)]
@@ -611,7 +610,7 @@ def subject_table(
 
 
 def loglik_at_posterior_mean(setup: Any, samples: Mapping[str, Any], args: Any) -> float:
-    """sum_c sum_i mask * loglik_obs(mean over draws of theta_c, data_c)[i]."""
+    """sum_c sum_i weight * loglik_obs(mean over draws of theta_c, data_c)[i]."""
     from stopwise.estimation.bayes import cell_z
 
     flat = {k: jnp.reshape(jnp.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
@@ -621,7 +620,7 @@ def loglik_at_posterior_mean(setup: Any, samples: Mapping[str, Any], args: Any) 
         z = jax.vmap(lambda s: cell_z(setup, s, args))(flat)
         theta = {spec.name: jnp.mean(spec.to_natural(z[spec.name]), axis=0) for spec in setup.specs}
         ll = jax.vmap(setup.model.loglik_obs)(theta, args.data)
-        return jnp.sum(jnp.where(args.mask > 0, ll, 0.0))
+        return jnp.sum(args.weight * jnp.where(args.weight > 0, ll, 0.0))
 
     return float(value(flat))
 
