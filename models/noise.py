@@ -128,6 +128,17 @@ def _apply_mask(scaled: Any, mask: Any) -> Any:
     return jnp.where(mask, scaled, jax.lax.stop_gradient(lowest) - _MASK_GAP)
 
 
+def stable_log_softmax(scaled: Any) -> Any:
+    """log_softmax over the last axis: s = min(x - max x, 0); s - log sum exp(s).
+
+    The clamp at 0 is exact mathematically; it keeps exp() from overflowing when a compiled
+    program recomputes huge values (|x| ~ 1e90) with rounding differences.
+    """
+    shifted = scaled - jax.lax.stop_gradient(jnp.max(scaled, axis=-1, keepdims=True))
+    shifted = jnp.where(shifted > 0, 0.0, shifted)
+    return shifted - jnp.log(jnp.sum(jnp.exp(shifted), axis=-1, keepdims=True))
+
+
 def _probit_log_probs(scaled: Any) -> Any:
     """log E_e[prod_{k != j} Phi(a_j - a_k + e)] over the last axis, by Gauss-Hermite."""
     gaps = scaled[..., :, None] - scaled[..., None, :]  # a_j - a_k
@@ -167,7 +178,7 @@ def log_choice_probs(
     values = jnp.moveaxis(values, axis, -1)
     if rule.base == "logit":
         scaled = _apply_mask(jnp.asarray(theta["precision"], jnp.float64) * values, mask)
-        log_p = jax.nn.log_softmax(scaled, axis=-1)
+        log_p = stable_log_softmax(scaled)
     else:
         factor = math.sqrt(2.0) / jnp.asarray(theta["sigma"], jnp.float64)
         log_p = _probit_log_probs(_apply_mask(factor * values, mask))

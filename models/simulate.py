@@ -7,7 +7,8 @@ For each condition the end of a trial is one categorical draw over "stop at s" a
     P(bust at s) = P(reach s) P(draw | s) (1 - p),  P(forced stop) = P(reach H),
 sampled by inverse CDF with one uniform per trial (vectorised over trials). H is the
 planner cap (ceil(log(1e-15)/log(max p)), at least that of the model's ``max_p_survive``)
-or the model option ``max_target``, which then acts as a task cap for every policy.
+(but at most 10,000 unless the model's own cap is larger) or the model option
+``max_target``, which then acts as a task cap for every policy.
 """
 
 from __future__ import annotations
@@ -31,6 +32,7 @@ from stopwise.models.stopping import (
     tolerance_steps,
 )
 
+SIMULATION_MAX_STEPS = 10_000  # forced stop for p_survive above 1 - 3.5e-3 (see above)
 STOPPING_DESIGN_REQUIRED = ("subject", "trial", "p_survive", "gain")
 LOTTERY_DESIGN_REQUIRED = ("subject", "item")
 _LOTTERY_COLUMN = re.compile(r"^([ab])_([xp])(\d+)$")
@@ -102,7 +104,8 @@ def simulation_steps(policy: str, caps: Caps, max_p_survive: float) -> int:
         return int(caps.max_target)
     if policy == "target":
         return caps.n_targets(0) - 1
-    return max(caps.planner_cap(0), tolerance_steps(max_p_survive, PLANNER_TOLERANCE))
+    by_tolerance = tolerance_steps(max_p_survive, PLANNER_TOLERANCE)
+    return max(caps.planner_cap(0), min(by_tolerance, SIMULATION_MAX_STEPS))
 
 
 def end_log_probs(log_draw: np.ndarray, log_stop: np.ndarray, p: np.ndarray) -> np.ndarray:
