@@ -110,6 +110,18 @@ def _eig_step(g: Any, h: Any, mu: Any) -> Any:
     return step * jnp.minimum(1.0, 5.0 / jnp.maximum(length, 1e-300))
 
 
+def value_grad_hess_forward(f: Callable[[Any], Any], z: Any) -> tuple[Any, Any, Any]:
+    """f(z), its gradient and Hessian by forward mode only: the gradient from k JVPs along
+    the unit vectors, the Hessian as the forward-mode Jacobian of that gradient."""
+
+    def value_and_grad(zz: Any) -> tuple[Any, tuple[Any, Any]]:
+        values, grads = jax.vmap(lambda v: jax.jvp(f, (zz,), (v,)))(jnp.eye(zz.shape[0]))
+        return grads, (values[0], grads)
+
+    hess, (value, grad) = jax.jacfwd(value_and_grad, has_aux=True)(z)
+    return value, grad, 0.5 * (hess + hess.T)
+
+
 @partial(jax.jit, static_argnums=(0, 4))
 def batched_newton(
     fun: Callable[..., Any],
@@ -123,9 +135,8 @@ def batched_newton(
     iterations, converged), each with a leading batch axis."""
 
     def one(z: Any, b: Any) -> tuple[Any, Any, Any]:
-        value = fun(z, b, shared)
-        value = jnp.where(jnp.isfinite(value), value, jnp.inf)
-        return value, jax.grad(fun)(z, b, shared), jax.hessian(fun)(z, b, shared)
+        value, grad, hess = value_grad_hess_forward(lambda zz: fun(zz, b, shared), z)
+        return jnp.where(jnp.isfinite(value), value, jnp.inf), grad, hess
 
     evaluate = jax.vmap(one)
     v, g, h = evaluate(z0, batch)

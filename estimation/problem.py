@@ -152,6 +152,25 @@ negll_grad = jax.jit(jax.grad(_negll, argnums=1), static_argnums=0)
 negll_hess = jax.jit(jax.hessian(_negll, argnums=1), static_argnums=0)
 
 
+def _weighted_score(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> tuple[Any, Any]:
+    """(d ll_i / dz by forward mode, shape (n, k); d negll / dz = -sum_i w_i d ll_i / dz)."""
+    jac = jax.jacfwd(lambda zz: rows(zz, args))(z)
+    return jac, -jnp.sum(jnp.where(w[:, None] > 0, w[:, None] * jac, 0.0), axis=0)
+
+
+@partial(jax.jit, static_argnums=0)
+def value_grad_hess_jac(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
+    """(negll, its gradient, its Hessian, d ll_i / dz) in one compiled function, all by
+    forward-mode differentiation (forward over forward for the Hessian), so an optimiser step
+    and the sandwich share one compilation (forward mode compiles faster than reverse mode
+    through the models' scans and costs little for a handful of parameters)."""
+    ll = rows(z, args)
+    jac, grad = _weighted_score(rows, z, args, w)
+    hess = jax.jacfwd(lambda zz: _weighted_score(rows, zz, args, w)[1])(z)
+    value = -jnp.sum(jnp.where(w > 0, w * ll, 0.0))
+    return value, grad, 0.5 * (hess + hess.T), jac
+
+
 @partial(jax.jit, static_argnums=0)
 def rows_loglik(rows: Callable[..., Any], z: Any, args: Any) -> Any:
     return rows(z, args)
@@ -324,26 +343,25 @@ class Problem:
     def k(self) -> int:
         return len(self.z0)
 
+    def evaluate(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
+        """(negll, gradient, Hessian, row Jacobian) at z, cached for the last (z, w)."""
+        z = np.asarray(z, dtype=np.float64)
+        key = (z.tobytes(), None if w is None else id(w))
+        cache = self.__dict__.setdefault("_cache", {})
+        if cache.get("key") != key:
+            weights = jnp.asarray(self.weights if w is None else w)
+            out = value_grad_hess_jac(self.rows, jnp.asarray(z), self.args, weights)
+            cache["key"], cache["value"] = key, tuple(np.asarray(a) for a in out)
+        return cache["value"]
+
     def value(self, z: np.ndarray, w: np.ndarray | None = None) -> float:
-        return float(
-            negll(
-                self.rows, jnp.asarray(z), self.args, jnp.asarray(self.weights if w is None else w)
-            )
-        )
+        return float(self.evaluate(z, w)[0])
 
     def grad(self, z: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
-        return np.asarray(
-            negll_grad(
-                self.rows, jnp.asarray(z), self.args, jnp.asarray(self.weights if w is None else w)
-            )
-        )
+        return self.evaluate(z, w)[1]
 
     def hess(self, z: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
-        return np.asarray(
-            negll_hess(
-                self.rows, jnp.asarray(z), self.args, jnp.asarray(self.weights if w is None else w)
-            )
-        )
+        return self.evaluate(z, w)[2]
 
     def row_loglik(self, z: np.ndarray) -> np.ndarray:
         return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.args))
@@ -355,7 +373,7 @@ class Problem:
 
     def cluster_scores(self, z: np.ndarray) -> np.ndarray:
         """Per-cluster score s_g = sum_{i in g} w_i d ll_i / dz, shape (n_clusters, k)."""
-        jac = np.asarray(rows_jacobian(self.rows, jnp.asarray(z), self.args))
+        jac = self.evaluate(z)[3]
         jac = np.where(self.weights[:, None] > 0, jac * self.weights[:, None], 0.0)
         out = np.zeros((self.n_clusters, jac.shape[1]))
         np.add.at(out, self.cluster, jac)
