@@ -102,6 +102,7 @@ def recover(
     se: str | None = "auto",
     starts: int = 1,
     rivals: Sequence[Any] = (),
+    rival_starts: int = 2,
     progress: bool = True,
 ) -> Recovery:
     """Simulate ``n_reps`` data sets with model.simulate(truth, design, key), convert each with
@@ -142,7 +143,7 @@ def recover(
             )
         if rivals:
             aics = [fit.aic] + [
-                fit_mle(r, data, se=None, starts=starts, seed=seed + rep, progress=False).aic
+                fit_mle(r, data, se=None, starts=rival_starts, seed=seed + rep, progress=False).aic
                 for r in rivals
             ]
             picks.append(int(np.argmin(aics)) == 0)
