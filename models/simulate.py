@@ -301,13 +301,13 @@ def simulate(model: Any, params: Any, design: pd.DataFrame, seed: int = 0) -> pd
         raise StopwiseInputError(
             f"params must be a mapping name -> value or a DataFrame, got {type(params)}"
         )
+    theta = _resolve_theta(model, params, "params")
     missing = _missing_names(model, params)
     if missing:
         warnings.warn(
             f"parameters {', '.join(missing)} not given; using the start values of {model.name}",
             stacklevel=2,
         )
-    theta = _resolve_theta(model, params, "params")
     return model.simulate(theta, design, key)
 
 
