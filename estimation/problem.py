@@ -152,22 +152,24 @@ negll_grad = jax.jit(jax.grad(_negll, argnums=1), static_argnums=0)
 negll_hess = jax.jit(jax.hessian(_negll, argnums=1), static_argnums=0)
 
 
-def _weighted_score(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> tuple[Any, Any]:
-    """(d ll_i / dz by forward mode, shape (n, k); d negll / dz = -sum_i w_i d ll_i / dz)."""
-    jac = jax.jacfwd(lambda zz: rows(zz, args))(z)
-    return jac, -jnp.sum(jnp.where(w[:, None] > 0, w[:, None] * jac, 0.0), axis=0)
-
-
 @partial(jax.jit, static_argnums=0)
 def value_grad_hess_jac(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
-    """(negll, its gradient, its Hessian, d ll_i / dz) in one compiled function, all by
-    forward-mode differentiation (forward over forward for the Hessian), so an optimiser step
-    and the sandwich share one compilation (forward mode compiles faster than reverse mode
-    through the models' scans and costs little for a handful of parameters)."""
-    ll = rows(z, args)
-    jac, grad = _weighted_score(rows, z, args, w)
-    hess = jax.jacfwd(lambda zz: _weighted_score(rows, zz, args, w)[1])(z)
-    value = -jnp.sum(jnp.where(w > 0, w * ll, 0.0))
+    """(negll, its gradient, its Hessian, J = d ll_i / dz) in one compiled function, all by
+    forward mode: J from k JVPs along the unit vectors (the primal ll comes with them),
+    gradient = -sum_i w_i J_i, Hessian = forward-mode Jacobian of that gradient. One trace of
+    the model serves an optimiser step and the sandwich (forward mode compiles faster than
+    reverse mode through the models' scans and costs little for a handful of parameters)."""
+    k = z.shape[0]
+
+    def inner(zz: Any) -> tuple[Any, tuple[Any, Any, Any]]:
+        lls, jac_t = jax.vmap(lambda v: jax.jvp(lambda a: rows(a, args), (zz,), (v,)))(
+            jnp.eye(k)
+        )
+        grad = -jnp.sum(jnp.where(w[None, :] > 0, w[None, :] * jac_t, 0.0), axis=1)
+        value = -jnp.sum(jnp.where(w > 0, w * lls[0], 0.0))
+        return grad, (value, grad, jac_t.T)
+
+    hess, (value, grad, jac) = jax.jacfwd(inner, has_aux=True)(z)
     return value, grad, 0.5 * (hess + hess.T), jac
 
 
