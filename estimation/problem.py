@@ -348,7 +348,7 @@ class Problem:
     def evaluate(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
         """(negll, gradient, Hessian, row Jacobian) at z, cached for the last (z, w)."""
         z = np.asarray(z, dtype=np.float64)
-        key = (z.tobytes(), None if w is None else id(w))
+        key = (z.tobytes(), None if w is None else np.asarray(w, dtype=np.float64).tobytes())
         cache = self.__dict__.setdefault("_cache", {})
         if cache.get("key") != key:
             weights = jnp.asarray(self.weights if w is None else w)
