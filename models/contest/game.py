@@ -74,13 +74,14 @@ def _linear(x: Any, theta: Mapping[str, Any]) -> Any:
 
 
 def _crra(x: Any, theta: Mapping[str, Any]) -> Any:
-    """u(x) = x^(1-r) / (1-r) (log x at r = 1)."""
-    r = theta["r"]
-    logx = jnp.log(x)
-    one_minus_r = 1.0 - r
-    away = jnp.abs(one_minus_r) > 1e-10
-    safe = jnp.where(away, one_minus_r, 1.0)
-    return jnp.where(away, jnp.exp(safe * logx) / safe, logx)
+    """u(x) = (x^(1-r) - 1) / (1-r) (log x at r = 1); u(0) = -1/(1-r) for r < 1."""
+    c = 1.0 - theta["r"]
+    positive = x > 0
+    logx = jnp.log(jnp.where(positive, x, 1.0))
+    away = jnp.abs(c) > 1e-10
+    safe = jnp.where(away, c, 1.0)
+    u = jnp.where(away, jnp.expm1(safe * logx) / safe, logx)
+    return jnp.where(positive, u, -1.0 / safe)
 
 
 _BUILTIN_UTILITIES: dict[str, Utility] = {"linear": _linear, "crra": _crra}
@@ -104,11 +105,9 @@ def resolve_utility(name: str) -> Utility:
 
 
 def money_utility(utility: Utility, x: Any, theta: Mapping[str, Any]) -> Any:
-    """u(x) for money x >= 0 with u(0) = 0 (the limit for CRRA with r < 1, CARA, linear);
-    evaluated at a safe point where x = 0 so gradients stay finite."""
-    positive = x > 0
-    safe_x = jnp.where(positive, x, 1.0)
-    return jnp.where(positive, utility(safe_x, theta), 0.0)
+    """u(x) for money x >= 0 (the families define u(0) as the limit u(0+), finite for CRRA
+    with r < 1)."""
+    return utility(x, theta)
 
 
 # ----------------------------------------------------------------------------- the game
