@@ -12,7 +12,8 @@ Model options (keyword arguments of :func:`build_model`, recorded in ``Model.opt
 - ``reference`` ("start" or a number): the prospect-theory reference point; "start" (the
   default) is the bank at the start of the trial for stopping data and 0 for lotteries.
 - ``contextual`` (bool, default False): contextual utility (Wilcox 2011).
-- ``max_p_survive`` (default 0.99): the largest survival chance the static caps are sized for.
+- ``max_p_survive`` (default 0.99, at most 0.999): the largest survival chance the static caps
+  are sized for (a warning says when concrete data exceed it).
 - ``target_tolerance`` (default 1e-4): targets considered succeed with at least this chance.
 - ``max_target`` (int or None): a fixed cap on planned / possible draws (see models.stopping).
 
@@ -27,10 +28,12 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import warnings
 from collections.abc import Mapping
 from typing import Any
 
 import jax
+import numpy as np
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.lottery import lottery_loglik, lottery_predict
@@ -144,7 +147,7 @@ def _check_options(options: Mapping[str, Any]) -> dict[str, Any]:
         raise StopwiseInputError(f"bad model option value: {exc}") from None
     checks = [
         (math.isfinite(merged["wealth"]) and merged["wealth"] >= 0, "wealth must be >= 0"),
-        (0 < merged["max_p_survive"] < 1, "max_p_survive must lie in (0, 1)"),
+        (0 < merged["max_p_survive"] <= 0.999, "max_p_survive must lie in (0, 0.999]"),
         (0 < merged["target_tolerance"] < 1, "target_tolerance must lie in (0, 1)"),
         (merged["max_target"] is None or merged["max_target"] >= 1, "max_target must be >= 1"),
     ]
@@ -214,6 +217,7 @@ def _stopping_model(
     opts: dict[str, Any],
 ) -> Model:
     def tables(theta: Any, data: Any) -> tuple[Any, Any]:
+        warn_beyond_caps(data, caps, policy)
         return policy_tables(policy, risk, theta, Conditions.from_data(data), data.horizon, caps)
 
     def loglik_obs(theta: Any, data: Any) -> Any:
@@ -244,6 +248,26 @@ def _stopping_model(
         options={**opts, "policy": policy},
         description=f"stopping model {name}",
     )
+
+
+def warn_beyond_caps(data: Any, caps: Caps, policy: str) -> None:
+    """Warn (when the data are concrete numpy arrays, e.g. closed over by a jitted objective)
+    if a survival chance exceeds ``max_p_survive``, the value the static caps are sized for."""
+    p_survive = getattr(data, "cond_p_survive", None)
+    if caps.max_target is not None or policy == "myopic" or not isinstance(p_survive, np.ndarray):
+        return
+    largest = float(np.max(p_survive)) if p_survive.size else 0.0
+    if largest > caps.max_p_survive:
+        effect = (
+            "targets are capped below the tolerance rule"
+            if policy == "target"
+            else "the planner's cap may leave a chance above 1e-15 of reaching it"
+        )
+        warnings.warn(
+            f"the data have p_survive up to {largest:g}, above the model option max_p_survive="
+            f"{caps.max_p_survive:g}: {effect}; rebuild the model with max_p_survive={largest:g}",
+            stacklevel=3,
+        )
 
 
 def _lottery_model(

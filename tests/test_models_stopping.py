@@ -291,6 +291,7 @@ def edge_frame() -> pd.DataFrame:
     return frame.assign(subject=1, gain=1.0)
 
 
+@pytest.mark.filterwarnings("ignore:the data have p_survive")
 @pytest.mark.parametrize("policy", ["myopic", "planner", "target"])
 def test_edge_numerics_stay_finite(policy):
     data = to_stopping_data(edge_frame())
@@ -320,3 +321,27 @@ def test_predict_agrees_with_the_likelihood(stopping_data):
         draw = np.asarray(stopping_data.draw) > 0.5
         np.testing.assert_allclose(rows[draw], prob[draw], rtol=1e-12)
         np.testing.assert_allclose(rows[~draw], 1 - prob[~draw], rtol=1e-9)
+
+
+def test_survival_chances_beyond_the_caps_are_reported():
+    data = to_stopping_data(edge_frame())
+    with pytest.warns(UserWarning, match="max_p_survive=0.999999"):
+        build_model("crra+planner+logit").loglik_obs({"r": 0.3, "precision": 1.0}, data)
+    with pytest.raises(stopwise.data_schemas.errors.StopwiseInputError, match="max_p_survive"):
+        build_model("crra+planner+logit", max_p_survive=0.9999)
+
+
+def test_likelihood_vmaps_over_subject_cells(stopping_data):
+    # The engines vmap loglik_obs over padded per-subject blocks (estimation.cells); each
+    # block must give the rows' log-likelihoods at that block's own parameters.
+    from stopwise.estimation.cells import loglik_cells, split_into_cells
+
+    model = build_model("crra+target+logit", max_p_survive=0.9)
+    cells = split_into_cells(stopping_data, np.asarray(stopping_data.subject))
+    theta_cells = {"r": jnp.array([0.2, 0.7]), "precision": jnp.array([1.5, 3.0])}
+    per_cell = np.asarray(loglik_cells(model.loglik_obs, theta_cells, cells))
+    for c in range(cells.n_cells):
+        rows = cells.rows[c][cells.rows[c] >= 0]
+        theta = {k: float(v[c]) for k, v in theta_cells.items()}
+        direct = np.asarray(model.loglik_obs(theta, stopping_data))[rows]
+        np.testing.assert_allclose(per_cell[c][: len(rows)], direct, rtol=1e-12)
