@@ -22,6 +22,16 @@ import stopwise  # noqa: F401  (float64)
 from benchmarks._common import machine, write_section
 
 TRUTH = {"r": 0.4, "precision": 2.0}
+# The reverse direction: prospect-theory target setters (invented values); only AIC's choice
+# is reported (with no losses in this task, beta, loss_aversion and delta are not identified).
+PT_TRUTH = {
+    "alpha": 0.7,
+    "beta": 0.8,
+    "loss_aversion": 1.5,
+    "gamma": 0.7,
+    "delta": 0.7,
+    "precision": 2.0,
+}
 P_SURVIVE = (0.6, 0.75, 0.9)
 # The planner's induction cap follows the design's largest survival chance (model option).
 OPTIONS = {"max_p_survive": max(P_SURVIVE)}
@@ -55,7 +65,33 @@ def run_study(
     return result, time.perf_counter() - t0
 
 
-def section(result: Recovery, seconds: float, subjects: int, trials: int) -> str:
+def run_reverse(
+    n_reps: int = 100, subjects: int = 120, trials: int = 60, seed: int = 7, progress: bool = True
+) -> dict:
+    """Share of replications simulated from pt+tk+target+logit in which AIC prefers it over
+    crra+planner+logit."""
+    model = build_model("pt+tk+target+logit", **OPTIONS)
+    rival = build_model("crra+planner+logit", **OPTIONS)
+    design = stopping_design(subjects, trials, P_SURVIVE, 1.0, seed)
+    result = recover(
+        model,
+        PT_TRUTH,
+        design,
+        lambda frame, horizon=None: to_stopping_data(frame, horizon=horizon),
+        n_reps=n_reps,
+        seed=seed,
+        se=None,
+        starts=2,
+        rivals=[rival],
+        rival_starts=2,
+        progress=progress,
+    )
+    return result.selection
+
+
+def section(
+    result: Recovery, seconds: float, subjects: int, trials: int, reverse: dict | None = None
+) -> str:
     t = result.table
     lines = [
         "## Parameter recovery (study_recovery)",
@@ -79,6 +115,14 @@ def section(result: Recovery, seconds: float, subjects: int, trials: int) -> str
         "",
         f"AIC picks the generating model over {', '.join(sel['rivals'])} in "
         f"{sel['rate']:.1%} of {sel['replications']} replications.",
+    ]
+    if reverse:
+        lines.append(
+            f"Reverse direction (data from `pt+tk+target+logit`, {PT_TRUTH}): AIC picks it "
+            f"over crra+planner+logit in {reverse['rate']:.1%} of {reverse['replications']} "
+            "replications."
+        )
+    lines += [
         "",
         "Goals: coverage in [0.90, 0.98]; AIC selection >= 90%.",
         f"Machine: {machine()}.",
@@ -88,7 +132,8 @@ def section(result: Recovery, seconds: float, subjects: int, trials: int) -> str
 
 def main(n_reps: int = 200) -> str:
     result, seconds = run_study(n_reps)
-    return section(result, seconds, 120, 60)
+    reverse = run_reverse(max(n_reps // 2, 1))
+    return section(result, seconds, 120, 60, reverse)
 
 
 if __name__ == "__main__":
