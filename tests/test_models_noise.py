@@ -85,6 +85,7 @@ def test_mask_removes_options_and_tremble_spreads_over_the_rest():
     tremble_only = np.exp(np.asarray(log_choice_probs(v[:3], theta, "logit+tremble")))
     base = special.softmax(1.3 * np.asarray(v[:3]))
     np.testing.assert_allclose(tremble_only, 0.8 * base + 0.2 / 3, rtol=1e-12)
+    assert NOISE["tremble"].name == "logit+tremble"  # "tremble" alone is logit with a tremble
 
 
 def _ev_lottery_data(rng: np.random.Generator, n: int) -> LotteryData:
@@ -135,16 +136,20 @@ def test_contextual_lottery_divides_by_the_outcome_range():
     assert context.spec("sigma").start == 0.2 and plain.spec("sigma").start == 1.0
 
 
-def test_lottery_rdu_and_cpt_models_run_with_gradients():
+@pytest.mark.parametrize("spec", ["pt+tk+logit", "crra+ge+probit+tremble", "expo+prelec2+logit"])
+def test_lottery_gradients_match_central_differences(spec):
     rng = np.random.default_rng(11)
     data = _ev_lottery_data(rng, 60)
     choice = (rng.uniform(size=60) < 0.5).astype(float)
     data = LotteryData(data.subject, choice, data.a_x - 4.0, data.a_p, data.b_x - 4.0, data.b_p)
-    for spec in ("pt+tk+logit", "pt+prelec+probit", "crra+ge+logit+tremble", "cara+prelec2+probit"):
-        model = build_model(spec, wealth=5.0)
-        theta = model.start_theta()
-        objective = jax.jit(jax.value_and_grad(lambda t, m=model: jnp.sum(m.loglik_obs(t, data))))
-        total, grads = objective(theta)
-        assert np.isfinite(float(total)), spec
-        assert all(np.isfinite(float(g)) for g in grads.values()), spec
-    assert NOISE["tremble"].name == "logit+tremble"
+    model = build_model(spec, wealth=5.0)
+    theta = {k: v * 1.1 if k != "tremble" else v for k, v in model.start_theta().items()}
+    objective = jax.jit(jax.value_and_grad(lambda t: jnp.sum(model.loglik_obs(t, data))))
+    total, grads = objective(theta)
+    assert np.isfinite(float(total))
+    for name, value in theta.items():
+        h = 1e-5 * max(1.0, abs(value))
+        up, down = dict(theta), dict(theta)
+        up[name], down[name] = value + h, value - h
+        central = (float(objective(up)[0]) - float(objective(down)[0])) / (2 * h)  # common practice
+        assert float(grads[name]) == pytest.approx(central, rel=1e-5, abs=1e-6), (spec, name)

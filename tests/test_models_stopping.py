@@ -313,7 +313,7 @@ def test_edge_numerics_stay_finite(policy):
 
 
 def test_predict_agrees_with_the_likelihood(stopping_data):
-    for spec in ("crra+planner+logit+tremble", "pt+target+probit"):
+    for spec in ("crra+planner+logit+tremble",):
         model = build_model(spec, max_p_survive=0.9)
         theta = _interior_theta(model)
         prob = np.asarray(model.predict(theta, stopping_data))
