@@ -6,7 +6,7 @@ rows (no data are copied). Replications are solved together by the vmapped dampe
 estimation/optimize.py, started at the full-sample estimate: one compilation for all of them,
 and XLA spreads each batch over the machine's cores. Standard error = standard deviation of
 the replicated estimates; interval = their 2.5% and 97.5% percentiles (Efron & Tibshirani
-1993, ch. 13, percentile interval).
+1993, percentile interval; from memory).
 """
 
 from __future__ import annotations

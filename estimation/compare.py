@@ -4,6 +4,7 @@
 * Likelihood-ratio test for nested specs: LR = 2 (ln L_big - ln L_small) ~ chi2(k_big -
   k_small) under the null (Wilks 1938). When the restriction puts a parameter on the edge of
   its range (e.g. a tremble of 0) the chi2 reference is conservative (Self & Liang 1987).
+References are cited from memory.
 * Vuong (1989) test for non-nested specs, with subjects as the independent units: d_g =
   ln L_A,g - ln L_B,g, Schwarz-corrected LR~ = sum_g d_g - (k_A - k_B) ln(G) / 2, and
   Z = LR~ / (sqrt(G) sd(d)) ~ N(0, 1); Z > 0 favours A.
@@ -246,5 +247,5 @@ def compare_fits(
         notes.append(
             f"cross-validation skipped: fewer subjects ({data.n_subjects}) than folds ({cv_folds})"
         )
-    notes.append("AIC weights: exp(-dAIC/2) normalised (Burnham & Anderson 2002, sec. 2.9)")
+    notes.append("AIC weights: exp(-dAIC/2) normalised (Burnham & Anderson 2002, from memory)")
     return Comparison(table=table, tests=tests, fits=fits, notes=notes)

@@ -2,8 +2,8 @@
 
 * Hessian:   V = H^-1, with H the Hessian of the negative log-likelihood at the optimum.
 * Sandwich (subject-clustered):  V = c * H^-1 (sum_g s_g s_g') H^-1, s_g the score of cluster
-  g, with the small-sample factor c = G/(G-1) * (N-1)/(N-k) (Cameron & Miller 2015, J. Human
-  Resources 50(2), eq. 11's CR1 correction as in Stata and statsmodels).
+  g, with the small-sample factor c = G/(G-1) * (N-1)/(N-k) (the CR1 correction of Cameron &
+  Miller 2015, J. Human Resources 50(2), from memory; statsmodels' default, checked in tests).
 * Delta method: se(g(z)) = |g'(z)| se(z) for a reported row that maps one coefficient.
 
 A Hessian that is not positive definite gives NaN standard errors and a warning, never numbers.

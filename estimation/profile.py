@@ -3,7 +3,7 @@
 With the coefficient z_j held at t and the others re-maximised,
     pl(t) = max_{z_-j} ln L(z_-j, z_j = t),
 the level-(1 - a) interval is {t : 2 (ln L(z_hat) - pl(t)) <= chi2_1(1 - a)} (Venzon &
-Moolgavkar 1988; Pawitan 2001, ch. 3), found by root finding on each side of z_hat_j and
+Moolgavkar 1988; Pawitan 2001; from memory), found by root finding on each side of z_hat_j and
 mapped to the natural scale (the map is monotone, so the interval maps end to end).
 """
 

@@ -142,7 +142,7 @@ def test_comparison_lr_test_and_aic_match_statsmodels() -> None:
     # statsmodels Logit/Probit, reference library: AIC and the likelihood-ratio test.
     np.testing.assert_allclose(result.table.loc[LOGIT, "aic"], ref_small.aic, rtol=1e-6)
     np.testing.assert_allclose(result.table.loc["bias+myopic+logit", "aic"], ref_big.aic, rtol=1e-6)
-    # LR = 2 (lnL_big - lnL_small) ~ chi2(1) (Wilks 1938), from statsmodels' log-likelihoods.
+    # LR = 2 (lnL_big - lnL_small) ~ chi2(1) (Wilks 1938; from memory) with statsmodels llf.
     lr, df = 2 * (ref_big.llf - ref_small.llf), 1
     p = stats.chi2.sf(lr, df)
     test = result.tests.iloc[0]
@@ -176,7 +176,7 @@ def test_profile_interval_crosses_the_chi2_cutoff() -> None:
     x, y = ev_difference(data)[:, None], np.asarray(data.draw)
     logit = sm.Logit(y, x)
     # statsmodels Logit/Probit, reference library: the log-likelihood at each end is the
-    # maximum minus chi2_1(0.95)/2 = 1.9207 (Venzon & Moolgavkar 1988).
+    # maximum minus chi2_1(0.95)/2 = 1.9207 (Venzon & Moolgavkar 1988; from memory).
     drop = stats.chi2.ppf(0.95, 1) / 2
     for end in (low, high):
         np.testing.assert_allclose(logit.loglike(np.array([end])), fit.loglik - drop, atol=1e-6)

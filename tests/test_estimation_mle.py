@@ -111,7 +111,7 @@ def test_intervals_and_information_criteria(logit_case) -> None:
     # no source.
     np.testing.assert_allclose(row.ci_low, row.estimate * np.exp(-z * row.se / row.estimate))
     np.testing.assert_allclose(row.ci_high, row.estimate * np.exp(z * row.se / row.estimate))
-    # AIC = 2k - 2 lnL (Akaike 1974), BIC = k ln n - 2 lnL (Schwarz 1978).
+    # AIC = 2k - 2 lnL (Akaike 1974), BIC = k ln n - 2 lnL (Schwarz 1978); from memory.
     assert fit.aic == pytest.approx(2 - 2 * fit.loglik)
     assert fit.bic == pytest.approx(np.log(data.n_obs) - 2 * fit.loglik)
 
@@ -140,7 +140,7 @@ def test_same_seed_same_bootstrap(logit_case) -> None:
 
 def test_bootstrap_se_close_to_sandwich() -> None:
     # Large simulated data: the subject bootstrap and the clustered sandwich estimate the same
-    # sampling variance (Cameron & Miller 2015, sec. VI), so they agree within 15%.
+    # sampling variance (Cameron & Miller 2015; from memory), so they agree within 15%.
     model, _, data = simulated(
         "linear+myopic+logit", {"precision": 0.7}, subjects=200, trials=40, seed=3
     )
