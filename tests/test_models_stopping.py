@@ -7,6 +7,7 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.models.noise import NOISE
 from stopwise.models.spec import build_model
@@ -345,3 +346,32 @@ def test_likelihood_vmaps_over_subject_cells(stopping_data):
         theta = {k: float(v[c]) for k, v in theta_cells.items()}
         direct = np.asarray(model.loglik_obs(theta, stopping_data))[rows]
         np.testing.assert_allclose(per_cell[c][: len(rows)], direct, rtol=1e-12)
+
+
+def test_contextual_myopic_and_prospect_reference_by_hand():
+    # Wilcox (2011) contextual utility: the value difference of the one-step gamble is divided
+    # by u(best outcome) - u(worst outcome) of that gamble, u(b + g) - u(k b).
+    banks = bank_grid(6)
+    p, g, k = (np.asarray(a)[:, None] for a in (COND.p_survive, COND.gain, COND.bust_keep))
+    theta = {"r": 0.5, "sigma": 0.3}
+    risk = parts("crra", "probit", wealth=1.0, contextual=True)
+    ours = np.exp(np.asarray(myopic_tables(risk, theta, COND, 6)[0]))
+
+    def u(x):
+        return (1 + x) ** 0.5 / 0.5
+
+    diff = p * u(banks + g) + (1 - p) * u(k * banks) - u(banks)
+    expected = stats.norm.cdf(diff / (u(banks + g) - u(k * banks)) / 0.3)
+    np.testing.assert_allclose(ours, expected, rtol=1e-10)
+    # Prospect values around the start of the trial (default) or a fixed reference point.
+    pt_theta = {"alpha": 0.8, "beta": 0.8, "loss_aversion": 2.0, "precision": 1.0}
+    at_start = np.asarray(myopic_tables(parts("pt"), pt_theta, COND, 6)[0])
+    at_zero = np.asarray(myopic_tables(parts("pt", reference=0.0), pt_theta, COND, 6)[0])
+    np.testing.assert_allclose(at_start[0], at_zero[0], rtol=1e-12)  # start 0: same point
+    assert not np.allclose(at_start[1:], at_zero[1:])  # start > 0: busts become losses
+    b, s0 = banks[1, 0], float(COND.start[1])
+    v_gain = (b + 1 - s0) ** 0.8  # v(x - ref) with ref = start
+    v_bust = -2.0 * (s0 - 0.0) ** 0.8
+    v_now = (b - s0) ** 0.8 if b > s0 else 0.0
+    diff = 0.8 * v_gain + 0.2 * v_bust - v_now
+    assert np.exp(at_start[1, 0]) == pytest.approx(1 / (1 + np.exp(-diff)), rel=1e-12)
