@@ -5,8 +5,6 @@ from __future__ import annotations
 import nashpy
 import numpy as np
 import pytest
-
-import stopwise  # noqa: F401  (enables float64 JAX)
 from stopwise.models.contest import game as G
 from stopwise.models.contest.nash import (
     bimatrix_nash,
@@ -16,6 +14,8 @@ from stopwise.models.contest.nash import (
     support_enumeration,
     symmetric_nash,
 )
+
+import stopwise  # noqa: F401  (enables float64 JAX)
 
 
 def _covers(ours, theirs, tol=1e-8):
@@ -61,26 +61,31 @@ def test_contest_game_lp_matches_nashpy():
     assert eq.method == "zero-sum LP"
     reference = [tuple(e) for e in nashpy.Game(a, a.T).support_enumeration()]
     assert reference
-    assert any(np.allclose(eq.row, x, atol=1e-8) and np.allclose(eq.col, y, atol=1e-8)
-               for x, y in reference)
+    assert any(
+        np.allclose(eq.row, x, atol=1e-8) and np.allclose(eq.col, y, atol=1e-8)
+        for x, y in reference
+    )
 
 
 def test_keep_bank_crra_contest_matches_nashpy():
     # Not constant-sum (CRRA utility, own bank kept): Lemke-Howson and the symmetric
     # N-player solver against nashpy's support enumeration (1e-8).
-    game = G.make_game(0.8, 2, 2.0, 1.0, 5, utility=G.resolve_utility("crra"),
-                       theta={"r": 0.5})
+    game = G.make_game(0.8, 2, 2.0, 1.0, 5, utility=G.resolve_utility("crra"), theta={"r": 0.5})
     a = np.asarray(G.payoff_matrix(game))
     assert not constant_sum_split(a, a.T)[0]
     reference = [tuple(e) for e in nashpy.Game(a, a.T).support_enumeration()]
     eq = bimatrix_nash(a, a.T)
     assert eq.method == "Lemke-Howson"
-    assert any(np.allclose(eq.row, x, atol=1e-8) and np.allclose(eq.col, y, atol=1e-8)
-               for x, y in reference)
+    assert any(
+        np.allclose(eq.row, x, atol=1e-8) and np.allclose(eq.col, y, atol=1e-8)
+        for x, y in reference
+    )
     sym = symmetric_nash(game)
     assert sym.converged and sym.max_regret <= 1e-9
-    assert any(np.allclose(sym.sigma, x, atol=1e-8) and np.allclose(sym.sigma, y, atol=1e-8)
-               for x, y in reference)
+    assert any(
+        np.allclose(sym.sigma, x, atol=1e-8) and np.allclose(sym.sigma, y, atol=1e-8)
+        for x, y in reference
+    )
 
 
 def test_symmetric_three_player_certificate():

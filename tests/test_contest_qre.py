@@ -7,11 +7,11 @@ import jax.numpy as jnp
 import numpy as np
 import pygambit as gbt
 import pytest
-
-import stopwise  # noqa: F401  (enables float64 JAX)
 from stopwise.models.contest import game as G
 from stopwise.models.contest import qre
 from stopwise.models.contest.nash import bimatrix_nash, polish_on_supports
+
+import stopwise  # noqa: F401  (enables float64 JAX)
 
 # McKelvey & Palfrey (1995), asymmetric matching pennies with the payoffs of Ochs (1995)
 # (as given in issue 5 and replicated in the Gambit documentation).
@@ -29,8 +29,9 @@ def _gambit_profiles(a, b, lams):
     return out
 
 
-@pytest.mark.parametrize(("lam", "row", "col"),
-                         [(1.0, 0.5868, 0.4518), (2.0, 0.6175, 0.3720), (3.0, 0.6169, 0.3140)])
+@pytest.mark.parametrize(
+    ("lam", "row", "col"), [(1.0, 0.5868, 0.4518), (2.0, 0.6175, 0.3720), (3.0, 0.6169, 0.3140)]
+)
 def test_mckelvey_palfrey_1995_values(lam, row, col):
     # McKelvey & Palfrey (1995), QRE of the Ochs (1995) game at lambda = 1, 2, 3 (values to
     # four decimals as given in issue 5 / the Gambit documentation).
@@ -91,11 +92,12 @@ def test_implicit_gradient_matches_finite_differences():
     # forward solution (common practice, no source).
     crra = G.resolve_utility("crra")
 
+    @jax.jit
     def mean_target(lam, r):
         game = G.make_game(0.8, 3, 2.0, 1.0, 6, utility=crra, theta={"r": r})
         return jnp.arange(7.0) @ qre.qre_symmetric(lam, game)
 
-    grad = jax.grad(mean_target, argnums=(0, 1))(1.5, 0.3)
+    grad = jax.jit(jax.grad(mean_target, argnums=(0, 1)))(1.5, 0.3)
     h = 1e-5
     fd_lam = (mean_target(1.5 + h, 0.3) - mean_target(1.5 - h, 0.3)) / (2 * h)
     fd_r = (mean_target(1.5, 0.3 + h) - mean_target(1.5, 0.3 - h)) / (2 * h)
