@@ -55,7 +55,7 @@ def test_cognitive_hierarchy_hand_derived():
     belief2 = (np.full(3, 1 / 3) + sigma1) / 2
     u2 = np.asarray(A) @ belief2
     sigma2 = np.exp(lam * u2) / np.exp(lam * u2).sum()
-    strategies, weights = ch_strategies(_payoffs, UNIFORM, lam, tau, 2)
+    strategies, _weights = ch_strategies(_payoffs, UNIFORM, lam, tau, 2)
     assert np.allclose(np.asarray(strategies[1]), sigma1, atol=1e-14)
     assert np.allclose(np.asarray(strategies[2]), sigma2, atol=1e-14)
     population = (f[0] / 3 + f[1] * sigma1 + f[2] * sigma2) / f.sum()

@@ -119,6 +119,6 @@ def test_qre_tends_to_nash_and_agrees_with_pygambit_limit():
     nash = bimatrix_nash(a, a.T)
     assert np.allclose(x[:7], nash.row, atol=1e-4)
     result = gbt.nash.logit_solve(gbt.Game.from_arrays(a, a.T), maxregret=1e-6)
-    player = list(result.equilibria[0].game.players)[0]
+    player = next(iter(result.equilibria[0].game.players))
     gambit_row = np.array([float(result.equilibria[0][s]) for s in player.strategies])
     assert np.allclose(x[:7], gambit_row, atol=1e-4)
