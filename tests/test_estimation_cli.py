@@ -55,6 +55,8 @@ def test_fit_writes_the_design_json(
             "linear+myopic+logit",
             "--formula",
             "precision ~ 1 + treatment",
+            "--profile",
+            "precision",
             "--json",
             str(out),
         ]
@@ -62,6 +64,7 @@ def test_fit_writes_the_design_json(
     assert code == 0
     text = capsys.readouterr().out
     assert "precision:treatment" in text and "Clusters: 24" in text
+    assert "profile-likelihood interval for precision" in text
     result = json.loads(out.read_text())
     assert DESIGN_KEYS <= set(result)
     assert [p["name"] for p in result["params"]] == ["precision", "precision:treatment"]

@@ -71,6 +71,14 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "--starts", type=int, default=3, metavar="N", help="optimiser starts (default 3)"
     )
     parser.add_argument(
+        "--profile",
+        action="append",
+        default=[],
+        metavar="NAME",
+        help="also report the 95%% profile-likelihood interval of parameter NAME "
+        "(repeatable; pooled maximum likelihood only)",
+    )
+    parser.add_argument(
         "--max-target",
         type=int,
         default=None,
@@ -117,6 +125,20 @@ def parse_fixed(items: list[str]) -> dict[str, float]:
                 f"--fix {item!r}: expected NAME=VALUE with a number, e.g. --fix r=0.5"
             ) from None
     return out
+
+
+def add_profiles(result: Any, names: list[str]) -> None:
+    """Append each named parameter's profile-likelihood interval to the fit's notes."""
+    if names and not hasattr(result, "profile"):
+        raise StopwiseInputError("--profile applies to pooled maximum-likelihood fits")
+    for name in names:
+        if name not in result.table.names:
+            raise StopwiseInputError(
+                f"--profile {name}: no such parameter; the fit reports "
+                f"{', '.join(result.table.names)}"
+            )
+        low, high = result.profile(name)
+        result.notes.append(f"95% profile-likelihood interval for {name}: [{low:.6g}, {high:.6g}]")
 
 
 def emit(result: Any, json_path: str | None) -> None:
@@ -169,5 +191,6 @@ def run(args: argparse.Namespace) -> int:
             seed=args.seed,
             **kw,
         )
+        add_profiles(result, args.profile)
     emit(result, args.json)
     return 0
