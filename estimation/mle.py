@@ -21,7 +21,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
-from stopwise.estimation.covariance import RowTable, covariance_for, wald_rows
+from stopwise.estimation.covariance import covariance_for, wald_rows
 from stopwise.estimation.formulas import build_designs, cells_from_designs
 from stopwise.estimation.optimize import OptimumRecord, multistart, start_design
 from stopwise.estimation.problem import (
@@ -29,7 +29,6 @@ from stopwise.estimation.problem import (
     Layout,
     PooledRows,
     Problem,
-    Reported,
     check_kind,
     make_layout,
     natural_np,
@@ -456,8 +455,4 @@ def _make_predictor(
     return predict
 
 
-def reported_table(problem: Problem, z: np.ndarray, cov: np.ndarray | None) -> RowTable:
-    return wald_rows(problem.reported, z, cov)
-
-
-__all__ = ["Reported", "build_problem", "fit_mle", "run_fit", "stop_step_table"]
+__all__ = ["build_problem", "fit_mle", "optimise", "run_fit", "start_design", "stop_step_table"]

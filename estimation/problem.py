@@ -147,11 +147,6 @@ def _negll(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
     return -jnp.sum(jnp.where(w > 0, w * ll, 0.0))
 
 
-negll = jax.jit(_negll, static_argnums=0)
-negll_grad = jax.jit(jax.grad(_negll, argnums=1), static_argnums=0)
-negll_hess = jax.jit(jax.hessian(_negll, argnums=1), static_argnums=0)
-
-
 @partial(jax.jit, static_argnums=0)
 def value_grad_hess_jac(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
     """(negll, its gradient, its Hessian, J = d ll_i / dz) in one compiled function, all by
@@ -162,9 +157,7 @@ def value_grad_hess_jac(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> 
     k = z.shape[0]
 
     def inner(zz: Any) -> tuple[Any, tuple[Any, Any, Any]]:
-        lls, jac_t = jax.vmap(lambda v: jax.jvp(lambda a: rows(a, args), (zz,), (v,)))(
-            jnp.eye(k)
-        )
+        lls, jac_t = jax.vmap(lambda v: jax.jvp(lambda a: rows(a, args), (zz,), (v,)))(jnp.eye(k))
         grad = -jnp.sum(jnp.where(w[None, :] > 0, w[None, :] * jac_t, 0.0), axis=1)
         value = -jnp.sum(jnp.where(w > 0, w * lls[0], 0.0))
         return grad, (value, grad, jac_t.T)
@@ -176,12 +169,6 @@ def value_grad_hess_jac(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> 
 @partial(jax.jit, static_argnums=0)
 def rows_loglik(rows: Callable[..., Any], z: Any, args: Any) -> Any:
     return rows(z, args)
-
-
-@partial(jax.jit, static_argnums=0)
-def rows_jacobian(rows: Callable[..., Any], z: Any, args: Any) -> Any:
-    """d ll_i / d z_j, shape (n_rows, k), by forward mode (k passes)."""
-    return jax.jacfwd(lambda zz: rows(zz, args))(z)
 
 
 # ---------------------------------------------------------------------------------------
