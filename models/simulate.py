@@ -6,7 +6,7 @@ For each condition the end of a trial is one categorical draw over "stop at s" a
     P(reach s) = prod_{j<s} P(draw | j) p,  P(stop at s) = P(reach s) P(stop | s),
     P(bust at s) = P(reach s) P(draw | s) (1 - p),  P(forced stop) = P(reach H),
 sampled by inverse CDF with one uniform per trial (vectorised over trials). H is the
-planner cap (ceil(log(1e-15)/log(max p)), at least that of the model's ``max_p_survive``)
+planner cap (ceil(log(1e-15)/log(max p)) for the design's largest p)
 (but at most 10,000 unless the model's own cap is larger) or the model option
 ``max_target``, which then acts as a task cap for every policy.
 """
@@ -180,12 +180,13 @@ def simulate_stopping(
 ) -> pd.DataFrame:
     """Decision-level data for one parameter vector over a per-trial design."""
     cond_table, cond = stopping_design_arrays(design)
+    caps = caps.sized_for(cond_table.p_survive)
     n_steps = simulation_steps(policy, caps, float(np.max(cond_table.p_survive)))
     theta = {k: float(v) for k, v in theta.items()}
     if tables_fn is None:
         log_draw, log_stop = policy_tables(policy, parts, theta, cond_table, n_steps, caps, 0)
     else:
-        log_draw, log_stop = tables_fn(theta, cond_table, n_steps)
+        log_draw, log_stop = tables_fn(theta, cond_table, n_steps, caps)
     end_step, busted = sample_trial_ends(
         np.asarray(log_draw), np.asarray(log_stop), np.asarray(cond_table.p_survive), cond, key
     )

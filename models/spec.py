@@ -12,8 +12,9 @@ Model options (keyword arguments of :func:`build_model`, recorded in ``Model.opt
 - ``reference`` ("start" or a number): the prospect-theory reference point; "start" (the
   default) is the bank at the start of the trial for stopping data and 0 for lotteries.
 - ``contextual`` (bool, default False): contextual utility (Wilcox 2011).
-- ``max_p_survive`` (default 0.99, at most 0.999): the largest survival chance the static caps
-  are sized for (a warning says when concrete data exceed it).
+- ``max_p_survive`` (default None: the data's largest p_survive when the data are concrete,
+  else 0.99; at most 0.999): the survival chance the static caps are sized for (a warning
+  says when concrete data exceed it).
 - ``target_tolerance`` (default 1e-4): targets considered succeed with at least this chance.
 - ``max_target`` (int or None): a fixed cap on planned / possible draws (see models.stopping).
 
@@ -40,6 +41,7 @@ from stopwise.models.lottery import lottery_loglik, lottery_predict
 from stopwise.models.noise import NOISE
 from stopwise.models.simulate import simulate_lottery, simulate_stopping
 from stopwise.models.stopping import (
+    LARGEST_MAX_P_SURVIVE,
     POLICIES,
     Caps,
     Conditions,
@@ -64,7 +66,7 @@ DEFAULT_OPTIONS: dict[str, Any] = {
     "wealth": 0.0,
     "reference": "start",
     "contextual": False,
-    "max_p_survive": 0.99,
+    "max_p_survive": None,
     "target_tolerance": 1e-4,
     "max_target": None,
 }
@@ -136,7 +138,8 @@ def _check_options(options: Mapping[str, Any]) -> dict[str, Any]:
     merged = {**DEFAULT_OPTIONS, **{k: v for k, v in options.items() if v is not None}}
     try:
         merged["wealth"] = float(merged["wealth"])
-        merged["max_p_survive"] = float(merged["max_p_survive"])
+        if merged["max_p_survive"] is not None:
+            merged["max_p_survive"] = float(merged["max_p_survive"])
         merged["target_tolerance"] = float(merged["target_tolerance"])
         merged["contextual"] = bool(merged["contextual"])
         if merged["max_target"] is not None:
@@ -147,7 +150,10 @@ def _check_options(options: Mapping[str, Any]) -> dict[str, Any]:
         raise StopwiseInputError(f"bad model option value: {exc}") from None
     checks = [
         (math.isfinite(merged["wealth"]) and merged["wealth"] >= 0, "wealth must be >= 0"),
-        (0 < merged["max_p_survive"] <= 0.999, "max_p_survive must lie in (0, 0.999]"),
+        (
+            merged["max_p_survive"] is None or 0 < merged["max_p_survive"] <= 0.999,
+            "max_p_survive must lie in (0, 0.999]",
+        ),
         (0 < merged["target_tolerance"] < 1, "target_tolerance must lie in (0, 1)"),
         (merged["max_target"] is None or merged["max_target"] >= 1, "max_target must be >= 1"),
     ]
@@ -218,7 +224,8 @@ def _stopping_model(
 ) -> Model:
     def tables(theta: Any, data: Any) -> tuple[Any, Any]:
         warn_beyond_caps(data, caps, policy)
-        return policy_tables(policy, risk, theta, Conditions.from_data(data), data.horizon, caps)
+        sized = caps.sized_for(data.cond_p_survive)
+        return policy_tables(policy, risk, theta, Conditions.from_data(data), data.horizon, sized)
 
     def loglik_obs(theta: Any, data: Any) -> Any:
         """log P(action of each row | condition, step): the policy's table, gathered."""
@@ -231,8 +238,10 @@ def _stopping_model(
         return jax.numpy.exp(log_draw)[data.cond, data.step]
 
     sim_tables = jax.jit(
-        lambda theta, cond, n_steps: policy_tables(policy, risk, theta, cond, n_steps, caps, 0),
-        static_argnums=2,
+        lambda theta, cond, n_steps, sized: policy_tables(
+            policy, risk, theta, cond, n_steps, sized, 0
+        ),
+        static_argnums=(2, 3),
     )
 
     def simulate(theta: Any, design: Any, key: Any) -> Any:
@@ -257,15 +266,17 @@ def warn_beyond_caps(data: Any, caps: Caps, policy: str) -> None:
     if caps.max_target is not None or policy == "myopic" or not isinstance(p_survive, np.ndarray):
         return
     largest = float(np.max(p_survive)) if p_survive.size else 0.0
-    if largest > caps.max_p_survive:
+    bound = LARGEST_MAX_P_SURVIVE if caps.max_p_survive is None else caps.max_p_survive
+    if largest > bound:
         effect = (
             "targets are capped below the tolerance rule"
             if policy == "target"
             else "the planner's cap may leave a chance above 1e-15 of reaching it"
         )
         warnings.warn(
-            f"the data have p_survive up to {largest:g}, above the model option max_p_survive="
-            f"{caps.max_p_survive:g}: {effect}; rebuild the model with max_p_survive={largest:g}",
+            f"the data have p_survive up to {largest:g}, above max_p_survive={bound:g}: "
+            f"{effect}; rebuild the model with a larger max_p_survive (at most 0.999) or a "
+            "max_target",
             stacklevel=3,
         )
 

@@ -19,9 +19,10 @@ likelihood of a row never runs a dynamic programme of its own.
   W is the expected value, or the rank-dependent / cumulative value of the two-outcome gamble
   when a weighting is named (the continuation value ranks as an outcome).
   The cap H is a numerical truncation: H = horizon + ceil(log(1e-15) / log(max_p_survive))
-  (max_p_survive a model option, default 0.99, i.e. 3,437 extra steps), so reaching the cap
-  from any observed step has probability below 1e-15 for every p <= max_p_survive; a model
-  option ``max_target`` replaces it by a task cap max(horizon, max_target).
+  (max_p_survive: the model option, or by default the data's largest p_survive when the data
+  are concrete, else 0.99, i.e. 3,437 extra steps), so reaching the cap from any observed
+  step has probability below 1e-15; a model option ``max_target`` replaces it by a task cap
+  max(horizon, max_target).
 - ``target``: a target T in {0..cap_c} is chosen once per trial by the noise rule over
   V_T = pi_bank(T) u(b_T) + sum_{k<T} pi_k u(k b_k)  (the lottery "reach T, else bust at k"),
   with decision weights from the decumulative probabilities P(X >= b_T) = p^T,
@@ -42,11 +43,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 from stopwise.models.noise import NoiseRule, contextual_divisor, log_p_choose
 from stopwise.models.noise import log_choice_probs as noise_log_choice_probs
 from stopwise.models.utility import UtilityFamily
@@ -93,25 +95,50 @@ jax.tree_util.register_dataclass(
 )
 
 
+FALLBACK_MAX_P_SURVIVE = 0.99
+LARGEST_MAX_P_SURVIVE = 0.999
+
+
 @dataclass(frozen=True)
 class Caps:
-    """Static sizes: planner cap H and number of targets considered (options decide)."""
+    """Static sizes: planner cap H and number of targets considered.
 
-    max_p_survive: float = 0.99
+    ``max_p_survive`` None (the default) sizes the caps from the data when their survival
+    chances are concrete (numpy arrays, e.g. data closed over by a jitted objective), and
+    from 0.99 when they are traced. Both give the same target set (the per-condition mask
+    decides it) and planner tables equal within 1e-9 (the planner cap test).
+    """
+
+    max_p_survive: float | None = None
     target_tolerance: float = 1e-4
     max_target: int | None = None
+
+    @property
+    def p_bound(self) -> float:
+        """The survival chance the static sizes are computed for."""
+        return FALLBACK_MAX_P_SURVIVE if self.max_p_survive is None else self.max_p_survive
+
+    def sized_for(self, p_survive: Any) -> Caps:
+        """These caps with max_p_survive taken from concrete survival chances (if unset)."""
+        if self.max_p_survive is not None or isinstance(p_survive, jax.core.Tracer):
+            return self
+        values = np.asarray(p_survive, dtype=np.float64)
+        if values.size == 0:
+            return self
+        bound = float(np.clip(np.max(values), 0.5, LARGEST_MAX_P_SURVIVE))
+        return replace(self, max_p_survive=bound)
 
     def planner_cap(self, n_steps: int) -> int:
         """H = n_steps + ceil(log(1e-15)/log(max_p_survive)), or max(n_steps, max_target)."""
         if self.max_target is not None:
             return max(n_steps, self.max_target)
-        return n_steps + tolerance_steps(self.max_p_survive, PLANNER_TOLERANCE)
+        return n_steps + tolerance_steps(self.p_bound, PLANNER_TOLERANCE)
 
     def n_targets(self, n_steps: int) -> int:
         """Static count of targets 0..K-1: K - 1 = max(n_steps, cap at max_p_survive)."""
         if self.max_target is not None:
             return max(n_steps, self.max_target) + 1
-        return max(n_steps, tolerance_steps(self.max_p_survive, self.target_tolerance)) + 1
+        return max(n_steps, tolerance_steps(self.p_bound, self.target_tolerance)) + 1
 
 
 def tolerance_steps(p_survive: float, tolerance: float) -> int:

@@ -326,7 +326,7 @@ def test_predict_agrees_with_the_likelihood(stopping_data):
 
 def test_survival_chances_beyond_the_caps_are_reported():
     data = to_stopping_data(edge_frame())
-    with pytest.warns(UserWarning, match="max_p_survive=0.999999"):
+    with pytest.warns(UserWarning, match="above max_p_survive=0.999"):
         build_model("crra+planner+logit").loglik_obs({"r": 0.3, "precision": 1.0}, data)
     with pytest.raises(stopwise.data_schemas.errors.StopwiseInputError, match="max_p_survive"):
         build_model("crra+planner+logit", max_p_survive=0.9999)
@@ -375,3 +375,15 @@ def test_contextual_myopic_and_prospect_reference_by_hand():
     v_now = (b - s0) ** 0.8 if b > s0 else 0.0
     diff = 0.8 * v_gain + 0.2 * v_bust - v_now
     assert np.exp(at_start[1, 0]) == pytest.approx(1 / (1 + np.exp(-diff)), rel=1e-12)
+
+
+def test_caps_sized_from_concrete_data_agree_with_the_traced_fallback(stopping_data):
+    # Concrete data size the static caps from their largest p_survive (0.85 here); traced data
+    # fall back to 0.99. The target set is the same (the per-condition mask decides it) and the
+    # planner tables agree within the 1e-9 of the cap test.
+    for spec, tolerance in (("crra+target+logit", 1e-12), ("crra+planner+probit", 1e-9)):
+        model = build_model(spec)
+        theta = _interior_theta(model)
+        concrete = np.exp(np.asarray(model.loglik_obs(theta, stopping_data)))
+        traced = np.exp(np.asarray(jax.jit(model.loglik_obs)(theta, stopping_data)))
+        np.testing.assert_allclose(concrete, traced, rtol=0, atol=tolerance)
