@@ -157,7 +157,8 @@ def recover(
     """Parameter recovery: simulate ``n_reps`` data sets from ``truths`` on ``design``
     (default: ``subjects`` x ``trials`` with the given survival probabilities), refit each,
     and report bias, RMSE, 95% coverage, the correlation of estimates and unidentified
-    parameters (stopwise.estimation.recovery)."""
+    parameters (stopwise.estimation.recovery). ``rivals=[spec, ...]`` also reports how often
+    AIC prefers the generating model."""
     from stopwise.data_schemas.bundle import to_lottery_data, to_stopping_data
     from stopwise.estimation.recovery import recover as run_recovery
     from stopwise.estimation.recovery import stopping_design
@@ -173,4 +174,6 @@ def recover(
             return to_lottery_data(frame)
         return to_stopping_data(frame, horizon=horizon)
 
+    if "rivals" in kw:
+        kw["rivals"] = [resolve_model(r, max_target) for r in kw["rivals"]]
     return run_recovery(the_model, truths, design, to_bundle, n_reps=n_reps, seed=seed, **kw)
