@@ -168,6 +168,11 @@ def total_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
     return jnp.sum(args.weight * cell_loglik(setup, sites, args))
 
 
+# One compiled call even when NumPyro runs the model eagerly (its set-up traces the model
+# with concrete values, which would otherwise compile every primitive separately).
+jitted_total_loglik = jax.jit(total_loglik, static_argnums=0)
+
+
 def row_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
     """Log-likelihood of every original data row, shape (n_obs,)."""
     return cell_loglik(setup, sites, args)[args.row_cell, args.row_pos]
@@ -179,9 +184,9 @@ def numpyro_model(setup: Setup, args: CellArgs) -> None:
     for spec in setup.specs:
         name = spec.name
         if setup.has_intercept(name):
-            z0 = numpyro.sample(f"z_{name}", dist.ImproperUniform(constraints.real, (), ()))
-            numpyro.factor(f"prior_{name}", setup.priors[name].log_density_unconstrained(spec, z0))
-            sites[f"z_{name}"] = z0
+            sites[f"z_{name}"] = numpyro.sample(
+                f"z_{name}", dist.ImproperUniform(constraints.real, (), ())
+            )
         n_eff = len(setup.effect_columns(name))
         if n_eff:
             sites[f"b_{name}"] = numpyro.sample(
@@ -197,7 +202,21 @@ def numpyro_model(setup: Setup, args: CellArgs) -> None:
         sites["eta"] = numpyro.sample(
             "eta", dist.Normal(0.0, 1.0).expand([setup.n_subjects, k]).to_event(2)
         )
-    numpyro.factor("loglik", total_loglik(setup, sites, args))
+    numpyro.factor("prior", jitted_intercept_prior(setup, sites))
+    numpyro.factor("loglik", jitted_total_loglik(setup, sites, args))
+
+
+def intercept_prior(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """sum_k log prior_k(to_natural(z_k)) + log |dx/dz| at the intercepts z_k."""
+    total = jnp.zeros(())
+    for spec in setup.specs:
+        if setup.has_intercept(spec.name):
+            prior = setup.priors[spec.name]
+            total = total + prior.log_density_unconstrained(spec, sites[f"z_{spec.name}"])
+    return total
+
+
+jitted_intercept_prior = jax.jit(intercept_prior, static_argnums=0)
 
 
 def init_near(
@@ -293,13 +312,14 @@ def aggregation_is_exact(model: Model, data: Any, args: CellArgs, setup: Setup) 
     """Check at the start values that weighted distinct rows reproduce the row sum (a model
     whose rows depend on other rows, e.g. through the trial, would fail this)."""
     theta = model.start_theta()
-    direct = float(jnp.sum(model.loglik_obs(theta, replace(data, covariates={}))))
+    plain = replace(data, covariates={}, subject_labels=None, trial_labels=None)
+    direct = float(jax.jit(lambda t, d: jnp.sum(model.loglik_obs(t, d)))(theta, plain))
     sites = {f"z_{s.name}": s.to_unconstrained(theta[s.name]) for s in setup.specs}
     sites.update({f"b_{n}": jnp.zeros(len(setup.effect_columns(n))) for n in setup.names})
     if setup.hierarchical:
         k = len(setup.names)
         sites.update(sd_z=jnp.zeros(k), L_corr=jnp.eye(k), eta=jnp.zeros((setup.n_subjects, k)))
-    pooled = float(total_loglik(setup, sites, args))
+    pooled = float(jitted_total_loglik(setup, sites, args))
     return math.isfinite(direct) and abs(direct - pooled) <= 1e-9 * max(1.0, abs(direct))
 
 

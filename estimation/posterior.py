@@ -89,36 +89,50 @@ def gauss_hermite_moments(spec: Any, mu: Any, sd: Any, n: int = 40) -> tuple[Any
 def derived_draws(
     setup: Any, samples: Mapping[str, Any], args: Any, first_cell_of_subject: np.ndarray | None
 ) -> dict[str, np.ndarray]:
-    """Reported quantities (module docstring) for every draw, shape (chains, draws, ...)."""
+    """Reported quantities (module docstring) for every draw, shape (chains, draws, ...);
+    one compiled call (eager JAX would compile every primitive separately)."""
+    first = None if first_cell_of_subject is None else tuple(map(int, first_cell_of_subject))
+    out = _derived_jit(setup, first, {k: jnp.asarray(v) for k, v in samples.items()}, args)
+    return {k: np.asarray(v) for k, v in out.items()}
+
+
+def _derived_draws(
+    setup: Any, samples: Mapping[str, Any], args: Any, first: tuple[int, ...] | None
+) -> dict[str, Any]:
     from stopwise.estimation.bayes import cell_z
 
-    out: dict[str, np.ndarray] = {}
+    out: dict[str, Any] = {}
     for k, spec in enumerate(setup.specs):
         name = spec.name
         if setup.has_intercept(name):
-            out[name] = np.asarray(spec.to_natural(samples[f"z_{name}"]))
+            out[name] = spec.to_natural(samples[f"z_{name}"])
         effects = [c for c in setup.coef_names[name] if c != "Intercept"]
         for e, column in enumerate(effects):
-            out[f"{name}:{column}"] = np.asarray(samples[f"b_{name}"][..., e])
+            out[f"{name}:{column}"] = samples[f"b_{name}"][..., e]
         if setup.hierarchical:
             sd = samples["sd_z"][..., k]
             if setup.has_intercept(name):
                 mean, sd_nat = gauss_hermite_moments(spec, samples[f"z_{name}"], sd)
-                out[f"mean({name})"] = np.asarray(mean)
-                out[f"sd({name})"] = np.asarray(sd_nat)
-            out[f"sd_z({name})"] = np.asarray(sd)
+                out[f"mean({name})"] = mean
+                out[f"sd({name})"] = sd_nat
+            out[f"sd_z({name})"] = sd
     if setup.hierarchical and len(setup.names) > 1:
         chol = samples["L_corr"]
         corr = chol @ jnp.swapaxes(chol, -1, -2)
         for i, j in combinations(range(len(setup.names)), 2):
-            out[f"corr({setup.names[i]},{setup.names[j]})"] = np.asarray(corr[..., i, j])
-    if setup.hierarchical and first_cell_of_subject is not None:
-        z = jax.jit(jax.vmap(jax.vmap(lambda s: cell_z(setup, s, args))))(dict(samples))
+            out[f"corr({setup.names[i]},{setup.names[j]})"] = corr[..., i, j]
+    if setup.hierarchical and first is not None:
+        z = jax.vmap(jax.vmap(lambda s: cell_z(setup, s, args)))(dict(samples))
+        index = jnp.asarray(first)
         for spec in setup.specs:
-            out[f"{spec.name}_subject"] = np.asarray(
-                spec.to_natural(z[spec.name][..., first_cell_of_subject])
-            )
+            out[f"{spec.name}_subject"] = spec.to_natural(z[spec.name][..., index])
     return out
+
+
+_derived_jit = jax.jit(
+    lambda setup, first, samples, args: _derived_draws(setup, samples, args, first),
+    static_argnums=(0, 1),
+)
 
 
 def sample_stats(extra: Mapping[str, Any], max_tree_depth: int) -> dict[str, np.ndarray]:
