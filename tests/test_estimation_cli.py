@@ -159,3 +159,21 @@ def test_public_fit_accepts_paths_and_refuses_bad_options(data_file: Path) -> No
         stopwise.fit("linear+myopic+logit", str(data_file), method="magic")
     with pytest.raises(StopwiseInputError, match="standard-error method"):
         stopwise.fit("linear+myopic+logit", str(data_file), se="jackknife")
+
+
+def test_public_recover_with_spec_rivals() -> None:
+    result = stopwise.recover(
+        "linear+myopic+logit",
+        {"precision": 0.8},
+        n_reps=3,
+        subjects=12,
+        trials=15,
+        rivals=["linear+myopic+probit"],
+        progress=False,
+    )
+    assert list(result.table.index) == ["precision"]
+    assert result.selection["replications"] == 3 and result.selection["rivals"] == [
+        "linear+myopic+probit"
+    ]
+    with pytest.raises(StopwiseInputError, match="needs a design"):
+        stopwise.recover("crra+logit", {"r": 0.3, "precision": 1.0}, n_reps=1)
