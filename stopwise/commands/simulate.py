@@ -49,7 +49,13 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     parser.add_argument(
         "--bust-keep", type=float, default=0.0, help="share of the bank kept on a bust"
     )
-    parser.add_argument("--max-target", type=int, default=None, metavar="M")
+    parser.add_argument(
+        "--max-target",
+        type=int,
+        default=None,
+        metavar="M",
+        help="a task cap on the number of draws (default: none; see the model docs)",
+    )
     parser.add_argument("--seed", type=int, default=0, metavar="S", help="default 0")
     parser.add_argument("--out", required=True, metavar="FILE", help=".csv or .parquet")
     parser.set_defaults(func=run)
@@ -145,6 +151,11 @@ def run(args: argparse.Namespace) -> int:
             f"unknown parameter(s) {', '.join(unknown)} for model {model.name}; its parameters "
             f"are {', '.join(model.param_names) or 'none'}"
         )
+    if model.data_kind not in ("stopping", "lottery"):
+        raise StopwiseInputError(
+            f"model {model.name} is a contest model; the simulate command draws solo stopping "
+            "or lottery data (contest play: use `stopwise equilibrium`)"
+        )
     missing = [n for n in model.param_names if n not in given]
     if missing:
         starts = ", ".join(f"{n}={model.spec(n).start:g}" for n in missing)
@@ -159,13 +170,8 @@ def run(args: argparse.Namespace) -> int:
             args.start,
             args.bust_keep,
         )
-    elif model.data_kind == "lottery":
-        design = price_list_design(args.subjects, args.trials)
     else:
-        raise StopwiseInputError(
-            f"model {model.name} is a contest model; the simulate command draws solo stopping "
-            "or lottery data (contest play: use `stopwise equilibrium`)"
-        )
+        design = price_list_design(args.subjects, args.trials)
     frame = simulate(model, theta, design, seed=args.seed)
     write_table(args.out, frame)
     print(f"wrote {len(frame)} rows ({args.subjects} subjects, model {model.name}) to {args.out}")
