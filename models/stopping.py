@@ -31,8 +31,9 @@ likelihood of a row never runs a dynamic programme of its own.
   P(stop at s) = P(T = s) / P(T >= s) (log space, cumulative log-sum-exp), so a bust after k
   successes contributes P(T > k) only. The set of targets is part of the model (with logit
   every extra target takes probability mass): cap_c = max(horizon, ceil(log(tol)/log p_c)),
-  the targets that succeed with chance at least tol (``target_tolerance``, default 1e-4),
-  extended to the longest observed trial, within a static bound computed with max_p_survive;
+  i.e. up to the first target whose chance of success p^T falls to tol (``target_tolerance``,
+  default 1e-4) or below, extended to the longest observed trial (the data horizon), within a
+  static bound computed with max_p_survive;
   ``max_target`` fixes cap_c = max(horizon, max_target) instead.
 
 Contextual utility (Wilcox 2011, option ``contextual``): value differences are divided by the
