@@ -100,8 +100,8 @@ def loop_by_subject(model, data, n: int):
 def main() -> str:
     model, data = simulated(120, 60, 1)
     fit, t_ours = ours_pooled(model, data)
-    res, t_sm = statsmodels_pooled(model, data)
     _, t_ours_warm = ours_pooled(model, data, cold=False)
+    res, t_sm = statsmodels_pooled(model, data)
     _, t_sm_warm = statsmodels_pooled(model, data, cold=False)
     z_sm = np.asarray(res.params)
     diff = float(np.max(np.abs(fit.z - z_sm)))
