@@ -42,7 +42,7 @@ from stopwise.models.contest.levelk import (
     level0_strategy,
     levelk_strategies,
 )
-from stopwise.models.contest.nash import bimatrix_nash, constant_sum_split, symmetric_nash
+from stopwise.models.contest.nash import contest_nash
 from stopwise.models.contest.qre import qre_symmetric
 
 __all__ = [
@@ -111,15 +111,9 @@ def concept_strategy(
     """The symmetric target distribution of `concept` in `game`, with solver details."""
     details: dict[str, Any] = {}
     if concept == "nash":
-        if round(float(game.n_players)) == 2:
-            a = np.asarray(payoff_matrix(game))
-            if constant_sum_split(a, a.T)[0]:
-                eq = bimatrix_nash(a, a.T)
-                details.update(method=eq.method, notes=eq.notes)
-                return eq.row, details
-        sym = symmetric_nash(game)
-        details.update(method=sym.method, converged=sym.converged)
-        return sym.sigma, details
+        sigma, _, method, notes = contest_nash(game)
+        details.update(method=method, notes=notes)
+        return sigma, details
     if concept == "qre":
         lam = _need("precision", precision, concept)
         return np.asarray(qre_symmetric(lam, game)), details
@@ -244,16 +238,16 @@ def _model_and_theta(fit_or_params: Any) -> tuple[Model, dict[str, float], int |
         model = fit_or_params.get("model")
         params = fit_or_params.get("params")
         max_target = fit_or_params.get("max_target")
-    else:
+    else:  # a fit result: model (spec or Model) and estimates() / params
         model = getattr(fit_or_params, "model", None)
-        params = None
-        for attr in ("theta", "params", "estimates"):
-            params = getattr(fit_or_params, attr, None)
-            if params is not None:
-                break
+        params = getattr(fit_or_params, "estimates", None)
+        if callable(params):
+            params = params()
+        if params is None:
+            params = getattr(fit_or_params, "params", None)
         max_target = None
     if isinstance(model, str):
-        model = build_model(model)
+        model = build_model(model, **({} if max_target is None else {"max_target": max_target}))
     if not isinstance(model, Model) or model.data_kind != "contest":
         raise StopwiseInputError(
             "counterfactual needs a contest model (e.g. 'crra+qre') and its parameter values"

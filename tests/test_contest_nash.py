@@ -70,7 +70,7 @@ def test_contest_game_lp_matches_nashpy():
 def test_keep_bank_crra_contest_matches_nashpy():
     # Not constant-sum (CRRA utility, own bank kept): Lemke-Howson and the symmetric
     # N-player solver against nashpy's support enumeration (1e-8).
-    game = G.make_game(0.8, 2, 2.0, 1.0, 5, utility=G.resolve_utility("crra"), theta={"r": 0.5})
+    game = G.make_game(0.8, 2, 2.0, 1.0, 6, utility=G.resolve_utility("crra"), theta={"r": 0.5})
     a = np.asarray(G.payoff_matrix(game))
     assert not constant_sum_split(a, a.T)[0]
     reference = [tuple(e) for e in nashpy.Game(a, a.T).support_enumeration()]
@@ -91,7 +91,7 @@ def test_keep_bank_crra_contest_matches_nashpy():
 def test_symmetric_three_player_certificate():
     # Certificate: the maximum regret of the returned profile, recomputed from the exact
     # payoffs (definition of Nash equilibrium; common practice, no source), <= 1e-9.
-    game = G.make_game(0.8, 3, 1.0, 0.0, 12)
+    game = G.make_game(0.8, 3, 1.0, 0.0, 6)
     sym = symmetric_nash(game)
     u = np.asarray(G.target_payoffs(game, sym.sigma))
     assert sym.converged

@@ -24,8 +24,8 @@ censoring). With a tremble eps: sigma' = (1 - eps) sigma + eps / (cap + 1).
 The cap on targets is the option ``max_target``, else the rule of
 ``game.default_max_target`` at the largest contest p_survive of the data (read when the
 likelihood first sees concrete data, or when an engine calls ``model.options["prepare"](data)``
-before tracing, then remembered), and never below the data's horizon (every observed draw
-needs a target above its step).
+before tracing, then remembered), and never below the data's horizon - 1 (the largest step);
+concrete data with a draw at a step >= cap are refused (such a draw has probability 0).
 """
 
 from __future__ import annotations
@@ -54,7 +54,7 @@ from stopwise.models.contest.levelk import (
     levelk_mixture,
     levelk_strategies,
 )
-from stopwise.models.contest.nash import _support_equations, symmetric_nash
+from stopwise.models.contest.nash import _support_equations, contest_nash
 from stopwise.models.contest.qre import _continuation, symmetric_residual
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
@@ -93,7 +93,7 @@ def _nash_host(
 ) -> np.ndarray:
     """Symmetric Nash sigma on the host (pure callback)."""
     game = ContestGame(*(jnp.asarray(v) for v in (log_q, scores, below, equal, du, u0, n_players)))
-    return np.asarray(symmetric_nash(game).sigma, dtype=np.float64)
+    return np.asarray(contest_nash(game)[0], dtype=np.float64)
 
 
 @jax.custom_jvp
@@ -210,23 +210,34 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
 
     def resolve_cap(data: Any) -> int:
         cap = cap_memory.get("cap")
-        if cap is None or "from_data" in cap_memory:
-            try:
-                p = np.asarray(data.cond_p_survive)
-                contest = np.asarray(data.cond_contest) > 0.5
-            except (jax.errors.TracerArrayConversionError, jax.errors.ConcretizationTypeError):
-                if cap is None:
-                    raise StopwiseInputError(
-                        "the contest model's cap on targets could not be derived inside a JAX "
-                        "transformation; build the model with max_target=M (--max-target) or "
-                        "evaluate it once on concrete data first"
-                    ) from None
-            else:
+        concrete = None
+        try:
+            concrete = (np.asarray(data.cond_p_survive), np.asarray(data.cond_contest),
+                        np.asarray(data.step), np.asarray(data.draw), np.asarray(data.cond))
+        except (jax.errors.TracerArrayConversionError, jax.errors.ConcretizationTypeError):
+            if cap is None:
+                raise StopwiseInputError(
+                    "the contest model's cap on targets could not be derived inside a JAX "
+                    "transformation; build the model with max_target=M (--max-target) or "
+                    "call model.options['prepare'](data) on concrete data first"
+                ) from None
+        if concrete is not None:
+            p, contest, step, draw, cond = concrete
+            contest = contest > 0.5
+            if cap is None or "from_data" in cap_memory:
                 p_max = float(np.max(p[contest])) if contest.any() else float(np.max(p))
                 cap = max(cap or 0, default_max_target(p_max))
                 cap_memory.update(cap=cap, from_data=1)
-                _warn_identification(utility_name, data)
-        return max(int(cap), int(data.horizon))
+            rows = contest[cond]
+            if rows.any():
+                needed = int(np.max(step[rows] + (draw[rows] > 0.5)))
+                if needed > max(cap, int(data.horizon) - 1):
+                    raise StopwiseInputError(
+                        f"the data hold a contest draw at step {needed - 1}, so targets up to "
+                        f"at least {needed} are needed; max_target is {cap}"
+                    )
+            _warn_identification(utility_name, data)
+        return max(int(cap), int(data.horizon) - 1)
 
     def condition_log_probs(theta: Mapping[str, Any], data: Any, cap: int) -> Any:
         contest = data.cond_contest > 0.5
@@ -350,8 +361,8 @@ def simulate_contest(
 ) -> pd.DataFrame:
     """Decision rows of contest play: each trial's target drawn from the concept's
     distribution for its condition, then draws succeed with probability p_survive until the
-    target is reached (stop) or a draw fails (bust). Players are grouped n_players at a time
-    within each condition unless the design has a ``group`` column."""
+    target is reached (stop) or a draw fails (bust). Unless the design has a ``group`` column,
+    the players of one trial number and condition are grouped n_players at a time."""
     needed = {"subject", "trial", "p_survive", "gain"}
     missing = needed - set(design.columns)
     if missing:
@@ -369,9 +380,11 @@ def simulate_contest(
     seed = int(jax.random.randint(key, (), 0, 2**31 - 1))
     rng = np.random.default_rng(seed)
     keys = ["p_survive", "gain", "start", "bust_keep", "n_players", "prize", "keep_bank"]
-    if "group" not in d:
-        d["group"] = d.groupby(keys, sort=False).cumcount() // d["n_players"].astype(int)
-        d["group"] = d.groupby(keys, sort=False).ngroup() * 100000 + d["group"]
+    if "group" not in d:  # players of one trial (round) and condition, n_players at a time
+        by_round = [*keys, "trial"]
+        chunk = d.groupby(by_round, sort=False).cumcount() // d["n_players"].astype(int)
+        d["group"] = pd.Series(list(zip(*(d[k] for k in by_round), chunk)), index=d.index)
+        d["group"] = d.groupby("group", sort=False).ngroup()
     rows: list[dict] = []
     for values, block in d.groupby(keys, sort=False):
         cond = dict(zip(keys, values))

@@ -365,3 +365,19 @@ def _best_on_supports(
         if regret <= goal:
             break
     return best
+
+
+def contest_nash(game: ContestGame) -> tuple[np.ndarray, float, str, list[str]]:
+    """Symmetric Nash of a contest: (sigma, max regret, method, notes). Two players whose
+    game is constant-sum up to own-target terms: the zero-sum LP; otherwise
+    ``symmetric_nash``."""
+    if round(float(game.n_players)) == 2:
+        from stopwise.models.contest.game import payoff_matrix
+
+        a = np.asarray(payoff_matrix(game))
+        if constant_sum_split(a, a.T)[0]:
+            eq = bimatrix_nash(a, a.T)
+            return eq.row, eq.max_regret, eq.method, eq.notes
+    sym = symmetric_nash(game)
+    return sym.sigma, sym.max_regret, sym.method, [] if sym.converged else [
+        f"regret goal {REGRET_GOAL:g} not met (max regret {sym.max_regret:.3g})"]

@@ -1,0 +1,156 @@
+"""Contest models: exact censoring, concepts inside the likelihood, fitting, counterfactuals
+and the ``stopwise equilibrium`` command."""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pandas as pd
+import pytest
+
+import stopwise
+from stopwise import cli
+from stopwise.contest import counterfactual, equilibrium
+from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.agent import agent_qre_log_probs
+from stopwise.models.contest.build import build_contest_model
+from stopwise.models.contest.game import make_game
+
+CAP = 6
+
+
+def _design(n_subjects=30, n_trials=10, keep_bank=0, prize=10.0, p=0.8):
+    return pd.DataFrame({
+        "subject": np.repeat(np.arange(n_subjects), n_trials),
+        "trial": np.tile(np.arange(n_trials), n_subjects),
+        "p_survive": p, "gain": 1.0, "n_players": 2, "prize": prize, "keep_bank": keep_bank,
+    })
+
+
+@pytest.fixture(scope="module")
+def simulated():
+    model = build_contest_model(["linear", "qre"], max_target=CAP)
+    frame = model.simulate({"precision": 1.5}, _design(), jax.random.PRNGKey(1))
+    return model, frame, to_stopping_data(frame)
+
+
+def test_rows_multiply_to_exact_censored_trial_probabilities(simulated):
+    # Exact censoring: the rows of a trial that stops at k multiply to sigma_k, those of a
+    # trial busting after k successes to P(T > k) (probability rules; common practice, no
+    # source).
+    model, frame, data = simulated
+    theta = {"precision": 1.5}
+    ll = np.asarray(model.loglik_obs(theta, data))
+    sigma = model.options["target_distribution"](theta, 0.8, 2, 10.0, 0.0, CAP)
+    per_trial = pd.Series(ll).groupby(np.asarray(data.trial)).sum()
+    last = frame.groupby(["subject", "trial"], sort=False).tail(1)
+    for (_, row), total in zip(last.iterrows(), per_trial.to_numpy()):
+        k = int(row["step"])
+        expected = sigma[k] if row["action"] == "stop" else sigma[k + 1 :].sum()
+        assert total == pytest.approx(math.log(expected), abs=1e-10)
+
+
+def test_fit_recovers_precision_through_the_engine(simulated):
+    # Parameter recovery on data simulated by our own simulator (a consistency check; the
+    # outside checks of the QRE itself are in test_contest_qre.py).
+    _, frame, _ = simulated
+    fit = stopwise.fit("linear+qre", frame, max_target=CAP)
+    assert fit.converged
+    est = fit.estimates()["precision"]
+    se = float(fit.params["se"].iloc[0])
+    assert abs(est - 1.5) < 4 * se
+
+
+def test_every_concept_gives_finite_likelihood_and_gradients(simulated):
+    _, _, data = simulated
+    for spec in (["crra", "nash", "tremble"], ["linear", "levelk"], ["crra", "ch"],
+                 ["linear", "aqre"]):
+        model = build_contest_model(spec, max_target=CAP)
+        theta = model.start_theta()
+
+        def total(th, model=model):
+            return jnp.sum(model.loglik_obs(th, data))
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            value, grads = jax.jit(jax.value_and_grad(total))(theta)
+        assert np.isfinite(float(value)) and float(value) < 0
+        assert all(np.isfinite(float(g)) for g in grads.values()), spec
+
+
+def test_identification_warning_for_utility_in_winner_take_all(simulated):
+    _, _, data = simulated
+    model = build_contest_model(["crra", "qre"])  # cap from the data's p_survive
+    with pytest.warns(UserWarning, match="not identified"):
+        model.loglik_obs(model.start_theta(), data)
+
+
+def test_nash_with_tremble_mixes_uniform():
+    # sigma' = (1 - eps) sigma_Nash + eps / (cap + 1) (definition of a tremble).
+    model = build_contest_model(["linear", "nash"], max_target=CAP)
+    nash = equilibrium(0.8, 2, 10.0, max_target=CAP)
+    mixed = model.options["target_distribution"]({"tremble": 0.1}, 0.8, 2, 10.0, 0.0, CAP)
+    assert np.allclose(mixed, 0.9 * np.asarray(nash["probs"]) + 0.1 / (CAP + 1), atol=1e-10)
+
+
+def test_agent_qre_at_zero_precision_is_a_fair_coin_per_step():
+    # At lambda = 0 every agent draws with probability 1/2: P(T = t) = 2^-(t+1), and the cap
+    # takes the rest 2^-cap (hand derivation).
+    game = make_game(0.8, 2, 1.0, 0.0, CAP)
+    probs = np.exp(np.asarray(agent_qre_log_probs(0.0, game)))
+    expected = np.r_[0.5 ** np.arange(1, CAP + 1), 0.5**CAP]
+    assert np.allclose(probs, expected, atol=1e-14)
+
+
+def test_bad_specs_are_refused():
+    with pytest.raises(StopwiseInputError, match="exactly one play concept"):
+        build_contest_model(["crra", "qre", "nash"])
+    with pytest.raises(StopwiseInputError, match="unknown utility"):
+        build_contest_model(["wiggly", "qre"])
+
+
+def test_counterfactual_table():
+    schemes = [
+        {"name": "winner takes all", "p_survive": 0.8, "players": 2, "prize": 10.0},
+        {"name": "bank kept", "p_survive": 0.8, "players": 2, "prize": 5.0, "keep_bank": True},
+        {"name": "three players", "p_survive": 0.8, "players": 3, "prize": 10.0},
+    ]
+    result = counterfactual({"model": "linear+qre", "params": {"precision": 1.0},
+                             "max_target": CAP}, [{**s, "max_target": CAP} for s in schemes])
+    table = result.table
+    assert len(table) == 6 and set(table["prediction"]) == {"nash", "linear+qre"}
+    assert ((table["efficiency_loss"] >= -1e-12) & (table["efficiency_loss"] <= 1)).all()
+    # prize outlay = prize + keep_bank * players * expected bank (definition)
+    kept = table[table["scheme"] == "bank kept"]
+    assert np.allclose(kept["prize_outlay"], 5.0 + 2 * kept["expected_bank"])
+    # symmetric play: each player wins with probability 1/N (ties split at random)
+    assert np.allclose(table["win_prob"], 1.0 / table["players"], atol=1e-9)
+    sums = result.plot_frame.groupby(["scheme", "prediction"])["prob"].sum()
+    assert np.allclose(sums, 1.0)
+
+
+def test_equilibrium_command_json_and_errors(tmp_path, capsys):
+    out = tmp_path / "eq.json"
+    code = cli.main(["equilibrium", "--p-survive", "0.8", "--players", "2", "--prize", "10",
+                     "--max-target", str(CAP), "--json", str(out)])
+    assert code == 0
+    result = json.loads(out.read_text())
+    assert {"concept", "targets", "probs", "expected_bank", "win_prob",
+            "efficiency_loss"} <= set(result)
+    assert result["targets"] == list(range(CAP + 1))
+    assert sum(result["probs"]) == pytest.approx(1.0)
+    assert result["max_regret"] <= 1e-9
+    assert "target" in capsys.readouterr().out
+    bad = tmp_path / "bad.json"
+    assert cli.main(["equilibrium", "--p-survive", "1.2", "--players", "2", "--prize", "1",
+                     "--json", str(bad)]) == 2
+    assert cli.main(["equilibrium", "--p-survive", "0.8", "--players", "2", "--prize", "1",
+                     "--concept", "qre", "--json", str(bad)]) == 2
+    assert not bad.exists()
+    assert "precision" in capsys.readouterr().err
