@@ -39,7 +39,7 @@ def hierarchical_case():
     design = stopping_design(12, 25, (0.7, 0.9), 1.0, 4)
     rng = np.random.default_rng(4)
     frames = []
-    for s, sub in design.groupby("subject"):
+    for _, sub in design.groupby("subject"):
         theta = {"r": float(rng.normal(0.3, 0.3)), "precision": float(np.exp(rng.normal(0.5, 0.3)))}
         frames.append(model.simulate(theta, sub, jax.random.PRNGKey(int(rng.integers(1e6)))))
     import pandas as pd
