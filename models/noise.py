@@ -15,7 +15,9 @@ Multi-option choice among values v_1..v_K (``log_choice_probs``):
 - logit: log P(j) = lambda v_j - logsumexp_k(lambda v_k) (log_softmax);
 - probit with independent normal errors of sd s = sigma/sqrt(2) on every value (so that two
   options reproduce the binary rule): P(j) = E_e[prod_{k != j} Phi((v_j - v_k)/s + e)],
-  e ~ N(0, 1), by Gauss-Hermite quadrature with ``PROBIT_NODES`` nodes, summed in log space.
+  e ~ N(0, 1), by Gauss-Hermite quadrature with ``PROBIT_NODES`` nodes centred where each
+  option's integrand has its mass, summed in log space (relative error about 1e-7 even for
+  options many standard deviations below the best).
 
 ``mask`` (boolean, same shape as ``values``) removes options from the choice set: they get a
 value 1000 (in units of the scaled values) below the worst option, so their probability is
@@ -140,15 +142,21 @@ def stable_log_softmax(scaled: Any) -> Any:
 
 
 def _probit_log_probs(scaled: Any) -> Any:
-    """log E_e[prod_{k != j} Phi(a_j - a_k + e)] over the last axis, by Gauss-Hermite."""
+    """log E_e[prod_{k != j} Phi(a_j - a_k + e)] over the last axis, by Gauss-Hermite.
+
+    The nodes are centred at m_j = (max_k a_k - a_j)/2, where the integrand of an option far
+    below the best one has its mass: E_e[f(e)] = E_x[exp(-m x - m^2/2) f(x + m)], x ~ N(0, 1).
+    """
     gaps = scaled[..., :, None] - scaled[..., None, :]  # a_j - a_k
     size = scaled.shape[-1]
     off_diagonal = ~jnp.eye(size, dtype=bool)
+    shift = 0.5 * (jnp.max(scaled, axis=-1, keepdims=True) - scaled)  # m_j
 
     @jax.checkpoint
     def node_term(x_node: Any, log_w: Any) -> Any:
-        terms = jnp.where(off_diagonal, log_ndtr(gaps + math.sqrt(2.0) * x_node), 0.0)
-        return log_w + jnp.sum(terms, axis=-1)
+        x = math.sqrt(2.0) * x_node  # standard normal node
+        terms = jnp.where(off_diagonal, log_ndtr(gaps + (x + shift)[..., :, None]), 0.0)
+        return log_w - shift * x - 0.5 * shift**2 + jnp.sum(terms, axis=-1)
 
     def body(acc: Any, node: tuple[Any, Any]) -> tuple[Any, None]:
         return jnp.logaddexp(acc, node_term(*node)), None
@@ -156,7 +164,7 @@ def _probit_log_probs(scaled: Any) -> Any:
     start = jnp.full(scaled.shape, -jnp.inf)
     nodes = (jnp.asarray(_HERMITE_X), jnp.asarray(_LOG_HERMITE_W))
     total, _ = jax.lax.scan(body, start, nodes)
-    return total
+    return jnp.where(total > 0, 0.0, total)  # rounding can put log P of a sure choice at +1e-16
 
 
 def log_choice_probs(

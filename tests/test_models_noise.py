@@ -70,6 +70,10 @@ def test_multi_option_probit_matches_scipy_quadrature():
     assert out.sum() == pytest.approx(1.0, abs=1e-9)
     two = np.exp(np.asarray(log_choice_probs(np.array([0.7, 0.0]), {"sigma": 0.5}, "probit")))
     assert two[0] == pytest.approx(stats.norm.cdf(0.7 / 0.5), rel=1e-9)  # reduces to Fechner
+    for gap in (5.0, 12.0, 25.0, 40.0):  # far-below options: log P against scipy's logcdf
+        far = np.asarray(log_choice_probs(np.array([0.0, -gap]), {"sigma": 1.0}, "probit"))
+        assert far[1] == pytest.approx(stats.norm.logcdf(-gap), rel=1e-7)
+        assert far[0] <= 0.0
 
 
 def test_mask_removes_options_and_tremble_spreads_over_the_rest():
