@@ -52,7 +52,7 @@ import numpyro
 import numpyro.distributions as dist
 from numpyro.distributions import constraints
 from numpyro.infer import MCMC, NUTS, init_to_uniform
-from stopwise.data_schemas.arrays import LotteryData, StoppingData
+from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import Cells, split_into_cells
 from stopwise.estimation.priors import (
@@ -388,6 +388,38 @@ def prepare(
         n_subjects=int(data.n_subjects),
     )
     return setup, args, cells, unit_labels, unit_name
+
+
+def pad_cells(args: CellArgs, width: int) -> CellArgs:
+    """The same cells padded (weight 0, copies of each cell's first row) to ``width`` rows,
+    without the per-row maps: for re-running one compiled sampler on data sets of different
+    sizes (simulation-based calibration)."""
+    have = int(args.weight.shape[1])
+    if width < have:
+        raise ValueError(f"cannot pad {have} rows down to {width}")
+    extra = width - have
+
+    fields = (
+        STOPPING_ROW_FIELDS
+        if isinstance(args.data, StoppingData)
+        else ("subject", "choice_b", "a_x", "a_p", "b_x", "b_p")
+    )
+
+    def widen(leaf: Any) -> Any:
+        return jnp.concatenate([leaf, jnp.repeat(leaf[:, :1], extra, axis=1)], axis=1)
+
+    data = replace(args.data, **{f: widen(jnp.asarray(getattr(args.data, f))) for f in fields})
+    weight = jnp.concatenate([args.weight, jnp.zeros((args.weight.shape[0], extra))], axis=1)
+    dummy = jnp.zeros(1, jnp.int32)
+    return CellArgs(
+        data=data,
+        weight=weight,
+        designs=args.designs,
+        cell_subject=args.cell_subject,
+        row_cell=dummy,
+        row_pos=dummy,
+        row_unit=dummy,
+    )
 
 
 # ---------------------------------------------------------------------------------------
