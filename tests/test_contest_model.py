@@ -12,25 +12,31 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 import pytest
-
-import stopwise
-from stopwise import cli
-from stopwise.contest import counterfactual, equilibrium
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.agent import agent_qre_log_probs
 from stopwise.models.contest.build import build_contest_model
 from stopwise.models.contest.game import make_game
 
+import stopwise
+from stopwise import cli
+from stopwise.contest import counterfactual, equilibrium
+
 CAP = 6
 
 
 def _design(n_subjects=30, n_trials=10, keep_bank=0, prize=10.0, p=0.8):
-    return pd.DataFrame({
-        "subject": np.repeat(np.arange(n_subjects), n_trials),
-        "trial": np.tile(np.arange(n_trials), n_subjects),
-        "p_survive": p, "gain": 1.0, "n_players": 2, "prize": prize, "keep_bank": keep_bank,
-    })
+    return pd.DataFrame(
+        {
+            "subject": np.repeat(np.arange(n_subjects), n_trials),
+            "trial": np.tile(np.arange(n_trials), n_subjects),
+            "p_survive": p,
+            "gain": 1.0,
+            "n_players": 2,
+            "prize": prize,
+            "keep_bank": keep_bank,
+        }
+    )
 
 
 @pytest.fixture(scope="module")
@@ -67,10 +73,8 @@ def test_fit_recovers_precision_through_the_engine(simulated):
     assert abs(est - 1.5) < 4 * se
 
 
-def test_every_concept_gives_finite_likelihood_and_gradients(simulated):
-    _, _, data = simulated
-    for spec in (["crra", "nash", "tremble"], ["linear", "levelk"], ["crra", "ch"],
-                 ["linear", "aqre"]):
+def _finite_likelihood_and_gradients(data, specs):
+    for spec in specs:
         model = build_contest_model(spec, max_target=CAP)
         theta = model.start_theta()
 
@@ -84,9 +88,21 @@ def test_every_concept_gives_finite_likelihood_and_gradients(simulated):
         assert all(np.isfinite(float(g)) for g in grads.values()), spec
 
 
+def test_nash_and_levelk_give_finite_likelihood_and_gradients(simulated):
+    # Nash goes through a host callback with implicit derivatives on its support.
+    _finite_likelihood_and_gradients(
+        simulated[2], (["crra", "nash", "tremble"], ["linear", "levelk"])
+    )
+
+
+@pytest.mark.slow
+def test_ch_and_agent_qre_give_finite_likelihood_and_gradients(simulated):
+    _finite_likelihood_and_gradients(simulated[2], (["crra", "ch"], ["linear", "aqre"]))
+
+
 def test_identification_warning_for_utility_in_winner_take_all(simulated):
     _, _, data = simulated
-    model = build_contest_model(["crra", "qre"])  # cap from the data's p_survive
+    model = build_contest_model(["crra", "levelk"])  # cap from the data's p_survive
     with pytest.warns(UserWarning, match="not identified"):
         model.loglik_obs(model.start_theta(), data)
 
@@ -103,7 +119,7 @@ def test_agent_qre_at_zero_precision_is_a_fair_coin_per_step():
     # At lambda = 0 every agent draws with probability 1/2: P(T = t) = 2^-(t+1), and the cap
     # takes the rest 2^-cap (hand derivation).
     game = make_game(0.8, 2, 1.0, 0.0, CAP)
-    probs = np.exp(np.asarray(agent_qre_log_probs(0.0, game)))
+    probs = np.exp(np.asarray(jax.jit(agent_qre_log_probs)(0.0, game)))
     expected = np.r_[0.5 ** np.arange(1, CAP + 1), 0.5**CAP]
     assert np.allclose(probs, expected, atol=1e-14)
 
@@ -121,8 +137,10 @@ def test_counterfactual_table():
         {"name": "bank kept", "p_survive": 0.8, "players": 2, "prize": 5.0, "keep_bank": True},
         {"name": "three players", "p_survive": 0.8, "players": 3, "prize": 10.0},
     ]
-    result = counterfactual({"model": "linear+qre", "params": {"precision": 1.0},
-                             "max_target": CAP}, [{**s, "max_target": CAP} for s in schemes])
+    result = counterfactual(
+        {"model": "linear+qre", "params": {"precision": 1.0}, "max_target": CAP},
+        [{**s, "max_target": CAP} for s in schemes],
+    )
     table = result.table
     assert len(table) == 6 and set(table["prediction"]) == {"nash", "linear+qre"}
     assert ((table["efficiency_loss"] >= -1e-12) & (table["efficiency_loss"] <= 1)).all()
@@ -137,20 +155,64 @@ def test_counterfactual_table():
 
 def test_equilibrium_command_json_and_errors(tmp_path, capsys):
     out = tmp_path / "eq.json"
-    code = cli.main(["equilibrium", "--p-survive", "0.8", "--players", "2", "--prize", "10",
-                     "--max-target", str(CAP), "--json", str(out)])
+    code = cli.main(
+        [
+            "equilibrium",
+            "--p-survive",
+            "0.8",
+            "--players",
+            "2",
+            "--prize",
+            "10",
+            "--max-target",
+            str(CAP),
+            "--json",
+            str(out),
+        ]
+    )
     assert code == 0
     result = json.loads(out.read_text())
-    assert {"concept", "targets", "probs", "expected_bank", "win_prob",
-            "efficiency_loss"} <= set(result)
+    assert {"concept", "targets", "probs", "expected_bank", "win_prob", "efficiency_loss"} <= set(
+        result
+    )
     assert result["targets"] == list(range(CAP + 1))
     assert sum(result["probs"]) == pytest.approx(1.0)
     assert result["max_regret"] <= 1e-9
     assert "target" in capsys.readouterr().out
     bad = tmp_path / "bad.json"
-    assert cli.main(["equilibrium", "--p-survive", "1.2", "--players", "2", "--prize", "1",
-                     "--json", str(bad)]) == 2
-    assert cli.main(["equilibrium", "--p-survive", "0.8", "--players", "2", "--prize", "1",
-                     "--concept", "qre", "--json", str(bad)]) == 2
+    assert (
+        cli.main(
+            [
+                "equilibrium",
+                "--p-survive",
+                "1.2",
+                "--players",
+                "2",
+                "--prize",
+                "1",
+                "--json",
+                str(bad),
+            ]
+        )
+        == 2
+    )
+    assert (
+        cli.main(
+            [
+                "equilibrium",
+                "--p-survive",
+                "0.8",
+                "--players",
+                "2",
+                "--prize",
+                "1",
+                "--concept",
+                "qre",
+                "--json",
+                str(bad),
+            ]
+        )
+        == 2
+    )
     assert not bad.exists()
     assert "precision" in capsys.readouterr().err

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Mapping
+from functools import partial
 from typing import Any
 
 import jax
@@ -212,8 +213,13 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         cap = cap_memory.get("cap")
         concrete = None
         try:
-            concrete = (np.asarray(data.cond_p_survive), np.asarray(data.cond_contest),
-                        np.asarray(data.step), np.asarray(data.draw), np.asarray(data.cond))
+            concrete = (
+                np.asarray(data.cond_p_survive),
+                np.asarray(data.cond_contest),
+                np.asarray(data.step),
+                np.asarray(data.draw),
+                np.asarray(data.cond),
+            )
         except (jax.errors.TracerArrayConversionError, jax.errors.ConcretizationTypeError):
             if cap is None:
                 raise StopwiseInputError(
@@ -282,6 +288,23 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         ones = jnp.ones_like(data.draw)
         return jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
 
+    @partial(jax.jit, static_argnums=(5,))
+    def _distribution(
+        theta: Mapping[str, Any],
+        p_survive: Any,
+        n_players: Any,
+        prize: Any,
+        keep_bank: Any,
+        cap: int,
+        gain: Any,
+        start: Any,
+        bust_keep: Any,
+    ) -> Any:
+        game = make_game(
+            p_survive, n_players, prize, keep_bank, cap, gain, start, bust_keep, utility, theta
+        )
+        return jnp.exp(concept_log_probs(concept, theta, game, options))
+
     def target_distribution(
         theta: Mapping[str, Any],
         p_survive: float,
@@ -293,19 +316,21 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         start: float = 0.0,
         bust_keep: float = 0.0,
     ) -> np.ndarray:
-        game = make_game(
-            p_survive,
-            n_players,
-            prize,
-            keep_bank,
-            cap,
-            gain,
-            start,
-            bust_keep,
-            utility,
-            {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()},
+        """Predicted target distribution over 0..cap in one contest condition."""
+        theta = {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()}
+        return np.asarray(
+            _distribution(
+                theta,
+                float(p_survive),
+                float(n_players),
+                float(prize),
+                float(keep_bank),
+                int(cap),
+                float(gain),
+                float(start),
+                float(bust_keep),
+            )
         )
-        return np.exp(np.asarray(concept_log_probs(concept, theta, game, options)))
 
     def simulate(theta: Mapping[str, Any], design: pd.DataFrame, key: Any) -> pd.DataFrame:
         return simulate_contest(target_distribution, theta, design, key, options)

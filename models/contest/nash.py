@@ -379,5 +379,11 @@ def contest_nash(game: ContestGame) -> tuple[np.ndarray, float, str, list[str]]:
             eq = bimatrix_nash(a, a.T)
             return eq.row, eq.max_regret, eq.method, eq.notes
     sym = symmetric_nash(game)
-    return sym.sigma, sym.max_regret, sym.method, [] if sym.converged else [
-        f"regret goal {REGRET_GOAL:g} not met (max regret {sym.max_regret:.3g})"]
+    return (
+        sym.sigma,
+        sym.max_regret,
+        sym.method,
+        []
+        if sym.converged
+        else [f"regret goal {REGRET_GOAL:g} not met (max regret {sym.max_regret:.3g})"],
+    )
