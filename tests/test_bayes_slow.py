@@ -45,7 +45,7 @@ def test_flat_prior_posterior_matches_maximum_likelihood():
 @pytest.mark.slow
 def test_hierarchical_recovers_population_mean_and_sd_of_r():
     model = build_model("crra+myopic+logit")
-    spec_r, spec_p = model.spec("r"), model.spec("precision")
+    spec_r = model.spec("r")
     rng = np.random.default_rng(20)
     n = 120
     mu_z, sd_z = float(spec_r.to_unconstrained(0.3)), 0.12  # sd(r) about 0.24 on r's scale
