@@ -202,3 +202,43 @@ def test_recovery_reports_bias_coverage_and_selection() -> None:
     assert abs(row["bias"]) < 0.3 and row["rmse"] > 0
     assert 0.0 <= result.selection["rate"] <= 1.0
     assert "Parameter recovery" in result.summary()
+
+
+def test_joint_lottery_and_stopping_share_parameters_by_name() -> None:
+    from stopwise.data_schemas.bundle import to_lottery_data
+
+    subjects = [f"s{s + 1:03d}" for s in range(25)]
+    items = [
+        {
+            "item": i + 1,
+            "a_x1": 2.0,
+            "a_p1": 0.5,
+            "a_x2": 1.6,
+            "a_p2": 0.5,
+            "b_x1": 3.85,
+            "b_p1": 0.1 * (i + 1),
+            "b_x2": 0.1,
+            "b_p2": 1 - 0.1 * (i + 1),
+        }
+        for i in range(9)
+    ]
+    lottery_model = build_model("crra+logit")
+    stopping_model = build_model("crra+myopic+logit")
+    lottery = to_lottery_data(
+        lottery_model.simulate(
+            {"r": 0.4, "precision": 3.0},
+            pd.DataFrame([{"subject": s, **it} for s in subjects for it in items]),
+            jax.random.PRNGKey(9),
+        )
+    )
+    design = stopping_design(25, 30, (0.6, 0.75, 0.9), 1.0, 9)
+    stopping = to_stopping_data(
+        stopping_model.simulate({"r": 0.4, "precision": 3.0}, design, jax.random.PRNGKey(10))
+    )
+    joint = fit_joint([(lottery_model, lottery), (stopping_model, stopping)], se="robust")
+    assert joint.n_subjects == 25 and joint.clusters == 25  # the same people in both tasks
+    assert joint.n_obs == lottery.n_obs + stopping.n_obs and joint.k == 2
+    for name, truth in (("r", 0.4), ("precision", 3.0)):
+        row = joint.params.loc[name]
+        assert abs(row.estimate - truth) < 4 * row.se
+    assert "shared across data sets: r, precision" in joint.notes
