@@ -8,8 +8,8 @@ is minimised at once by the vmapped damped Newton method of estimation/optimize.
 compilation for all subjects). Standard errors: inverse Hessian per subject (NaN with a flag
 when it is not positive definite). Flags mark subjects whose data cannot identify the model:
 a subject who never draws or never stops (stopping data), who always picks the same option
-(lottery data), an estimate at a bound, a Hessian that is not positive definite, or no
-convergence.
+(lottery data), choices predicted almost perfectly (mean -ll per row below 1e-3), an
+estimate at a bound, a Hessian that is not positive definite, or no convergence.
 """
 
 from __future__ import annotations
@@ -37,6 +37,8 @@ from stopwise.estimation.problem import (
     theta_scalars,
 )
 from stopwise.estimation.results import Fit, FitBySubject
+
+SEPARATION = 1e-3  # mean -ll per row below this: every choice predicted with p > 0.999
 
 
 @dataclass(frozen=True)
@@ -117,6 +119,11 @@ def fit_by_subject(
         cov = hessian_covariance(h[c]) if se is not None else None
         table = wald_rows(reported, z[c], cov)
         subject_flags = data_flags(data, rows)
+        if float(v[c]) < SEPARATION * len(rows) and not subject_flags:
+            subject_flags.append(
+                "choices predicted almost perfectly (separation): the noise "
+                "parameter runs off towards determinism"
+            )
         at_bound = [r.name for r in reported if _at_bound(r.spec, z[c][r.index])]
         subject_flags += [f"{name} at a bound" for name in at_bound]
         warnings = []
