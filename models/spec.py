@@ -281,11 +281,30 @@ def warn_beyond_caps(data: Any, caps: Caps, policy: str) -> None:
         )
 
 
+def warn_outside_domain(data: Any, risk: RiskParts) -> None:
+    """Warn (for concrete data) when wealth + outcome < 0 under a power utility (crra, expo),
+    whose domain is x >= 0: such outcomes get the floor utility (see models.utility)."""
+    if risk.utility.name not in ("crra", "expo"):
+        return
+    outcomes = [getattr(data, name, None) for name in ("a_x", "b_x")]
+    if not all(isinstance(x, np.ndarray) and x.size for x in outcomes):
+        return
+    lowest = min(float(np.min(x)) for x in outcomes)
+    if risk.wealth + lowest < 0:
+        warnings.warn(
+            f"outcomes down to {lowest:g} lie below zero for {risk.utility.name} utility over "
+            f"wealth + outcome (wealth={risk.wealth:g}); they get the floor utility. Give a "
+            f"wealth of at least {-lowest:g}, or use pt for gains and losses",
+            stacklevel=3,
+        )
+
+
 def _lottery_model(
     name: str, params: tuple[ParamSpec, ...], risk: RiskParts, opts: dict[str, Any]
 ) -> Model:
     def loglik_obs(theta: Any, data: Any) -> Any:
         """log P(observed choice) per lottery row."""
+        warn_outside_domain(data, risk)
         return lottery_loglik(risk, theta, data)
 
     def predict(theta: Any, data: Any) -> Any:

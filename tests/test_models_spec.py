@@ -130,3 +130,15 @@ def test_wealth_shifts_the_utility_argument():
     # .7 (-1/2) + .3 (-1) - (-1) = .35, so P(draw) = 1 / (1 + exp(-.35)).
     assert p_rich[first][0] == pytest.approx(1 / (1 + np.exp(-0.35)), rel=1e-12)
     assert bool(jnp.all(jnp.isfinite(rich.loglik_obs(theta, data))))
+
+
+def test_negative_outcomes_under_power_utility_are_reported():
+    from stopwise.data_schemas.arrays import LotteryData
+
+    x = np.array([[-5.0, 10.0]])
+    p = np.array([[0.5, 0.5]])
+    data = LotteryData(np.zeros(1, np.int32), np.ones(1), x, p, x + 6.0, p)
+    with pytest.warns(UserWarning, match="wealth of at least 5"):
+        build_model("crra+logit").loglik_obs({"r": 0.5, "precision": 1.0}, data)
+    rich = build_model("crra+logit", wealth=5.0)
+    assert np.isfinite(float(rich.loglik_obs({"r": 0.5, "precision": 1.0}, data)[0]))
