@@ -62,6 +62,7 @@ def test_rows_multiply_to_exact_censored_trial_probabilities(simulated):
         assert total == pytest.approx(math.log(expected), abs=1e-10)
 
 
+@pytest.mark.slow
 def test_fit_recovers_precision_through_the_engine(simulated):
     # Parameter recovery on data simulated by our own simulator (a consistency check; the
     # outside checks of the QRE itself are in test_contest_qre.py).
@@ -102,9 +103,19 @@ def test_ch_and_agent_qre_give_finite_likelihood_and_gradients(simulated):
 
 def test_identification_warning_for_utility_in_winner_take_all(simulated):
     _, _, data = simulated
-    model = build_contest_model(["crra", "levelk"])  # cap from the data's p_survive
+    model = build_contest_model(["crra", "levelk"], max_target=CAP)
     with pytest.warns(UserWarning, match="not identified"):
         model.loglik_obs(model.start_theta(), data)
+
+
+def test_default_cap_needs_concrete_data(simulated):
+    # Inside jit the cap rule cannot read p_survive: a clear error until the model has seen
+    # concrete data (model.options["prepare"]), then the rule p^M <= 1e-12 applies.
+    _, _, data = simulated
+    model = build_contest_model(["linear", "levelk"])
+    with pytest.raises(StopwiseInputError, match="max_target"):
+        jax.jit(model.loglik_obs)(model.start_theta(), data)
+    assert model.options["prepare"](data) == math.ceil(math.log(1e-12) / math.log(0.8))
 
 
 def test_nash_with_tremble_mixes_uniform():
