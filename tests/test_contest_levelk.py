@@ -38,10 +38,11 @@ def test_levelk_hand_derived():
     u2 = np.array([sigma1[0], 2 * sigma1[1], 3 * sigma1[2]])
     sigma2 = np.exp(3 * u2) / np.exp(3 * u2).sum()
     assert np.allclose(np.asarray(s), np.vstack([np.full(3, 1 / 3), sigma1, sigma2]), atol=1e-14)
-    # a real depth mixes adjacent levels with hat weights: 1.25 -> 0.75 sigma1 + 0.25 sigma2
-    assert np.allclose(
-        np.asarray(levelk_mixture(s, 1.25)), 0.75 * sigma1 + 0.25 * sigma2, atol=1e-14
-    )
+    # a real depth is a binomial mixture of levels 0..2 with mean 1.25: q = 0.625,
+    # weights (0.375^2, 2 * 0.625 * 0.375, 0.625^2) (hand derivation)
+    weights = np.array([0.375**2, 2 * 0.625 * 0.375, 0.625**2])
+    expected = weights @ np.vstack([np.full(3, 1 / 3), sigma1, sigma2])
+    assert np.allclose(np.asarray(levelk_mixture(s, 1.25)), expected, atol=1e-14)
 
 
 def test_cognitive_hierarchy_hand_derived():

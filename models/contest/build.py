@@ -8,8 +8,8 @@ Specs (parts joined by "+", parsed by stopwise.models.spec): ``linear+qre``, ``c
            the indifference system of its support
     qre    symmetric logit QRE on the principal branch (``precision``)
     aqre   agent logit QRE on the draw/stop decisions (``precision``)
-    levelk level-k with logit responses (``precision``; ``level`` estimated in [0, max_level]
-           as a hat-weight mixture of adjacent levels, or fixed by the option ``level=K``)
+    levelk level-k with logit responses (``precision``; ``level`` estimated in (0, 6) as the
+           mean of a binomial mixture of levels 0..6, or fixed by the option ``level=K``)
     ch     Poisson cognitive hierarchy (``precision``, ``tau``; levels truncated at 15)
 
 Likelihood of contest rows (cond_contest == 1; other rows contribute 0): per contest

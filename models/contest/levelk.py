@@ -12,9 +12,10 @@ two-player matrix game), a level-0 strategy sigma_0 and a precision lambda:
 Level 0 is uniform over targets, or (option ``level0="solo"``) the single-player optimum:
 the target with the highest expected bank for a player on their own.
 
-An estimated level-k depth ``level`` in [0, K] is a discrete mixture of the two adjacent
-levels with hat weights w_k = max(0, 1 - |level - k|) (so integer values give the pure
-level); a fixed integer depth uses sigma_level.
+An estimated level-k depth ``level`` in (0, K) makes the population a discrete mixture of
+levels 0..K with binomial weights of mean ``level`` (w_k = C(K,k) q^k (1-q)^(K-k),
+q = level/K): smooth in ``level``, so gradient-based fitting works; a fixed integer depth
+(option ``level=k``) uses the pure sigma_k.
 """
 
 from __future__ import annotations
@@ -52,10 +53,19 @@ def levelk_strategies(payoffs: PayoffFn, sigma0: Any, precision: Any, depth: int
 
 
 def levelk_mixture(strategies: Any, level: Any) -> Any:
-    """Hat-weight mixture of adjacent levels at a real depth `level` (module docstring)."""
-    k = jnp.arange(strategies.shape[0], dtype=jnp.float64)
-    weights = jnp.maximum(0.0, 1.0 - jnp.abs(level - k))
-    return weights @ strategies
+    """Binomial mixture of levels 0..K with mean `level` (module docstring):
+    w_k = C(K, k) q^k (1 - q)^(K - k), q = level / K."""
+    depth = strategies.shape[0] - 1
+    k = jnp.arange(depth + 1, dtype=jnp.float64)
+    q = level / depth
+    log_w = (
+        gammaln(depth + 1.0)
+        - gammaln(k + 1.0)
+        - gammaln(depth - k + 1.0)
+        + k * jnp.log(q)
+        + (depth - k) * jnp.log1p(-q)
+    )
+    return jnp.exp(log_w) @ strategies
 
 
 def poisson_weights(tau: Any, depth: int) -> Any:
