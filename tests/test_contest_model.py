@@ -227,3 +227,22 @@ def test_equilibrium_command_json_and_errors(tmp_path, capsys):
     )
     assert not bad.exists()
     assert "precision" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_nash_implicit_derivative_matches_finite_differences():
+    # The derivative of the Nash likelihood in r (implicit function theorem on the support's
+    # indifference system) against central finite differences (common practice, no source);
+    # keep_bank contests, where r moves the equilibrium.
+    model = build_contest_model(["crra", "nash", "tremble"], max_target=CAP)
+    frame = model.simulate({"r": 0.3, "tremble": 0.1}, _design(n_subjects=10, keep_bank=1),
+                           jax.random.PRNGKey(2))
+    data = to_stopping_data(frame)
+
+    @jax.jit
+    def total(r):
+        return jnp.sum(model.loglik_obs({"r": r, "tremble": 0.1}, data))
+
+    grad = float(jax.jit(jax.grad(total))(0.3))
+    h = 1e-5
+    assert grad == pytest.approx(float((total(0.3 + h) - total(0.3 - h)) / (2 * h)), rel=1e-5)

@@ -114,7 +114,7 @@ def _nash_sigma_jvp(primals: tuple[ContestGame], tangents: tuple[ContestGame]) -
     z = jnp.concatenate([sigma, value[None]])
     jac = jax.jacfwd(_support_equations)(z, game, mask)
     _, g_dot = jax.jvp(lambda g: _support_equations(z, g, mask), (game,), (game_dot,))
-    dz = -jnp.linalg.lstsq(jac, g_dot)[0]
+    dz = -jnp.linalg.solve(jac, g_dot)
     return sigma, dz[:-1]
 
 
