@@ -235,8 +235,9 @@ def test_nash_implicit_derivative_matches_finite_differences():
     # indifference system) against central finite differences (common practice, no source);
     # keep_bank contests, where r moves the equilibrium.
     model = build_contest_model(["crra", "nash", "tremble"], max_target=CAP)
-    frame = model.simulate({"r": 0.3, "tremble": 0.1}, _design(n_subjects=10, keep_bank=1),
-                           jax.random.PRNGKey(2))
+    frame = model.simulate(
+        {"r": 0.3, "tremble": 0.1}, _design(n_subjects=10, keep_bank=1), jax.random.PRNGKey(2)
+    )
     data = to_stopping_data(frame)
 
     @jax.jit
