@@ -30,7 +30,7 @@ P_SURVIVE = (0.6, 0.75)
 HORIZON = 40  # P(40 straight successes at p = 0.75) = 1e-5 per trial
 CAP = 50  # planner truncation (exact to double precision here; see bench_bayes)
 WIDTH = 2 * 3 * HORIZON  # distinct (condition, step, action/bust) rows at most
-CHAINS, WARMUP, DRAWS, THIN = 2, 300, 500, 10  # 2 x 50 thinned draws, first 99 kept
+CHAINS, WARMUP, DRAWS, THIN = 2, 250, 500, 10  # 2 x 50 thinned draws, first 99 kept
 KEPT = 99
 BINS = 10
 SEED = 20181001
@@ -99,7 +99,7 @@ def run(replications: int) -> dict:
             x = np.asarray(spec.to_natural(z))
             ranks[spec.name].append(int(np.sum(x < truth[spec.name])))
         if rep % 10 == 0:
-            print(f"replication {rep}: {time.perf_counter() - t0:.0f} s", flush=True)
+            print(f"replication {rep}: {time.perf_counter() - t0:.0f} s {ranks}", flush=True)
     elapsed = time.perf_counter() - t0
     kept = KEPT
     result = {

@@ -312,7 +312,8 @@ def aggregation_is_exact(model: Model, data: Any, args: CellArgs, setup: Setup) 
     """Check at the start values that weighted distinct rows reproduce the row sum (a model
     whose rows depend on other rows, e.g. through the trial, would fail this)."""
     theta = model.start_theta()
-    plain = replace(data, covariates={}, subject_labels=None, trial_labels=None)
+    labels = ("trial_labels",) if isinstance(data, StoppingData) else ("item_labels",)
+    plain = replace(data, covariates={}, subject_labels=None, **dict.fromkeys(labels))
     direct = float(jax.jit(lambda t, d: jnp.sum(model.loglik_obs(t, d)))(theta, plain))
     sites = {f"z_{s.name}": s.to_unconstrained(theta[s.name]) for s in setup.specs}
     sites.update({f"b_{n}": jnp.zeros(len(setup.effect_columns(n))) for n in setup.names})
@@ -352,8 +353,8 @@ def prepare(
     pooled), their designs and subjects, and the static setup. With ``aggregate``, rows that
     agree in every field the model reads (all but trial) and in their cell are evaluated
     once and weighted by their count."""
-    data = replace(data, covariates={})  # formulas have read them; models do not
     designs = build_designs_for(model, data, formulas)
+    data = replace(data, covariates={})  # the formulas have read them; models do not
     combined = np.concatenate([d for d, _ in designs.values()], axis=1)
     _, design_row = np.unique(combined, axis=0, return_inverse=True)
     design_row = design_row.reshape(-1)

@@ -212,6 +212,31 @@ def sampler_warnings(
     return out
 
 
+IMPOSSIBLE_LOGLIK = -1e10  # a log-likelihood this low means "zero probability" in practice
+
+
+def data_fit_warnings(loglik: float, pointwise_ll: np.ndarray, params: pd.DataFrame) -> list[str]:
+    """Observations the model cannot produce, and chains that never moved."""
+    out = []
+    worst = np.min(pointwise_ll, axis=0)
+    bad = int(np.sum(~np.isfinite(worst) | (worst < IMPOSSIBLE_LOGLIK)))
+    if bad or not math.isfinite(loglik) or loglik < IMPOSSIBLE_LOGLIK:
+        out.append(
+            f"{bad} pointwise units have (near) zero probability under the model for some "
+            f"draws (log-likelihood at the posterior mean {loglik:.3g}): the model cannot "
+            "produce some observed choices (e.g. CRRA utility of losses or of a zero bank at "
+            "r >= 1); the posterior is not trustworthy -- choose a model that covers the data"
+        )
+    scale = np.maximum(1.0, np.abs(params["estimate"].to_numpy()))
+    stuck = [n for n, sd, m in zip(params.index, params["se"], scale) if not sd > 1e-12 * m]
+    if stuck:
+        out.append(
+            f"the draws of {', '.join(stuck)} never changed: the sampler did not move "
+            "(too short a warm-up, or a likelihood without finite gradients)"
+        )
+    return out
+
+
 def _worst(frame: pd.DataFrame, column: str, n: int = 3) -> str:
     items = [f"{name} ({value:.3g})" for name, value in frame[column].head(n).items()]
     more = f" and {len(frame) - n} more" if len(frame) > n else ""
@@ -537,6 +562,7 @@ def build_posterior(
     if any(setup.effect_columns(n) for n in setup.names):
         priors["covariate effects"] = hyper["covariate effects"]
     loglik = loglik_at_posterior_mean(setup, samples, args)
+    warnings_ += data_fit_warnings(loglik, pointwise_ll, params)
     flat_samples = {k: np.asarray(v).reshape(-1, *np.shape(v)[2:]) for k, v in samples.items()}
     post = Posterior(
         model=setup.model,
