@@ -21,14 +21,17 @@ and w[c, i] counts the data rows each stands for (0 on padding). Aggregation is 
 start values against the plain row sum and dropped if it does not reproduce it; contest
 models are never aggregated.
 
-No sampler is written here: NumPyro's NUTS runs on the CPU. Chains: "auto" runs them in
-parallel (one per device) when JAX sees at least as many devices as chains, otherwise
-"vectorized" (all chains batched through one compiled program on one device). ``import
-stopwise`` imports JAX, but JAX creates its CPU devices only at the first computation, so
-numpyro.set_host_device_count (XLA_FLAGS=--xla_force_host_platform_device_count=N) works only
-when set before any array is made; we do not force it because by the time data are loaded
-the backend exists, and on a 2-core machine parallel chains can use at most 2 of 4 chains at
-once. benchmarks/bench_bayes.py measures the choice.
+No sampler is written here: NumPyro's NUTS runs on the CPU. Chains (``chain_method``):
+"auto" runs them "parallel" (one chain per device, pmap) when JAX sees at least as many CPU
+devices as chains, otherwise "vectorized" (all chains batched through one compiled program on
+one device). Why: ``import stopwise`` imports JAX and the data loaders create arrays, so by the
+time a fit starts JAX's CPU backend exists and numpyro.set_host_device_count (which sets
+XLA_FLAGS=--xla_force_host_platform_device_count) can no longer add devices; with the default
+single device NumPyro's "parallel" would silently fall back to one chain after another. Users
+who want parallel chains set XLA_FLAGS=--xla_force_host_platform_device_count=4 before
+starting Python. "vectorized" costs one dispatch per leapfrog step for all chains (cheap
+likelihoods gain most); since batched chains wait for the longest trajectory, "sequential" can
+be faster for expensive likelihoods with uneven tree depths (a documented option).
 
 The pointwise log-likelihood for ArviZ is computed after sampling (vmapped over draws in
 chunks), not stored during sampling, and is summed per *unit*: a trial for stopping data (the
