@@ -248,3 +248,33 @@ def test_bad_options_are_input_errors(bernoulli_data):
         fit_bayes(CONSTANT, bernoulli_data, init={"p": 1.5}, progress=False)
     with pytest.raises(StopwiseInputError, match="not a parameter"):
         fit_bayes(CONSTANT, bernoulli_data, formulas=["r ~ 1"], progress=False)
+
+
+def test_every_sampler_problem_gives_a_named_warning():
+    import pandas as pd
+    from stopwise.estimation.posterior import sampler_warnings
+
+    diag = pd.DataFrame(
+        {"r_hat": [1.002, 1.05], "ess_bulk": [900.0, 150.0], "ess_tail": [800.0, 120.0]},
+        index=["precision", "sd_z(r)"],
+    )
+    stats = {
+        "diverging": np.array([[False, True, True]]),
+        "reached_max_treedepth": np.array([[True, False, False]]),
+    }
+    out = sampler_warnings(diag, stats, np.array([0.9, 0.2]), max_tree_depth=10)
+    text = "\n".join(out)
+    assert len(out) == 6  # R-hat, bulk ESS, tail ESS, divergences, E-BFMI, tree depth
+    assert "R-hat above 1.01 for sd_z(r) (1.05)" in text and "precision (" not in text
+    assert "2 divergent transitions" in text and "target_accept" in text
+    assert "E-BFMI 0.20 below 0.3 in chain 1" in text
+    assert "maximum tree depth 10" in text
+    assert (
+        sampler_warnings(
+            diag.iloc[:1],
+            {"diverging": np.zeros((1, 3), bool), "reached_max_treedepth": np.zeros((1, 3), bool)},
+            np.array([0.9]),
+            10,
+        )
+        == []
+    )
