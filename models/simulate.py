@@ -212,8 +212,7 @@ def lottery_design_arrays(design: pd.DataFrame) -> LotteryData:
         xs, ps = [], []
         for k in range(1, width + 1):
             if k in found[option]:
-                x = _numeric_column(design, f"{option}_x{k}")
-                prob = _numeric_column(design, f"{option}_p{k}")
+                x, prob = _outcome_columns(design, option, k)
             else:
                 x = _numeric_column(design, f"{option}_x1")
                 prob = np.zeros(len(design))
@@ -233,6 +232,22 @@ def lottery_design_arrays(design: pd.DataFrame) -> LotteryData:
         b_x=arrays["b"][0],
         b_p=arrays["b"][1],
     )
+
+
+def _outcome_columns(design: pd.DataFrame, option: str, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Outcome k of an option; an empty outcome (x and p missing, or x missing with p = 0)
+    is absent: it gets probability 0 and repeats the option's first outcome."""
+    x_name, p_name = f"{option}_x{k}", f"{option}_p{k}"
+    x = pd.to_numeric(design[x_name], errors="coerce").to_numpy(dtype=np.float64)
+    prob = pd.to_numeric(design[p_name], errors="coerce").to_numpy(dtype=np.float64)
+    absent = np.isnan(x) & (np.isnan(prob) | (prob == 0))
+    if k > 1 and absent.any():
+        first = pd.to_numeric(design[f"{option}_x1"], errors="coerce").to_numpy(np.float64)
+        x = np.where(absent, first, x)
+        prob = np.where(absent, 0.0, prob)
+    for name, values in ((x_name, x), (p_name, prob)):
+        _check_range(values, name, np.isfinite(values), "a number")
+    return x, prob
 
 
 def simulate_lottery(

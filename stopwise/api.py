@@ -8,9 +8,12 @@ model builder and the estimation engines together.
 from __future__ import annotations
 
 import os
+import warnings
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
@@ -49,6 +52,107 @@ def resolve_data(
     )
 
 
+CONTEST_PARTS = "nash, qre, aqre, levelk, ch"
+
+
+def rows_for_model(model: Model, bundle: Any) -> np.ndarray | None:
+    """Row positions the model explains, or None for all rows.
+
+    Solo stopping models explain the solo decisions (task "solo") and contest models the
+    contest decisions; a model of one data format fitted to another is refused.
+    """
+    kind = model.data_kind
+    if isinstance(bundle, LotteryData):
+        if kind != "lottery":
+            raise StopwiseInputError(
+                f"model {model.name} is a {kind} model but the data are lottery choices; "
+                "lottery specs take a utility, an optional weighting and a noise rule, "
+                "e.g. crra+logit or pt+tk+probit"
+            )
+        return None
+    if kind == "lottery":
+        raise StopwiseInputError(
+            f"model {model.name} is a lottery-choice model but the data are stopping "
+            "decisions; add a policy (target, myopic, planner), e.g. crra+planner+logit"
+        )
+    contest_row = np.asarray(bundle.cond_contest)[np.asarray(bundle.cond)] > 0.5
+    wanted = contest_row if kind == "contest" else ~contest_row
+    if not wanted.any():
+        if kind == "contest":
+            raise StopwiseInputError(
+                f"model {model.name} explains contest play but the data hold no contest "
+                "decisions (task = contest); use a solo policy such as crra+planner+logit"
+            )
+        raise StopwiseInputError(
+            f"model {model.name} explains solo stopping but every decision in the data is "
+            f"from a contest; name a play concept ({CONTEST_PARTS}), e.g. crra+qre"
+        )
+    return None if wanted.all() else np.flatnonzero(wanted)
+
+
+def restrict_rows(bundle: StoppingData, rows: np.ndarray) -> StoppingData:
+    """The bundle with only ``rows``; subject and trial indices renumbered 0..n-1."""
+    sub = bundle.take(rows)
+    subject_codes, subject = np.unique(np.asarray(sub.subject), return_inverse=True)
+    trial_codes, trial = np.unique(np.asarray(sub.trial), return_inverse=True)
+    labels = bundle.subject_labels
+    trial_labels = bundle.trial_labels
+    return replace(
+        sub,
+        subject=subject.astype(np.int32),
+        trial=trial.astype(np.int32),
+        subject_labels=None if labels is None else np.asarray(labels)[subject_codes],
+        trial_labels=None if trial_labels is None else np.asarray(trial_labels)[trial_codes],
+    )
+
+
+def select_data(
+    model: Model, bundle: Any, frame: pd.DataFrame | None
+) -> tuple[Any, pd.DataFrame | None, list[str]]:
+    """(bundle, frame, notes) restricted to the rows ``model`` explains (see rows_for_model)."""
+    rows = rows_for_model(model, bundle)
+    if rows is None:
+        return bundle, frame, []
+    left_out = bundle.n_obs - len(rows)
+    what = "contest" if model.data_kind == "contest" else "solo"
+    other = "solo" if what == "contest" else "contest"
+    note = (
+        f"fitted to the {len(rows)} {what} decisions; {left_out} {other} decisions are "
+        f"left out ({other} play needs a "
+        + (
+            "solo policy such as crra+planner+logit)"
+            if other == "solo"
+            else f"play concept: {CONTEST_PARTS})"
+        )
+    )
+    if frame is not None:
+        frame = frame.iloc[rows].reset_index(drop=True)
+    return restrict_rows(bundle, rows), frame, [note]
+
+
+def prepare_model(model: Model, bundle: Any) -> list[str]:
+    """Let a model size its static parts from concrete data (``options["prepare"]``) and
+    return the warnings it raises (e.g. parameters the data cannot identify)."""
+    prepare = model.options.get("prepare") if model.options else None
+    if not callable(prepare):
+        return []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        prepare(bundle)
+    return list(dict.fromkeys(str(w.message) for w in caught))
+
+
+def _attach(result: Any, notes: list[str], warned: list[str]) -> Any:
+    """Add selection notes and model warnings to a result that carries such lists."""
+    if notes and isinstance(getattr(result, "notes", None), list):
+        result.notes.extend(notes)
+    elif notes and isinstance(getattr(result, "warnings", None), list):
+        result.warnings.extend(notes)
+    if warned and isinstance(getattr(result, "warnings", None), list):
+        result.warnings.extend(w for w in warned if w not in result.warnings)
+    return result
+
+
 def _check_method(method: str) -> None:
     if method not in METHODS:
         raise StopwiseInputError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
@@ -73,6 +177,26 @@ def fit(
     _check_method(method)
     the_model = resolve_model(model, max_target)
     bundle, frame = resolve_data(data)
+    bundle, frame, notes = select_data(the_model, bundle, frame)
+    warned = prepare_model(the_model, bundle)
+    return _attach(
+        _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw),
+        notes,
+        warned,
+    )
+
+
+def _fit_selected(
+    the_model: Model,
+    bundle: Any,
+    frame: pd.DataFrame | None,
+    method: str,
+    se: str | None,
+    by: str | None,
+    formulas: Sequence[str] | Mapping[str, str] | None,
+    seed: int,
+    kw: dict[str, Any],
+) -> Any:
     if method == "bayes":
         from stopwise.estimation.bayes import fit_bayes
 
@@ -123,6 +247,15 @@ def compare(
         raise StopwiseInputError("compare needs at least two models")
     resolved = [resolve_model(m, max_target) for m in models]
     bundle, frame = resolve_data(data)
+    kinds = {m.data_kind for m in resolved}
+    if len(kinds) > 1:
+        raise StopwiseInputError(
+            "compare needs models of one kind (solo stopping, contest or lottery) fitted to "
+            f"the same decisions; got {', '.join(f'{m.name} ({m.data_kind})' for m in resolved)}"
+        )
+    bundle, frame, _ = select_data(resolved[0], bundle, frame)
+    for m in resolved:
+        prepare_model(m, bundle)
     if method == "bayes":
         from stopwise.estimation.bayes import compare_bayes
 

@@ -8,9 +8,11 @@ block order counterbalanced), then two blocks of two-player contests (p_survive 
 keep_bank 1). Half the divers see a running tally of collapses (``treatment`` = 1). A second
 task is a ten-row price list of lottery choices plus four mixed gain/loss items.
 
-Choices come from a simple stochastic rule (no fitted model): each diver aims for a noisy
-multiple of the risk-neutral target; lottery choices follow a noisy mean-minus-spread
-valuation. Everything is synthetic and reproducible from the seed.
+Choices come from stopwise's own models (see ``demo_population``): solo dives from
+crra+planner+logit with a risk attitude and a noise level of each diver's own, contest
+dives from the logit QRE of crra+qre, and lottery choices from crra+logit with the diver's
+risk attitude over a 20-crate endowment (model option wealth = 20, since the mixed items
+can lose crates). Everything is synthetic and reproducible from the seed.
 """
 
 from __future__ import annotations
@@ -21,8 +23,6 @@ import numpy as np
 import pandas as pd
 
 from stopwise._io import write_table
-from stopwise.data_schemas.convert import trials_to_decisions
-from stopwise.models.normative import optimal_target
 
 DEMO_SEED = 20261201
 TRIALS_PER_BLOCK = 12
@@ -172,61 +172,72 @@ def _lottery_design(subjects: pd.DataFrame) -> pd.DataFrame:
     return design[columns]
 
 
-def simulate_stopping(design: pd.DataFrame, rng: np.random.Generator) -> pd.DataFrame:
-    """Trial-level responses: target = round(m_i * f_block * n* + e), e ~ N(0, 1 + 0.1 n*),
-    where n* is the risk-neutral target, m_i ~ lognormal(-0.15 + 0.1 treatment, 0.35) and
-    f = 1.3 (winner takes the prize), 1.1 (prize on top), 1 (solo); the diver draws until
-    the target or the first collapse."""
-    subject_codes, _ = pd.factorize(design["subject"])
-    treatment = design.groupby("subject", sort=False)["treatment"].first().to_numpy()
-    multiplier = np.exp(rng.normal(-0.15 + 0.1 * treatment, 0.35))[subject_codes]
-    p = design["p_survive"].to_numpy()
-    rn_target = np.array([optimal_target(float(v), 1.0) for v in p], dtype=np.float64)
-    factor = np.select(
-        [design["block"] == "contest_winner_takes", design["block"] == "contest_prize_on_top"],
-        [1.3, 1.1],
-        1.0,
+# The invented population: per-diver risk attitude and noise. Divers shown the running tally of
+# collapses (treatment 1) are a little more risk-averse on average.
+SOLO_MODEL = "crra+planner+logit"
+CONTEST_MODEL = "crra+qre"
+LOTTERY_MODEL = "crra+logit"
+LOTTERY_WEALTH = 20.0
+CONTEST_TRUTH = {"r": 0.3, "precision": 3.0}
+CONTEST_MAX_TARGET = 30
+
+
+def demo_population(design: pd.DataFrame, rng: np.random.Generator) -> pd.DataFrame:
+    """One row per diver: r ~ N(0.25 + 0.15 treatment, 0.2) clipped to [-0.5, 0.9],
+    precision ~ lognormal(log 3, 0.35) for the dives and lognormal(log 0.6, 0.3) for the
+    lottery list (its payoffs are larger, so utility differences are larger too)."""
+    people = design.groupby("subject", sort=True)["treatment"].first()
+    n = len(people)
+    r = np.clip(rng.normal(0.25 + 0.15 * people.to_numpy(), 0.2), -0.5, 0.9)
+    return pd.DataFrame(
+        {
+            "subject": people.index.to_numpy(),
+            "r": r,
+            "precision": np.exp(rng.normal(np.log(3.0), 0.35, n)),
+            "lottery_precision": np.exp(rng.normal(np.log(0.6), 0.3, n)),
+        }
     )
-    noise = rng.normal(0.0, 1.0 + 0.1 * rn_target)
-    target = np.maximum(np.rint(multiplier * factor * rn_target + noise), 0).astype(np.int64)
-    first_collapse = rng.geometric(1.0 - p) - 1  # successful dives before the collapse
-    trials = design.copy()
-    trials["draws"] = np.minimum(target, first_collapse)
-    trials["busted"] = (first_collapse < target).astype(np.int64)
-    return trials
 
 
-def simulate_lottery(design: pd.DataFrame, rng: np.random.Generator) -> pd.DataFrame:
-    """Choices: value = EV - rho_i SD - (lambda_i - 1) E[loss part]; P(B) = logistic of the
-    value difference / 3, with rho_i ~ N(0.3, 0.2), lambda_i ~ lognormal(log 1.5, 0.3)."""
-    codes, uniques = pd.factorize(design["subject"])
-    rho = rng.normal(0.3, 0.2, size=len(uniques))[codes]
-    loss_weight = np.exp(rng.normal(np.log(1.5), 0.3, size=len(uniques)))[codes]
-    value = {o: _option_value(design, o, rho, loss_weight) for o in ("a", "b")}
-    prob_b = 1.0 / (1.0 + np.exp(-np.clip((value["b"] - value["a"]) / 3.0, -50, 50)))
-    choices = design.copy()
-    choices.insert(2, "choice", np.where(rng.random(len(design)) < prob_b, "B", "A"))
-    return choices
+def simulate_stopping(design: pd.DataFrame, population: pd.DataFrame, seed: int) -> pd.DataFrame:
+    """Decision rows: solo trials from crra+planner+logit with each diver's own (r,
+    precision); contest trials from the symmetric logit QRE of crra+qre (CONTEST_TRUTH,
+    targets capped at CONTEST_MAX_TARGET dives)."""
+    from stopwise.models.simulate import simulate
+    from stopwise.models.spec import build_model
+
+    solo = design[design["task"] == "solo"]
+    contest = design[design["task"] == "contest"]
+    pieces = [
+        simulate(build_model(SOLO_MODEL), population[["subject", "r", "precision"]], solo, seed)
+    ]
+    if len(contest):
+        contest_model = build_model(CONTEST_MODEL, max_target=CONTEST_MAX_TARGET)
+        pieces.append(simulate(contest_model, CONTEST_TRUTH, contest, seed + 1))
+    decisions = pd.concat(pieces, ignore_index=True)
+    return decisions.sort_values(["subject", "trial", "step"], kind="stable").reset_index(drop=True)
 
 
-def _option_value(
-    design: pd.DataFrame, option: str, rho: np.ndarray, loss_weight: np.ndarray
-) -> np.ndarray:
-    x = np.nan_to_num(design[[f"{option}_x1", f"{option}_x2"]].to_numpy(dtype=np.float64))
-    p = np.nan_to_num(design[[f"{option}_p1", f"{option}_p2"]].to_numpy(dtype=np.float64))
-    mean = (p * x).sum(axis=1)
-    spread = np.sqrt(np.maximum((p * (x - mean[:, None]) ** 2).sum(axis=1), 0.0))
-    losses = (p * np.minimum(x, 0.0)).sum(axis=1)
-    return mean - rho * spread + (loss_weight - 1.0) * losses
+def simulate_lottery(design: pd.DataFrame, population: pd.DataFrame, seed: int) -> pd.DataFrame:
+    """Choices from crra+logit (wealth LOTTERY_WEALTH) with each diver's r and lottery
+    precision."""
+    from stopwise.models.simulate import simulate
+    from stopwise.models.spec import build_model
+
+    params = population[["subject", "r", "lottery_precision"]].rename(
+        columns={"lottery_precision": "precision"}
+    )
+    return simulate(build_model(LOTTERY_MODEL, wealth=LOTTERY_WEALTH), params, design, seed)
 
 
 def demo_data(seed: int = DEMO_SEED, n_subjects: int = 120) -> dict[str, pd.DataFrame]:
     """The demo data set: "stopping" (decision level) and "lottery" choices."""
     design = demo_design(seed, n_subjects)
-    rng = np.random.default_rng([seed, 1])
-    trials = simulate_stopping(design["stopping"], rng)
-    decisions = trials_to_decisions(trials, validate=False)
-    return {"stopping": decisions, "lottery": simulate_lottery(design["lottery"], rng)}
+    population = demo_population(design["stopping"], np.random.default_rng([seed, 1]))
+    return {
+        "stopping": simulate_stopping(design["stopping"], population, seed + 2),
+        "lottery": simulate_lottery(design["lottery"], population, seed + 3),
+    }
 
 
 def write_demo_files(data: dict[str, pd.DataFrame], out: Path) -> dict[str, Path]:
@@ -256,11 +267,84 @@ def describe_demo_files(paths: dict[str, Path]) -> None:
         print()
 
 
+SOLO_SPECS = ("crra+planner+logit", "crra+myopic+logit", "pt+tk+target+logit")
+CONTEST_SPECS = ("crra+qre", "linear+levelk")
+BONUS_SCHEMES = (  # counterfactual incentive schemes for the contest block
+    {"name": "winner takes 10", "p_survive": 0.85, "players": 2, "prize": 10.0},
+    {
+        "name": "5 on top of own haul",
+        "p_survive": 0.85,
+        "players": 2,
+        "prize": 5.0,
+        "keep_bank": True,
+    },
+    {"name": "4 divers, winner takes 20", "p_survive": 0.85, "players": 4, "prize": 20.0},
+)
+
+
+def _heading(text: str) -> None:
+    print(f"\n=== {text} ===\n", flush=True)
+
+
+def fit_solo_models(path: Path, out: Path) -> None:
+    """Compare solo stopping models, then fit the generating model with a treatment effect
+    on r (both written to ``out`` as JSON/CSV)."""
+    from stopwise._io import write_json
+    from stopwise.api import compare, fit
+
+    _heading("Solo dives: model comparison (maximum likelihood, 5-fold CV by diver)")
+    comparison = compare(list(SOLO_SPECS), path, seed=1)
+    print(comparison.summary())
+    write_table(out / "compare_solo.csv", comparison.table.reset_index())
+    _heading("Solo dives: crra+planner+logit with r ~ 1 + treatment")
+    result = fit(SOLO_SPECS[0], path, formulas=["r ~ 1 + treatment"], seed=1)
+    print(result.summary())
+    write_json(out / "fit_solo.json", result.to_dict())
+
+
+def fit_lottery_model(path: Path, out: Path) -> None:
+    """Fit crra+logit to the price list over the 20-crate endowment."""
+    from stopwise._io import write_json
+    from stopwise.api import fit
+    from stopwise.models.spec import build_model
+
+    _heading(f"Lottery list: {LOTTERY_MODEL} over a {LOTTERY_WEALTH:g}-crate endowment")
+    result = fit(build_model(LOTTERY_MODEL, wealth=LOTTERY_WEALTH), path, seed=1)
+    print(result.summary())
+    write_json(out / "fit_lottery.json", result.to_dict())
+
+
+def fit_contest_models(path: Path, out: Path) -> None:
+    """Compare contest play concepts and predict play under other bonus schemes."""
+    from stopwise.api import compare
+    from stopwise.contest import counterfactual
+
+    cap = CONTEST_MAX_TARGET
+    _heading(f"Contest dives: play concepts (targets capped at {cap} dives)")
+    comparison = compare(list(CONTEST_SPECS), path, max_target=cap, cv_folds=0, seed=1)
+    print(comparison.summary())
+    write_table(out / "compare_contest.csv", comparison.table.reset_index())
+    best = next(f for f in comparison.fits if f.model == CONTEST_SPECS[0])
+    _heading(f"Counterfactual bonus schemes: Nash vs fitted {best.model}")
+    schemes = [{**scheme, "max_target": cap} for scheme in BONUS_SCHEMES]
+    table = counterfactual(best, schemes).table
+    print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    write_table(out / "counterfactual.csv", table)
+
+
 def run_demo(out: Path) -> None:
-    """Write the demo data into ``out``, validate the files and print their summaries."""
+    """Write the demo data into ``out``, validate and describe the files, fit and compare
+    solo, lottery and contest models, and predict play under other bonus schemes."""
     out = Path(out)
     paths = write_demo_files(demo_data(), out)
     print(f"Demo data (invented salvage-diving study) written to {out}/")
     print()
     validate_demo_files(paths)
     describe_demo_files(paths)
+    fit_solo_models(paths["stopping"], out)
+    fit_lottery_model(paths["lottery"], out)
+    fit_contest_models(paths["stopping"], out)
+    print(
+        f"\nTables and JSON results are in {out}/. These are research estimates on invented "
+        "data, not a basis for individual financial, clinical or hiring decisions."
+    )
