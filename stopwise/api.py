@@ -72,7 +72,7 @@ def rows_for_model(model: Model, bundle: Any) -> np.ndarray | None:
         return None
     if kind == "lottery":
         raise StopwiseInputError(
-            f"model {model.name} is a lottery-choice model but the data are stopping "
+            f"model {model.name} is a lottery model (binary lottery choices) but the data are stopping "
             "decisions; add a policy (target, myopic, planner), e.g. crra+planner+logit"
         )
     contest_row = np.asarray(bundle.cond_contest)[np.asarray(bundle.cond)] > 0.5

@@ -332,11 +332,11 @@ def fit_contest_models(path: Path, out: Path) -> None:
     write_table(out / "counterfactual.csv", table)
 
 
-def run_demo(out: Path) -> None:
+def run_demo(out: Path, n_subjects: int = 120) -> None:
     """Write the demo data into ``out``, validate and describe the files, fit and compare
     solo, lottery and contest models, and predict play under other bonus schemes."""
     out = Path(out)
-    paths = write_demo_files(demo_data(), out)
+    paths = write_demo_files(demo_data(n_subjects=n_subjects), out)
     print(f"Demo data (invented salvage-diving study) written to {out}/")
     print()
     validate_demo_files(paths)

@@ -2,11 +2,25 @@
 
 from __future__ import annotations
 
+import json
+
 import pandas as pd
 from stopwise.data_schemas.validate import validate
 
 from stopwise.cli import main
 from stopwise.demo import demo_data, demo_design
+
+DEMO_OUTPUTS = sorted(
+    [
+        "stopping.csv",
+        "lottery.csv",
+        "compare_solo.csv",
+        "fit_solo.json",
+        "fit_lottery.json",
+        "compare_contest.csv",
+        "counterfactual.csv",
+    ]
+)
 
 
 def test_demo_is_reproducible_and_seeded(small_demo) -> None:
@@ -46,9 +60,13 @@ def test_odd_number_of_subjects_forms_one_group_of_three() -> None:
 
 def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     out = tmp_path / "demo"
-    assert main(["demo", "--out", str(out)]) == 0
+    assert main(["demo", "--out", str(out), "--subjects", "12"]) == 0
     printed = capsys.readouterr().out
-    assert sorted(p.name for p in out.iterdir()) == ["lottery.csv", "stopping.csv"]
+    assert sorted(p.name for p in out.iterdir()) == DEMO_OUTPUTS
     assert "OK (decision-level stopping data" in printed
     assert "Stopping data by condition" in printed and "Lottery choices by item" in printed
-    assert validate(out / "stopping.csv").stats["subjects"] == 120
+    assert "Model comparison" in printed and "Counterfactual bonus schemes" in printed
+    assert validate(out / "stopping.csv").stats["subjects"] == 12
+    fit = json.loads((out / "fit_solo.json").read_text())
+    assert fit["model"] == "crra+planner+logit" and fit["converged"] is True
+    assert [p["name"] for p in fit["params"]] == ["r", "r:treatment", "precision"]

@@ -1,4 +1,4 @@
-"""``stopwise demo [--out DIR]``: write, validate and describe the invented demo data."""
+"""``stopwise demo [--out DIR] [--subjects N]``: the main job on the invented demo data."""
 
 from __future__ import annotations
 
@@ -12,17 +12,29 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "demo",
         help="run the main job on the built-in demo data",
         description="Write the demo data set (an invented salvage-diving study generated "
-        "by our own simulator) into DIR, validate it and print the descriptive summary.",
+        "by our own simulator) into DIR, validate and describe it, fit and compare solo, "
+        "lottery and contest models, predict play under other bonus schemes and run a small "
+        "hierarchical Bayesian fit; tables and JSON results are written beside the data.",
     )
     parser.add_argument(
         "--out", metavar="DIR", default="demo_output", help="output folder (default: demo_output)"
+    )
+    parser.add_argument(
+        "--subjects",
+        metavar="N",
+        type=int,
+        default=120,
+        help="number of invented participants (default: 120; at least 4)",
     )
     parser.set_defaults(func=run)
     return parser
 
 
 def run(args: argparse.Namespace) -> int:
+    from stopwise.data_schemas.errors import StopwiseInputError
     from stopwise.demo import run_demo
 
-    run_demo(Path(args.out))
+    if args.subjects < 4:
+        raise StopwiseInputError(f"--subjects must be at least 4, got {args.subjects}")
+    run_demo(Path(args.out), n_subjects=args.subjects)
     return 0
