@@ -29,7 +29,6 @@ CAP = 100
 
 def demo_solo_bundle() -> object:
     from stopwise.data_schemas.bundle import to_stopping_data
-
     from stopwise.demo import demo_data
 
     frame = demo_data()["stopping"]

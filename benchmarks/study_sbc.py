@@ -50,6 +50,7 @@ def simulate_dataset(model, priors, design, key):
 
 def run(replications: int) -> dict:
     from numpyro.infer import MCMC, NUTS
+
     from stopwise.estimation import bayes
     from stopwise.estimation.priors import resolve_priors
     from stopwise.estimation.recovery import stopping_design

@@ -55,6 +55,7 @@ import numpyro
 import numpyro.distributions as dist
 from numpyro.distributions import constraints
 from numpyro.infer import MCMC, NUTS, init_to_uniform
+
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import Cells, split_into_cells

@@ -46,6 +46,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import numpyro.distributions as dist
+
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model, ParamSpec
 

@@ -8,13 +8,13 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 from scipy import special, stats
+
+import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.arrays import StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.bayes import compare_bayes, fit_bayes
 from stopwise.estimation.priors import parse_prior, resolve_priors
 from stopwise.models.base import Model, ParamSpec
-
-import stopwise  # noqa: F401  (enables float64 before jax is used)
 
 DESIGN_KEYS = {
     "model",
@@ -252,6 +252,7 @@ def test_bad_options_are_input_errors(bernoulli_data):
 
 def test_every_sampler_problem_gives_a_named_warning():
     import pandas as pd
+
     from stopwise.estimation.posterior import sampler_warnings
 
     diag = pd.DataFrame(

@@ -5,6 +5,8 @@ from __future__ import annotations
 import jax
 import numpy as np
 import pytest
+
+import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.bayes import fit_bayes
@@ -17,8 +19,6 @@ from stopwise.estimation.ppc import (
 )
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (enables float64 before jax is used)
 
 
 def test_end_distribution_is_geometric_for_a_constant_hazard():

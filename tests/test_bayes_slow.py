@@ -6,13 +6,13 @@ import jax
 import numpy as np
 import pandas as pd
 import pytest
+
+import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation.bayes import fit_bayes
 from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (enables float64 before jax is used)
 
 
 @pytest.mark.slow
