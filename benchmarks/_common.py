@@ -68,11 +68,19 @@ def write_section(key: str, markdown: str) -> None:
     """Replace (or append) the section ``key`` of RESULTS.md, stamped with machine and date."""
     stamp = f"_Measured {_dt.date.today().isoformat()} on {machine()}._\n\n"
     block = f"<!-- {key}:begin -->\n{markdown.rstrip()}\n\n{stamp}<!-- {key}:end -->"
-    text = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else (
-        "# Benchmark results\n\nWritten by `make bench` (and the study scripts it names). "
-        "Each figure is a ratio against a baseline run in the same process, with the "
-        "machine and date of the run.\n"
+    text = (
+        RESULTS.read_text(encoding="utf-8")
+        if RESULTS.exists()
+        else (
+            "# Benchmark results\n\nWritten by `make bench` (and the study scripts it names). "
+            "Each figure is a ratio against a baseline run in the same process, with the "
+            "machine and date of the run.\n"
+        )
     )
     pattern = re.compile(rf"<!-- {re.escape(key)}:begin -->.*?<!-- {re.escape(key)}:end -->", re.S)
-    text = pattern.sub(lambda _: block, text) if pattern.search(text) else f"{text.rstrip()}\n\n{block}\n"
+    text = (
+        pattern.sub(lambda _: block, text)
+        if pattern.search(text)
+        else f"{text.rstrip()}\n\n{block}\n"
+    )
     RESULTS.write_text(text, encoding="utf-8")

@@ -13,11 +13,11 @@ import time
 import jax
 import jax.numpy as jnp
 import numpy as np
-from stopwise.models.contest import game as G
-from stopwise.models.contest import qre
 
 import stopwise  # noqa: F401  (float64 JAX)
 from benchmarks._common import best_time
+from stopwise.models.contest import game as G
+from stopwise.models.contest import qre
 
 P_SURVIVE, CAP = 0.9, 40  # 41 targets
 

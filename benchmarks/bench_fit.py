@@ -16,15 +16,15 @@ import time
 import jax
 import jax.numpy as jnp
 import numpy as np
+
+import stopwise  # noqa: F401  (float64)
+from benchmarks._common import machine
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation.by_subject import fit_by_subject
 from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.problem import PooledRows, make_layout, rows_loglik, start_vector
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (float64)
-from benchmarks._common import machine
 
 TRUTH = {"r": 0.4, "precision": 2.0}
 

@@ -8,11 +8,11 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from stopwise.data_schemas.convert import trials_to_decisions
-from stopwise.data_schemas.load import load
 
 import stopwise  # noqa: F401  (x64 on, as everywhere)
 from benchmarks._common import best_time, peak_memory_mib
+from stopwise.data_schemas.convert import trials_to_decisions
+from stopwise.data_schemas.load import load
 
 N_ROWS = 1_000_000
 GOAL = 3.0

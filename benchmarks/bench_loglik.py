@@ -23,9 +23,8 @@ ROUNDS = 5
 
 def simulated_rows(n_rows: int = N_ROWS, seed: int = 0):
     """At least ``n_rows`` decisions from the model itself (then cut to exactly n_rows)."""
-    from stopwise.data_schemas.bundle import to_stopping_data
-
     import stopwise
+    from stopwise.data_schemas.bundle import to_stopping_data
 
     n_trials = n_rows // 2
     trial = np.arange(n_trials)
@@ -83,9 +82,9 @@ def numpy_value_and_gradient(theta: dict[str, float], data, cap: int) -> tuple[f
 def main() -> str:
     import jax
     import jax.numpy as jnp
-    from stopwise.models.spec import build_model
 
     from benchmarks._common import best_time
+    from stopwise.models.spec import build_model
 
     data = simulated_rows()
     model = build_model("crra+planner+logit")

@@ -14,12 +14,11 @@ from __future__ import annotations
 import sys
 import time
 
+import stopwise  # noqa: F401  (float64)
+from benchmarks._common import machine, write_section
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation.recovery import Recovery, recover, stopping_design
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (float64)
-from benchmarks._common import machine, write_section
 
 TRUTH = {"r": 0.4, "precision": 2.0}
 # The reverse direction: prospect-theory target setters (invented values); only AIC's choice

@@ -148,8 +148,9 @@ _LABEL_FIELDS = {"subject_labels", "trial_labels", "item_labels"}
 
 def _register(cls: type, static: tuple[str, ...]) -> None:
     array_fields = tuple(
-        f.name for f in fields(cls) if f.name not in _LABEL_FIELDS and f.name not in static
-        and f.name != "covariates"
+        f.name
+        for f in fields(cls)
+        if f.name not in _LABEL_FIELDS and f.name not in static and f.name != "covariates"
     )
 
     def flatten(obj: Any) -> tuple[tuple[Any, ...], tuple[Any, ...]]:

@@ -631,6 +631,9 @@ def fit_bayes(
         raise StopwiseInputError(f"hdi_prob={hdi_prob}: expected a number in (0, 1)")
     model = as_model(model)
     data = as_bundle(data)
+    size_from_data = (model.options or {}).get("prepare")
+    if callable(size_from_data):  # size static parts (caps) from concrete data before tracing
+        size_from_data(data)
     check_kind(model, data)
     if pointwise is None:
         pointwise = "trial" if isinstance(data, StoppingData) else "row"

@@ -17,6 +17,7 @@ from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.estimation.covariance import RowTable
 from stopwise.estimation.optimize import batched_newton
 from stopwise.estimation.problem import Problem, _negll, report_values

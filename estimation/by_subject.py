@@ -20,6 +20,7 @@ from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells

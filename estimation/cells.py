@@ -77,9 +77,7 @@ def _reshape_rows(flat: Any, original: Any, n_cells: int, width: int) -> Any:
 _STATIC_FIELDS = {"horizon", "subject_labels", "trial_labels", "item_labels"}
 
 
-def loglik_cells(
-    loglik_obs: Any, theta_cells: Mapping[str, Any], cells: Cells
-) -> jnp.ndarray:
+def loglik_cells(loglik_obs: Any, theta_cells: Mapping[str, Any], cells: Cells) -> jnp.ndarray:
     """Masked log-likelihood per row, shape (n_cells, width); theta_cells[name] has shape
     (n_cells,)."""
     per_cell = jax.vmap(loglik_obs)(dict(theta_cells), cells.data)

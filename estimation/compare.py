@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from scipy import stats
+
 from stopwise.estimation.mle import build_problem, fit_mle, optimise, start_design
 from stopwise.estimation.results import DISCLAIMER, Fit
 

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
+
 from stopwise.estimation.problem import Problem, Reported, report_derivatives, report_values
 
 NORMAL_95 = float(stats.norm.ppf(0.975))

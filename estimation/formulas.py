@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+
 from stopwise.data_schemas.errors import StopwiseInputError
 
 

@@ -16,6 +16,7 @@ from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.mle import _strip, run_fit, start_design
 from stopwise.estimation.problem import (

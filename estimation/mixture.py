@@ -23,6 +23,7 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 from scipy import stats
+
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.covariance import RowTable
 from stopwise.estimation.mle import _strip, run_fit

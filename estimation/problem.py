@@ -24,6 +24,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model, ParamSpec

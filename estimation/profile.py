@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import optimize as sopt
 from scipy import stats
+
 from stopwise.estimation.optimize import minimize_one
 from stopwise.estimation.problem import Problem, report_values
 from stopwise.estimation.results import Fit

@@ -21,6 +21,7 @@ from typing import Any
 import jax
 import numpy as np
 import pandas as pd
+
 from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.results import DISCLAIMER
 

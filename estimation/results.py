@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+
 from stopwise.estimation.covariance import RowTable
 
 DISCLAIMER = (

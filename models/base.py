@@ -86,11 +86,7 @@ class ParamSpec:
         """log |dx/dz| at unconstrained z (used by samplers for priors on the natural scale)."""
         kind = self.transform
         if kind == "logit":
-            return (
-                jnp.log(self.upper - self.lower)
-                - jnp.logaddexp(0.0, -z)
-                - jnp.logaddexp(0.0, z)
-            )
+            return jnp.log(self.upper - self.lower) - jnp.logaddexp(0.0, -z) - jnp.logaddexp(0.0, z)
         if kind in ("log", "neglog"):
             return z
         return jnp.zeros_like(z)

@@ -18,6 +18,7 @@ from collections.abc import Mapping
 from typing import Any
 
 import jax.numpy as jnp
+
 from stopwise.models.noise import contextual_divisor, log_p_choose
 from stopwise.models.stopping import RiskParts
 from stopwise.models.weighting import (

@@ -40,6 +40,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from jax.scipy.special import log_ndtr
+
 from stopwise.models.base import ParamSpec
 
 Theta = Mapping[str, Any]

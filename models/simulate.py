@@ -21,6 +21,7 @@ from typing import Any
 import jax
 import numpy as np
 import pandas as pd
+
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.stopping import (

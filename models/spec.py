@@ -35,6 +35,7 @@ from typing import Any
 
 import jax
 import numpy as np
+
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.lottery import lottery_loglik, lottery_predict
@@ -222,9 +223,25 @@ def _stopping_model(
     caps: Caps,
     opts: dict[str, Any],
 ) -> Model:
+    seen: dict[str, Caps] = {}
+
+    def prepare(data: Any) -> None:
+        """Size the static caps from concrete data before an engine traces the likelihood
+        (the largest survival chance seen so far wins), so traced evaluations do not fall
+        back to the generous default bound."""
+        sized = caps.sized_for(data.cond_p_survive)
+        previous = seen.get("caps")
+        if sized.max_p_survive is not None and (
+            previous is None or sized.max_p_survive > previous.p_bound
+        ):
+            seen["caps"] = sized
+
     def tables(theta: Any, data: Any) -> tuple[Any, Any]:
         warn_beyond_caps(data, caps, policy)
-        sized = caps.sized_for(data.cond_p_survive)
+        if isinstance(data.cond_p_survive, jax.core.Tracer):
+            sized = seen.get("caps", caps)
+        else:
+            sized = caps.sized_for(data.cond_p_survive)
         return policy_tables(policy, risk, theta, Conditions.from_data(data), data.horizon, sized)
 
     def loglik_obs(theta: Any, data: Any) -> Any:
@@ -254,7 +271,7 @@ def _stopping_model(
         simulate=simulate,
         data_kind="stopping",
         predict=predict,
-        options={**opts, "policy": policy},
+        options={**opts, "policy": policy, "prepare": prepare},
         description=f"stopping model {name}",
     )
 

@@ -50,6 +50,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.models.noise import NoiseRule, contextual_divisor, log_p_choose
 from stopwise.models.noise import log_choice_probs as noise_log_choice_probs
 from stopwise.models.utility import UtilityFamily

@@ -35,6 +35,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import jax.numpy as jnp
+
 from stopwise.models.base import ParamSpec
 
 UTILITY_FLOOR = -1e100

@@ -28,6 +28,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import jax.numpy as jnp
+
 from stopwise.models.base import ParamSpec
 
 Theta = Mapping[str, Any]

@@ -76,8 +76,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except Exception as exc:  # anything else: exit 1, traceback only on request
         if os.environ.get("STOPWISE_DEBUG"):
             raise
-        print(f"internal error: {type(exc).__name__}: {exc}\n"
-              "(set STOPWISE_DEBUG=1 for a traceback)", file=sys.stderr)
+        print(
+            f"internal error: {type(exc).__name__}: {exc}\n(set STOPWISE_DEBUG=1 for a traceback)",
+            file=sys.stderr,
+        )
         return 1
 
 

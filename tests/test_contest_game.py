@@ -9,11 +9,11 @@ import math
 import jax.numpy as jnp
 import numpy as np
 import pytest
+
+import stopwise  # noqa: F401  (enables float64 JAX)
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest import game as G
 from stopwise.models.contest.dominance import contest_elimination, iterated_elimination
-
-import stopwise  # noqa: F401  (enables float64 JAX)
 
 
 def _simulate_contest(rng, p, gain, start, bust_keep, prize, keep_bank, targets_by_player, n_plays):

@@ -7,6 +7,8 @@ import math
 import jax.numpy as jnp
 import numpy as np
 import pytest
+
+import stopwise  # noqa: F401  (enables float64 JAX)
 from stopwise.models.contest import game as G
 from stopwise.models.contest.levelk import (
     ch_population,
@@ -16,8 +18,6 @@ from stopwise.models.contest.levelk import (
     levelk_strategies,
     poisson_weights,
 )
-
-import stopwise  # noqa: F401  (enables float64 JAX)
 
 # A symmetric 3x3 game: own payoff A[i, j] against an opponent playing j.
 A = jnp.asarray([[1.0, 0.0, 0.0], [0.0, 2.0, 0.0], [0.0, 0.0, 3.0]])

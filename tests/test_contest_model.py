@@ -12,15 +12,15 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 import pytest
+
+import stopwise
+from stopwise import cli
+from stopwise.contest import counterfactual, equilibrium
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.agent import agent_qre_log_probs
 from stopwise.models.contest.build import build_contest_model
 from stopwise.models.contest.game import make_game
-
-import stopwise
-from stopwise import cli
-from stopwise.contest import counterfactual, equilibrium
 
 CAP = 6
 

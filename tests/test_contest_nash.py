@@ -5,6 +5,8 @@ from __future__ import annotations
 import nashpy
 import numpy as np
 import pytest
+
+import stopwise  # noqa: F401  (enables float64 JAX)
 from stopwise.models.contest import game as G
 from stopwise.models.contest.nash import (
     bimatrix_nash,
@@ -14,8 +16,6 @@ from stopwise.models.contest.nash import (
     support_enumeration,
     symmetric_nash,
 )
-
-import stopwise  # noqa: F401  (enables float64 JAX)
 
 
 def _covers(ours, theirs, tol=1e-8):

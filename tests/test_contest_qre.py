@@ -7,11 +7,11 @@ import jax.numpy as jnp
 import numpy as np
 import pygambit as gbt
 import pytest
+
+import stopwise  # noqa: F401  (enables float64 JAX)
 from stopwise.models.contest import game as G
 from stopwise.models.contest import qre
 from stopwise.models.contest.nash import bimatrix_nash, polish_on_supports
-
-import stopwise  # noqa: F401  (enables float64 JAX)
 
 # McKelvey & Palfrey (1995), asymmetric matching pennies with the payoffs of Ochs (1995)
 # (as given in issue 5 and replicated in the Gambit documentation).

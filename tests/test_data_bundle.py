@@ -6,6 +6,7 @@ import jax
 import numpy as np
 import pandas as pd
 import pytest
+
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.bundle import to_lottery_data, to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError

@@ -7,6 +7,7 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
 from stopwise.data_schemas.convert import decisions_to_trials, trials_to_decisions
 from stopwise.data_schemas.errors import StopwiseDataError, StopwiseInputError
 from stopwise.data_schemas.load import load

@@ -5,9 +5,9 @@ from __future__ import annotations
 import json
 
 import pandas as pd
-from stopwise.data_schemas.validate import validate
 
 from stopwise.cli import main
+from stopwise.data_schemas.validate import validate
 from stopwise.demo import demo_data, demo_design
 
 DEMO_OUTPUTS = sorted(

@@ -6,12 +6,12 @@ import json
 
 import pandas as pd
 import pytest
-from stopwise.data_schemas.load import load
-from stopwise.models.normative import expected_bank
 
 from stopwise._io import dumps_json
 from stopwise.cli import main
+from stopwise.data_schemas.load import load
 from stopwise.describe import describe
+from stopwise.models.normative import expected_bank
 
 
 def test_stopping_table_by_condition(decision_frame) -> None:

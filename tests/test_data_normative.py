@@ -8,6 +8,7 @@ import itertools
 import numpy as np
 import pytest
 from scipy import stats
+
 from stopwise.models.normative import (
     best_targets_on_curve,
     certainty_equivalent,

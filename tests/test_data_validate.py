@@ -14,13 +14,13 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
+from stopwise.cli import main
 from stopwise.data_schemas import columns as C
 from stopwise.data_schemas.errors import StopwiseDataError, StopwiseInputError
 from stopwise.data_schemas.load import load
 from stopwise.data_schemas.report import suggest_label
 from stopwise.data_schemas.validate import validate
-
-from stopwise.cli import main
 
 BAD = Path(__file__).with_name("bad_files")
 

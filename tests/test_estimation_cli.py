@@ -7,12 +7,12 @@ from pathlib import Path
 
 import jax
 import pytest
-from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.recovery import stopping_design
-from stopwise.models.spec import build_model
 
 import stopwise
 from stopwise import cli
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.recovery import stopping_design
+from stopwise.models.spec import build_model
 
 DESIGN_KEYS = {
     "model",

@@ -10,6 +10,8 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 from scipy.special import logsumexp
+
+import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation.by_subject import fit_by_subject
 from stopwise.estimation.compare import compare_fits
@@ -19,8 +21,6 @@ from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.recovery import recover, stopping_design
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (enables float64 before jax is used)
 
 LOGIT = "linear+myopic+logit"
 

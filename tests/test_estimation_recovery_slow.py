@@ -5,11 +5,11 @@ benchmarks/RESULTS.md through ``python -m benchmarks.study_recovery``."""
 from __future__ import annotations
 
 import pytest
+
+import stopwise  # noqa: F401  (float64)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation.recovery import recover, stopping_design
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (float64)
 
 P_SURVIVE = (0.6, 0.75, 0.9)
 

@@ -8,11 +8,11 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 from scipy import integrate, special, stats
+
+import stopwise  # noqa: F401  (enables float64 in JAX)
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.models.noise import NOISE, log_choice_probs, log_p_choose
 from stopwise.models.spec import build_model
-
-import stopwise  # noqa: F401  (enables float64 in JAX)
 
 
 def test_binary_rules_match_scipy():

@@ -6,11 +6,11 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
-from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.models.spec import build_model
 
 import stopwise
 from stopwise.cli import main as cli_main
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.spec import build_model
 
 
 def stopping_design(n_trials: int, p_values=(0.7, 0.9), **extra) -> pd.DataFrame:

@@ -9,11 +9,11 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 import pytest
+
+import stopwise
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model
 from stopwise.models.spec import KNOWN_PARTS, build_model
-
-import stopwise
 
 
 @pytest.mark.parametrize(

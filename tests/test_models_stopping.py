@@ -8,6 +8,8 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
+
+import stopwise
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.models.noise import NOISE
 from stopwise.models.spec import build_model
@@ -28,8 +30,6 @@ from stopwise.models.weighting import (
     rank_dependent_value,
     weight_functions,
 )
-
-import stopwise
 
 COND = Conditions(
     p_survive=jnp.array([0.5, 0.8, 0.9]),

@@ -9,6 +9,8 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 from scipy.optimize import brentq
+
+import stopwise  # noqa: F401  (enables float64 in JAX)
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.models.lottery import value_difference
 from stopwise.models.noise import NOISE
@@ -20,8 +22,6 @@ from stopwise.models.weighting import (
     cumulative_prospect_value,
     rank_dependent_value,
 )
-
-import stopwise  # noqa: F401  (enables float64 in JAX)
 
 TK_MEDIANS = {"alpha": 0.88, "beta": 0.88, "loss_aversion": 2.25, "gamma": 0.61, "delta": 0.69}
 # Tversky & Kahneman (1992), JRU 5:297-323, median estimates (section 2.3 and eq. for w).

@@ -48,7 +48,10 @@ def _imports_of(folder: Path) -> set[str]:
 @pytest.mark.parametrize(
     ("folder", "forbidden"),
     [
-        ("data_schemas", ("stopwise.models", "stopwise.estimation", "stopwise.api", "stopwise.cli")),
+        (
+            "data_schemas",
+            ("stopwise.models", "stopwise.estimation", "stopwise.api", "stopwise.cli"),
+        ),
         ("models", ("stopwise.estimation", "stopwise.api", "stopwise.cli", "stopwise.commands")),
         ("estimation", ("stopwise.api", "stopwise.cli", "stopwise.commands", "stopwise.demo")),
     ],

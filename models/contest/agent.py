@@ -24,6 +24,7 @@ from typing import Any
 
 import jax
 import jax.numpy as jnp
+
 from stopwise.models.contest.game import (
     ContestGame,
     slot_distribution,

@@ -39,6 +39,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pandas as pd
+
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.contest.agent import agent_qre_log_probs

@@ -21,6 +21,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import linprog
+
 from stopwise.models.contest.game import ContestGame, target_payoffs_profile
 
 MAX_PROFILES = 5000

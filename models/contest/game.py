@@ -41,6 +41,7 @@ from typing import Any, NamedTuple
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.data_schemas.errors import StopwiseInputError
 
 CAP_TOLERANCE = 1e-12

@@ -26,6 +26,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 from jax.scipy.special import gammaln
+
 from stopwise.models.contest.game import ContestGame, expected_bank
 
 PayoffFn = Callable[[Any], Any]

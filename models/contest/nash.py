@@ -29,6 +29,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import linprog
+
 from stopwise.models.contest.game import ContestGame, target_payoffs
 from stopwise.models.contest.qre import trace_symmetric
 

@@ -32,6 +32,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from stopwise.models.contest.game import ContestGame, target_payoffs
 
 Residual = Callable[[Any, Any], Any]
