@@ -308,14 +308,19 @@ def _stopping_text(table: pd.DataFrame, max_columns: int = 6) -> str:
     body = table.drop(columns=keys).T
     body.columns = [f"({i + 1})" for i in range(len(labels))]
     legend = "\n".join(f"  ({i + 1}) {label}" for i, label in enumerate(labels))
-    return f"{legend}\n{body.to_string(float_format=lambda v: f'{v:.3g}')}"
+    return f"{legend}\n{body.to_string(float_format=_number)}"
 
 
 _KEY_LABELS = {"p_survive": "p", "keep_bank": "keep_bank"}
 
 
+def _number(value: float) -> str:
+    """Whole numbers (counts) as integers, other values to three significant digits."""
+    return f"{value:.0f}" if float(value).is_integer() else f"{value:.3g}"
+
+
 def _frame_text(frame: pd.DataFrame) -> str:
-    return frame.to_string(index=False, float_format=lambda v: f"{v:.3g}")
+    return frame.to_string(index=False, float_format=_number)
 
 
 def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
