@@ -221,15 +221,7 @@ def reported_rows(
 
 def natural_np(spec: ParamSpec, z: Any) -> np.ndarray:
     """ParamSpec.to_natural in numpy (fast for many values); overflow gives inf."""
-    z = np.clip(np.asarray(z, dtype=np.float64), -700.0, 700.0)
-    kind = spec.transform
-    if kind == "logit":
-        return spec.lower + (spec.upper - spec.lower) * np.exp(-np.logaddexp(0.0, -z))
-    if kind == "log":
-        return spec.lower + np.exp(z)
-    if kind == "neglog":
-        return spec.upper - np.exp(z)
-    return z
+    return spec.to_natural(np.clip(np.asarray(z, dtype=np.float64), -700.0, 700.0), xp=np)
 
 
 def natural_derivative_np(spec: ParamSpec, z: Any) -> np.ndarray:

@@ -59,15 +59,16 @@ class ParamSpec:
             (lo, hi), "identity"
         )
 
-    def to_natural(self, z: Any) -> Any:
-        """Map an unconstrained value z to the natural scale (see the class docstring)."""
+    def to_natural(self, z: Any, xp: Any = jnp) -> Any:
+        """Map an unconstrained value z to the natural scale (see the class docstring);
+        ``xp`` is the array module (jax.numpy by default, numpy for host-side reporting)."""
         kind = self.transform
         if kind == "logit":
-            return self.lower + (self.upper - self.lower) * jnp.exp(-jnp.logaddexp(0.0, -z))
+            return self.lower + (self.upper - self.lower) * xp.exp(-xp.logaddexp(0.0, -z))
         if kind == "log":
-            return self.lower + jnp.exp(z)
+            return self.lower + xp.exp(z)
         if kind == "neglog":
-            return self.upper - jnp.exp(z)
+            return self.upper - xp.exp(z)
         return z
 
     def to_unconstrained(self, x: Any) -> Any:

@@ -7,6 +7,7 @@ import json
 import jax.numpy as jnp
 import numpy as np
 import pytest
+from contract import DESIGN_KEYS
 from scipy import special, stats
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
@@ -16,21 +17,6 @@ from stopwise.estimation.bayes import compare_bayes, fit_bayes
 from stopwise.estimation.priors import parse_prior, resolve_priors
 from stopwise.models.base import Model, ParamSpec
 
-DESIGN_KEYS = {
-    "model",
-    "method",
-    "converged",
-    "n_obs",
-    "n_subjects",
-    "loglik",
-    "aic",
-    "bic",
-    "params",
-    "se_method",
-    "warnings",
-    "versions",
-    "seed",
-}
 PRIOR_A, PRIOR_B = 2.0, 3.0
 
 

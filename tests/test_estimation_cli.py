@@ -7,28 +7,13 @@ from pathlib import Path
 
 import jax
 import pytest
+from contract import DESIGN_KEYS
 
 import stopwise
 from stopwise import cli
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
-
-DESIGN_KEYS = {
-    "model",
-    "method",
-    "converged",
-    "n_obs",
-    "n_subjects",
-    "loglik",
-    "aic",
-    "bic",
-    "params",
-    "se_method",
-    "warnings",
-    "versions",
-    "seed",
-}
 
 
 @pytest.fixture(scope="module")

@@ -9,6 +9,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from contract import DESIGN_KEYS
 from scipy import stats
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
@@ -18,22 +19,6 @@ from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.spec import build_model
-
-DESIGN_KEYS = {
-    "model",
-    "method",
-    "converged",
-    "n_obs",
-    "n_subjects",
-    "loglik",
-    "aic",
-    "bic",
-    "params",
-    "se_method",
-    "warnings",
-    "versions",
-    "seed",
-}
 
 
 def simulated(
