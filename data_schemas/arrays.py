@@ -97,6 +97,28 @@ class StoppingData:
         """Bank before the decision: start + step * gain."""
         return self.start + self.step * self.gain
 
+    def condition_grid(self) -> StoppingData:
+        """One row per (condition, step) for steps 0..H-1 (H = the horizon, at least the
+        largest step + 1), each a draw without a bust and without covariates: the probe on
+        which a model's P(draw | condition, step) table is read off."""
+        horizon = int(max(self.horizon, int(np.max(np.asarray(self.step))) + 1))
+        cond = np.repeat(np.arange(self.n_cond), horizon).astype(np.int32)
+        n = len(cond)
+        return replace(
+            self,
+            subject=np.zeros(n, np.int32),
+            trial=np.zeros(n, np.int32),
+            step=np.tile(np.arange(horizon), self.n_cond).astype(np.int32),
+            draw=np.ones(n),
+            bust=np.zeros(n),
+            cond=cond,
+            group=np.full(n, -1, np.int32),
+            covariates={},
+            horizon=horizon,
+            subject_labels=None,
+            trial_labels=None,
+        )
+
     def take(self, rows: Any) -> StoppingData:
         """A bundle with only the given rows (condition table and labels kept whole)."""
         rows = np.asarray(rows)

@@ -354,23 +354,9 @@ def stop_step_table(model: Any, theta: Mapping[str, Any], data: StoppingData) ->
     """Per condition c and step s, with h_s = P(draw | c, s) and p = p_survive(c):
     reach_s = prod_{j<s} h_j p;  P(stop at s) = reach_s (1 - h_s);
     P(bust on the draw at s) = reach_s h_s (1 - p)."""
-    horizon = max(int(data.horizon), int(np.max(np.asarray(data.step))) + 1)
-    n_cond = data.n_cond
-    cond = np.repeat(np.arange(n_cond), horizon).astype(np.int32)
-    step = np.tile(np.arange(horizon), n_cond).astype(np.int32)
-    n = len(cond)
-    probe = replace(
-        _strip(data),
-        subject=np.zeros(n, np.int32),
-        trial=np.zeros(n, np.int32),
-        step=step,
-        draw=np.ones(n),
-        bust=np.zeros(n),
-        cond=cond,
-        group=np.full(n, -1, np.int32),
-        subject_labels=None,
-        trial_labels=None,
-    )
+    probe = data.condition_grid()
+    horizon, n_cond = probe.horizon, data.n_cond
+    cond, step = probe.cond, probe.step
     h = _response_probability(model, theta, probe).reshape(n_cond, horizon)
     p = np.asarray(data.cond_p_survive)[:, None]
     log_reach = np.concatenate(

@@ -21,7 +21,6 @@ of the distance to the population the hierarchy removed (Gelman et al. 2013, BDA
 
 from __future__ import annotations
 
-from dataclasses import replace
 from typing import Any
 
 import jax
@@ -39,28 +38,6 @@ def subject_theta_draws(posterior: Any, n_draws: int) -> dict[str, np.ndarray]:
     _, first_row = np.unique(np.asarray(posterior.data.subject), return_index=True)
     cell = np.asarray(posterior.args.row_cell)[first_row]
     return {k: v[:, cell] for k, v in theta.items()}
-
-
-def condition_grid(data: StoppingData) -> StoppingData:
-    """One row per (condition, step) for steps 0..H-1, responses set to draw."""
-    horizon = int(max(data.horizon, int(np.max(np.asarray(data.step))) + 1))
-    cond = np.repeat(np.arange(data.n_cond), horizon).astype(np.int32)
-    step = np.tile(np.arange(horizon), data.n_cond).astype(np.int32)
-    n = len(cond)
-    return replace(
-        data,
-        subject=np.zeros(n, np.int32),
-        trial=np.zeros(n, np.int32),
-        step=step,
-        draw=np.ones(n),
-        bust=np.zeros(n),
-        cond=cond,
-        group=np.full(n, -1, np.int32),
-        covariates={},
-        horizon=horizon,
-        subject_labels=None,
-        trial_labels=None,
-    )
 
 
 def end_distribution(
@@ -105,7 +82,7 @@ def stop_step_frame(posterior: Any, n_draws: int = 200, interval: float = 0.9) -
     from stopwise.estimation.posterior import response_probability
 
     theta = subject_theta_draws(posterior, n_draws)
-    grid = jax.tree_util.tree_map(jnp.asarray, condition_grid(data))
+    grid = jax.tree_util.tree_map(jnp.asarray, data.condition_grid())
     model = posterior.model
     h = np.asarray(
         jax.jit(jax.vmap(jax.vmap(lambda t: response_probability(model, t, grid))))(
