@@ -30,16 +30,7 @@ TRIAL_CONFIG = (
     "prize",
     "keep_bank",
 )
-OPTIONAL_STOPPING = (
-    "bank",
-    "start",
-    "bust_keep",
-    "task",
-    "group",
-    "n_players",
-    "prize",
-    "keep_bank",
-)
+OPTIONAL_STOPPING = ("bank", *TRIAL_CONFIG[2:])  # every per-trial column but the required two
 CONTEST_REQUIRED = ("group", "n_players", "prize")
 
 # Values used when an optional column is absent.
