@@ -6,6 +6,10 @@ scale, ``r ~ 1 + treatment + age`` meaning
 Design matrices are built with patsy (categorical columns get treatment coding). Rows with the
 same design rows across every formula form one cell: the likelihood is evaluated once per cell
 with that cell's parameters (see estimation/cells.py).
+
+Each parsed formula keeps patsy's design information, so the design of new rows
+(``design_for_new_rows``) uses the fit's categorical levels and the fit's centring and
+scaling (``center(age)`` subtracts the mean of the fitted rows, not of the new ones).
 """
 
 from __future__ import annotations
@@ -28,6 +32,9 @@ class ParamFormula:
     rhs: str
     design: np.ndarray  # (n_obs, n_coef)
     columns: tuple[str, ...]
+    design_info: Any = None  # patsy.DesignInfo of the fitted rows (levels, centring)
+    variables: tuple[str, ...] = ()  # data columns the right-hand side reads
+    values: pd.DataFrame | None = None  # those columns on the fitted rows
 
 
 def parse_lhs(formula: str, param_names: Sequence[str]) -> tuple[str, str]:
@@ -90,8 +97,79 @@ def build_designs(
                 f"formula {formula!r}: the design columns {list(matrix.columns)} are collinear "
                 "(an effect cannot be told apart from the others)"
             )
-        out[param] = ParamFormula(param, rhs, design, tuple(map(str, matrix.columns)))
+        variables = formula_columns(matrix.design_info, frame.columns)
+        out[param] = ParamFormula(
+            param,
+            rhs,
+            design,
+            tuple(map(str, matrix.columns)),
+            matrix.design_info,
+            variables,
+            frame[list(variables)].reset_index(drop=True),
+        )
     return out
+
+
+def _factor_columns(code: str, known: Any) -> list[str]:
+    """Data columns named in one patsy factor's code (names that are not columns, such as
+    ``C`` or ``center``, are patsy's functions)."""
+    from patsy.eval import ast_names
+
+    known = set(map(str, known))
+    return list(dict.fromkeys(n for n in ast_names(code) if n in known))
+
+
+def formula_columns(design_info: Any, known: Any) -> tuple[str, ...]:
+    """Data columns a design reads, in order of first use."""
+    names: list[str] = []
+    for factor in design_info.factor_infos:
+        names += [n for n in _factor_columns(factor.code, known) if n not in names]
+    return tuple(names)
+
+
+def design_for_new_rows(formula: ParamFormula, frame: pd.DataFrame) -> np.ndarray:
+    """Design matrix of new rows built with the fit's patsy design information (the fit's
+    categorical levels, centring and scaling). A missing column, a missing value or a
+    category level the fit never saw is a StopwiseInputError naming the column."""
+    import patsy
+
+    text = f"{formula.param} ~ {formula.rhs}"
+    known = ", ".join(map(str, frame.columns)) or "(none)"
+    for name in formula.variables:
+        if name not in frame.columns:
+            raise StopwiseInputError(
+                f"formula {text!r} reads the column {name!r}, which the new data lack; "
+                f"their columns: {known}"
+            )
+        missing = frame[name].isna().to_numpy()
+        if missing.any():
+            raise StopwiseInputError(
+                f"column {name!r} has {int(missing.sum())} missing value(s) in the new data "
+                f"(first at row {int(np.flatnonzero(missing)[0])}, counting from 0); "
+                f"formula {text!r} needs a value on every row"
+            )
+    for factor, info in formula.design_info.factor_infos.items():
+        used = _factor_columns(factor.code, frame.columns)
+        if info.type != "categorical" or len(used) != 1:
+            continue
+        levels = list(info.categories)
+        unseen = ~frame[used[0]].isin(levels).to_numpy()
+        if unseen.any():
+            first = frame[used[0]].to_numpy()[unseen][0]
+            raise StopwiseInputError(
+                f"column {used[0]!r} has the level {first!r} (first at row "
+                f"{int(np.flatnonzero(unseen)[0])}, counting from 0), which the fit never saw; "
+                f"formula {text!r} knows the levels {', '.join(map(repr, levels))}"
+            )
+    try:
+        (matrix,) = patsy.build_design_matrices(
+            [formula.design_info], frame, NA_action="raise", return_type="dataframe"
+        )
+    except patsy.PatsyError as exc:
+        raise StopwiseInputError(
+            f"formula {text!r} on the new data: {str(exc).splitlines()[0]}; their columns: {known}"
+        ) from None
+    return np.asarray(matrix, dtype=np.float64)
 
 
 def formula_variables(formulas: Sequence[str] | Mapping[str, str] | None) -> list[str]:

@@ -20,6 +20,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from stopwise.data_schemas.arrays import LotteryData, StoppingData
+from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.covariance import RowTable
 
 DISCLAIMER = (
@@ -131,12 +133,36 @@ class Fit:
 
         return dumps_json(self.to_dict())
 
-    def predict(self, data: Any = None) -> dict[str, pd.DataFrame]:
+    def predict(
+        self, data: Any = None, *, covariates: pd.DataFrame | None = None
+    ) -> dict[str, pd.DataFrame]:
         """Choice probabilities per row ("rows") and, for stopping data, the predicted
-        distribution of the step at which a trial ends per condition ("stop_steps")."""
+        distribution of the step at which a trial ends per condition ("stop_steps").
+
+        ``data``: None (the fitted rows) or new rows: a file path, a DataFrame, a loaded
+        Dataset or an array bundle. A fit with covariate formulas builds the new rows'
+        designs with the fit's levels and centring, reads the covariate columns from the
+        new frame (or from ``covariates``, a frame aligned with a bundle's rows), adds a
+        ``profile`` column and a "profiles" frame (estimation/prediction.py)."""
         if self.predictor is None:
             raise ValueError("this fit has no predictor (it was not made from a model)")
-        return self.predictor(data)
+        designs = self.extras.get("designs")
+        if not designs:
+            if data is not None and not _is_bundle(data):
+                from stopwise.estimation.prediction import resolve_new_data
+
+                data, _ = resolve_new_data(data, covariates)
+            return self.predictor(data)
+        from stopwise.estimation import prediction
+
+        layout = self.extras["layout"]
+        if data is None:
+            if covariates is not None:
+                raise StopwiseInputError("covariates= goes with new data, not the fitted rows")
+            return prediction.in_sample_profiles(self.predictor(None), layout, self.z, designs)
+        return prediction.predict_formula_fit(
+            layout.model, layout, self.z, designs, data, covariates
+        )
 
     def profile(self, name: str, level: float = 0.95) -> tuple[float, float]:
         """Profile-likelihood interval of parameter ``name`` (estimation/profile.py)."""
@@ -258,6 +284,10 @@ class FitBySubject:
 
     def __str__(self) -> str:
         return self.summary()
+
+
+def _is_bundle(data: Any) -> bool:
+    return isinstance(data, (StoppingData, LotteryData))
 
 
 def _plain(value: Any) -> Any:
