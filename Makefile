@@ -27,7 +27,7 @@ bench: $(STAMP)  ## speed against in-process baselines -> benchmarks/RESULTS.md
 
 lint: $(STAMP)
 	$(BIN)/ruff check .
-	$(BIN)/ruff format --check . || true
+	$(BIN)/ruff format --check .
 
 format: $(STAMP)
 	$(BIN)/ruff check --fix .

@@ -1,6 +1,9 @@
 """stopwise: fit models of risk preference and strategic play to stopping and lottery data.
 
-Importing the package switches JAX to 64-bit floats: every likelihood runs in float64.
+Importing the package switches JAX to 64-bit floats (every likelihood runs in float64) and
+points JAX's persistent compilation cache at a per-user folder, so that a later run of the
+same fit loads its compiled likelihood (stopwise/_compile_cache.py; ``STOPWISE_CACHE_DIR=off``
+switches it off).
 Public names are resolved lazily so that ``import stopwise`` stays fast and the command
 line starts quickly.
 """
@@ -12,7 +15,10 @@ from typing import Any
 
 import jax
 
+from stopwise._compile_cache import enable_compilation_cache
+
 jax.config.update("jax_enable_x64", True)
+enable_compilation_cache()
 
 __version__ = "0.1.0"
 

@@ -1,0 +1,84 @@
+"""A persistent on-disk cache of compiled JAX programs, so that a second run of the same fit
+(a new Python process, e.g. the next ``stopwise fit`` on the command line) loads its compiled
+likelihood instead of compiling it again.
+
+The cache is JAX's own (``jax_compilation_cache_dir``); stopwise only chooses its place:
+
+* ``STOPWISE_CACHE_DIR`` set to a path: that folder; set to ``off`` (or ``0``, ``none``, the
+  empty string): no persistent cache;
+* unset: ``$XDG_CACHE_HOME/stopwise/jax-<key>`` (default ``~/.cache/stopwise/jax-<key>``),
+  where ``<key>`` names the JAX version and the processor (model name and instruction-set
+  flags), so that a home folder shared by different machines never loads a program compiled
+  for another processor;
+* a cache directory the user configured for JAX itself (``JAX_COMPILATION_CACHE_DIR`` or
+  ``jax.config``) is left alone.
+
+Only programs that took at least ``MIN_COMPILE_SECONDS`` to compile are stored, and JAX
+evicts the least recently used entries beyond ``MAX_CACHE_BYTES``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import platform
+from collections.abc import Mapping
+from pathlib import Path
+
+import jax
+
+MIN_COMPILE_SECONDS = 0.5
+MAX_CACHE_BYTES = 1 << 30  # 1 GiB
+OFF_VALUES = ("", "0", "off", "none", "false", "no")
+
+
+def processor_fingerprint() -> str:
+    """A short hash of the processor model and its instruction-set flags (Linux), or of
+    platform.processor() and platform.machine() elsewhere."""
+    text = f"{platform.machine()} {platform.processor()}"
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8", errors="replace") as handle:
+            lines = [
+                line.strip()
+                for line in handle
+                if line.startswith(("model name", "flags", "Features", "CPU part"))
+            ]
+        text += " " + " ".join(sorted(set(lines)))
+    except OSError:
+        pass
+    return hashlib.sha256(text.encode()).hexdigest()[:12]
+
+
+def default_cache_dir(environ: Mapping[str, str]) -> Path:
+    """$XDG_CACHE_HOME (or ~/.cache) / stopwise / jax-<jax version>-<processor hash>."""
+    base = environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base) / "stopwise" / f"jax-{jax.__version__}-{processor_fingerprint()}"
+
+
+def chosen_cache_dir(environ: Mapping[str, str], jax_setting: str | None) -> Path | None:
+    """The folder the settings above choose from the environment and JAX's own setting, or
+    None for no stopwise-managed cache."""
+    if environ.get("JAX_COMPILATION_CACHE_DIR") or jax_setting:
+        return None
+    setting = environ.get("STOPWISE_CACHE_DIR")
+    if setting is not None:
+        return None if setting.strip().lower() in OFF_VALUES else Path(setting).expanduser()
+    return default_cache_dir(environ)
+
+
+def enable_compilation_cache() -> Path | None:
+    """Point JAX's persistent compilation cache at chosen_cache_dir(); returns the folder,
+    or None when no cache is set up (switched off, set by the user, or not writable)."""
+    folder = chosen_cache_dir(os.environ, jax.config.jax_compilation_cache_dir)
+    if folder is None:
+        return None
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError:
+        return None
+    if not os.access(folder, os.W_OK):
+        return None
+    jax.config.update("jax_compilation_cache_dir", str(folder))
+    jax.config.update("jax_persistent_cache_min_compile_time_secs", MIN_COMPILE_SECONDS)
+    jax.config.update("jax_compilation_cache_max_size", MAX_CACHE_BYTES)
+    return folder
