@@ -78,10 +78,29 @@ def bootstrap_estimates(
     return np.vstack(zs), np.concatenate(conv)
 
 
+def percentile_table(
+    names: list[str], scale: list[str], estimate: np.ndarray, values: np.ndarray
+) -> RowTable:
+    """Point estimates as given; se = sd of the replicated values (ddof 1); 95% interval =
+    their 2.5% and 97.5% percentiles (NaN with fewer than two replications)."""
+    if len(values) < 2:
+        nan = np.full(len(estimate), np.nan)
+        return RowTable(list(names), estimate, nan, nan.copy(), nan.copy(), list(scale))
+    return RowTable(
+        list(names),
+        estimate,
+        values.std(axis=0, ddof=1),
+        np.percentile(values, 2.5, axis=0),
+        np.percentile(values, 97.5, axis=0),
+        list(scale),
+    )
+
+
 def bootstrap_table(
     problem: Problem, z_hat: np.ndarray, reps: int, seed: int, progress: bool = True
 ) -> tuple[RowTable, dict[str, Any], list[str]]:
-    """Point estimates from z_hat; se = sd of replicated estimates; percentile intervals."""
+    """Point estimates from z_hat; se = sd of replicated estimates; percentile intervals.
+    ``info["z"]`` keeps the converged replications' coefficients (reps_ok x k)."""
     warnings: list[str] = []
     if problem.n_clusters < 2:
         raise ValueError("the subject bootstrap needs at least two subjects")
@@ -95,29 +114,14 @@ def bootstrap_table(
         )
     if problem.n_clusters < 30:
         warnings.append(f"only {problem.n_clusters} subjects: bootstrap intervals are rough")
-    if n_ok < 2:
-        nan = np.full(len(est), np.nan)
-        table = RowTable(
-            [r.name for r in problem.reported],
-            est,
-            nan,
-            nan.copy(),
-            nan.copy(),
-            [r.scale for r in problem.reported],
-        )
-    else:
-        table = RowTable(
-            [r.name for r in problem.reported],
-            est,
-            values.std(axis=0, ddof=1),
-            np.percentile(values, 2.5, axis=0),
-            np.percentile(values, 97.5, axis=0),
-            [r.scale for r in problem.reported],
-        )
+    table = percentile_table(
+        [r.name for r in problem.reported], [r.scale for r in problem.reported], est, values
+    )
     info = {
         "replications": reps,
         "converged": n_ok,
         "seed": seed,
         "parallelism": "jax.vmap over replications (XLA multithreaded)",
+        "z": z_b[ok],
     }
     return table, info, warnings

@@ -9,6 +9,14 @@ subject's posterior type probabilities are  P(k | g) = pi_k exp(L_gk) / sum_j pi
 (computed in log space). Types of one model are ordered by their first parameter so that
 labels are comparable across runs. Rows of the likelihood are subjects, so the sandwich and
 the bootstrap cluster by subject automatically.
+
+Shares get delta-method standard errors (d pi / d eta = diag(pi) - pi pi') or, with
+se="bootstrap", the spread of the shares over subject-level bootstrap replications with
+percentile intervals. Label switching in the bootstrap is undone by one stated rule: each
+replication's types are matched to the full-sample types by the assignment that minimises
+the summed squared distance of their coefficient vectors on the unconstrained scale
+(Hungarian algorithm, scipy.optimize.linear_sum_assignment); types of different models are
+never matched to each other.
 """
 
 from __future__ import annotations
@@ -23,6 +31,7 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 from scipy import stats
+from scipy.optimize import linear_sum_assignment
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.covariance import RowTable
@@ -36,6 +45,7 @@ from stopwise.estimation.problem import (
     natural_np,
     pad_rows,
     padded_size,
+    report_values,
     reported_rows,
     start_vector,
     subject_index,
@@ -92,12 +102,17 @@ def mixture_starts(layouts: Sequence[Layout], n_starts: int, seed: int) -> np.nd
     return start_design(base, n_starts, seed, spread=1.5)
 
 
+def shares_of(z: np.ndarray, n_model: int) -> np.ndarray:
+    """pi = softmax(0, eta_2, ..., eta_K) from the trailing coefficients (log space)."""
+    eta = np.concatenate([[0.0], np.asarray(z)[n_model:]])
+    return np.exp(eta - np.logaddexp.reduce(eta))
+
+
 def _share_rows(
     z: np.ndarray, cov: np.ndarray | None, n_model: int, k_types: int
 ) -> tuple[np.ndarray, np.ndarray]:
     """Shares pi = softmax(0, eta) and delta-method SEs: J = d pi / d eta."""
-    eta = np.concatenate([[0.0], z[n_model:]])
-    pi = np.exp(eta - np.logaddexp.reduce(eta))
+    pi = shares_of(z, n_model)
     if cov is None:
         return pi, np.full(k_types, np.nan)
     jac = (np.diag(pi) - np.outer(pi, pi))[:, 1:]  # d pi_k / d eta_j, j = 2..K
@@ -114,9 +129,13 @@ def fit_mixture(
     starts: int = 8,
     seed: int = 0,
     max_iter: int = 300,
+    bootstrap_reps: int = 200,
+    progress: bool = False,
 ) -> Fit:
     """Mixture of ``k`` types of one model, or of the given list of models (module
-    docstring). The Fit's ``extras["posterior"]`` holds each subject's type probabilities."""
+    docstring). The Fit's ``extras["posterior"]`` holds each subject's type probabilities.
+    ``se``: "auto", "robust", "hessian", "bootstrap" (``bootstrap_reps`` subject-level
+    replications, shares included) or None."""
     model_list = list(models) if isinstance(models, (list, tuple)) else [models] * int(k or 2)
     if len(model_list) < 2:
         raise StopwiseInputError("a mixture needs at least two types")
@@ -154,19 +173,23 @@ def fit_mixture(
         if same_model
         else "mixture of " + " | ".join(m.name for m in model_list)
     )
+    analytic_se = None if se == "bootstrap" else se
     fit = run_fit(
         problem,
         name,
         g,
-        se=se,
+        se=analytic_se,
         starts=mixture_starts(layouts, starts, seed),
         seed=seed,
         max_iter=max_iter,
         progress=False,
     )
     if same_model:
-        fit = _order_types(fit, problem, rows, se)
-    _add_shares(fit, problem, n_model, len(layouts), se)
+        fit = _order_types(fit, problem, rows, analytic_se)
+    if se == "bootstrap":
+        _bootstrap_with_shares(fit, problem, rows, bootstrap_reps, progress)
+    else:
+        _add_shares(fit, n_model, len(layouts))
     comps = np.asarray(_components(rows, jnp.asarray(fit.z), problem.args))
     post = np.exp(comps - np.logaddexp.reduce(comps, axis=1, keepdims=True))
     labels = subject_labels(data)
@@ -201,7 +224,8 @@ def _order_types(fit: Fit, problem: Problem, rows: MixtureRows, se: str | None) 
     )
 
 
-def _add_shares(fit: Fit, problem: Problem, n_model: int, k_types: int, se: str | None) -> None:
+def _add_shares(fit: Fit, n_model: int, k_types: int) -> None:
+    """Append the shares with delta-method SEs and Wald intervals clipped to [0, 1]."""
     pi, se_pi = _share_rows(fit.z, fit.cov_z, n_model, k_types)
     q = stats.norm.ppf(0.975)
     t = fit.table
@@ -213,5 +237,63 @@ def _add_shares(fit: Fit, problem: Problem, n_model: int, k_types: int, se: str 
         np.concatenate([t.ci_high, np.clip(pi + q * se_pi, 0.0, 1.0)]),
         t.scale + ["natural"] * k_types,
     )
-    if se == "bootstrap":
-        fit.notes.append("type shares carry delta-method (not bootstrap) uncertainty: NaN here")
+
+
+def match_types(z: np.ndarray, z_ref: np.ndarray, rows: MixtureRows) -> np.ndarray:
+    """Order of z's types that best matches the reference types: the permutation p
+    minimising sum_k |block_{p(k)}(z) - block_k(z_ref)|^2 (unconstrained coefficients;
+    types of different models cost 1e12, so they are never swapped)."""
+    k_types = len(rows.layouts)
+    cost = np.empty((k_types, k_types))
+    for k, (lay_k, off_k) in enumerate(zip(rows.layouts, rows.offsets)):
+        for j, (lay_j, off_j) in enumerate(zip(rows.layouts, rows.offsets)):
+            if lay_k.model is not lay_j.model or lay_k.free != lay_j.free:
+                cost[k, j] = 1e12
+                continue
+            diff = z[off_j : off_j + lay_j.size] - z_ref[off_k : off_k + lay_k.size]
+            cost[k, j] = float(diff @ diff)
+    _, order = linear_sum_assignment(cost)
+    return np.asarray(order)
+
+
+def relabel(z: np.ndarray, order: np.ndarray, rows: MixtureRows) -> np.ndarray:
+    """Coefficients with type k taken from type order[k] of z (shares follow their type:
+    eta' = eta[order] - eta[order[0]], so pi' = pi[order])."""
+    blocks = [z[off : off + lay.size] for lay, off in zip(rows.layouts, rows.offsets)]
+    eta = np.concatenate([[0.0], z[rows.n_model_coef :]])[order]
+    return np.concatenate([blocks[i] for i in order] + [eta[1:] - eta[0]])
+
+
+def _bootstrap_with_shares(
+    fit: Fit, problem: Problem, rows: MixtureRows, reps: int, progress: bool
+) -> None:
+    """Subject-level bootstrap of every reported row and every share, replications relabelled
+    to the full-sample types first (module docstring); percentile intervals."""
+    from stopwise.estimation.bootstrap import bootstrap_table, percentile_table
+
+    _, info, warnings = bootstrap_table(problem, fit.z, reps, fit.seed, progress)
+    orders = [match_types(z, fit.z, rows) for z in info["z"]]
+    z_b = np.array([relabel(z, o, rows) for z, o in zip(info["z"], orders)])
+    n_switched = sum(1 for o in orders if np.any(o != np.arange(len(o))))
+    n_model, k_types = rows.n_model_coef, len(rows.layouts)
+
+    def reported_with_shares(z: np.ndarray) -> np.ndarray:
+        return np.concatenate([report_values(problem.reported, z), shares_of(z, n_model)])
+
+    values = np.array([reported_with_shares(z) for z in z_b]).reshape(len(z_b), -1)
+    fit.table = percentile_table(
+        [r.name for r in problem.reported] + [f"share:type{j + 1}" for j in range(k_types)],
+        [r.scale for r in problem.reported] + ["natural"] * k_types,
+        reported_with_shares(fit.z),
+        values,
+    )
+    fit.se_method = "bootstrap"
+    fit.clusters = problem.n_clusters
+    fit.warnings += warnings
+    fit.extras["bootstrap"] = {**info, "z": z_b, "relabelled": n_switched}
+    fit.notes.append(
+        f"subject-level bootstrap: {info['replications']} replications "
+        f"({info['converged']} converged), percentile 95% intervals for parameters and "
+        f"shares; {n_switched} replications had their types relabelled to match the "
+        "full-sample types (closest coefficient vectors)"
+    )
