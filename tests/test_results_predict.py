@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 
-import stopwise  # noqa: F401  (enables float64 before jax is used)
+import stopwise  # enables float64 before jax is used
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.mle import fit_mle, stop_step_table
@@ -157,3 +157,47 @@ def test_bundle_with_covariate_frame_and_pooled_fit_on_a_frame(fitted) -> None:
     a, b = pooled.predict(new), pooled.predict(to_stopping_data(new))
     pd.testing.assert_frame_equal(a["stop_steps"], b["stop_steps"])
     assert "profiles" not in a
+
+
+def lottery_frame(subjects: int, seed: int) -> pd.DataFrame:
+    """Invented choices on a ten-row list with a two-level group column (the list's payoffs
+    are those of Holt & Laury 2002, Table 1, from memory; a design only, not a check)."""
+    chance = np.tile(np.arange(1, 11) / 10, subjects)
+    design = pd.DataFrame(
+        {
+            "subject": np.repeat([f"p{i:03d}" for i in range(subjects)], 10),
+            "item": np.tile(np.arange(10), subjects),
+            "a_x1": 2.0,
+            "a_p1": chance,
+            "a_x2": 1.6,
+            "a_p2": 1 - chance,
+            "b_x1": 3.85,
+            "b_p1": chance,
+            "b_x2": 0.1,
+            "b_p2": 1 - chance,
+        }
+    )
+    frame = stopwise.simulate("crra+logit", {"r": 0.5, "precision": 8.0}, design, seed=seed)
+    frame["group"] = np.where(np.arange(len(frame)) // 10 % 2 == 0, "x", "y")
+    return frame
+
+
+def test_lottery_formula_fit_predicts_per_profile() -> None:
+    frame = lottery_frame(40, 2)
+    model = build_model("crra+logit")
+    data = stopwise.load(frame)
+    fit = fit_mle(
+        model, data.arrays(), formulas=["r ~ 1 + group"], covariate_frame=data.frame, se=None
+    )
+    inside, again = fit.predict(), fit.predict(frame)
+    assert set(inside) == {"rows", "profiles"}
+    for key in inside:
+        pd.testing.assert_frame_equal(inside[key], again[key], check_dtype=False, rtol=1e-10)
+    new = lottery_frame(3, 7).assign(group="y")
+    out = fit.predict(new)
+    est, spec = fit.params["estimate"], model.spec("r")
+    r_y = float(spec.to_natural(spec.to_unconstrained(est["r"]) + est["r:group[T.y]"]))
+    theta = {"r": r_y, "precision": float(est["precision"])}
+    assert out["profiles"]["r"].tolist() == pytest.approx([r_y], rel=1e-12)
+    expected = np.asarray(model.predict(theta, stopwise.load(new).arrays()))
+    np.testing.assert_allclose(out["rows"]["p_choose_b"], expected, rtol=1e-12)
