@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from stopwise.commands import _args
 from stopwise.commands.fit import emit
 from stopwise.data_schemas.errors import StopwiseInputError
 
@@ -18,7 +19,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "score by subject-level k-fold cross-validation, likelihood-ratio tests for nested "
         "specs and Vuong / Clarke tests for non-nested ones (--method bayes: PSIS-LOO).",
     )
-    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file")
+    _args.add_data(parser)
     parser.add_argument(
         "--model",
         action="append",
@@ -26,12 +27,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         metavar="SPEC",
         help="a model spec (give at least two)",
     )
-    parser.add_argument(
-        "--method",
-        choices=("mle", "bayes"),
-        default="mle",
-        help="maximum likelihood (default) or Bayes",
-    )
+    _args.add_method(parser, "Bayes")
     parser.add_argument(
         "--cv-folds",
         type=int,
@@ -39,38 +35,16 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         metavar="K",
         help="subject-level cross-validation folds (0 to skip; default 5)",
     )
-    parser.add_argument(
-        "--se",
-        choices=("hessian", "robust", "none"),
-        default=None,
-        help="standard errors of each fit (default: clustered sandwich)",
+    _args.add_se(
+        parser,
+        ("hessian", "robust", "none"),
+        "standard errors of each fit (default: clustered sandwich)",
     )
-    parser.add_argument(
-        "--max-target",
-        type=int,
-        default=None,
-        metavar="M",
-        help="cap on the targets a contest model considers",
-    )
-    parser.add_argument("--chains", type=int, default=4, metavar="C", help="Bayes: chains")
-    parser.add_argument(
-        "--draws", type=int, default=1000, metavar="D", help="Bayes: draws per chain"
-    )
-    parser.add_argument(
-        "--warmup", type=int, default=1000, metavar="W", help="Bayes: warm-up iterations per chain"
-    )
-    parser.add_argument(
-        "--hierarchical",
-        action="store_true",
-        help="Bayes: subject-level parameters with population hyperpriors",
-    )
-    parser.add_argument("--seed", type=int, default=0, metavar="S", help="random seed")
-    parser.add_argument(
-        "--json",
-        metavar="FILE",
-        default=None,
-        help="write the comparison as JSON to FILE ('-' for stdout)",
-    )
+    _args.add_max_target(parser)
+    _args.add_sampler(parser)
+    _args.add_hierarchical(parser)
+    _args.add_seed(parser, "random seed")
+    _args.add_json_file(parser, "the comparison")
     parser.set_defaults(func=run)
     return parser
 
@@ -95,7 +69,7 @@ def run(args: argparse.Namespace) -> int:
     else:
         if args.cv_folds < 0 or args.cv_folds == 1:
             raise StopwiseInputError("--cv-folds must be 0 (skip) or at least 2")
-        se = {"none": None, None: "auto"}.get(args.se, args.se)
+        se = _args.se_choice(args.se)
         result = compare(
             args.model,
             args.data,

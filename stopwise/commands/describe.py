@@ -6,6 +6,7 @@ import argparse
 from typing import Any
 
 from stopwise._io import write_json
+from stopwise.commands import _args
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
@@ -17,18 +18,9 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "optimal target with its expected bank. Lottery data: choice shares per item and "
         "switching per subject.",
     )
-    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file")
-    parser.add_argument(
-        "--json",
-        metavar="FILE",
-        default=None,
-        help="also write the tables as JSON to FILE ('-' for stdout)",
-    )
-    parser.add_argument(
-        "--allow-censored",
-        action="store_true",
-        help="accept trials that end without a stop or a bust (censored)",
-    )
+    _args.add_data(parser)
+    _args.add_json_file(parser, help_text="also write the tables as JSON to FILE ('-' for stdout)")
+    _args.add_allow_censored(parser)
     parser.set_defaults(func=run)
     return parser
 

@@ -6,6 +6,7 @@ import argparse
 from typing import Any
 
 from stopwise._io import write_json
+from stopwise.commands import _args
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
@@ -71,20 +72,12 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         metavar="R",
         help="CRRA curvature of utility over money (r < 1; default linear)",
     )
-    parser.add_argument(
-        "--max-target",
-        type=int,
-        default=None,
-        metavar="M",
-        help="largest target considered (default: smallest M with "
+    _args.add_max_target(
+        parser,
+        "largest target considered (default: smallest M with "
         "p^M <= 1e-12, beyond which no target matters)",
     )
-    parser.add_argument(
-        "--json",
-        metavar="FILE",
-        default=None,
-        help="write the result as JSON to FILE ('-' for stdout)",
-    )
+    _args.add_json_file(parser)
     parser.set_defaults(func=run)
     return parser
 

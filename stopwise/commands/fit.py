@@ -7,6 +7,7 @@ import sys
 from typing import Any
 
 from stopwise._io import write_json
+from stopwise.commands import _args
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -19,30 +20,24 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "intervals, log-likelihood, AIC, BIC and convergence. Results are research "
         "estimates, not a basis for individual financial, clinical or hiring decisions.",
     )
-    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file")
+    _args.add_data(parser)
     parser.add_argument(
         "--model",
         required=True,
         metavar="SPEC",
         help="model spec, parts joined by '+', e.g. crra+planner+logit",
     )
-    parser.add_argument(
-        "--method",
-        choices=("mle", "bayes"),
-        default="mle",
-        help="maximum likelihood (default) or Bayesian posterior sampling",
-    )
+    _args.add_method(parser, "Bayesian posterior sampling")
     parser.add_argument(
         "--by",
         choices=("subject",),
         default=None,
         help="one fit per subject (maximum likelihood only)",
     )
-    parser.add_argument(
-        "--se",
-        choices=("hessian", "robust", "bootstrap", "none"),
-        default=None,
-        help="standard errors: subject-clustered sandwich (default with "
+    _args.add_se(
+        parser,
+        ("hessian", "robust", "bootstrap", "none"),
+        "standard errors: subject-clustered sandwich (default with "
         "several subjects), inverse Hessian, subject bootstrap, or none",
     )
     parser.add_argument(
@@ -78,35 +73,12 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="also report the 95%% profile-likelihood interval of parameter NAME "
         "(repeatable; pooled maximum likelihood only)",
     )
-    parser.add_argument(
-        "--max-target",
-        type=int,
-        default=None,
-        metavar="M",
-        help="cap on the targets a contest model considers",
-    )
-    parser.add_argument(
-        "--hierarchical",
-        action="store_true",
-        help="Bayes: subject-level parameters with population hyperpriors",
-    )
-    parser.add_argument("--chains", type=int, default=4, metavar="C", help="Bayes: chains")
-    parser.add_argument(
-        "--draws", type=int, default=1000, metavar="D", help="Bayes: draws per chain"
-    )
-    parser.add_argument(
-        "--warmup", type=int, default=1000, metavar="W", help="Bayes: warm-up iterations per chain"
-    )
-    parser.add_argument(
-        "--seed", type=int, default=0, metavar="S", help="random seed (starts, bootstrap, sampler)"
-    )
+    _args.add_max_target(parser)
+    _args.add_hierarchical(parser)
+    _args.add_sampler(parser)
+    _args.add_seed(parser, "random seed (starts, bootstrap, sampler)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
-    parser.add_argument(
-        "--json",
-        metavar="FILE",
-        default=None,
-        help="write the result as JSON to FILE ('-' for stdout)",
-    )
+    _args.add_json_file(parser)
     parser.set_defaults(func=run)
     return parser
 
@@ -152,7 +124,7 @@ def emit(result: Any, json_path: str | None) -> None:
 def run(args: argparse.Namespace) -> int:
     from stopwise.api import fit
 
-    se = {"none": None, None: "auto"}.get(args.se, args.se)
+    se = _args.se_choice(args.se)
     if args.method == "bayes":
         if args.by or args.se or args.fix:
             raise StopwiseInputError("--by, --se and --fix apply to --method mle only")

@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from stopwise._io import write_table
+from stopwise.commands import _args
 from stopwise.data_schemas.errors import StopwiseInputError
 
 PRICE_LIST_PAYOFFS = {"a_high": 2.00, "a_low": 1.60, "b_high": 3.85, "b_low": 0.10}
@@ -49,14 +50,10 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     parser.add_argument(
         "--bust-keep", type=float, default=0.0, help="share of the bank kept on a bust"
     )
-    parser.add_argument(
-        "--max-target",
-        type=int,
-        default=None,
-        metavar="M",
-        help="a task cap on the number of draws (default: none; see the model docs)",
+    _args.add_max_target(
+        parser, "a task cap on the number of draws (default: none; see the model docs)"
     )
-    parser.add_argument("--seed", type=int, default=0, metavar="S", help="default 0")
+    _args.add_seed(parser, "default 0")
     parser.add_argument("--out", required=True, metavar="FILE", help=".csv or .parquet")
     parser.set_defaults(func=run)
     return parser

@@ -11,6 +11,7 @@ import sys
 from typing import Any
 
 from stopwise._io import write_json
+from stopwise.commands import _args
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
@@ -21,13 +22,9 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "and report every problem at once, each with file, line, column, the value found "
         "and what was expected. Exit code 0 when clean, 2 when not.",
     )
-    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file")
+    _args.add_data(parser)
     parser.add_argument("--json", action="store_true", help="print the report as JSON on stdout")
-    parser.add_argument(
-        "--allow-censored",
-        action="store_true",
-        help="accept trials that end without a stop or a bust (censored)",
-    )
+    _args.add_allow_censored(parser)
     parser.add_argument(
         "--kind",
         choices=("stopping", "lottery", "decisions", "trials"),
