@@ -3,7 +3,9 @@
 1. Pooled crra+planner+logit with subject-clustered SEs on demo-like data (120 subjects x 60
    trials, simulated), end to end including JIT compilation, against the same likelihood
    fitted through statsmodels' GenericLikelihoodModel with numerical derivatives (BFGS,
-   numerical Hessian, clustered covariance) in the same process; estimates must agree to 1e-4.
+   numerical Hessian, clustered covariance) in the same process, once on our compiled JAX
+   likelihood and once on a plain numpy one; estimates must agree to 1e-4. Each run is a
+   fresh process: with an empty persistent compilation cache, then with the filled one.
 2. Per-subject fits of 1,000 simulated subjects with the vmapped Newton method (including
    compilation), against a Python loop of scipy trust-exact fits, one subject at a time,
    timed on 20 subjects and scaled to 1,000. Both sides include their compilation.
@@ -11,7 +13,14 @@
 
 from __future__ import annotations
 
+import json
+import os
+import subprocess
+import sys
+import tempfile
 import time
+import warnings
+from pathlib import Path
 
 import jax
 import jax.numpy as jnp
@@ -19,12 +28,20 @@ import numpy as np
 
 import stopwise  # noqa: F401  (float64)
 from benchmarks._common import machine
+from benchmarks.bench_loglik import numpy_rows_loglik
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation.by_subject import fit_by_subject
 from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.problem import PooledRows, make_layout, rows_loglik, start_vector
+from stopwise.estimation.problem import (
+    PooledRows,
+    make_layout,
+    natural_np,
+    rows_loglik,
+    start_vector,
+)
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
+from stopwise.models.stopping import Caps
 
 TRUTH = {"r": 0.4, "precision": 2.0}
 
@@ -50,24 +67,19 @@ def ours_pooled(model, data, cold: bool = True):
     return fit, time.perf_counter() - t0
 
 
-def statsmodels_pooled(model, data, cold: bool = True):
-    """GenericLikelihoodModel on the same unconstrained parametrisation, numerical derivatives."""
+def fit_generic(loglikeobs, data, start: np.ndarray):
+    """statsmodels GenericLikelihoodModel with the given per-row log-likelihood of the
+    unconstrained parameters: BFGS with numerical gradients, numerical Hessian, covariance
+    clustered by subject."""
     from statsmodels.base.model import GenericLikelihoodModel
-
-    layout = make_layout(model)
-    rows = PooledRows(layout)
 
     class Pooled(GenericLikelihoodModel):
         def loglikeobs(self, params):
-            return np.asarray(rows_loglik(rows, jnp.asarray(params), data))
+            return loglikeobs(params)
 
     n = data.n_obs
-    endog = np.asarray(data.draw)
-    if cold:
-        jax.clear_caches()
-    t0 = time.perf_counter()
-    res = Pooled(endog, np.ones((n, 1))).fit(
-        start_params=start_vector(layout),
+    return Pooled(np.asarray(data.draw), np.ones((n, 1))).fit(
+        start_params=start,
         method="bfgs",
         maxiter=500,
         disp=0,
@@ -75,7 +87,76 @@ def statsmodels_pooled(model, data, cold: bool = True):
         cov_type="cluster",
         cov_kwds={"groups": np.asarray(data.subject)},
     )
+
+
+def statsmodels_pooled(model, data, cold: bool = True):
+    """Baseline 1: the same compiled JAX per-row log-likelihood (its compilation timed)."""
+    layout = make_layout(model)
+    rows = PooledRows(layout)
+    if cold:
+        jax.clear_caches()
+    t0 = time.perf_counter()
+    res = fit_generic(
+        lambda z: np.asarray(rows_loglik(rows, jnp.asarray(z), data)), data, start_vector(layout)
+    )
     return res, time.perf_counter() - t0
+
+
+def numpy_pooled(model, data):
+    """Baseline 2: a plain numpy implementation of the same likelihood (benchmarks/
+    bench_loglik.py, same planner cap), as a researcher would write it without stopwise."""
+    layout = make_layout(model)
+    specs = layout.specs()
+    cap = Caps(max_p_survive=MODEL_OPTIONS["max_p_survive"]).planner_cap(data.horizon)
+
+    def loglikeobs(z: np.ndarray) -> np.ndarray:
+        theta = {spec.name: float(natural_np(spec, z[i])) for i, spec in enumerate(specs)}
+        return numpy_rows_loglik(theta, data, cap)
+
+    t0 = time.perf_counter()
+    res = fit_generic(loglikeobs, data, start_vector(layout))
+    return res, time.perf_counter() - t0
+
+
+def pooled_worker() -> dict:
+    """One process: ours cold (whatever the compilation cache holds), ours again, then both
+    baselines; seconds, estimates and their agreement."""
+    model, data = simulated(120, 60, 1)
+    fit, t_ours = ours_pooled(model, data, cold=False)
+    _, t_ours_warm = ours_pooled(model, data, cold=False)
+    res_jax, t_sm = statsmodels_pooled(model, data)
+    res_np, t_np = numpy_pooled(model, data)
+    return {
+        "n_obs": data.n_obs,
+        "n_subjects": data.n_subjects,
+        "ours": t_ours,
+        "ours_in_process": t_ours_warm,
+        "sm_jax": t_sm,
+        "sm_numpy": t_np,
+        "diff_jax": float(np.max(np.abs(fit.z - np.asarray(res_jax.params)))),
+        "diff_numpy": float(np.max(np.abs(fit.z - np.asarray(res_np.params)))),
+        "se_ratio_numpy": float(
+            np.max(np.abs(np.sqrt(np.diag(fit.cov_z)) / np.asarray(res_np.bse) - 1))
+        ),
+        "r": float(fit.params.loc["r", "estimate"]),
+        "precision": float(fit.params.loc["precision", "estimate"]),
+        "se": [float(x) for x in fit.params["se"]],
+    }
+
+
+def pooled_in_fresh_process(cache_dir: str) -> dict:
+    """pooled_worker() in a new Python process whose compilation cache is ``cache_dir``."""
+    env = dict(os.environ, STOPWISE_CACHE_DIR=cache_dir)
+    env.pop("JAX_COMPILATION_CACHE_DIR", None)
+    out = subprocess.run(
+        [sys.executable, "-m", "benchmarks.bench_fit", "--pooled-worker"],
+        env=env,
+        capture_output=True,
+        text=True,
+        check=True,
+        cwd=Path(__file__).parent.parent,
+    )
+    return json.loads(out.stdout.strip().splitlines()[-1])
 
 
 def ours_by_subject(model, data):
@@ -98,36 +179,49 @@ def loop_by_subject(model, data, n: int):
 
 
 def main() -> str:
-    model, data = simulated(120, 60, 1)
-    fit, t_ours = ours_pooled(model, data)
-    _, t_ours_warm = ours_pooled(model, data, cold=False)
-    res, t_sm = statsmodels_pooled(model, data)
-    _, t_sm_warm = statsmodels_pooled(model, data, cold=False)
-    z_sm = np.asarray(res.params)
-    diff = float(np.max(np.abs(fit.z - z_sm)))
-    se_ours = fit.params["se"].to_numpy()
+    with tempfile.TemporaryDirectory(prefix="stopwise-bench-cache-") as cache_dir:
+        cold = pooled_in_fresh_process(cache_dir)  # empty cache: compiles and stores
+        warm = pooled_in_fresh_process(cache_dir)  # a later run: loads the compiled programs
+    model = build_model("crra+planner+logit", **MODEL_OPTIONS)
+
     lines = [
         "## Maximum-likelihood fitting (bench_fit)",
         "",
         f"Pooled `crra+planner+logit` (option max_p_survive=0.9, the design's largest "
-        f"survival chance), {data.n_subjects} subjects x 60 trials ({data.n_obs} decisions), "
-        "clustered SEs, end to end including compilation. The baseline evaluates the same "
-        "compiled JAX log-likelihood (its compilation included) and differentiates it "
-        "numerically.",
+        f"survival chance), {cold['n_subjects']} subjects x 60 trials ({cold['n_obs']} "
+        "decisions), subject-clustered SEs, 3 starts, timed from the call of `fit_mle` "
+        "(imports and data excluded). Each column pair ran in one fresh process: first with "
+        "an empty compilation cache (a true cold start), then again in a new process with "
+        "the cache the first one filled (a later run of the same fit). Baselines in the same "
+        "processes: statsmodels `GenericLikelihoodModel` (BFGS, numerical gradients and "
+        "Hessian, clustered covariance) on (a) the same compiled JAX per-row likelihood "
+        "(its compilation timed) and (b) a plain numpy implementation of the same "
+        "likelihood (bench_loglik.py, same planner cap). Ratio = baseline / stopwise "
+        "(above 1: stopwise faster).",
         "",
-        "| run | seconds | ratio |",
-        "|---|---|---|",
-        f"| stopwise (trust-exact, exact JAX derivatives, 3 starts) | {t_ours:.2f} | 1 |",
-        f"| statsmodels GenericLikelihoodModel (BFGS, numerical derivatives) | {t_sm:.2f} | "
-        f"{t_sm / t_ours:.2f}x the time of stopwise |",
-        f"| stopwise, already compiled (second fit in the process) | {t_ours_warm:.2f} | 1 |",
-        f"| statsmodels baseline, likelihood already compiled | {t_sm_warm:.2f} | "
-        f"{t_sm_warm / t_ours_warm:.1f}x the time of stopwise |",
+        "| run | stopwise (s) | baseline (a): JAX likelihood | baseline (b): numpy likelihood |",
+        "|---|---|---|---|",
+    ]
+    for label, res in (("fresh process, empty cache", cold), ("fresh process, cache filled", warm)):
+        lines.append(
+            f"| {label} | {res['ours']:.2f} | {res['sm_jax']:.2f} s "
+            f"({res['sm_jax'] / res['ours']:.2f}x) | {res['sm_numpy']:.2f} s "
+            f"({res['sm_numpy'] / res['ours']:.2f}x) |"
+        )
+    lines += [
+        f"| second fit in the same process | {cold['ours_in_process']:.2f} | | |",
         "",
-        f"Largest difference of the unconstrained estimates: {diff:.2e} (goal < 1e-4). "
-        f"Estimates r = {fit.params.loc['r', 'estimate']:.4f}, precision = "
-        f"{fit.params.loc['precision', 'estimate']:.4f}; clustered SEs {se_ours.round(4)}. "
-        f"Goals: <= 5 s and >= 20x faster than the baseline.",
+        f"Agreement: largest difference of the unconstrained estimates {cold['diff_jax']:.1e} "
+        f"(a) and {cold['diff_numpy']:.1e} (b) (goal < 1e-4); clustered SEs differ from "
+        f"baseline (b)'s by at most {100 * cold['se_ratio_numpy']:.2f}%. Estimates r = "
+        f"{cold['r']:.4f}, precision = {cold['precision']:.4f}; SEs "
+        f"{np.round(cold['se'], 4).tolist()}.",
+        f"Goals: <= 5 s end to end ({'met' if cold['ours'] <= 5 else 'missed'} cold: "
+        f"{cold['ours']:.2f} s) and >= 20x faster than the baseline (missed: the best "
+        f"ratio is {max(warm['sm_numpy'], warm['sm_jax']) / warm['ours']:.1f}x). With two "
+        "parameters the numerical-derivative baseline needs few likelihood evaluations, "
+        "and a cold stopwise fit is dominated by compiling the exact second derivatives "
+        "(about 1 s of the time above).",
     ]
     _, big = simulated(1000, 60, 2)
     result, t_vmap = ours_by_subject(model, big)
@@ -151,4 +245,9 @@ def main() -> str:
 
 
 if __name__ == "__main__":
-    print(main())
+    if sys.argv[1:] == ["--pooled-worker"]:
+        with warnings.catch_warnings(), np.errstate(divide="ignore"):
+            warnings.simplefilter("ignore")  # statsmodels' df notes for a generic model
+            print(json.dumps(pooled_worker()))
+    else:
+        print(main())

@@ -47,8 +47,9 @@ def _crra(x: np.ndarray, r: float) -> np.ndarray:
     return np.expm1((1 - r) * np.log(x)) / (1 - r)
 
 
-def numpy_loglik(theta: dict[str, float], data, cap: int) -> float:
-    """Sum of per-row log-likelihoods, computed the straightforward way."""
+def numpy_rows_loglik(theta: dict[str, float], data, cap: int) -> np.ndarray:
+    """Per-row log-likelihoods, computed the straightforward way: the planner's backward
+    induction over steps (vectorised over conditions), then a gather over rows."""
     r, precision = theta["r"], theta["precision"]
     p = np.asarray(data.cond_p_survive)
     g, s0, k = (np.asarray(a) for a in (data.cond_gain, data.cond_start, data.cond_bust_keep))
@@ -64,8 +65,12 @@ def numpy_loglik(theta: dict[str, float], data, cap: int) -> float:
         log_stop[:, s] = special.log_expit(-precision * diff)
         value = u_bank + np.exp(log_draw[:, s]) * diff
     cond, step, draw = np.asarray(data.cond), np.asarray(data.step), np.asarray(data.draw)
-    rows = np.where(draw > 0.5, log_draw[cond, step], log_stop[cond, step])
-    return float(rows.sum())
+    return np.where(draw > 0.5, log_draw[cond, step], log_stop[cond, step])
+
+
+def numpy_loglik(theta: dict[str, float], data, cap: int) -> float:
+    """Sum of the per-row log-likelihoods."""
+    return float(numpy_rows_loglik(theta, data, cap).sum())
 
 
 def numpy_value_and_gradient(theta: dict[str, float], data, cap: int) -> tuple[float, dict]:

@@ -4,8 +4,13 @@ benchmarks/RESULTS.md. Usage: ``python -m benchmarks.run [name ...]``."""
 from __future__ import annotations
 
 import importlib
+import os
 import sys
 from pathlib import Path
+
+# Benchmarks time cold starts: no persistent compilation cache unless a benchmark sets one up
+# itself for a run it labels as such (bench_fit's fresh processes). Set before stopwise loads.
+os.environ["STOPWISE_CACHE_DIR"] = "off"
 
 from benchmarks._common import write_section
 
