@@ -4,9 +4,12 @@ Rows are grouped in cells (estimation/cells.py) that share one parameter vector;
 model's parameters on their unconstrained scale z (x = ParamSpec.to_natural(z)):
 
   pooled:        z_k[c] = X_k[c] @ b_k
-  hierarchical:  z_k[c] = X_k[c] @ b_k + u[s(c), k],   u_s = diag(sd) L eta_s,
-                 eta_s ~ Normal(0, I)  (non-centred),  L L^T = Omega ~ LKJ(2),
-                 sd_k ~ HalfNormal(1)
+  hierarchical:  z_k[c] = X_k[c] @ b_k + u[s(c), k],   u_s ~ MVN(0, diag(sd) Omega diag(sd)),
+                 L L^T = Omega ~ LKJ(2),  sd_k ~ HalfNormal(1), sampled either
+                 centred:      a_s = mu + u_s ~ MVN(mu, diag(sd) Omega diag(sd))  (site z_subject)
+                 non-centred:  u_s = diag(sd) L eta_s,  eta_s ~ Normal(0, I)     (site eta)
+                 with mu_k the intercept of b_k (0 for a parameter without intercept); the
+                 choice follows the rule in estimation/bayes_start.py (``parametrisation``)
 
 where X_k is the patsy design of the formula ``k ~ rhs`` (a column of ones without one), s(c)
 the subject of cell c, and the intercept of b_k carries the parameter's natural-scale prior
@@ -20,6 +23,10 @@ where the rows of a cell are its *distinct* rows (rows equal in every field the 
 and w[c, i] counts the data rows each stands for (0 on padding). Aggregation is checked at the
 start values against the plain row sum and dropped if it does not reproduce it; contest
 models are never aggregated.
+
+Hierarchical fits start near per-subject ML estimates (estimation/bayes_start.py) and use a
+dense mass matrix for the population sites (intercepts, effects, sd_z, L_corr; ``dense_mass``)
+and a diagonal one for the subject sites.
 
 No sampler is written here: NumPyro's NUTS runs on the CPU. Chains (``chain_method``):
 "auto" runs them "parallel" (one chain per device, pmap) when JAX sees at least as many CPU
@@ -54,10 +61,18 @@ import numpy as np
 import numpyro
 import numpyro.distributions as dist
 from numpyro.distributions import constraints
-from numpyro.infer import MCMC, NUTS, init_to_uniform
+from numpyro.infer import MCMC, NUTS
 
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.bayes_start import (
+    PARAMETRISATIONS,
+    SubjectStart,
+    choose_parametrisation,
+    init_near,
+    per_subject_estimates,
+    summarise_subject_fits,
+)
 from stopwise.estimation.cells import Cells, split_into_cells
 from stopwise.estimation.priors import (
     COEF_SD,
@@ -81,6 +96,7 @@ class Setup:
     coef_names: Mapping[str, tuple[str, ...]]  # per parameter: design column names
     hierarchical: bool
     n_subjects: int
+    centred: bool = False  # hierarchical: sample z_subject (centred) rather than eta
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -152,11 +168,29 @@ def coefficients(setup: Setup, sites: Mapping[str, Any], name: str) -> Any:
     return jnp.concatenate(parts)
 
 
-def subject_offsets(setup: Setup, sites: Mapping[str, Any]) -> Any:
-    """u = eta @ (diag(sd) L)^T, shape (n_subjects, K): u_s ~ Normal(0, diag(sd) Omega diag(sd))."""
+def population_location(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """mu, shape (K,): the intercept z_k of each parameter, 0 for one without intercept."""
+    return jnp.stack(
+        [
+            jnp.asarray(sites[f"z_{n}"], jnp.float64) if setup.has_intercept(n) else jnp.zeros(())
+            for n in setup.names
+        ]
+    )
+
+
+def population_scale_tril(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """diag(sd) L, the Cholesky factor of the subjects' covariance diag(sd) Omega diag(sd)."""
     sd = sites["sd_z"]
     chol = sites["L_corr"] if len(setup.names) > 1 else jnp.ones((1, 1))
-    return sites["eta"] @ (sd[:, None] * chol).T
+    return sd[:, None] * chol
+
+
+def subject_offsets(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """u, shape (n_subjects, K): centred u_s = z_subject_s - mu; non-centred
+    u_s = diag(sd) L eta_s; either way u_s ~ Normal(0, diag(sd) Omega diag(sd))."""
+    if setup.centred:
+        return sites["z_subject"] - population_location(setup, sites)[None, :]
+    return sites["eta"] @ population_scale_tril(setup, sites).T
 
 
 def cell_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
@@ -203,9 +237,17 @@ def numpyro_model(setup: Setup, args: CellArgs) -> None:
         )
         if k > 1:
             sites["L_corr"] = numpyro.sample("L_corr", dist.LKJCholesky(k, LKJ_CONCENTRATION))
-        sites["eta"] = numpyro.sample(
-            "eta", dist.Normal(0.0, 1.0).expand([setup.n_subjects, k]).to_event(2)
-        )
+        if setup.centred:
+            subjects = dist.MultivariateNormal(
+                population_location(setup, sites), scale_tril=population_scale_tril(setup, sites)
+            )
+            sites["z_subject"] = numpyro.sample(
+                "z_subject", subjects.expand([setup.n_subjects]).to_event(1)
+            )
+        else:
+            sites["eta"] = numpyro.sample(
+                "eta", dist.Normal(0.0, 1.0).expand([setup.n_subjects, k]).to_event(2)
+            )
     numpyro.factor("prior", jitted_intercept_prior(setup, sites))
     numpyro.factor("loglik", jitted_total_loglik(setup, sites, args))
 
@@ -221,24 +263,6 @@ def intercept_prior(setup: Setup, sites: Mapping[str, Any]) -> Any:
 
 
 jitted_intercept_prior = jax.jit(intercept_prior, static_argnums=0)
-
-
-def init_near(
-    site: Any = None,
-    values: Mapping[str, float] | None = None,
-    radius: float = 0.5,
-    jitter: float = 0.1,
-) -> Any:
-    """Initialisation: named sites at ``values`` plus Uniform(-jitter, jitter) per chain (so
-    chains start apart), other sites Uniform(-radius, radius) on the unconstrained scale."""
-    if site is None:
-        return partial(init_near, values=dict(values or {}), radius=radius, jitter=jitter)
-    if site["type"] == "sample" and not site["is_observed"] and site["name"] in (values or {}):
-        key = site["kwargs"].get("rng_key")
-        shape = site["kwargs"].get("sample_shape", ())
-        base = jnp.asarray(values[site["name"]])
-        return base + jax.random.uniform(key, shape + base.shape, minval=-jitter, maxval=jitter)
-    return init_to_uniform(site, radius=radius)
 
 
 # ---------------------------------------------------------------------------------------
@@ -322,10 +346,21 @@ def aggregation_is_exact(model: Model, data: Any, args: CellArgs, setup: Setup) 
     sites = {f"z_{s.name}": s.to_unconstrained(theta[s.name]) for s in setup.specs}
     sites.update({f"b_{n}": jnp.zeros(len(setup.effect_columns(n))) for n in setup.names})
     if setup.hierarchical:
-        k = len(setup.names)
-        sites.update(sd_z=jnp.zeros(k), L_corr=jnp.eye(k), eta=jnp.zeros((setup.n_subjects, k)))
+        sites.update(zero_offset_sites(setup, sites))
     pooled = float(jitted_total_loglik(setup, sites, args))
     return math.isfinite(direct) and abs(direct - pooled) <= 1e-9 * max(1.0, abs(direct))
+
+
+def zero_offset_sites(setup: Setup, sites: Mapping[str, Any]) -> dict[str, Any]:
+    """Hierarchical sites that put every subject at the population location (u = 0)."""
+    k = len(setup.names)
+    out: dict[str, Any] = {"sd_z": jnp.ones(k), "L_corr": jnp.eye(k)}
+    if setup.centred:
+        mu = population_location(setup, sites)
+        out["z_subject"] = jnp.tile(mu[None, :], (setup.n_subjects, 1))
+    else:
+        out["eta"] = jnp.zeros((setup.n_subjects, k))
+    return out
 
 
 def build_designs_for(model: Model, data: Any, formulas: Any) -> dict[str, Any]:
@@ -352,6 +387,7 @@ def prepare(
     priors: Mapping[str, Any] | None,
     pointwise: str,
     aggregate: bool = True,
+    centred: bool = False,
 ) -> tuple[Setup, CellArgs, Cells, np.ndarray, str]:
     """Cells (subject x distinct design row when hierarchical, distinct design row when
     pooled), their designs and subjects, and the static setup. With ``aggregate``, rows that
@@ -391,6 +427,7 @@ def prepare(
         coef_names={n: tuple(c) for n, (_, c) in designs.items()},
         hierarchical=hierarchical,
         n_subjects=int(data.n_subjects),
+        centred=bool(hierarchical and centred),
     )
     return setup, args, cells, unit_labels, unit_name
 
@@ -431,11 +468,11 @@ def pad_cells(args: CellArgs, width: int) -> CellArgs:
 # Initial values.
 
 
-def initial_values(
-    setup: Setup, model: Model, data: Any, init: Any, formulas: Any, notes: list[str]
-) -> dict[str, Any]:
-    """Unconstrained starting values of the intercept sites: the model's start values,
-    the ML estimate (init="mle"), or a user mapping name -> natural value."""
+def initial_natural(
+    model: Model, data: Any, init: Any, formulas: Any, notes: list[str]
+) -> dict[str, float]:
+    """Natural-scale starting values of every parameter: the model's start values, the ML
+    estimate (init="mle"), or a user mapping name -> natural value (checked in bounds)."""
     natural = model.start_theta()
     if isinstance(init, Mapping):
         unknown = sorted(set(init) - set(model.param_names))
@@ -448,16 +485,90 @@ def initial_values(
         natural.update(mle_estimates(model, data, formulas, notes))
     elif init not in (None, "start"):
         raise StopwiseInputError(f"init={init!r}: expected None, 'start', 'mle' or a mapping")
-    values = {}
     for spec in model.params:
         x = float(natural[spec.name])
         if not spec.lower < x < spec.upper:
             raise StopwiseInputError(
                 f"initial value {spec.name}={x:g} lies outside ({spec.lower:g}, {spec.upper:g})"
             )
-        if setup.has_intercept(spec.name):
-            values[f"z_{spec.name}"] = float(spec.to_unconstrained(x))
-    return values
+    return {k: float(v) for k, v in natural.items()}
+
+
+def initial_values(setup: Setup, natural: Mapping[str, float]) -> dict[str, Any]:
+    """Unconstrained starting values z_k = to_unconstrained(x_k) of the intercept sites."""
+    return {
+        f"z_{spec.name}": float(spec.to_unconstrained(natural[spec.name]))
+        for spec in setup.specs
+        if setup.has_intercept(spec.name)
+    }
+
+
+def hierarchical_start(
+    model: Model, data: Any, mu_natural: Mapping[str, float] | None, notes: list[str]
+) -> SubjectStart:
+    """Population and subject starting values from per-subject ML fits
+    (estimation/bayes_start.py); ``mu_natural`` (pooled ML or user values) replaces the
+    median of the subjects as the population location when given."""
+    k = len(model.param_names)
+    mu = None
+    if mu_natural:
+        mu = np.array([float(s.to_unconstrained(mu_natural[s.name])) for s in model.params])
+    try:
+        z, se, identified = per_subject_estimates(model, data)
+    except StopwiseInputError:
+        raise
+    except Exception as exc:  # the per-subject fits are only a starting point
+        notes.append(
+            f"hierarchical start: the per-subject ML fits failed ({type(exc).__name__}: {exc}); "
+            "subjects start at the population location with sd 0.3"
+        )
+        n = int(data.n_subjects)
+        z, se, identified = np.zeros((n, k)), np.full((n, k), np.nan), np.zeros(n, bool)
+        if mu is None:
+            mu = np.array([float(s.to_unconstrained(s.start)) for s in model.params])
+    start = summarise_subject_fits(z, se, identified, mu)
+    notes.append(start.note)
+    return start
+
+
+def hierarchical_values(
+    setup: Setup, start: SubjectStart, values: Mapping[str, float]
+) -> dict[str, Any]:
+    """Initial site values (constrained scale) for a hierarchical fit: intercepts at mu,
+    covariate effects at 0, sd_z from the subjects' spread, Omega = I, and each subject at
+    its clipped ML estimate (centred: z_subject; non-centred: eta = (z_s - mu) / sd)."""
+    out: dict[str, Any] = dict(values)
+    for k, name in enumerate(setup.names):
+        if setup.has_intercept(name):
+            out[f"z_{name}"] = float(start.mu[k])
+        n_eff = len(setup.effect_columns(name))
+        if n_eff:
+            out[f"b_{name}"] = np.zeros(n_eff)
+    k = len(setup.names)
+    out["sd_z"] = np.asarray(start.sd, np.float64)
+    if k > 1:
+        out["L_corr"] = np.eye(k)
+    location = np.where([setup.has_intercept(n) for n in setup.names], start.mu, 0.0)
+    if setup.centred:
+        out["z_subject"] = np.asarray(start.subject_z, np.float64)
+    else:
+        out["eta"] = (np.asarray(start.subject_z) - location[None, :]) / start.sd[None, :]
+    return out
+
+
+def population_sites(setup: Setup) -> tuple[str, ...]:
+    """Names of the population-level sites (one dense block of the mass matrix)."""
+    names: list[str] = []
+    for name in setup.names:
+        if setup.has_intercept(name):
+            names.append(f"z_{name}")
+        if setup.effect_columns(name):
+            names.append(f"b_{name}")
+    if setup.hierarchical:
+        names.append("sd_z")
+        if len(setup.names) > 1:
+            names.append("L_corr")
+    return tuple(names)
 
 
 def mle_estimates(model: Model, data: Any, formulas: Any, notes: list[str]) -> dict[str, float]:
@@ -519,13 +630,16 @@ def run_nuts(
     target_accept: float,
     max_tree_depth: int,
     chain_method: str,
+    dense_mass: bool = False,
 ) -> MCMC:
-    """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations."""
+    """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations;
+    ``dense_mass``: one dense mass-matrix block for the population sites, diagonal elsewhere."""
     kernel = NUTS(
         partial(numpyro_model, setup),
         target_accept_prob=target_accept,
         max_tree_depth=max_tree_depth,
         init_strategy=init_near(values=init_values),
+        dense_mass=[population_sites(setup)] if dense_mass else False,
     )
     mcmc = MCMC(
         kernel,
@@ -602,6 +716,8 @@ def fit_bayes(
     target_accept: float = 0.8,
     max_tree_depth: int = 10,
     chain_method: str = "auto",
+    parametrisation: str = "auto",
+    dense_mass: bool | None = None,
     hdi_prob: float = 0.95,
     pointwise: str | None = None,
     aggregate: bool = True,
@@ -613,6 +729,12 @@ def fit_bayes(
 
     init: None/"start" (model start values), "mle" (the ML estimate when the ML engine is
     available) or a mapping name -> natural value; chains start near it with a small jitter.
+    Hierarchical fits start every subject near its own ML estimate and the population sd at
+    the subjects' spread; with init=None the population location starts at the subjects'
+    median (estimation/bayes_start.py), otherwise at the values ``init`` names.
+    parametrisation: hierarchical only; "auto" (the documented rule), "centred" or
+    "noncentred". dense_mass: a dense mass matrix for the population sites (default: on for
+    hierarchical fits, off for pooled ones).
     pointwise: unit of the ArviZ log-likelihood: "trial" (stopping default), "row" (lottery
     default) or "subject". Returns a :class:`stopwise.estimation.posterior.Posterior`.
     """
@@ -637,7 +759,16 @@ def fit_bayes(
     check_kind(model, data)
     if pointwise is None:
         pointwise = "trial" if isinstance(data, StoppingData) else "row"
+    if parametrisation not in PARAMETRISATIONS:
+        raise StopwiseInputError(
+            f"parametrisation={parametrisation!r}: expected one of {', '.join(PARAMETRISATIONS)}"
+        )
     notes: list[str] = []
+    natural = initial_natural(model, data, init, formulas, notes)
+    start, form = None, None
+    if hierarchical:
+        start = hierarchical_start(model, data, None if init is None else natural, notes)
+        form = choose_parametrisation(parametrisation, start, data.n_obs / data.n_subjects)
     aggregate = model.data_kind != "contest" and aggregate
     setup, args, cells, unit_labels, unit_name = prepare(
         model,
@@ -647,6 +778,7 @@ def fit_bayes(
         priors=priors,
         pointwise=pointwise,
         aggregate=aggregate,
+        centred=form == "centred",
     )
     if aggregate and not aggregation_is_exact(model, data, args, setup):
         notes.append(
@@ -661,8 +793,13 @@ def fit_bayes(
             priors=priors,
             pointwise=pointwise,
             aggregate=False,
+            centred=form == "centred",
         )
-    values = initial_values(setup, model, data, init, formulas, notes)
+    values = initial_values(setup, natural)
+    if start is not None:
+        values = hierarchical_values(setup, start, values)
+    if dense_mass is None:
+        dense_mass = hierarchical
     method = choose_chain_method(chain_method, chains)
     t0 = time.perf_counter()
     mcmc = run_nuts(
@@ -677,6 +814,7 @@ def fit_bayes(
         target_accept=target_accept,
         max_tree_depth=max_tree_depth,
         chain_method=method,
+        dense_mass=bool(dense_mass),
     )
     elapsed = time.perf_counter() - t0
     # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower
@@ -701,6 +839,8 @@ def fit_bayes(
             "target_accept": target_accept,
             "max_tree_depth": max_tree_depth,
             "init": _init_text(init),
+            "parametrisation": form,
+            "dense_mass": bool(dense_mass),
             "sampling_seconds": elapsed,
             "formulas": _formula_list(formulas),
         },

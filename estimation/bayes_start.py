@@ -1,0 +1,143 @@
+"""Starting values and parametrisation of hierarchical Bayesian fits.
+
+Per-subject maximum likelihood (estimation/by_subject.py, one vmapped Newton run) gives each
+subject s an unconstrained estimate a[s, k] with standard error se[s, k]. Subjects flagged as
+unidentified (never draws, separation, estimate at a bound, indefinite Hessian, no
+convergence) or with a non-finite estimate are left out of the summaries:
+
+  mu_k          = median_s a[s, k]       (the pooled ML estimate or user values when given)
+  sd_k          = clip(1.4826 * MAD_s a[s, k], SD_FLOOR, SD_CEILING)
+  start[s, k]   = clip(a[s, k], mu_k - 3 sd_k, mu_k + 3 sd_k); unidentified subjects at mu_k
+  Omega         = I
+
+Parametrisation (Papaspiliopoulos, Roberts & Skold 2007; Betancourt & Girolami 2015): the
+centred form z_s ~ MVN(mu, diag(sd) Omega diag(sd)) samples well when each subject's
+likelihood is informative relative to the population spread (the posterior of z_s is then
+nearly independent of (mu, sd)), the non-centred form z_s = mu + diag(sd) L eta_s when it is
+weak (the funnel between eta and sd is then mild). The rule used for
+``parametrisation="auto"``:
+
+  ratio_k = median_s se[s, k] / sd_k;   centred  iff  ratio_k < 1 for every parameter k,
+
+and, when fewer than half of the subjects give a finite standard error for some parameter,
+centred iff the median subject has at least CENTRED_MIN_ROWS decisions (choices).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from functools import partial
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from numpyro.distributions.transforms import biject_to
+from numpyro.infer import init_to_uniform
+
+SD_FLOOR = 0.05  # smallest starting population sd (unconstrained scale)
+SD_CEILING = 2.0  # largest starting population sd
+SUBJECT_CLIP = 3.0  # subject starts within mu +- SUBJECT_CLIP * sd
+CENTRED_MIN_ROWS = 100  # fallback rule: centred with at least this many rows per subject
+PARAMETRISATIONS = ("auto", "centred", "noncentred")
+
+
+@dataclass(frozen=True)
+class SubjectStart:
+    """Unconstrained starting values: mu (K,), sd (K,), subject values (n, K), and the
+    evidence for the parametrisation rule."""
+
+    mu: np.ndarray
+    sd: np.ndarray
+    subject_z: np.ndarray
+    ratio: np.ndarray  # median se / sd per parameter (NaN where too few SEs)
+    n_identified: int
+    note: str
+
+
+def robust_spread(values: np.ndarray) -> float:
+    """1.4826 * median |x - median x| (the normal-consistent MAD); NaN when empty."""
+    if values.size == 0:
+        return math.nan
+    return float(1.4826 * np.median(np.abs(values - np.median(values))))
+
+
+def summarise_subject_fits(
+    z: np.ndarray, se: np.ndarray, identified: np.ndarray, mu: np.ndarray | None = None
+) -> SubjectStart:
+    """The start values of the module docstring from per-subject estimates z (n, K), their
+    standard errors se (n, K) and a per-subject identified flag (n,)."""
+    z = np.asarray(z, np.float64)
+    se = np.asarray(se, np.float64)
+    ok = np.asarray(identified, bool) & np.all(np.isfinite(z), axis=1)
+    n, k = z.shape
+    good = z[ok]
+    if mu is None:
+        mu = np.median(good, axis=0) if len(good) else np.zeros(k)
+    mu = np.asarray(mu, np.float64)
+    sd = np.array([robust_spread(good[:, j]) for j in range(k)]) if len(good) else np.full(k, 0.3)
+    sd = np.clip(np.nan_to_num(sd, nan=0.3), SD_FLOOR, SD_CEILING)
+    start = np.where(ok[:, None], np.clip(z, mu - SUBJECT_CLIP * sd, mu + SUBJECT_CLIP * sd), mu)
+    ratio = np.full(k, np.nan)
+    for j in range(k):
+        finite = se[ok, j][np.isfinite(se[ok, j])]
+        if len(finite) >= max(1, n // 2):
+            ratio[j] = float(np.median(finite)) / sd[j]
+    note = (
+        f"hierarchical start: per-subject ML fits ({int(ok.sum())} of {n} subjects identified); "
+        "population sd from their spread (MAD)"
+    )
+    return SubjectStart(mu, sd, start, ratio, int(ok.sum()), note)
+
+
+def choose_parametrisation(choice: str, start: SubjectStart, rows_per_subject: float) -> str:
+    """'centred' or 'noncentred' by the rule of the module docstring (or as chosen)."""
+    if choice in ("centred", "noncentred"):
+        return choice
+    if np.all(np.isfinite(start.ratio)):
+        return "centred" if bool(np.all(start.ratio < 1.0)) else "noncentred"
+    return "centred" if rows_per_subject >= CENTRED_MIN_ROWS else "noncentred"
+
+
+def per_subject_estimates(model: Any, data: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-subject ML: unconstrained estimates (n, K), standard errors (n, K) and an
+    identified flag (n,), in subject-index order (estimation/by_subject.py)."""
+    from stopwise.estimation.by_subject import fit_by_subject
+    from stopwise.estimation.problem import subject_labels
+
+    fits = fit_by_subject(model, data, se="hessian")
+    labels = list(subject_labels(data))
+    n, k = len(labels), len(model.param_names)
+    z = np.full((n, k), np.nan)
+    se = np.full((n, k), np.nan)
+    identified = np.zeros(n, bool)
+    for label, fit in fits.fits:
+        s = labels.index(label)
+        z[s] = np.asarray(fit.z, np.float64)[:k]
+        if fit.cov_z is not None:
+            se[s] = np.sqrt(np.clip(np.diag(np.asarray(fit.cov_z))[:k], 0.0, None))
+        identified[s] = fit.converged and not fits.flags.get(label)
+    return z, se, identified
+
+
+def init_near(
+    site: Any = None,
+    values: Mapping[str, Any] | None = None,
+    radius: float = 0.5,
+    jitter: float = 0.1,
+) -> Any:
+    """NumPyro init strategy: named sites at ``values`` (constrained scale) moved by
+    Uniform(-jitter, jitter) on their unconstrained scale (so chains start apart but near),
+    other sites Uniform(-radius, radius) on the unconstrained scale."""
+    if site is None:
+        return partial(init_near, values=dict(values or {}), radius=radius, jitter=jitter)
+    if site["type"] == "sample" and not site["is_observed"] and site["name"] in (values or {}):
+        key = site["kwargs"].get("rng_key")
+        shape = site["kwargs"].get("sample_shape", ())
+        transform = biject_to(site["fn"].support)
+        free = transform.inv(jnp.asarray(values[site["name"]], jnp.float64))
+        moved = free + jax.random.uniform(key, shape + free.shape, minval=-jitter, maxval=jitter)
+        return transform(moved)
+    return init_to_uniform(site, radius=radius)
