@@ -21,6 +21,7 @@ never matched to each other.
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import partial
@@ -264,6 +265,24 @@ def relabel(z: np.ndarray, order: np.ndarray, rows: MixtureRows) -> np.ndarray:
     return np.concatenate([blocks[i] for i in order] + [eta[1:] - eta[0]])
 
 
+def coinciding_types(z: np.ndarray, rows: MixtureRows, tol: float = 1e-3) -> list[str]:
+    """Warnings for pairs of types of one model whose coefficient vectors lie within ``tol``
+    (Euclidean, unconstrained scale): their shares are not identified separately, and no
+    relabelling rule can make their bootstrap spreads meaningful."""
+    out = []
+    pairs = zip(rows.layouts, rows.offsets)
+    for (k, (lay_k, off_k)), (j, (lay_j, off_j)) in itertools.combinations(enumerate(pairs), 2):
+        if lay_k.model is not lay_j.model or lay_k.free != lay_j.free:
+            continue
+        gap = float(np.linalg.norm(z[off_k : off_k + lay_k.size] - z[off_j : off_j + lay_j.size]))
+        if gap < tol:
+            out.append(
+                f"types {k + 1} and {j + 1} coincide (coefficients {gap:.2g} apart): their "
+                "shares are not identified separately; fit fewer types"
+            )
+    return out
+
+
 def _bootstrap_with_shares(
     fit: Fit, problem: Problem, rows: MixtureRows, reps: int, progress: bool
 ) -> None:
@@ -289,7 +308,7 @@ def _bootstrap_with_shares(
     )
     fit.se_method = "bootstrap"
     fit.clusters = problem.n_clusters
-    fit.warnings += warnings
+    fit.warnings += warnings + coinciding_types(fit.z, rows)
     fit.extras["bootstrap"] = {**info, "z": z_b, "relabelled": n_switched}
     fit.notes.append(
         f"subject-level bootstrap: {info['replications']} replications "

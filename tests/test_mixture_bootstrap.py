@@ -11,7 +11,14 @@ import pytest
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.mixture import MixtureRows, fit_mixture, match_types, relabel, shares_of
+from stopwise.estimation.mixture import (
+    MixtureRows,
+    coinciding_types,
+    fit_mixture,
+    match_types,
+    relabel,
+    shares_of,
+)
 from stopwise.estimation.problem import make_layout
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
@@ -90,3 +97,14 @@ def test_bootstrap_share_se_close_to_the_sandwich_on_a_large_mixture() -> None:
     est = boot.params["estimate"]
     # the types are overlapping (not perfectly classified) yet recovered
     assert 0.55 < est["share:type1"] < 0.75 and est["type1:precision"] < est["type2:precision"]
+
+
+def test_coinciding_types_are_flagged() -> None:
+    model = build_model(LOGIT)
+    rows = MixtureRows(tuple(make_layout(model) for _ in range(3)), 10)
+    flagged = coinciding_types(np.array([-0.65, -0.65 + 1e-6, 1.8, -0.5, 0.5]), rows)
+    assert len(flagged) == 1 and flagged[0].startswith("types 1 and 2 coincide")
+    assert coinciding_types(np.array([-0.65, 0.1, 1.8, -0.5, 0.5]), rows) == []
+    probit = build_model("linear+myopic+probit")
+    mixed = MixtureRows((make_layout(model), make_layout(probit)), 4)
+    assert coinciding_types(np.array([0.3, 0.3, 0.0]), mixed) == []
