@@ -75,6 +75,24 @@ def resolve_new_data(
     )
 
 
+def check_rows_explained(model: Any, bundle: Any) -> None:
+    """Refuse new stopping rows the model does not explain: contest decisions (task
+    "contest") for a solo model, solo decisions for a contest model (fits use only the rows
+    their model explains, so predictions must too)."""
+    check_kind(model, bundle)
+    if not isinstance(bundle, StoppingData) or model.data_kind not in ("stopping", "contest"):
+        return
+    contest = np.asarray(bundle.cond_contest)[np.asarray(bundle.cond)] > 0.5
+    other = ~contest if model.data_kind == "contest" else contest
+    if other.any():
+        kind, wanted = ("solo", "contest") if model.data_kind == "contest" else ("contest", "solo")
+        raise StopwiseInputError(
+            f"the new data hold {int(other.sum())} {kind} decisions (first at row "
+            f"{int(np.flatnonzero(other)[0])}, counting from 0), which the {wanted} model "
+            f"{model.name} does not explain; pass only the {wanted} decisions"
+        )
+
+
 def profile_designs(
     designs: Mapping[str, ParamFormula], frame: pd.DataFrame
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -138,7 +156,7 @@ def predict_formula_fit(
     from stopwise.estimation.mle import _response_probability, _strip, stop_step_table
 
     bundle, frame = resolve_new_data(data, covariates)
-    check_kind(model, bundle)
+    check_rows_explained(model, bundle)
     if frame is None:
         frame = pd.DataFrame({k: np.asarray(v) for k, v in bundle.covariates.items()})
     profile, unique = profile_designs(designs, frame)

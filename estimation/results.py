@@ -148,10 +148,13 @@ class Fit:
             raise ValueError("this fit has no predictor (it was not made from a model)")
         designs = self.extras.get("designs")
         if not designs:
-            if data is not None and not _is_bundle(data):
-                from stopwise.estimation.prediction import resolve_new_data
+            if data is not None:
+                from stopwise.estimation.prediction import check_rows_explained, resolve_new_data
 
-                data, _ = resolve_new_data(data, covariates)
+                if not _is_bundle(data):
+                    data, _ = resolve_new_data(data, covariates)
+                if "layout" in self.extras:
+                    check_rows_explained(self.extras["layout"].model, data)
             return self.predictor(data)
         from stopwise.estimation import prediction
 

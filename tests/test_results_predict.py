@@ -147,7 +147,7 @@ def test_unknown_level_missing_column_and_missing_value_are_clear(fitted) -> Non
         fit.predict(to_stopping_data(new), covariates=new.head(2))
 
 
-def test_bundle_with_covariate_frame_and_pooled_fit_on_a_frame(fitted) -> None:
+def test_bundle_with_covariate_frame_and_pooled_fit_on_a_frame(fitted, decision_frame) -> None:
     model, _, _, fit = fitted
     new = simulated_frame(6, 5, 23, 0.5)
     from_bundle = fit.predict(to_stopping_data(new), covariates=new)
@@ -157,6 +157,10 @@ def test_bundle_with_covariate_frame_and_pooled_fit_on_a_frame(fitted) -> None:
     a, b = pooled.predict(new), pooled.predict(to_stopping_data(new))
     pd.testing.assert_frame_equal(a["stop_steps"], b["stop_steps"])
     assert "profiles" not in a
+    # a solo model's fit refuses contest decisions, as the fit itself leaves them out
+    for some_fit in (pooled, fit):
+        with pytest.raises(StopwiseInputError, match=r"hold 3 contest decisions \(first at row 3"):
+            some_fit.predict(decision_frame)
 
 
 def lottery_frame(subjects: int, seed: int) -> pd.DataFrame:
