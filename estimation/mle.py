@@ -386,11 +386,8 @@ def _make_predictor(
     def predict(data: Any = None) -> dict[str, pd.DataFrame]:
         data = fitted if data is None else data
         if "cells" in extra:
-            if data is not fitted:
-                raise StopwiseInputError(
-                    "predictions on new data are available for fits "
-                    "without formulas; refit on the new data"
-                )
+            if data is not fitted:  # Fit.predict routes new rows to estimation/prediction.py
+                raise ValueError("the cell predictor of a formula fit serves the fitted rows")
             cells = extra["cells"]
             theta = theta_per_cell(layout, z, tuple(extra["blocks"]))
             cell_thetas = [{k: v[c] for k, v in theta.items()} for c in range(cells.n_cells)]
