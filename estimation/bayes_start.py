@@ -96,6 +96,8 @@ def choose_parametrisation(choice: str, start: SubjectStart, rows_per_subject: f
     """'centred' or 'noncentred' by the rule of the module docstring (or as chosen)."""
     if choice in ("centred", "noncentred"):
         return choice
+    if choice != "auto":
+        raise ValueError(f"parametrisation {choice!r}: expected one of {PARAMETRISATIONS}")
     if np.all(np.isfinite(start.ratio)):
         return "centred" if bool(np.all(start.ratio < 1.0)) else "noncentred"
     return "centred" if rows_per_subject >= CENTRED_MIN_ROWS else "noncentred"

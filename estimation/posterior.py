@@ -175,6 +175,11 @@ def sampler_warnings(
 ) -> list[str]:
     """One warning per problem, naming the worst quantities and what to try."""
     out: list[str] = []
+    if not np.any(np.isfinite(diag["r_hat"].to_numpy(dtype=float))):
+        out.append(
+            "R-hat cannot be computed (one chain, or draws that never changed): convergence "
+            "is not checked; run at least 2 chains (4 recommended)"
+        )
     bad = diag[diag["r_hat"] > RHAT_MAX].sort_values("r_hat", ascending=False)
     if len(bad):
         out.append(
@@ -236,6 +241,12 @@ def data_fit_warnings(loglik: float, pointwise_ll: np.ndarray, params: pd.DataFr
             "(too short a warm-up, or a likelihood without finite gradients)"
         )
     return out
+
+
+def _nan_extreme(reduce: Any, values: Any) -> float:
+    """reduce (np.nanmax / np.nanmin) over the finite values, NaN when there are none."""
+    values = np.asarray(values, dtype=float)
+    return float(reduce(values)) if np.any(np.isfinite(values)) else math.nan
 
 
 def _worst(frame: pd.DataFrame, column: str, n: int = 3) -> str:
@@ -360,12 +371,17 @@ class Posterior:
         r = self.run
         lines = [
             f"Bayesian fit: {self.model.name}"
-            + (" (hierarchical, non-centred)" if self.hierarchical else " (pooled)"),
+            + (
+                f" (hierarchical, {r.get('parametrisation') or 'non-centred'})"
+                if self.hierarchical
+                else " (pooled)"
+            ),
             f"observations: {self.n_obs}   subjects: {self.n_subjects}   "
             f"log-likelihood at posterior mean: {self.loglik:.2f}",
             f"NUTS: {r['chains']} chains ({r['chain_method']}) x {r['draws']} draws after "
             f"{r['warmup']} warm-up, seed {r['seed']}, target accept {r['target_accept']}, "
-            f"start: {r['init']}, {r['sampling_seconds']:.1f} s",
+            f"start: {r['init']}, {r['sampling_seconds']:.1f} s"
+            + (", dense mass matrix for the population" if r.get("dense_mass") else ""),
         ]
         if r.get("formulas"):
             lines.append("formulas: " + "; ".join(r["formulas"]))
@@ -543,7 +559,7 @@ def build_posterior(
     )
     diagnostics = {
         "divergences": int(np.sum(stats["diverging"])),
-        "max_rhat": float(np.nanmax(diag["r_hat"])),
+        "max_rhat": _nan_extreme(np.nanmax, diag["r_hat"]),
         "min_ess_bulk": float(np.nanmin(diag["ess_bulk"])),
         "min_ess_tail": float(np.nanmin(diag["ess_tail"])),
         "ebfmi": [float(v) for v in ebfmi],

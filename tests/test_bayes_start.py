@@ -1,0 +1,148 @@
+"""Hierarchical start values, the centred/non-centred rule and the two parametrisations."""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import numpyro.distributions as dist
+import pytest
+from scipy import stats
+
+import stopwise  # noqa: F401  (enables float64 before jax is used)
+from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import bayes
+from stopwise.estimation.bayes_start import (
+    CENTRED_MIN_ROWS,
+    SD_FLOOR,
+    SubjectStart,
+    choose_parametrisation,
+    init_near,
+    robust_spread,
+    summarise_subject_fits,
+)
+from stopwise.estimation.recovery import stopping_design
+from stopwise.models.spec import build_model
+
+
+def test_robust_spread_is_the_normal_consistent_mad():
+    # scipy's median_abs_deviation with scale="normal" divides by Phi^{-1}(3/4) = 0.6745
+    # (Rousseeuw & Croux 1993; scipy.stats reference implementation).
+    x = np.random.default_rng(3).normal(1.0, 0.4, 501)
+    expected = stats.median_abs_deviation(x, scale="normal")
+    assert robust_spread(x) == pytest.approx(expected, rel=1e-4)
+    assert np.isnan(robust_spread(np.array([])))
+
+
+def test_subject_starts_are_clipped_and_unidentified_subjects_sit_at_mu():
+    rng = np.random.default_rng(0)
+    z = np.column_stack([rng.normal(0.2, 0.3, 40), rng.normal(1.0, 0.5, 40)])
+    z[0] = [50.0, 1.0]  # a runaway estimate
+    z[1] = [np.nan, 0.0]  # a failed fit
+    se = np.full_like(z, 0.1)
+    identified = np.ones(40, bool)
+    identified[2] = False
+    start = summarise_subject_fits(z, se, identified)
+    good = np.delete(z, [1, 2], axis=0)
+    np.testing.assert_allclose(start.mu, np.median(good, axis=0))
+    assert start.n_identified == 38
+    np.testing.assert_allclose(start.subject_z[1], start.mu)
+    np.testing.assert_allclose(start.subject_z[2], start.mu)
+    assert start.subject_z[0, 0] == pytest.approx(start.mu[0] + 3 * start.sd[0])
+    np.testing.assert_allclose(start.subject_z[5], z[5])
+    np.testing.assert_allclose(start.ratio, 0.1 / start.sd)
+    same = summarise_subject_fits(np.zeros((5, 1)), np.ones((5, 1)), np.ones(5, bool))
+    assert same.sd[0] == SD_FLOOR
+
+
+def test_parametrisation_rule():
+    def start(ratio):
+        k = len(ratio)
+        return SubjectStart(np.zeros(k), np.ones(k), np.zeros((3, k)), np.array(ratio), 3, "")
+
+    assert choose_parametrisation("auto", start([0.3, 0.8]), 10) == "centred"
+    assert choose_parametrisation("auto", start([0.3, 1.5]), 1000) == "noncentred"
+    assert choose_parametrisation("auto", start([np.nan]), CENTRED_MIN_ROWS) == "centred"
+    assert choose_parametrisation("auto", start([np.nan]), CENTRED_MIN_ROWS - 1) == "noncentred"
+    assert choose_parametrisation("noncentred", start([0.1]), 10) == "noncentred"
+    with pytest.raises(ValueError):
+        choose_parametrisation("sideways", start([0.1]), 10)
+
+
+def test_init_near_keeps_constrained_sites_valid():
+    key = jax.random.PRNGKey(1)
+    positive = {
+        "type": "sample",
+        "is_observed": False,
+        "name": "sd",
+        "fn": dist.HalfNormal(1.0).expand([3]).to_event(1),
+        "kwargs": {"rng_key": key, "sample_shape": ()},
+    }
+    value = np.asarray(init_near(positive, values={"sd": np.array([0.05, 0.5, 2.0])}, jitter=0.1))
+    ratio = value / np.array([0.05, 0.5, 2.0])
+    assert np.all((ratio > np.exp(-0.1)) & (ratio < np.exp(0.1)))
+    chol = {**positive, "name": "L", "fn": dist.LKJCholesky(3, 2.0)}
+    value = np.asarray(init_near(chol, values={"L": np.eye(3)}, jitter=0.1))
+    np.testing.assert_allclose(np.sum(value**2, axis=1), 1.0, rtol=1e-12)  # unit rows
+    assert np.allclose(np.triu(value, 1), 0.0)
+
+
+@pytest.fixture(scope="module")
+def small_stopping():
+    model = build_model("crra+myopic+logit")
+    design = stopping_design(6, 10, (0.7, 0.9), 1.0, 5)
+    frames = []
+    for i, (_, sub) in enumerate(design.groupby("subject")):
+        theta = {"r": 0.2 + 0.05 * i, "precision": 1.5}
+        frames.append(model.simulate(theta, sub, jax.random.PRNGKey(i)))
+    import pandas as pd
+
+    return model, to_stopping_data(pd.concat(frames, ignore_index=True))
+
+
+def test_centred_and_noncentred_sites_give_the_same_likelihood(small_stopping):
+    # Both forms describe u_s = diag(sd) L eta_s = z_s - mu: equal offsets, equal likelihood.
+    model, data = small_stopping
+    kw = dict(hierarchical=True, formulas=None, priors=None, pointwise="trial")
+    setup_c, args, *_ = bayes.prepare(model, data, centred=True, **kw)
+    setup_n, args_n, *_ = bayes.prepare(model, data, centred=False, **kw)
+    rng = np.random.default_rng(1)
+    n = setup_c.n_subjects
+    sd = jnp.array([0.3, 0.6])
+    angle = 0.4
+    chol = jnp.array([[1.0, 0.0], [np.sin(angle), np.cos(angle)]])
+    eta = jnp.asarray(rng.normal(size=(n, 2)))
+    common = {"z_r": jnp.asarray(0.1), "z_precision": jnp.asarray(0.4), "sd_z": sd, "L_corr": chol}
+    mu = jnp.array([0.1, 0.4])
+    centred = {**common, "z_subject": mu + eta @ (sd[:, None] * chol).T}
+    noncentred = {**common, "eta": eta}
+    np.testing.assert_allclose(
+        bayes.subject_offsets(setup_c, centred), bayes.subject_offsets(setup_n, noncentred)
+    )
+    a = float(bayes.total_loglik(setup_c, centred, args))
+    b = float(bayes.total_loglik(setup_n, noncentred, args_n))
+    assert a == pytest.approx(b, rel=1e-12)
+
+
+def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
+    model, data = small_stopping
+    for form in ("centred", "noncentred"):
+        post = bayes.fit_bayes(
+            model,
+            data,
+            hierarchical=True,
+            parametrisation=form,
+            chains=1,
+            draws=30,
+            warmup=30,
+            progress=False,
+        )
+        assert post.run["parametrisation"] == form and post.run["dense_mass"] is True
+        assert any("per-subject ML fits" in note for note in post.notes)
+        assert np.all(np.isfinite(post.draws("r")))
+        assert form in post.summary()
+        assert any("R-hat cannot be computed" in w for w in post.warnings)  # one chain
+        assert post.converged is False
+    with pytest.raises(StopwiseInputError, match="parametrisation"):
+        bayes.fit_bayes(model, data, hierarchical=True, parametrisation="both", progress=False)
