@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import replace
+from functools import partial
 from typing import Any
 
 import jax
@@ -334,20 +335,39 @@ def fit_mle(
 # Prediction.
 
 
-def _response_probability(model: Any, theta: Mapping[str, Any], data: Any) -> np.ndarray:
-    """P(modelled response) per row: model.predict, else exp(ll) with the response set to
-    draw (stopping, no bust) or B (lottery)."""
-    if model.predict is not None:
-        return np.asarray(model.predict(theta, data))
+def _response_probe(data: Any) -> Any:
+    """The rows with the modelled response set: draw without a bust (stopping) or B
+    (lottery), so that exp(loglik_obs) is the response probability."""
     if isinstance(data, StoppingData):
-        probe = replace(
+        return replace(
             data,
             draw=np.ones_like(np.asarray(data.draw)),
             bust=np.zeros_like(np.asarray(data.bust)),
         )
-    else:
-        probe = replace(data, choice_b=np.ones_like(np.asarray(data.choice_b)))
-    return np.exp(np.asarray(model.loglik_obs(theta, probe)))
+    return replace(data, choice_b=np.ones_like(np.asarray(data.choice_b)))
+
+
+@partial(jax.jit, static_argnums=0)
+def _compiled_response_probability(model: Any, theta: Mapping[str, Any], probe: Any) -> Any:
+    """model.predict(theta, rows), else exp(loglik_obs(theta, probe rows))."""
+    if model.predict is not None:
+        return model.predict(theta, probe)
+    return jnp.exp(model.loglik_obs(theta, probe))
+
+
+def _response_probability(model: Any, theta: Mapping[str, Any], data: Any) -> np.ndarray:
+    """P(modelled response) per row, compiled once per model and bucket of row counts (rows
+    padded with copies of the first one): model.predict, else exp(ll) with the response set
+    to draw (stopping, no bust) or B (lottery). The model sizes its caps from the concrete
+    rows first (options["prepare"])."""
+    prepare = model.options.get("prepare") if model.options else None
+    if callable(prepare):
+        prepare(data)
+    bare = _strip(data)
+    n = bare.n_obs
+    probe = pad_rows(_response_probe(bare) if model.predict is None else bare, padded_size(n))
+    theta = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in theta.items()}
+    return np.asarray(_compiled_response_probability(model, theta, probe))[:n]
 
 
 def stop_step_table(model: Any, theta: Mapping[str, Any], data: StoppingData) -> pd.DataFrame:
