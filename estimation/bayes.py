@@ -5,11 +5,11 @@ model's parameters on their unconstrained scale z (x = ParamSpec.to_natural(z)):
 
   pooled:        z_k[c] = X_k[c] @ b_k
   hierarchical:  z_k[c] = X_k[c] @ b_k + u[s(c), k],   u_s ~ MVN(0, diag(sd) Omega diag(sd)),
-                 L L^T = Omega ~ LKJ(2),  sd_k ~ HalfNormal(1), sampled either
-                 centred:      a_s = mu + u_s ~ MVN(mu, diag(sd) Omega diag(sd))  (site z_subject)
-                 non-centred:  u_s = diag(sd) L eta_s,  eta_s ~ Normal(0, I)     (site eta)
-                 with mu_k the intercept of b_k (0 for a parameter without intercept); the
-                 choice follows the rule in estimation/bayes_start.py (``parametrisation``)
+                 L L^T = Omega ~ LKJ(2),  sd_k ~ HalfNormal(1); with mu_k the intercept of
+                 b_k (0 for a parameter without intercept), each parameter k is sampled
+                 centred (site z_subject_<k> = mu_k + u_k) or non-centred (site eta_<k>),
+                 by the rule in estimation/bayes_start.py (``parametrisation``); see
+                 ``subject_offsets`` for the conditional (Cholesky-order) construction
 
 where X_k is the patsy design of the formula ``k ~ rhs`` (a column of ones without one), s(c)
 the subject of cell c, and the intercept of b_k carries the parameter's natural-scale prior
@@ -69,6 +69,7 @@ from stopwise.estimation.bayes_start import (
     PARAMETRISATIONS,
     SubjectStart,
     choose_parametrisation,
+    describe_parametrisation,
     init_near,
     per_subject_estimates,
     summarise_subject_fits,
@@ -96,7 +97,10 @@ class Setup:
     coef_names: Mapping[str, tuple[str, ...]]  # per parameter: design column names
     hierarchical: bool
     n_subjects: int
-    centred: bool = False  # hierarchical: sample z_subject (centred) rather than eta
+    centred: tuple[bool, ...] = ()  # hierarchical, per parameter: z_subject_<k> or eta_<k>
+
+    def is_centred(self, k: int) -> bool:
+        return bool(self.centred[k]) if k < len(self.centred) else False
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -186,11 +190,48 @@ def population_scale_tril(setup: Setup, sites: Mapping[str, Any]) -> Any:
 
 
 def subject_offsets(setup: Setup, sites: Mapping[str, Any]) -> Any:
-    """u, shape (n_subjects, K): centred u_s = z_subject_s - mu; non-centred
-    u_s = diag(sd) L eta_s; either way u_s ~ Normal(0, diag(sd) Omega diag(sd))."""
-    if setup.centred:
-        return sites["z_subject"] - population_location(setup, sites)[None, :]
-    return sites["eta"] @ population_scale_tril(setup, sites).T
+    """u, shape (n_subjects, K), u_s ~ Normal(0, diag(sd) Omega diag(sd)), built in parameter
+    order from T = diag(sd) L (lower triangular) and eta_s ~ Normal(0, I):
+
+      m_k = sum_{j<k} T_kj eta_j,   c_k = T_kk   (u_k given eta_1..eta_{k-1} is N(m_k, c_k^2))
+      non-centred k:  u_k = m_k + c_k eta_k                      (site eta_<k>)
+      centred k:      u_k = z_subject_<k> - mu_k,  eta_k = (u_k - m_k) / c_k
+
+    so u = eta T^T either way and each parameter may use either form."""
+    tril = population_scale_tril(setup, sites)
+    mu = population_location(setup, sites)
+    etas: list[Any] = []
+    offsets: list[Any] = []
+    for k, name in enumerate(setup.names):
+        mean = sum((tril[k, j] * etas[j] for j in range(k)), jnp.zeros(setup.n_subjects))
+        if setup.is_centred(k):
+            u = sites[f"z_subject_{name}"] - mu[k]
+            eta = (u - mean) / tril[k, k]
+        else:
+            eta = sites[f"eta_{name}"]
+            u = mean + tril[k, k] * eta
+        etas.append(eta)
+        offsets.append(u)
+    return jnp.stack(offsets, axis=1)
+
+
+def hierarchical_log_density(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """log HalfNormal(sd_z; 1) + log LKJCholesky(L; 2) + sum_s log N(u_s; 0, T T^T) in the
+    sampled coordinates: sum_k sum_s [log N(eta_sk; 0, 1) - centred_k log c_k]
+    (the change of variables eta_k -> z_subject_k for the centred parameters)."""
+    k = len(setup.names)
+    total = jnp.sum(dist.HalfNormal(HYPER_SD_SCALE).log_prob(sites["sd_z"]))
+    if k > 1:
+        total = total + dist.LKJCholesky(k, LKJ_CONCENTRATION).log_prob(sites["L_corr"])
+    tril = population_scale_tril(setup, sites)
+    u = subject_offsets(setup, sites)
+    eta = jax.scipy.linalg.solve_triangular(tril, u.T, lower=True).T
+    total = total + jnp.sum(dist.Normal(0.0, 1.0).log_prob(eta))
+    centred = jnp.asarray([setup.is_centred(j) for j in range(k)], jnp.float64)
+    return total - setup.n_subjects * jnp.sum(centred * jnp.log(jnp.diagonal(tril)))
+
+
+jitted_hierarchical_log_density = jax.jit(hierarchical_log_density, static_argnums=0)
 
 
 def cell_loglik(setup: Setup, sites: Mapping[str, Any], args: CellArgs) -> Any:
@@ -232,22 +273,19 @@ def numpyro_model(setup: Setup, args: CellArgs) -> None:
             )
     if setup.hierarchical:
         k = len(setup.names)
-        sites["sd_z"] = numpyro.sample(
-            "sd_z", dist.HalfNormal(HYPER_SD_SCALE).expand([k]).to_event(1)
-        )
+        # densities in one compiled factor (eager NumPyro start-up would compile every
+        # primitive of them separately); the sites only carry supports
+        sites["sd_z"] = numpyro.sample("sd_z", dist.ImproperUniform(constraints.positive, (), (k,)))
         if k > 1:
-            sites["L_corr"] = numpyro.sample("L_corr", dist.LKJCholesky(k, LKJ_CONCENTRATION))
-        if setup.centred:
-            subjects = dist.MultivariateNormal(
-                population_location(setup, sites), scale_tril=population_scale_tril(setup, sites)
+            sites["L_corr"] = numpyro.sample(
+                "L_corr", dist.ImproperUniform(constraints.corr_cholesky, (), (k, k))
             )
-            sites["z_subject"] = numpyro.sample(
-                "z_subject", subjects.expand([setup.n_subjects]).to_event(1)
+        for j, name in enumerate(setup.names):
+            site = f"z_subject_{name}" if setup.is_centred(j) else f"eta_{name}"
+            sites[site] = numpyro.sample(
+                site, dist.ImproperUniform(constraints.real, (), (setup.n_subjects,))
             )
-        else:
-            sites["eta"] = numpyro.sample(
-                "eta", dist.Normal(0.0, 1.0).expand([setup.n_subjects, k]).to_event(2)
-            )
+        numpyro.factor("population", jitted_hierarchical_log_density(setup, sites))
     numpyro.factor("prior", jitted_intercept_prior(setup, sites))
     numpyro.factor("loglik", jitted_total_loglik(setup, sites, args))
 
@@ -355,11 +393,12 @@ def zero_offset_sites(setup: Setup, sites: Mapping[str, Any]) -> dict[str, Any]:
     """Hierarchical sites that put every subject at the population location (u = 0)."""
     k = len(setup.names)
     out: dict[str, Any] = {"sd_z": jnp.ones(k), "L_corr": jnp.eye(k)}
-    if setup.centred:
-        mu = population_location(setup, sites)
-        out["z_subject"] = jnp.tile(mu[None, :], (setup.n_subjects, 1))
-    else:
-        out["eta"] = jnp.zeros((setup.n_subjects, k))
+    mu = population_location(setup, sites)
+    for j, name in enumerate(setup.names):
+        if setup.is_centred(j):
+            out[f"z_subject_{name}"] = jnp.full(setup.n_subjects, mu[j])
+        else:
+            out[f"eta_{name}"] = jnp.zeros(setup.n_subjects)
     return out
 
 
@@ -387,7 +426,7 @@ def prepare(
     priors: Mapping[str, Any] | None,
     pointwise: str,
     aggregate: bool = True,
-    centred: bool = False,
+    centred: Sequence[bool] = (),
 ) -> tuple[Setup, CellArgs, Cells, np.ndarray, str]:
     """Cells (subject x distinct design row when hierarchical, distinct design row when
     pooled), their designs and subjects, and the static setup. With ``aggregate``, rows that
@@ -427,7 +466,7 @@ def prepare(
         coef_names={n: tuple(c) for n, (_, c) in designs.items()},
         hierarchical=hierarchical,
         n_subjects=int(data.n_subjects),
-        centred=bool(hierarchical and centred),
+        centred=tuple(bool(c) for c in centred) if hierarchical else (),
     )
     return setup, args, cells, unit_labels, unit_name
 
@@ -536,7 +575,8 @@ def hierarchical_values(
 ) -> dict[str, Any]:
     """Initial site values (constrained scale) for a hierarchical fit: intercepts at mu,
     covariate effects at 0, sd_z from the subjects' spread, Omega = I, and each subject at
-    its clipped ML estimate (centred: z_subject; non-centred: eta = (z_s - mu) / sd)."""
+    its clipped ML estimate (centred: z_subject_<k> = z_sk; non-centred:
+    eta_<k> = (z_sk - mu_k) / sd_k, which is the same point since Omega = I)."""
     out: dict[str, Any] = dict(values)
     for k, name in enumerate(setup.names):
         if setup.has_intercept(name):
@@ -549,10 +589,42 @@ def hierarchical_values(
     if k > 1:
         out["L_corr"] = np.eye(k)
     location = np.where([setup.has_intercept(n) for n in setup.names], start.mu, 0.0)
-    if setup.centred:
-        out["z_subject"] = np.asarray(start.subject_z, np.float64)
-    else:
-        out["eta"] = (np.asarray(start.subject_z) - location[None, :]) / start.sd[None, :]
+    subject_z = np.asarray(start.subject_z, np.float64)
+    for j, name in enumerate(setup.names):
+        if setup.is_centred(j):
+            out[f"z_subject_{name}"] = subject_z[:, j]
+        else:
+            out[f"eta_{name}"] = (subject_z[:, j] - location[j]) / start.sd[j]
+    return out
+
+
+def jitter_scales(setup: Setup, start: SubjectStart, jitter: float = 0.1) -> dict[str, Any]:
+    """Per-site start jitter (unconstrained scale) small enough that no chain starts a
+    subject more than half a standard error from its ML estimate: a jitter of fixed size
+    can push a sharply identified subject over a cliff of the likelihood (e.g. CRRA r >= 1
+    with a zero bank). With se[s, k] the subject's ML standard error (``jitter`` if unknown):
+
+      z_subject_<k>[s]: min(jitter, se/2);  eta_<k>[s]: min(jitter, se/2) / sd_k
+      non-centred k moves with mu_k, sd_k and L: z_<k>: min(jitter, min_s se/2),
+      sd_z and L_corr: min(jitter, min_s se / (6 sd_k)) (|u| <= 3 sd); effects b: 0.
+    """
+    k = len(setup.names)
+    se = start.subject_se
+    if se is None:
+        se = np.full((setup.n_subjects, k), np.nan)
+    half = np.minimum(jitter, np.nan_to_num(se / 2.0, nan=jitter))
+    out: dict[str, Any] = {}
+    sd_scale = np.full(k, jitter)
+    for j, name in enumerate(setup.names):
+        if setup.is_centred(j):
+            out[f"z_subject_{name}"] = half[:, j]
+        else:
+            out[f"eta_{name}"] = half[:, j] / start.sd[j]
+            out[f"z_{name}"] = float(np.min(half[:, j]))
+            sd_scale[j] = min(jitter, float(np.min(half[:, j])) / (3.0 * start.sd[j]))
+        out[f"b_{name}"] = 0.0
+    out["sd_z"] = sd_scale
+    out["L_corr"] = float(np.min(sd_scale))
     return out
 
 
@@ -626,6 +698,7 @@ def run_nuts(
     warmup: int,
     seed: int,
     init_values: Mapping[str, Any],
+    init_scales: Mapping[str, Any] | None = None,
     progress: bool,
     target_accept: float,
     max_tree_depth: int,
@@ -638,7 +711,7 @@ def run_nuts(
         partial(numpyro_model, setup),
         target_accept_prob=target_accept,
         max_tree_depth=max_tree_depth,
-        init_strategy=init_near(values=init_values),
+        init_strategy=init_near(values=init_values, scales=init_scales),
         dense_mass=[population_sites(setup)] if dense_mass else False,
     )
     mcmc = MCMC(
@@ -765,7 +838,7 @@ def fit_bayes(
         )
     notes: list[str] = []
     natural = initial_natural(model, data, init, formulas, notes)
-    start, form = None, None
+    start, form = None, ()
     if hierarchical:
         start = hierarchical_start(model, data, None if init is None else natural, notes)
         form = choose_parametrisation(parametrisation, start, data.n_obs / data.n_subjects)
@@ -778,7 +851,7 @@ def fit_bayes(
         priors=priors,
         pointwise=pointwise,
         aggregate=aggregate,
-        centred=form == "centred",
+        centred=form,
     )
     if aggregate and not aggregation_is_exact(model, data, args, setup):
         notes.append(
@@ -793,11 +866,13 @@ def fit_bayes(
             priors=priors,
             pointwise=pointwise,
             aggregate=False,
-            centred=form == "centred",
+            centred=form,
         )
     values = initial_values(setup, natural)
+    scales = None
     if start is not None:
         values = hierarchical_values(setup, start, values)
+        scales = jitter_scales(setup, start)
     if dense_mass is None:
         dense_mass = hierarchical
     method = choose_chain_method(chain_method, chains)
@@ -810,6 +885,7 @@ def fit_bayes(
         warmup=warmup,
         seed=seed,
         init_values=values,
+        init_scales=scales,
         progress=progress,
         target_accept=target_accept,
         max_tree_depth=max_tree_depth,
@@ -839,7 +915,7 @@ def fit_bayes(
             "target_accept": target_accept,
             "max_tree_depth": max_tree_depth,
             "init": _init_text(init),
-            "parametrisation": form,
+            "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": bool(dense_mass),
             "sampling_seconds": elapsed,
             "formulas": _formula_list(formulas),

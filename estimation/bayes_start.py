@@ -6,20 +6,27 @@ unidentified (never draws, separation, estimate at a bound, indefinite Hessian, 
 convergence) or with a non-finite estimate are left out of the summaries:
 
   mu_k          = median_s a[s, k]       (the pooled ML estimate or user values when given)
-  sd_k          = clip(1.4826 * MAD_s a[s, k], SD_FLOOR, SD_CEILING)
+  spread_k      = 1.4826 * MAD_s a[s, k]  (normal-consistent median absolute deviation)
+  between_k     = sqrt(max(spread_k^2 - median_s se[s, k]^2, 0))   (estimation noise removed)
+  sd_k          = clip(between_k, SD_FLOOR, SD_CEILING)
   start[s, k]   = clip(a[s, k], mu_k - 3 sd_k, mu_k + 3 sd_k); unidentified subjects at mu_k
   Omega         = I
 
 Parametrisation (Papaspiliopoulos, Roberts & Skold 2007; Betancourt & Girolami 2015): the
-centred form z_s ~ MVN(mu, diag(sd) Omega diag(sd)) samples well when each subject's
-likelihood is informative relative to the population spread (the posterior of z_s is then
-nearly independent of (mu, sd)), the non-centred form z_s = mu + diag(sd) L eta_s when it is
-weak (the funnel between eta and sd is then mild). The rule used for
-``parametrisation="auto"``:
+centred form (sample the subject's value z_s directly) suits a parameter whose per-subject
+likelihood is informative relative to the population spread (its posterior is then nearly
+independent of mu and sd); the non-centred form (sample a standard normal eta_s and set
+z_s = mu + sd eta_s) suits a weakly identified one (the funnel between z_s and sd is then
+removed). It is chosen per parameter (estimation/bayes.py, ``subject_offsets``). The rule
+used for ``parametrisation="auto"``:
 
-  ratio_k = median_s se[s, k] / sd_k;   centred  iff  ratio_k < 1 for every parameter k,
+  ratio_k = median_s se[s, k] / between_k;   parameter k centred  iff  ratio_k < CENTRED_RATIO,
 
-and, when fewer than half of the subjects give a finite standard error for some parameter,
+with CENTRED_RATIO = 0.5: a subject's data must pin its value down clearly more tightly
+than the population spread (near ratio 1 the population sd may still approach 0, where the
+centred form has a funnel; measured on the demo data: benchmarks/RESULTS.md),
+
+and, when fewer than half of the subjects give a finite standard error for parameter k,
 centred iff the median subject has at least CENTRED_MIN_ROWS decisions (choices).
 """
 
@@ -40,6 +47,7 @@ from numpyro.infer import init_to_uniform
 SD_FLOOR = 0.05  # smallest starting population sd (unconstrained scale)
 SD_CEILING = 2.0  # largest starting population sd
 SUBJECT_CLIP = 3.0  # subject starts within mu +- SUBJECT_CLIP * sd
+CENTRED_RATIO = 0.5  # centred when median se / between-subject sd is below this
 CENTRED_MIN_ROWS = 100  # fallback rule: centred with at least this many rows per subject
 PARAMETRISATIONS = ("auto", "centred", "noncentred")
 
@@ -55,6 +63,7 @@ class SubjectStart:
     ratio: np.ndarray  # median se / sd per parameter (NaN where too few SEs)
     n_identified: int
     note: str
+    subject_se: np.ndarray | None = None  # (n, K) ML standard errors, NaN where unknown
 
 
 def robust_spread(values: np.ndarray) -> float:
@@ -77,30 +86,51 @@ def summarise_subject_fits(
     if mu is None:
         mu = np.median(good, axis=0) if len(good) else np.zeros(k)
     mu = np.asarray(mu, np.float64)
-    sd = np.array([robust_spread(good[:, j]) for j in range(k)]) if len(good) else np.full(k, 0.3)
-    sd = np.clip(np.nan_to_num(sd, nan=0.3), SD_FLOOR, SD_CEILING)
-    start = np.where(ok[:, None], np.clip(z, mu - SUBJECT_CLIP * sd, mu + SUBJECT_CLIP * sd), mu)
+    spread = np.array([robust_spread(good[:, j]) for j in range(k)]) if len(good) else None
     ratio = np.full(k, np.nan)
+    between = np.full(k, 0.3) if spread is None else np.nan_to_num(spread, nan=0.3)
     for j in range(k):
         finite = se[ok, j][np.isfinite(se[ok, j])]
-        if len(finite) >= max(1, n // 2):
-            ratio[j] = float(np.median(finite)) / sd[j]
+        if len(finite) >= max(1, n // 2) and spread is not None:
+            noise = float(np.median(finite))
+            between[j] = math.sqrt(max(between[j] ** 2 - noise**2, 0.0))
+            ratio[j] = noise / between[j] if between[j] > 0 else math.inf
+    sd = np.clip(between, SD_FLOOR, SD_CEILING)
+    start = np.where(ok[:, None], np.clip(z, mu - SUBJECT_CLIP * sd, mu + SUBJECT_CLIP * sd), mu)
     note = (
         f"hierarchical start: per-subject ML fits ({int(ok.sum())} of {n} subjects identified); "
-        "population sd from their spread (MAD)"
+        "population sd from their spread (MAD less estimation noise)"
     )
-    return SubjectStart(mu, sd, start, ratio, int(ok.sum()), note)
+    se_start = np.where(ok[:, None] & np.isfinite(se), se, np.nan)
+    return SubjectStart(mu, sd, start, ratio, int(ok.sum()), note, se_start)
 
 
-def choose_parametrisation(choice: str, start: SubjectStart, rows_per_subject: float) -> str:
-    """'centred' or 'noncentred' by the rule of the module docstring (or as chosen)."""
+def choose_parametrisation(
+    choice: str, start: SubjectStart, rows_per_subject: float
+) -> tuple[bool, ...]:
+    """Per parameter: centred (True) or non-centred (False), by the rule of the module
+    docstring for "auto", or all as chosen ("centred" / "noncentred")."""
+    k = len(start.mu)
     if choice in ("centred", "noncentred"):
-        return choice
+        return (choice == "centred",) * k
     if choice != "auto":
         raise ValueError(f"parametrisation {choice!r}: expected one of {PARAMETRISATIONS}")
-    if np.all(np.isfinite(start.ratio)):
-        return "centred" if bool(np.all(start.ratio < 1.0)) else "noncentred"
-    return "centred" if rows_per_subject >= CENTRED_MIN_ROWS else "noncentred"
+    fallback = rows_per_subject >= CENTRED_MIN_ROWS
+    return tuple(
+        bool(r < CENTRED_RATIO) if not math.isnan(r) else fallback
+        for r in np.asarray(start.ratio, float)
+    )
+
+
+def describe_parametrisation(names: tuple[str, ...], centred: tuple[bool, ...]) -> str:
+    """'centred', 'non-centred' or e.g. 'centred: r; non-centred: precision'."""
+    if all(centred):
+        return "centred"
+    if not any(centred):
+        return "non-centred"
+    yes = ", ".join(n for n, c in zip(names, centred) if c)
+    no = ", ".join(n for n, c in zip(names, centred) if not c)
+    return f"centred: {yes}; non-centred: {no}"
 
 
 def per_subject_estimates(model: Any, data: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -129,17 +159,26 @@ def init_near(
     values: Mapping[str, Any] | None = None,
     radius: float = 0.5,
     jitter: float = 0.1,
+    scales: Mapping[str, Any] | None = None,
 ) -> Any:
     """NumPyro init strategy: named sites at ``values`` (constrained scale) moved by
-    Uniform(-jitter, jitter) on their unconstrained scale (so chains start apart but near),
-    other sites Uniform(-radius, radius) on the unconstrained scale."""
+    Uniform(-1, 1) * scale on their unconstrained scale (so chains start apart but near;
+    scale = ``scales[name]``, broadcast over the site, else ``jitter``), other sites
+    Uniform(-radius, radius) on the unconstrained scale."""
     if site is None:
-        return partial(init_near, values=dict(values or {}), radius=radius, jitter=jitter)
+        return partial(
+            init_near,
+            values=dict(values or {}),
+            radius=radius,
+            jitter=jitter,
+            scales=dict(scales or {}),
+        )
     if site["type"] == "sample" and not site["is_observed"] and site["name"] in (values or {}):
         key = site["kwargs"].get("rng_key")
         shape = site["kwargs"].get("sample_shape", ())
         transform = biject_to(site["fn"].support)
         free = transform.inv(jnp.asarray(values[site["name"]], jnp.float64))
-        moved = free + jax.random.uniform(key, shape + free.shape, minval=-jitter, maxval=jitter)
-        return transform(moved)
+        scale = jnp.asarray((scales or {}).get(site["name"], jitter), jnp.float64)
+        step = jax.random.uniform(key, shape + free.shape, minval=-1.0, maxval=1.0)
+        return transform(free + scale * step)
     return init_to_uniform(site, radius=radius)

@@ -18,6 +18,7 @@ from stopwise.estimation.bayes_start import (
     SD_FLOOR,
     SubjectStart,
     choose_parametrisation,
+    describe_parametrisation,
     init_near,
     robust_spread,
     summarise_subject_fits,
@@ -51,7 +52,10 @@ def test_subject_starts_are_clipped_and_unidentified_subjects_sit_at_mu():
     np.testing.assert_allclose(start.subject_z[2], start.mu)
     assert start.subject_z[0, 0] == pytest.approx(start.mu[0] + 3 * start.sd[0])
     np.testing.assert_allclose(start.subject_z[5], z[5])
-    np.testing.assert_allclose(start.ratio, 0.1 / start.sd)
+    spread = np.array([stats.median_abs_deviation(good[:, j], scale="normal") for j in (0, 1)])
+    between = np.sqrt(spread**2 - 0.1**2)  # estimation noise removed
+    np.testing.assert_allclose(start.sd, between, rtol=1e-4)
+    np.testing.assert_allclose(start.ratio, 0.1 / between, rtol=1e-4)
     same = summarise_subject_fits(np.zeros((5, 1)), np.ones((5, 1)), np.ones(5, bool))
     assert same.sd[0] == SD_FLOOR
 
@@ -61,11 +65,16 @@ def test_parametrisation_rule():
         k = len(ratio)
         return SubjectStart(np.zeros(k), np.ones(k), np.zeros((3, k)), np.array(ratio), 3, "")
 
-    assert choose_parametrisation("auto", start([0.3, 0.8]), 10) == "centred"
-    assert choose_parametrisation("auto", start([0.3, 1.5]), 1000) == "noncentred"
-    assert choose_parametrisation("auto", start([np.nan]), CENTRED_MIN_ROWS) == "centred"
-    assert choose_parametrisation("auto", start([np.nan]), CENTRED_MIN_ROWS - 1) == "noncentred"
-    assert choose_parametrisation("noncentred", start([0.1]), 10) == "noncentred"
+    assert choose_parametrisation("auto", start([0.3, 0.45]), 10) == (True, True)
+    assert choose_parametrisation("auto", start([0.3, 0.8]), 10) == (True, False)
+    assert choose_parametrisation("auto", start([0.3, 1.5]), 1000) == (True, False)
+    assert choose_parametrisation("auto", start([np.inf]), 1000) == (False,)
+    assert choose_parametrisation("auto", start([np.nan]), CENTRED_MIN_ROWS) == (True,)
+    assert choose_parametrisation("auto", start([np.nan]), CENTRED_MIN_ROWS - 1) == (False,)
+    assert choose_parametrisation("noncentred", start([0.1, 0.1]), 10) == (False, False)
+    assert describe_parametrisation(("r", "precision"), (True, False)) == (
+        "centred: r; non-centred: precision"
+    )
     with pytest.raises(ValueError):
         choose_parametrisation("sideways", start([0.1]), 10)
 
@@ -101,28 +110,44 @@ def small_stopping():
     return model, to_stopping_data(pd.concat(frames, ignore_index=True))
 
 
-def test_centred_and_noncentred_sites_give_the_same_likelihood(small_stopping):
-    # Both forms describe u_s = diag(sd) L eta_s = z_s - mu: equal offsets, equal likelihood.
+def test_centred_and_noncentred_sites_give_the_same_offsets_and_density(small_stopping):
+    # Every per-parameter choice describes the same u_s = diag(sd) L eta_s ~ MVN(0, Sigma):
+    # equal offsets, equal likelihood, and a density that differs from the non-centred one
+    # only by the Jacobian -n sum_{k centred} log c_k (change of variables; common practice).
     model, data = small_stopping
     kw = dict(hierarchical=True, formulas=None, priors=None, pointwise="trial")
-    setup_c, args, *_ = bayes.prepare(model, data, centred=True, **kw)
-    setup_n, args_n, *_ = bayes.prepare(model, data, centred=False, **kw)
     rng = np.random.default_rng(1)
-    n = setup_c.n_subjects
+    n = data.n_subjects
     sd = jnp.array([0.3, 0.6])
     angle = 0.4
     chol = jnp.array([[1.0, 0.0], [np.sin(angle), np.cos(angle)]])
     eta = jnp.asarray(rng.normal(size=(n, 2)))
-    common = {"z_r": jnp.asarray(0.1), "z_precision": jnp.asarray(0.4), "sd_z": sd, "L_corr": chol}
     mu = jnp.array([0.1, 0.4])
-    centred = {**common, "z_subject": mu + eta @ (sd[:, None] * chol).T}
-    noncentred = {**common, "eta": eta}
-    np.testing.assert_allclose(
-        bayes.subject_offsets(setup_c, centred), bayes.subject_offsets(setup_n, noncentred)
+    common = {"z_r": mu[0], "z_precision": mu[1], "sd_z": sd, "L_corr": chol}
+    u = eta @ (sd[:, None] * chol).T
+    # reference density: MVN(u_s; 0, Sigma) (numpyro's MultivariateNormal) + hyperpriors
+    reference = float(
+        jnp.sum(dist.MultivariateNormal(jnp.zeros(2), scale_tril=sd[:, None] * chol).log_prob(u))
+        + jnp.sum(dist.HalfNormal(1.0).log_prob(sd))
+        + dist.LKJCholesky(2, 2.0).log_prob(chol)
     )
-    a = float(bayes.total_loglik(setup_c, centred, args))
-    b = float(bayes.total_loglik(setup_n, noncentred, args_n))
-    assert a == pytest.approx(b, rel=1e-12)
+    values = []
+    for centred in ((False, False), (True, True), (True, False), (False, True)):
+        setup, args, *_ = bayes.prepare(model, data, centred=centred, **kw)
+        sites = dict(common)
+        for k, name in enumerate(("r", "precision")):
+            if centred[k]:
+                sites[f"z_subject_{name}"] = mu[k] + u[:, k]
+            else:
+                sites[f"eta_{name}"] = eta[:, k]
+        np.testing.assert_allclose(bayes.subject_offsets(setup, sites), u, atol=1e-12)
+        values.append(float(bayes.total_loglik(setup, sites, args)))
+        density = float(bayes.hierarchical_log_density(setup, sites))
+        # MVN(u) = prod_k N(eta_k) / c_k: the all-centred form equals the MVN density
+        c = np.diag(np.asarray(sd[:, None] * chol))
+        log_c = float(np.sum(np.log(c)[~np.asarray(centred)]))
+        assert density == pytest.approx(reference + n * log_c, rel=1e-10)
+    assert max(values) - min(values) < 1e-9 * abs(values[0])
 
 
 def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
@@ -138,10 +163,11 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
             warmup=30,
             progress=False,
         )
-        assert post.run["parametrisation"] == form and post.run["dense_mass"] is True
+        expected = "centred" if form == "centred" else "non-centred"
+        assert post.run["parametrisation"] == expected and post.run["dense_mass"] is True
         assert any("per-subject ML fits" in note for note in post.notes)
         assert np.all(np.isfinite(post.draws("r")))
-        assert form in post.summary()
+        assert expected in post.summary()
         assert any("R-hat cannot be computed" in w for w in post.warnings)  # one chain
         assert post.converged is False
     with pytest.raises(StopwiseInputError, match="parametrisation"):
