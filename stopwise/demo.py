@@ -332,9 +332,45 @@ def fit_contest_models(path: Path, out: Path) -> None:
     write_table(out / "counterfactual.csv", table)
 
 
+HIER_MODEL = "crra+myopic+logit"  # cheap policy: the demo's Bayesian step stays short
+HIER_SUBJECTS = 20
+HIER_CHAINS, HIER_DRAWS, HIER_WARMUP = 2, 300, 300
+
+
+def fit_hierarchical_model(path: Path, out: Path) -> None:
+    """A small hierarchical Bayesian fit (NUTS) of HIER_MODEL to the solo dives of the first
+    HIER_SUBJECTS divers, with its diagnostics, written to ``out/fit_hier.json``."""
+    from stopwise._io import write_json
+    from stopwise.api import fit
+    from stopwise.data_schemas.load import load
+
+    frame = load(path).frame
+    frame = frame[frame["task"] == "solo"]
+    divers = sorted(frame["subject"].unique())[:HIER_SUBJECTS]
+    frame = frame[frame["subject"].isin(divers)].reset_index(drop=True)
+    _heading(
+        f"Solo dives: hierarchical Bayesian {HIER_MODEL} for {len(divers)} divers "
+        f"(NUTS, {HIER_CHAINS} chains x {HIER_DRAWS} draws after {HIER_WARMUP} warm-up)"
+    )
+    posterior = fit(
+        HIER_MODEL,
+        frame,
+        method="bayes",
+        hierarchical=True,
+        chains=HIER_CHAINS,
+        draws=HIER_DRAWS,
+        warmup=HIER_WARMUP,
+        seed=1,
+        progress=False,
+    )
+    print(posterior.summary())
+    write_json(out / "fit_hier.json", posterior.to_dict())
+
+
 def run_demo(out: Path, n_subjects: int = 120) -> None:
     """Write the demo data into ``out``, validate and describe the files, fit and compare
-    solo, lottery and contest models, and predict play under other bonus schemes."""
+    solo, lottery and contest models, predict play under other bonus schemes, and run a
+    small hierarchical Bayesian fit with its diagnostics."""
     out = Path(out)
     paths = write_demo_files(demo_data(n_subjects=n_subjects), out)
     print(f"Demo data (invented salvage-diving study) written to {out}/")
@@ -344,6 +380,7 @@ def run_demo(out: Path, n_subjects: int = 120) -> None:
     fit_solo_models(paths["stopping"], out)
     fit_lottery_model(paths["lottery"], out)
     fit_contest_models(paths["stopping"], out)
+    fit_hierarchical_model(paths["stopping"], out)
     print(
         f"\nTables and JSON results are in {out}/. These are research estimates on invented "
         "data, not a basis for individual financial, clinical or hiring decisions."

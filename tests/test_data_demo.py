@@ -17,6 +17,7 @@ DEMO_OUTPUTS = sorted(
         "compare_solo.csv",
         "fit_solo.json",
         "fit_lottery.json",
+        "fit_hier.json",
         "compare_contest.csv",
         "counterfactual.csv",
     ]
@@ -70,3 +71,8 @@ def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     fit = json.loads((out / "fit_solo.json").read_text())
     assert fit["model"] == "crra+planner+logit" and fit["converged"] is True
     assert [p["name"] for p in fit["params"]] == ["r", "r:treatment", "precision"]
+    assert "hierarchical Bayesian crra+myopic+logit" in printed and "max R-hat" in printed
+    hier = json.loads((out / "fit_hier.json").read_text())
+    assert hier["method"] == "bayes" and hier["hierarchical"] is True
+    assert hier["n_subjects"] == 12
+    assert {"max_rhat", "min_ess_bulk", "divergences"} <= set(hier["diagnostics"])

@@ -13,8 +13,9 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="run the main job on the built-in demo data",
         description="Write the demo data set (an invented salvage-diving study generated "
         "by our own simulator) into DIR, validate and describe it, fit and compare solo, "
-        "lottery and contest models, and predict play under other bonus schemes; tables "
-        "and JSON results are written beside the data.",
+        "lottery and contest models, predict play under other bonus schemes and run a small "
+        "hierarchical Bayesian fit with its diagnostics; tables and JSON results are written "
+        "beside the data.",
     )
     parser.add_argument(
         "--out", metavar="DIR", default="demo_output", help="output folder (default: demo_output)"
