@@ -839,6 +839,7 @@ def fit_bayes(
     notes: list[str] = []
     natural = initial_natural(model, data, init, formulas, notes)
     start, form = None, ()
+    t_start = time.perf_counter()
     if hierarchical:
         start = hierarchical_start(model, data, None if init is None else natural, notes)
         form = choose_parametrisation(parametrisation, start, data.n_obs / data.n_subjects)
@@ -868,6 +869,7 @@ def fit_bayes(
             aggregate=False,
             centred=form,
         )
+    start_seconds = time.perf_counter() - t_start
     values = initial_values(setup, natural)
     scales = None
     if start is not None:
@@ -892,10 +894,13 @@ def fit_bayes(
         chain_method=method,
         dense_mass=bool(dense_mass),
     )
-    elapsed = time.perf_counter() - t0
-    # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower
+    # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower; the
+    # conversion also waits for chains that run asynchronously (pmap), so time after it
     samples = {k: np.asarray(v) for k, v in mcmc.get_samples(group_by_chain=True).items()}
+    elapsed = time.perf_counter() - t0
+    t1 = time.perf_counter()
     pointwise_ll = draws_pointwise(setup, samples, args, len(unit_labels))
+    pointwise_seconds = time.perf_counter() - t1
     return build_posterior(
         setup=setup,
         data=data,
@@ -917,7 +922,9 @@ def fit_bayes(
             "init": _init_text(init),
             "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": bool(dense_mass),
+            "start_seconds": start_seconds,
             "sampling_seconds": elapsed,
+            "pointwise_seconds": pointwise_seconds,
             "formulas": _formula_list(formulas),
         },
         hdi_prob=hdi_prob,
