@@ -24,7 +24,7 @@ used for ``parametrisation="auto"``:
 
 with CENTRED_RATIO = 0.5: a subject's data must pin its value down clearly more tightly
 than the population spread (near ratio 1 the population sd may still approach 0, where the
-centred form has a funnel; measured on the demo data: benchmarks/RESULTS.md),
+centred form has a funnel; measured on demo data: benchmarks/bench_bayes.py docstring),
 
 and, when fewer than half of the subjects give a finite standard error for parameter k,
 centred iff the median subject has at least CENTRED_MIN_ROWS decisions (choices).
