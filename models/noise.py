@@ -103,6 +103,17 @@ def _mix_tremble(log_p: Any, eps: Any, n_options: Any) -> Any:
     return jnp.logaddexp(jnp.log1p(-eps) + log_p, jnp.log(eps) - jnp.log(n_options))
 
 
+def log_sigmoid_pair(z: Any) -> tuple[Any, Any]:
+    """(log sigmoid(z), log sigmoid(-z)) from one exp and one log1p:
+    with l = log(1 + exp(-|z|)), log sigmoid(z) = min(z, 0) - l and log sigmoid(-z) =
+    min(-z, 0) - l (no cancellation for large |z|; about half the work of two calls).
+    The branches are chosen by one sign test, so every derivative (also at z = 0) is that
+    of a single smooth branch."""
+    upper = z >= 0
+    shared = jnp.log1p(jnp.exp(jnp.where(upper, -z, z)))
+    return jnp.where(upper, -shared, z - shared), jnp.where(upper, -z - shared, -shared)
+
+
 def log_p_choose(diff: Any, theta: Theta, rule: str | NoiseRule = "logit") -> tuple[Any, Any]:
     """Binary choice: (log P(1), log P(2)) for d = V1 - V2.
 
@@ -113,7 +124,7 @@ def log_p_choose(diff: Any, theta: Theta, rule: str | NoiseRule = "logit") -> tu
     diff = jnp.asarray(diff, dtype=jnp.float64)
     if rule.base == "logit":
         z = jnp.asarray(theta["precision"], dtype=jnp.float64) * diff
-        log_p, log_q = jax.nn.log_sigmoid(z), jax.nn.log_sigmoid(-z)
+        log_p, log_q = log_sigmoid_pair(z)
     else:
         z = diff / jnp.asarray(theta["sigma"], dtype=jnp.float64)
         log_p, log_q = log_ndtr(z), log_ndtr(-z)

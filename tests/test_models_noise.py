@@ -29,6 +29,23 @@ def test_binary_rules_match_scipy():
     np.testing.assert_allclose(np.exp(lp) + np.exp(lq), 1.0, rtol=1e-12)
 
 
+def test_logit_derivatives_match_the_logistic_identities_also_at_zero():
+    # d/dz log expit(z) = expit(-z) and d2/dz2 log expit(z) = -expit(z) expit(-z): identities
+    # of the logistic function (common practice, no source); expit from scipy.special.
+    z = np.array([-40.0, -3.0, -1e-9, 0.0, 1e-9, 0.5, 7.0, 40.0])
+    for side, sign in ((0, 1.0), (1, -1.0)):
+
+        def log_p(x, side=side):
+            return log_p_choose(x, {"precision": 1.0}, "logit")[side]
+
+        first = jax.vmap(jax.grad(log_p))(jnp.asarray(z))
+        second = jax.vmap(jax.hessian(log_p))(jnp.asarray(z))
+        np.testing.assert_allclose(first, sign * special.expit(-sign * z), rtol=1e-12, atol=1e-300)
+        np.testing.assert_allclose(
+            second, -special.expit(z) * special.expit(-z), rtol=1e-12, atol=1e-300
+        )
+
+
 def test_extreme_precision_and_differences_stay_finite():
     d = jnp.array([-1e100, -1e6, -1.0, 0.0, 1.0, 1e6, 1e100])
     for rule, theta in (
