@@ -36,9 +36,11 @@ time a fit starts JAX's CPU backend exists and numpyro.set_host_device_count (wh
 XLA_FLAGS=--xla_force_host_platform_device_count) can no longer add devices; with the default
 single device NumPyro's "parallel" would silently fall back to one chain after another. Users
 who want parallel chains set XLA_FLAGS=--xla_force_host_platform_device_count=4 before
-starting Python. "vectorized" costs one dispatch per leapfrog step for all chains (cheap
-likelihoods gain most); since batched chains wait for the longest trajectory, "sequential" can
-be faster for expensive likelihoods with uneven tree depths (a documented option).
+starting Python; the ``stopwise`` command line does this itself (one device per chain, at
+least 4) unless XLA_FLAGS already sets a device count (stopwise/cli.py). "vectorized" costs
+one dispatch per leapfrog step for all chains (cheap likelihoods gain most); since batched
+chains wait for the longest trajectory, "sequential" can be faster for expensive likelihoods
+with uneven tree depths (a documented option).
 
 The pointwise log-likelihood for ArviZ is computed after sampling (vmapped over draws in
 chunks), not stored during sampling, and is summed per *unit*: a trial for stopping data (the

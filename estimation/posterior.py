@@ -22,6 +22,7 @@ the "diagnostics" block carries PSIS-LOO (Vehtari, Gelman & Gabry 2017) instead.
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from itertools import combinations
@@ -302,7 +303,11 @@ class Posterior:
     def loo(self) -> Any:
         """PSIS-LOO (ArviZ) over the pointwise units; cached."""
         if self._loo is None:
-            self._loo = az.loo(self.idata, pointwise=True)
+            with warnings.catch_warnings():
+                # ArviZ's generic advice on large Pareto k; stopwise reports the count of
+                # units with k > 0.7 itself (loo_summary, summary(), compare notes)
+                warnings.filterwarnings("ignore", message="Estimated shape parameter of Pareto")
+                self._loo = az.loo(self.idata, pointwise=True)
         return self._loo
 
     def loo_summary(self) -> dict[str, Any]:

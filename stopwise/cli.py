@@ -18,6 +18,8 @@ from collections.abc import Sequence
 from stopwise.data_schemas.errors import StopwiseInputError
 
 COMMANDS = ("validate", "describe", "fit", "compare", "simulate", "equilibrium", "demo")
+DEFAULT_CHAINS = 4  # the --chains default of fit and compare
+DEVICE_FLAG = "--xla_force_host_platform_device_count"
 
 
 class _Parser(argparse.ArgumentParser):
@@ -56,11 +58,35 @@ def _version() -> str:
     return f"stopwise {__version__}"
 
 
+def host_device_flags(current: str | None, chains: int) -> str | None:
+    """XLA_FLAGS giving JAX one CPU device per sampling chain (at least DEFAULT_CHAINS), so
+    that NumPyro runs chains in parallel (chain_method "auto", estimation/bayes.py); None
+    when the user's XLA_FLAGS already choose a device count."""
+    if current and DEVICE_FLAG in current:
+        return None
+    flag = f"{DEVICE_FLAG}={max(int(chains), DEFAULT_CHAINS)}"
+    return f"{current} {flag}" if current else flag
+
+
+def give_chains_their_devices(args: argparse.Namespace) -> None:
+    """Set XLA_FLAGS (host_device_flags) before JAX starts its CPU backend; once the backend
+    runs (e.g. main() called inside a Python session) device counts are fixed, and nothing
+    is changed. Single-device work is not slowed by the extra devices (bench_bayes.py)."""
+    from jax._src import xla_bridge
+
+    if xla_bridge.backends_are_initialized():
+        return
+    flags = host_device_flags(os.environ.get("XLA_FLAGS"), getattr(args, "chains", None) or 0)
+    if flags is not None:
+        os.environ["XLA_FLAGS"] = flags
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point; returns the process exit code."""
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        give_chains_their_devices(args)
         if not getattr(args, "func", None):
             parser.print_help(sys.stderr)
             return 2

@@ -162,3 +162,29 @@ def test_public_recover_with_spec_rivals() -> None:
     ]
     with pytest.raises(StopwiseInputError, match="needs a design"):
         stopwise.recover("crra+logit", {"r": 0.3, "precision": 1.0}, n_reps=1)
+
+
+def test_command_line_gives_each_chain_a_cpu_device() -> None:
+    flag = "--xla_force_host_platform_device_count"
+    assert cli.host_device_flags(None, 0) == f"{flag}=4"
+    assert cli.host_device_flags(None, 6) == f"{flag}=6"
+    assert cli.host_device_flags("--xla_cpu_foo=1", 2) == f"--xla_cpu_foo=1 {flag}=4"
+    assert cli.host_device_flags(f"{flag}=2", 8) is None  # the user's choice stands
+
+
+def test_a_fresh_command_line_process_runs_chains_on_parallel_devices(tmp_path: Path) -> None:
+    import os
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, jax; from stopwise import cli; "
+        "args = cli.build_parser().parse_args(sys.argv[1:]); cli.give_chains_their_devices(args); "
+        "print(jax.local_device_count())"
+    )
+    env = {k: v for k, v in os.environ.items() if k != "XLA_FLAGS"}
+    args = ["fit", "x.csv", "--model", "crra+myopic+logit", "--chains", "5"]
+    out = subprocess.run(
+        [sys.executable, "-c", code, *args], env=env, capture_output=True, text=True, check=True
+    )
+    assert out.stdout.strip() == "5"
