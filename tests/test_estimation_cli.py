@@ -188,3 +188,30 @@ def test_a_fresh_command_line_process_runs_chains_on_parallel_devices(tmp_path: 
         [sys.executable, "-c", code, *args], env=env, capture_output=True, text=True, check=True
     )
     assert out.stdout.strip() == "5"
+
+
+def test_bayes_parametrisation_option_reaches_the_sampler(
+    data_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import stopwise.api
+
+    seen: dict = {}
+
+    class Recorded:
+        def summary(self) -> str:
+            return "recorded"
+
+        def to_dict(self) -> dict:
+            return {}
+
+    def record(*args, **kwargs):
+        seen.update(kwargs)
+        return Recorded()
+
+    monkeypatch.setattr(stopwise.api, "fit", record)
+    base = ["fit", str(data_file), "--model", "linear+myopic+logit"]
+    for choice in ("centred", "noncentred"):
+        argv = [*base, "--method", "bayes", "--hierarchical", "--parametrisation", choice]
+        assert cli.main(argv) == 0
+        assert seen["parametrisation"] == choice and seen["hierarchical"] is True
+    assert cli.main([*base, "--parametrisation", "centred"]) == 2  # ML fits have no such choice

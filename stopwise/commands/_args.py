@@ -47,11 +47,19 @@ def add_max_target(parser: argparse.ArgumentParser, help_text: str = CONTEST_CAP
 
 
 def add_hierarchical(parser: argparse.ArgumentParser) -> None:
-    """Bayes ``--hierarchical``."""
+    """Bayes ``--hierarchical`` and ``--parametrisation``."""
     parser.add_argument(
         "--hierarchical",
         action="store_true",
         help="Bayes: subject-level parameters with population hyperpriors",
+    )
+    parser.add_argument(
+        "--parametrisation",
+        choices=("auto", "centred", "noncentred"),
+        default="auto",
+        help="Bayes, hierarchical: centred or non-centred subject parameters (auto: chosen "
+        "per parameter from the per-subject ML standard errors against the spread between "
+        "subjects)",
     )
 
 

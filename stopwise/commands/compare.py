@@ -65,6 +65,7 @@ def run(args: argparse.Namespace) -> int:
             draws=args.draws,
             warmup=args.warmup,
             hierarchical=args.hierarchical,
+            parametrisation=args.parametrisation,
         )
     else:
         if args.cv_folds < 0 or args.cv_folds == 1:

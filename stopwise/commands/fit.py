@@ -135,6 +135,7 @@ def run(args: argparse.Namespace) -> int:
             max_target=args.max_target,
             seed=args.seed,
             hierarchical=args.hierarchical,
+            parametrisation=args.parametrisation,
             chains=args.chains,
             draws=args.draws,
             warmup=args.warmup,
@@ -142,8 +143,8 @@ def run(args: argparse.Namespace) -> int:
             formulas=args.formula or None,
         )
     else:
-        if args.hierarchical:
-            raise StopwiseInputError("--hierarchical applies to --method bayes")
+        if args.hierarchical or args.parametrisation != "auto":
+            raise StopwiseInputError("--hierarchical and --parametrisation apply to --method bayes")
         kw: dict[str, Any] = {}
         if args.fix:
             kw["fixed"] = parse_fixed(args.fix)
