@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from designs import holt_laury_columns
 from scipy import stats
 
 import stopwise
@@ -102,14 +103,7 @@ def test_lottery_simulation_frequencies_and_validity():
         {
             "subject": np.repeat(np.arange(30), 100),
             "item": np.tile(np.arange(100), 30),
-            "a_x1": 2.0,
-            "a_p1": chance,
-            "a_x2": 1.6,
-            "a_p2": 1 - chance,
-            "b_x1": 3.85,
-            "b_p1": chance,
-            "b_x2": 0.1,
-            "b_p2": 1 - chance,
+            **holt_laury_columns(chance),
         }
     )
     sim = stopwise.simulate(model, theta, design, seed=2)

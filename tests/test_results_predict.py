@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from designs import holt_laury_columns
 
 import stopwise  # enables float64 before jax is used
 from stopwise.data_schemas.bundle import to_stopping_data
@@ -171,14 +172,7 @@ def lottery_frame(subjects: int, seed: int) -> pd.DataFrame:
         {
             "subject": np.repeat([f"p{i:03d}" for i in range(subjects)], 10),
             "item": np.tile(np.arange(10), subjects),
-            "a_x1": 2.0,
-            "a_p1": chance,
-            "a_x2": 1.6,
-            "a_p2": 1 - chance,
-            "b_x1": 3.85,
-            "b_p1": chance,
-            "b_x2": 0.1,
-            "b_p2": 1 - chance,
+            **holt_laury_columns(chance),
         }
     )
     frame = stopwise.simulate("crra+logit", {"r": 0.5, "precision": 8.0}, design, seed=seed)
