@@ -26,7 +26,9 @@ models are never aggregated.
 
 Hierarchical fits start near per-subject ML estimates (estimation/bayes_start.py) and use a
 dense mass matrix for the population sites (intercepts, effects, sd_z, L_corr; ``dense_mass``)
-and a diagonal one for the subject sites.
+and a diagonal one for the subject sites; the warm-up starts from an inverse mass matrix of
+normal-approximation posterior variances built from the per-subject standard errors
+(``initial_inverse_mass``) rather than the identity.
 
 No sampler is written here: NumPyro's NUTS runs on the CPU. Chains (``chain_method``):
 "auto" runs them "parallel" (one chain per device, pmap) when JAX sees at least as many CPU
@@ -74,6 +76,7 @@ from stopwise.estimation.bayes_start import (
     describe_parametrisation,
     init_near,
     per_subject_estimates,
+    start_variances,
     summarise_subject_fits,
 )
 from stopwise.estimation.cells import Cells, split_into_cells
@@ -84,6 +87,7 @@ from stopwise.estimation.priors import (
     Prior,
     resolve_priors,
 )
+from stopwise.estimation.truncation import truncation_check
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------
@@ -630,6 +634,45 @@ def jitter_scales(setup: Setup, start: SubjectStart, jitter: float = 0.1) -> dic
     return out
 
 
+def initial_inverse_mass(
+    setup: Setup, start: SubjectStart, args: CellArgs, dense: bool
+) -> dict[tuple[str, ...], np.ndarray]:
+    """NUTS's initial inverse mass matrix (structured: one block per site, the population
+    sites one dense block when ``dense``) from ``start_variances``: z_subject_<k>: the
+    subject variances; eta_<k>: the same / sd_k^2; z_<k>: intercept_k; b_<k>[j]:
+    (sd_k^2 + median se^2) / (n var_c X_k[c, j]) (var 1 for a constant column); sd_z (log
+    scale): log_sd_k; L_corr: correlation for each of its K(K-1)/2 coordinates."""
+    v = start_variances(start)
+    sd2 = np.asarray(start.sd, np.float64) ** 2
+    blocks: dict[tuple[str, ...], np.ndarray] = {}
+    population: list[np.ndarray] = []
+    for k, name in enumerate(setup.names):
+        if setup.has_intercept(name):
+            population.append(np.atleast_1d(v.intercept[k]))
+        effects = setup.effect_columns(name)
+        if effects:
+            columns = np.asarray(args.designs[name], np.float64)[:, list(effects)]
+            spread = np.var(columns, axis=0)
+            spread = np.where(spread > 0, spread, 1.0)
+            population.append(v.intercept[k] / spread)
+        site = f"z_subject_{name}" if setup.is_centred(k) else f"eta_{name}"
+        subject = v.subject[:, k] if setup.is_centred(k) else v.subject[:, k] / sd2[k]
+        blocks[(site,)] = subject
+    k = len(setup.names)
+    population.append(v.log_sd)
+    if k > 1:
+        population.append(np.full(k * (k - 1) // 2, v.correlation))
+    diagonal = np.concatenate(population)
+    names = population_sites(setup)
+    if dense:
+        blocks[names] = np.diag(diagonal)
+    else:
+        sizes = [len(p) for p in population]
+        for site, part in zip(names, np.split(diagonal, np.cumsum(sizes)[:-1])):
+            blocks[(site,)] = part
+    return blocks
+
+
 def population_sites(setup: Setup) -> tuple[str, ...]:
     """Names of the population-level sites (one dense block of the mass matrix)."""
     names: list[str] = []
@@ -706,15 +749,18 @@ def run_nuts(
     max_tree_depth: int,
     chain_method: str,
     dense_mass: bool = False,
+    inverse_mass: Mapping[tuple[str, ...], Any] | None = None,
 ) -> MCMC:
     """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations;
-    ``dense_mass``: one dense mass-matrix block for the population sites, diagonal elsewhere."""
+    ``dense_mass``: one dense mass-matrix block for the population sites, diagonal elsewhere;
+    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None)."""
     kernel = NUTS(
         partial(numpyro_model, setup),
         target_accept_prob=target_accept,
         max_tree_depth=max_tree_depth,
         init_strategy=init_near(values=init_values, scales=init_scales),
         dense_mass=[population_sites(setup)] if dense_mass else False,
+        inverse_mass_matrix=None if inverse_mass is None else dict(inverse_mass),
     )
     mcmc = MCMC(
         kernel,
@@ -873,12 +919,13 @@ def fit_bayes(
         )
     start_seconds = time.perf_counter() - t_start
     values = initial_values(setup, natural)
-    scales = None
+    scales = inverse_mass = None
+    if dense_mass is None:
+        dense_mass = hierarchical
     if start is not None:
         values = hierarchical_values(setup, start, values)
         scales = jitter_scales(setup, start)
-    if dense_mass is None:
-        dense_mass = hierarchical
+        inverse_mass = initial_inverse_mass(setup, start, args, bool(dense_mass))
     method = choose_chain_method(chain_method, chains)
     t0 = time.perf_counter()
     mcmc = run_nuts(
@@ -895,6 +942,7 @@ def fit_bayes(
         max_tree_depth=max_tree_depth,
         chain_method=method,
         dense_mass=bool(dense_mass),
+        inverse_mass=inverse_mass,
     )
     # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower; the
     # conversion also waits for chains that run asynchronously (pmap), so time after it
@@ -903,6 +951,9 @@ def fit_bayes(
     t1 = time.perf_counter()
     pointwise_ll = draws_pointwise(setup, samples, args, len(unit_labels))
     pointwise_seconds = time.perf_counter() - t1
+    t2 = time.perf_counter()
+    truncation = truncation_check(setup, args, data, samples)
+    truncation_seconds = time.perf_counter() - t2
     return build_posterior(
         setup=setup,
         data=data,
@@ -927,6 +978,8 @@ def fit_bayes(
             "start_seconds": start_seconds,
             "sampling_seconds": elapsed,
             "pointwise_seconds": pointwise_seconds,
+            "truncation_check": truncation,
+            "truncation_seconds": truncation_seconds,
             "formulas": _formula_list(formulas),
         },
         hdi_prob=hdi_prob,

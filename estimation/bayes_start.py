@@ -105,6 +105,49 @@ def summarise_subject_fits(
     return SubjectStart(mu, sd, start, ratio, int(ok.sum()), note, se_start)
 
 
+@dataclass(frozen=True)
+class StartVariances:
+    """Rough posterior variances on the sampler's unconstrained scale at the start."""
+
+    subject: np.ndarray  # (n, K) of a subject's z_sk
+    intercept: np.ndarray  # (K,) of mu_k
+    log_sd: np.ndarray  # (K,) of log sd_k
+    correlation: float  # of each unconstrained correlation coordinate
+    n: int  # subjects the population figures are based on
+
+
+def start_variances(start: SubjectStart) -> StartVariances:
+    """Normal approximations to the posterior variances, NUTS's initial (inverse) mass
+    matrix, so the first warm-up window does not explore with the identity (measured on the
+    120 demo subjects: 250 leapfrog steps per warm-up draw with the identity):
+
+      subject[s, k] = 1 / (1/se_sk^2 + 1/sd_k^2)    (sd_k^2 where se_sk is unknown)
+      intercept_k   = (sd_k^2 + median_s se_sk^2) / n
+      log_sd_k      = min((1 + ratio_k^2)^2 / (2 n), 1)   (delta method for log of a sd
+                                                           estimated with noise; ratio 1
+                                                           where unknown)
+      correlation   = min(1 / n, 1)                       (atanh of a sample correlation)
+
+    with n the number of identified subjects (at least 2)."""
+    sd = np.asarray(start.sd, np.float64)
+    n_sub, k = np.shape(start.subject_z)
+    se = start.subject_se if start.subject_se is not None else np.full((n_sub, k), np.nan)
+    se = np.asarray(se, np.float64)
+    subject = np.where(np.isfinite(se) & (se > 0), 1.0 / (1.0 / se**2 + 1.0 / sd**2), sd**2)
+    n = max(int(start.n_identified), 2)
+    noise = np.array(
+        [np.median(c[np.isfinite(c)]) ** 2 if np.isfinite(c).any() else 0.0 for c in se.T]
+    )
+    ratio = np.nan_to_num(np.asarray(start.ratio, np.float64), nan=1.0, posinf=1.0)
+    return StartVariances(
+        subject=subject,
+        intercept=(sd**2 + noise) / n,
+        log_sd=np.minimum((1.0 + ratio**2) ** 2 / (2.0 * n), 1.0),
+        correlation=min(1.0 / n, 1.0),
+        n=n,
+    )
+
+
 def choose_parametrisation(
     choice: str, start: SubjectStart, rows_per_subject: float
 ) -> tuple[bool, ...]:

@@ -37,6 +37,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.priors import hyperprior_text
+from stopwise.estimation.truncation import truncation_warnings
 
 RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend R-hat < 1.01
 ESS_MIN = 400  # Vehtari et al. 2021: bulk and tail ESS > 400 (100 per chain with 4 chains)
@@ -418,6 +419,13 @@ class Posterior:
             f"PSIS-LOO per {loo['unit']}: elpd {loo['elpd_loo']:.2f} (se {loo['se']:.2f}),"
             f" p_loo {loo['p_loo']:.1f}, Pareto k > 0.7: {loo['n_pareto_k_above_0.7']}"
         )
+        check = r.get("truncation_check")
+        if check:
+            lines.append(
+                f"planner cap max_target={check['max_target']}: largest |log-likelihood "
+                f"difference| from the default cap over {check['draws_checked']} draws "
+                f"{check['max_abs_loglik_difference']:.2g} (tolerance {check['tolerance']:g})"
+            )
         lines.append(f"converged: {'yes' if self.converged else 'NO'}")
         lines += [f"warning: {w}" for w in self.warnings]
         lines += [f"note: {n}" for n in self.notes]
@@ -585,6 +593,7 @@ def build_posterior(
         priors["covariate effects"] = hyper["covariate effects"]
     loglik = loglik_at_posterior_mean(setup, samples, args)
     warnings_ += data_fit_warnings(loglik, pointwise_ll, params)
+    warnings_ += truncation_warnings(run.get("truncation_check"))
     flat_samples = {k: np.asarray(v).reshape(-1, *np.shape(v)[2:]) for k, v in samples.items()}
     post = Posterior(
         model=setup.model,

@@ -21,6 +21,7 @@ from stopwise.estimation.bayes_start import (
     describe_parametrisation,
     init_near,
     robust_spread,
+    start_variances,
     summarise_subject_fits,
 )
 from stopwise.estimation.recovery import stopping_design
@@ -172,3 +173,69 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
         assert post.converged is False
     with pytest.raises(StopwiseInputError, match="parametrisation"):
         bayes.fit_bayes(model, data, hierarchical=True, parametrisation="both", progress=False)
+
+
+def test_start_variances_are_normal_approximations():
+    # Subject: the posterior variance of a normal mean with a normal prior,
+    # 1 / (1/se^2 + 1/sd^2) (conjugate normal model; Gelman et al. 2013, BDA3 sec. 2.5,
+    # from memory); the prior variance sd^2 where the subject has no standard error.
+    # Population mean: Var of a mean of n values with variance sd^2 + se^2 (common practice,
+    # no source); log sd: delta method, Var(log s) = (1 + ratio^2)^2 / (2n) (common practice).
+    se = np.array([[0.1, np.nan], [0.2, 0.5], [0.1, 0.5], [0.3, 0.4]])
+    start = SubjectStart(
+        mu=np.zeros(2),
+        sd=np.array([0.2, 1.0]),
+        subject_z=np.zeros((4, 2)),
+        ratio=np.array([0.5, np.nan]),
+        n_identified=4,
+        note="",
+        subject_se=se,
+    )
+    v = start_variances(start)
+    assert v.subject[0, 0] == pytest.approx(1.0 / (1.0 / 0.01 + 1.0 / 0.04))
+    assert v.subject[0, 1] == pytest.approx(1.0)  # no se: the prior variance sd^2
+    assert v.subject[1, 1] == pytest.approx(1.0 / (1.0 / 0.25 + 1.0))
+    assert np.all(v.subject <= start.sd**2)
+    assert v.intercept == pytest.approx([(0.04 + 0.15**2) / 4, (1.0 + 0.5**2) / 4])
+    assert v.log_sd == pytest.approx([(1.25**2) / 8, 4.0 / 8])
+    assert v.correlation == pytest.approx(0.25)
+
+
+@pytest.mark.parametrize("dense", [True, False])
+def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, dense):
+    from functools import partial
+
+    from numpyro.infer.util import initialize_model
+
+    model, data = small_stopping
+    notes: list[str] = []
+    start = bayes.hierarchical_start(model, data, None, notes)
+    for centred in ((True, False), (False, True)):
+        setup, args, *_ = bayes.prepare(
+            model,
+            data,
+            hierarchical=True,
+            formulas=None,
+            priors=None,
+            pointwise="trial",
+            centred=centred,
+        )
+        blocks = bayes.initial_inverse_mass(setup, start, args, dense)
+        info = initialize_model(
+            jax.random.PRNGKey(0), partial(bayes.numpyro_model, setup), model_args=(args,)
+        )
+        unconstrained = info.param_info.z
+        covered = sorted(site for key in blocks for site in key)
+        assert covered == sorted(unconstrained)
+        for key, block in blocks.items():
+            size = sum(np.size(unconstrained[site]) for site in key)
+            block = np.asarray(block)
+            assert block.shape == ((size, size) if block.ndim == 2 else (size,))
+            diagonal = np.diag(block) if block.ndim == 2 else block
+            assert np.all(np.isfinite(diagonal)) and np.all(diagonal > 0)
+        assert (bayes.population_sites(setup) in blocks) is dense
+        subject_site = "z_subject_r" if centred[0] else "eta_r"
+        expected = start_variances(start).subject[:, 0]
+        if not centred[0]:
+            expected = expected / start.sd[0] ** 2
+        np.testing.assert_allclose(blocks[(subject_site,)], expected)

@@ -6,6 +6,11 @@ from __future__ import annotations
 import argparse
 
 CONTEST_CAP_HELP = "cap on the targets a contest model considers"
+FIT_CAP_HELP = (
+    "cap on planned draws: the targets a target or contest model considers, and where the "
+    "planner's backward induction stops (default: sized from the data; a shorter planner "
+    "cap is faster, and Bayesian fits check it against the default at 100 posterior draws)"
+)
 JSON_HELP = "write {what} as JSON to FILE ('-' for stdout)"
 
 

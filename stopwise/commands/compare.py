@@ -40,7 +40,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         ("hessian", "robust", "none"),
         "standard errors of each fit (default: clustered sandwich)",
     )
-    _args.add_max_target(parser)
+    _args.add_max_target(parser, _args.FIT_CAP_HELP)
     _args.add_sampler(parser)
     _args.add_hierarchical(parser)
     _args.add_seed(parser, "random seed")

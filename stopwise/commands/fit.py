@@ -73,7 +73,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="also report the 95%% profile-likelihood interval of parameter NAME "
         "(repeatable; pooled maximum likelihood only)",
     )
-    _args.add_max_target(parser)
+    _args.add_max_target(parser, _args.FIT_CAP_HELP)
     _args.add_hierarchical(parser)
     _args.add_sampler(parser)
     _args.add_seed(parser, "random seed (starts, bootstrap, sampler)")

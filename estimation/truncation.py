@@ -1,0 +1,108 @@
+"""Checking a planner model's ``max_target`` truncation against the default cap.
+
+The planner's backward induction stops at a cap H (models/stopping.py). By default H is
+sized so that reaching it from any observed step has probability below 1e-15, which for
+p_survive near 1 means hundreds of steps per evaluation; the model option ``max_target``
+sets a shorter cap, which is exact only when the participant (at the parameter values in
+question) would have stopped long before it. This module measures the difference
+
+  delta(theta) = | sum_i loglik_obs(theta, data)_i [cap max_target]
+                   - sum_i loglik_obs(theta, data)_i [default cap] |
+
+at posterior draws, so a fit that uses a short cap says whether it was harmless.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import replace
+from typing import Any
+
+import jax
+import numpy as np
+
+from stopwise.models.base import Model
+
+TRUNCATION_TOLERANCE = 1e-6  # |delta| above this in any checked draw gives a warning
+TRUNCATION_DRAWS = 100  # draws checked (evenly thinned over all chains)
+CHUNK = 10  # draws evaluated together (memory: the default cap can be ~700 steps)
+
+
+def default_cap_reference(model: Model) -> Model | None:
+    """The same stopping model with the default planner cap, when ``max_target`` truncates
+    a planner; None otherwise (for the target policy ``max_target`` defines the choice set,
+    a modelling choice rather than a numerical truncation)."""
+    options = dict(model.options or {})
+    if (
+        model.data_kind != "stopping"
+        or options.get("policy") != "planner"
+        or options.get("max_target") is None
+    ):
+        return None
+    from stopwise.models.spec import DEFAULT_OPTIONS, build_model
+
+    kept = {k: options[k] for k in DEFAULT_OPTIONS if k in options and k != "max_target"}
+    return build_model(model.name, **kept)
+
+
+def thinned_draws(samples: Mapping[str, Any], n_draws: int) -> dict[str, np.ndarray]:
+    """``n_draws`` draws evenly spaced over all chains, (n, ...) per site."""
+    flat = {k: np.reshape(np.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
+    total = next(iter(flat.values())).shape[0]
+    index = np.unique(np.linspace(0, total - 1, min(n_draws, total)).round().astype(int))
+    return {k: v[index] for k, v in flat.items()}
+
+
+def truncation_check(
+    setup: Any, args: Any, data: Any, samples: Mapping[str, Any], n_draws: int = TRUNCATION_DRAWS
+) -> dict[str, Any] | None:
+    """max over thinned posterior draws of delta (module docstring), or None when the
+    model is not a truncated planner. ``setup``/``args`` as in estimation/bayes.py."""
+    from stopwise.estimation.bayes import total_loglik
+
+    reference = default_cap_reference(setup.model)
+    if reference is None:
+        return None
+    prepare = (reference.options or {}).get("prepare")
+    if callable(prepare):
+        prepare(data)
+    ref_setup = replace(setup, model=reference)
+
+    @jax.jit
+    def difference(block: Mapping[str, Any]) -> Any:
+        def one(sites: Mapping[str, Any]) -> Any:
+            return total_loglik(setup, sites, args) - total_loglik(ref_setup, sites, args)
+
+        return jax.vmap(one)(block)
+
+    draws = thinned_draws(samples, n_draws)
+    n = next(iter(draws.values())).shape[0]
+    worst = 0.0
+    for start in range(0, n, CHUNK):
+        block = {k: v[start : start + CHUNK] for k, v in draws.items()}
+        if len(next(iter(block.values()))) < CHUNK:  # one compiled shape for every chunk
+            block = {
+                k: np.concatenate([v, np.repeat(v[-1:], CHUNK - len(v), 0)])
+                for k, v in block.items()
+            }
+        values = np.abs(np.asarray(difference(block)))
+        worst = max(worst, float(np.max(values)) if np.all(np.isfinite(values)) else math.inf)
+    return {
+        "max_target": int(setup.model.options["max_target"]),
+        "draws_checked": int(n),
+        "max_abs_loglik_difference": worst,
+        "tolerance": TRUNCATION_TOLERANCE,
+    }
+
+
+def truncation_warnings(check: Mapping[str, Any] | None) -> list[str]:
+    """A warning when the checked difference exceeds the tolerance."""
+    if not check or check["max_abs_loglik_difference"] <= check["tolerance"]:
+        return []
+    return [
+        f"the planner's cap max_target={check['max_target']} changes the summed "
+        f"log-likelihood by up to {check['max_abs_loglik_difference']:.2g} at "
+        f"{check['draws_checked']} posterior draws (tolerance {check['tolerance']:g}): the "
+        "truncation is not harmless here; raise max_target or leave it unset (default cap)"
+    ]
