@@ -87,7 +87,12 @@ from stopwise.estimation.priors import (
     Prior,
     resolve_priors,
 )
-from stopwise.estimation.truncation import truncation_check
+from stopwise.estimation.truncation import (
+    PLANNER_CAPS,
+    auto_capped,
+    check_passed,
+    truncation_check,
+)
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------
@@ -842,6 +847,7 @@ def fit_bayes(
     hdi_prob: float = 0.95,
     pointwise: str | None = None,
     aggregate: bool = True,
+    planner_cap: str = "auto",
     se: Any = None,
     by: Any = None,
     **ignored: Any,
@@ -857,9 +863,15 @@ def fit_bayes(
     "noncentred". dense_mass: a dense mass matrix for the population sites (default: on for
     hierarchical fits, off for pooled ones).
     pointwise: unit of the ArviZ log-likelihood: "trial" (stopping default), "row" (lottery
-    default) or "subject". Returns a :class:`stopwise.estimation.posterior.Posterior`.
+    default) or "subject". planner_cap: for a planner model without ``max_target``,
+    "auto" samples with the cap horizon + 30 and checks it at 100 posterior draws against the
+    default cap, refitting at the default cap if the check fails; "exact" uses the default
+    cap (estimation/truncation.py). Returns a
+    :class:`stopwise.estimation.posterior.Posterior`.
     """
     from stopwise.estimation.posterior import build_posterior
+
+    arguments = {k: v for k, v in locals().items() if k not in ("ignored", "build_posterior")}
 
     if se not in (None, "posterior") or by is not None:
         raise StopwiseInputError(
@@ -872,8 +884,22 @@ def fit_bayes(
     _check_counts(chains=chains, draws=draws, warmup=warmup)
     if not 0.0 < hdi_prob < 1.0:
         raise StopwiseInputError(f"hdi_prob={hdi_prob}: expected a number in (0, 1)")
+    if planner_cap not in PLANNER_CAPS:
+        raise StopwiseInputError(
+            f"planner_cap={planner_cap!r}: expected one of {', '.join(PLANNER_CAPS)}"
+        )
     model = as_model(model)
     data = as_bundle(data)
+    notes: list[str] = []
+    exact_model = model
+    capped = auto_capped(model, data) if planner_cap == "auto" else None
+    if capped is not None:
+        model = capped
+        notes.append(
+            f"planner cap: max_target={model.options['max_target']} (data horizon "
+            f"{data.horizon} + {model.options['max_target'] - data.horizon}), checked against "
+            "the default cap at posterior draws (planner_cap='exact' samples at the default cap)"
+        )
     size_from_data = (model.options or {}).get("prepare")
     if callable(size_from_data):  # size static parts (caps) from concrete data before tracing
         size_from_data(data)
@@ -884,7 +910,6 @@ def fit_bayes(
         raise StopwiseInputError(
             f"parametrisation={parametrisation!r}: expected one of {', '.join(PARAMETRISATIONS)}"
         )
-    notes: list[str] = []
     natural = initial_natural(model, data, init, formulas, notes)
     start, form = None, ()
     t_start = time.perf_counter()
@@ -954,6 +979,15 @@ def fit_bayes(
     t2 = time.perf_counter()
     truncation = truncation_check(setup, args, data, samples)
     truncation_seconds = time.perf_counter() - t2
+    if capped is not None and not check_passed(truncation):
+        exact = fit_bayes(**{**arguments, "model": exact_model, "planner_cap": "exact"})
+        exact.notes.insert(
+            0,
+            f"the automatic planner cap max_target={model.options['max_target']} changed the "
+            f"log-likelihood by up to {truncation['max_abs_loglik_difference']:.2g} at "
+            "posterior draws: refitted at the default cap",
+        )
+        return exact
     return build_posterior(
         setup=setup,
         data=data,
@@ -978,6 +1012,7 @@ def fit_bayes(
             "start_seconds": start_seconds,
             "sampling_seconds": elapsed,
             "pointwise_seconds": pointwise_seconds,
+            "planner_cap": planner_cap,
             "truncation_check": truncation,
             "truncation_seconds": truncation_seconds,
             "formulas": _formula_list(formulas),

@@ -10,6 +10,12 @@ question) would have stopped long before it. This module measures the difference
                    - sum_i loglik_obs(theta, data)_i [default cap] |
 
 at posterior draws, so a fit that uses a short cap says whether it was harmless.
+
+Bayesian fits of a planner model without ``max_target`` use an automatic cap
+(``planner_cap="auto"``, the default): H = data horizon + AUTO_EXTRA_STEPS. The check above
+runs on the posterior draws; if any difference exceeds TRUNCATION_TOLERANCE the fit is run
+again at the default cap (so the reported posterior is always either checked or exact).
+``planner_cap="exact"`` samples at the default cap directly.
 """
 
 from __future__ import annotations
@@ -24,26 +30,49 @@ import numpy as np
 
 from stopwise.models.base import Model
 
+PLANNER_CAPS = ("auto", "exact")
+AUTO_EXTRA_STEPS = 30  # automatic cap: steps beyond the longest observed trial
 TRUNCATION_TOLERANCE = 1e-6  # |delta| above this in any checked draw gives a warning
 TRUNCATION_DRAWS = 100  # draws checked (evenly thinned over all chains)
 CHUNK = 10  # draws evaluated together (memory: the default cap can be ~700 steps)
+
+
+def is_planner(model: Model) -> bool:
+    """A stopping model built from a spec with the planner policy."""
+    return model.data_kind == "stopping" and (model.options or {}).get("policy") == "planner"
+
+
+def with_planner_cap(model: Model, max_target: int | None) -> Model:
+    """The same spec and options, with ``max_target`` replaced (None: the default cap)."""
+    from stopwise.models.spec import DEFAULT_OPTIONS, build_model
+
+    options = dict(model.options or {})
+    kept = {k: options[k] for k in DEFAULT_OPTIONS if k in options and k != "max_target"}
+    return build_model(model.name, **kept, max_target=max_target)
 
 
 def default_cap_reference(model: Model) -> Model | None:
     """The same stopping model with the default planner cap, when ``max_target`` truncates
     a planner; None otherwise (for the target policy ``max_target`` defines the choice set,
     a modelling choice rather than a numerical truncation)."""
-    options = dict(model.options or {})
-    if (
-        model.data_kind != "stopping"
-        or options.get("policy") != "planner"
-        or options.get("max_target") is None
-    ):
+    if not is_planner(model) or (model.options or {}).get("max_target") is None:
         return None
-    from stopwise.models.spec import DEFAULT_OPTIONS, build_model
+    return with_planner_cap(model, None)
 
-    kept = {k: options[k] for k in DEFAULT_OPTIONS if k in options and k != "max_target"}
-    return build_model(model.name, **kept)
+
+def auto_capped(model: Model, data: Any) -> Model | None:
+    """A planner model without ``max_target`` with the automatic cap
+    max_target = horizon + AUTO_EXTRA_STEPS (horizon: steps 0..horizon-1 of the data);
+    None for any other model."""
+    if not is_planner(model) or (model.options or {}).get("max_target") is not None:
+        return None
+    horizon = int(getattr(data, "horizon", 0) or 0)
+    return with_planner_cap(model, horizon + AUTO_EXTRA_STEPS)
+
+
+def check_passed(check: Mapping[str, Any] | None) -> bool:
+    """True when there was nothing to check or every difference is within the tolerance."""
+    return not check or check["max_abs_loglik_difference"] <= check["tolerance"]
 
 
 def thinned_draws(samples: Mapping[str, Any], n_draws: int) -> dict[str, np.ndarray]:
@@ -98,7 +127,7 @@ def truncation_check(
 
 def truncation_warnings(check: Mapping[str, Any] | None) -> list[str]:
     """A warning when the checked difference exceeds the tolerance."""
-    if not check or check["max_abs_loglik_difference"] <= check["tolerance"]:
+    if check_passed(check):
         return []
     return [
         f"the planner's cap max_target={check['max_target']} changes the summed "

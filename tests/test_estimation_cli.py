@@ -215,3 +215,7 @@ def test_bayes_parametrisation_option_reaches_the_sampler(
         assert cli.main(argv) == 0
         assert seen["parametrisation"] == choice and seen["hierarchical"] is True
     assert cli.main([*base, "--parametrisation", "centred"]) == 2  # ML fits have no such choice
+    assert seen["planner_cap"] == "auto"
+    assert cli.main([*base, "--method", "bayes", "--planner-cap", "exact"]) == 0
+    assert seen["planner_cap"] == "exact"
+    assert cli.main([*base, "--planner-cap", "exact"]) == 2  # an ML fit has no automatic cap

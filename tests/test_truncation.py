@@ -9,9 +9,12 @@ import pytest
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation import bayes
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import bayes, truncation
 from stopwise.estimation.recovery import stopping_design
 from stopwise.estimation.truncation import (
+    AUTO_EXTRA_STEPS,
+    auto_capped,
     default_cap_reference,
     thinned_draws,
     truncation_check,
@@ -105,3 +108,43 @@ def test_fit_bayes_reports_the_check(planner_data):
         "crra+myopic+logit", planner_data, chains=1, draws=10, warmup=10, progress=False
     )
     assert untruncated.run["truncation_check"] is None
+
+
+def test_automatic_cap_is_only_for_planners_without_a_cap(planner_data):
+    capped = auto_capped(build_model("crra+planner+logit", wealth=2.0), planner_data)
+    assert capped.options["max_target"] == planner_data.horizon + AUTO_EXTRA_STEPS
+    assert capped.options["wealth"] == 2.0
+    assert auto_capped(build_model("crra+planner+logit", max_target=70), planner_data) is None
+    assert auto_capped(build_model("crra+target+logit"), planner_data) is None
+    assert auto_capped(build_model("crra+myopic+logit"), planner_data) is None
+
+
+def test_fit_bayes_uses_the_checked_automatic_cap(planner_data):
+    post = bayes.fit_bayes(
+        "crra+planner+logit", planner_data, chains=1, draws=20, warmup=20, progress=False
+    )
+    assert post.run["planner_cap"] == "auto"
+    check = post.run["truncation_check"]
+    assert check["max_target"] == planner_data.horizon + AUTO_EXTRA_STEPS
+    assert check["max_abs_loglik_difference"] < check["tolerance"]
+    assert any("planner cap: max_target=" in note for note in post.notes)
+    with pytest.raises(StopwiseInputError, match="planner_cap"):
+        bayes.fit_bayes("crra+planner+logit", planner_data, planner_cap="short")
+
+
+def test_a_failed_automatic_cap_refits_at_the_default_cap(monkeypatch):
+    # Risk seekers (r = -0.5) at p_survive 0.9 would draw up to a bank of about 13 (see
+    # above), beyond most observed trials: a cap at the data horizon itself (0 extra steps)
+    # must fail the check and the fit must be redone at the default cap.
+    model = build_model("crra+planner+logit")
+    design = stopping_design(3, 8, (0.9,), 1.0, 5)
+    frames = [
+        model.simulate({"r": -0.5, "precision": 0.5}, sub, jax.random.PRNGKey(10 + i))
+        for i, (_, sub) in enumerate(design.groupby("subject"))
+    ]
+    data = to_stopping_data(pd.concat(frames, ignore_index=True))
+    monkeypatch.setattr(truncation, "AUTO_EXTRA_STEPS", 0)
+    post = bayes.fit_bayes(model, data, chains=1, draws=15, warmup=15, progress=False)
+    assert post.run["planner_cap"] == "exact" and post.run["truncation_check"] is None
+    assert "refitted at the default cap" in post.notes[0]
+    assert post.model.options["max_target"] is None

@@ -69,13 +69,22 @@ def add_hierarchical(parser: argparse.ArgumentParser) -> None:
 
 
 def add_sampler(parser: argparse.ArgumentParser) -> None:
-    """Bayes ``--chains``, ``--draws`` and ``--warmup``."""
+    """Bayes ``--chains``, ``--draws``, ``--warmup`` and ``--planner-cap``."""
     parser.add_argument("--chains", type=int, default=4, metavar="C", help="Bayes: chains")
     parser.add_argument(
         "--draws", type=int, default=1000, metavar="D", help="Bayes: draws per chain"
     )
     parser.add_argument(
         "--warmup", type=int, default=1000, metavar="W", help="Bayes: warm-up iterations per chain"
+    )
+    parser.add_argument(
+        "--planner-cap",
+        choices=("auto", "exact"),
+        default="auto",
+        help="Bayes, planner models without --max-target: auto samples with the backward "
+        "induction stopped 30 steps beyond the longest trial, checks that at 100 posterior "
+        "draws against the default cap and refits at the default cap if the check fails; "
+        "exact uses the default cap",
     )
 
 

@@ -66,8 +66,13 @@ def run(args: argparse.Namespace) -> int:
             warmup=args.warmup,
             hierarchical=args.hierarchical,
             parametrisation=args.parametrisation,
+            planner_cap=args.planner_cap,
         )
     else:
+        if args.hierarchical or args.parametrisation != "auto" or args.planner_cap != "auto":
+            raise StopwiseInputError(
+                "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
+            )
         if args.cv_folds < 0 or args.cv_folds == 1:
             raise StopwiseInputError("--cv-folds must be 0 (skip) or at least 2")
         se = _args.se_choice(args.se)

@@ -136,6 +136,7 @@ def run(args: argparse.Namespace) -> int:
             seed=args.seed,
             hierarchical=args.hierarchical,
             parametrisation=args.parametrisation,
+            planner_cap=args.planner_cap,
             chains=args.chains,
             draws=args.draws,
             warmup=args.warmup,
@@ -143,8 +144,10 @@ def run(args: argparse.Namespace) -> int:
             formulas=args.formula or None,
         )
     else:
-        if args.hierarchical or args.parametrisation != "auto":
-            raise StopwiseInputError("--hierarchical and --parametrisation apply to --method bayes")
+        if args.hierarchical or args.parametrisation != "auto" or args.planner_cap != "auto":
+            raise StopwiseInputError(
+                "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
+            )
         kw: dict[str, Any] = {}
         if args.fix:
             kw["fixed"] = parse_fixed(args.fix)
