@@ -126,6 +126,20 @@ class Fit:
             "at_bound": list(self.at_bound),
             "optimizer": {k: v for k, v in self.optimizer.items() if k != "runs"},
             "notes": list(self.notes),
+            **self._type_probabilities(),
+        }
+
+    def _type_probabilities(self) -> dict[str, Any]:
+        """A mixture's per-subject type probabilities: {"type_probabilities": [{"subject":
+        s, "type1": p1, ...}, ...]}; {} for other fits."""
+        table = self.extras.get("posterior")
+        if not isinstance(table, pd.DataFrame):
+            return {}
+        return {
+            "type_probabilities": [
+                {"subject": _plain(s), **{c: _num(v) for c, v in row.items()}}
+                for s, row in table.iterrows()
+            ]
         }
 
     def to_json(self) -> str:

@@ -171,7 +171,8 @@ def fit(
     **kw: Any,
 ) -> Any:
     """Fit ``model`` to ``data``. method="mle" (default): a Fit (or FitBySubject with
-    by="subject"); method="bayes": stopwise.estimation.bayes.fit_bayes(model, data, **kw).
+    by="subject"; a finite mixture with types=K); method="bayes":
+    stopwise.estimation.bayes.fit_bayes(model, data, **kw).
     ``se``: "auto" (clustered sandwich with several subjects), "robust", "hessian",
     "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]."""
     _check_method(method)
@@ -203,6 +204,9 @@ def _fit_selected(
         if formulas:
             kw["formulas"] = formulas
         return fit_bayes(the_model, bundle, seed=seed, **kw)
+    types = kw.pop("types", None)
+    if types is not None:
+        return _fit_types(the_model, bundle, types, se, by, formulas, seed, kw)
     if by not in (None, "subject"):
         raise StopwiseInputError(f"by must be 'subject' or None, not {by!r}")
     if by == "subject":
@@ -228,6 +232,36 @@ def _fit_selected(
         seed=seed,
         **kw,
     )
+
+
+MIXTURE_OPTIONS = ("starts", "bootstrap_reps", "progress", "max_iter")
+
+
+def _fit_types(
+    the_model: Model,
+    bundle: Any,
+    types: Any,
+    se: str | None,
+    by: str | None,
+    formulas: Sequence[str] | Mapping[str, str] | None,
+    seed: int,
+    kw: dict[str, Any],
+) -> Any:
+    """A finite mixture of ``types`` types of the model (estimation/mixture.py): each
+    subject belongs to one type; shares and every type's parameters by maximum likelihood."""
+    if isinstance(types, bool) or not isinstance(types, (int, np.integer)) or types < 2:
+        raise StopwiseInputError(f"types={types!r}: expected a whole number of at least 2")
+    if by is not None or formulas or kw.get("fixed"):
+        raise StopwiseInputError(
+            "a mixture of types cannot be combined with by='subject', formulas or fixed parameters"
+        )
+    unknown = sorted(k for k, v in kw.items() if k not in MIXTURE_OPTIONS and v is not None)
+    if unknown:
+        raise StopwiseInputError(f"mixture fit: unknown option(s) {unknown}")
+    from stopwise.estimation.mixture import fit_mixture
+
+    options = {k: v for k, v in kw.items() if k in MIXTURE_OPTIONS and v is not None}
+    return fit_mixture(the_model, bundle, k=int(types), se=se, seed=seed, **options)
 
 
 def compare(

@@ -219,3 +219,49 @@ def test_bayes_parametrisation_option_reaches_the_sampler(
     assert cli.main([*base, "--method", "bayes", "--planner-cap", "exact"]) == 0
     assert seen["planner_cap"] == "exact"
     assert cli.main([*base, "--planner-cap", "exact"]) == 2  # an ML fit has no automatic cap
+
+
+@pytest.fixture(scope="module")
+def two_type_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    import pandas as pd
+
+    design = stopping_design(16, 30, (0.6, 0.75, 0.9), 1.0, 12)
+    model = build_model("linear+myopic+logit")
+    frames = [
+        model.simulate({"precision": 0.3 if i % 2 else 3.0}, sub, jax.random.PRNGKey(40 + i))
+        for i, (_, sub) in enumerate(design.groupby("subject", sort=True))
+    ]
+    path = tmp_path_factory.mktemp("types") / "two_types.csv"
+    pd.concat(frames, ignore_index=True).to_csv(path, index=False)
+    return path
+
+
+def test_fit_types_is_the_mixture_engine_with_subject_type_probabilities(
+    two_type_file: Path, tmp_path: Path
+) -> None:
+    import numpy as np
+
+    from stopwise.estimation.mixture import fit_mixture
+
+    out = tmp_path / "types.json"
+    argv = ["fit", str(two_type_file), "--model", "linear+myopic+logit", "--types", "2"]
+    assert cli.main([*argv, "--se", "hessian", "--json", str(out), "--no-progress"]) == 0
+    result = json.loads(out.read_text())
+    assert DESIGN_KEYS <= set(result)
+    names = [p["name"] for p in result["params"]]
+    assert names == ["type1:precision", "type2:precision", "share:type1", "share:type2"]
+    # the command line is the Python engine with the same settings
+    from stopwise.api import resolve_data
+
+    bundle, _ = resolve_data(str(two_type_file))
+    direct = fit_mixture(build_model("linear+myopic+logit"), bundle, k=2, se="hessian", seed=0)
+    np.testing.assert_allclose(
+        [p["estimate"] for p in result["params"]], direct.table.estimate, rtol=1e-6
+    )
+    probabilities = result["type_probabilities"]
+    assert len(probabilities) == 16
+    for row in probabilities:
+        assert row["type1"] + row["type2"] == pytest.approx(1.0)
+    for bad in (["--types", "1"], ["--types", "2", "--by", "subject"], ["--method", "bayes"]):
+        extra = bad if bad[0] != "--method" else ["--types", "2", *bad]
+        assert cli.main([*argv[:4], *extra]) == 2

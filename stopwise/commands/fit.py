@@ -63,7 +63,20 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="hold a parameter at a value (repeatable)",
     )
     parser.add_argument(
-        "--starts", type=int, default=3, metavar="N", help="optimiser starts (default 3)"
+        "--starts",
+        type=int,
+        default=None,
+        metavar="N",
+        help="optimiser starts (default 3; 8 with --types)",
+    )
+    parser.add_argument(
+        "--types",
+        type=int,
+        default=None,
+        metavar="K",
+        help="finite mixture: each subject belongs to one of K types (K >= 2) with their own "
+        "parameters; reports the types' parameters, their shares and each subject's type "
+        "probabilities (maximum likelihood, pooled)",
     )
     parser.add_argument(
         "--profile",
@@ -126,8 +139,8 @@ def run(args: argparse.Namespace) -> int:
 
     se = _args.se_choice(args.se)
     if args.method == "bayes":
-        if args.by or args.se or args.fix:
-            raise StopwiseInputError("--by, --se and --fix apply to --method mle only")
+        if args.by or args.se or args.fix or args.types is not None:
+            raise StopwiseInputError("--by, --se, --fix and --types apply to --method mle only")
         result = fit(
             args.model,
             args.data,
@@ -151,12 +164,14 @@ def run(args: argparse.Namespace) -> int:
         kw: dict[str, Any] = {}
         if args.fix:
             kw["fixed"] = parse_fixed(args.fix)
+        if args.types is not None:
+            kw["types"] = args.types
         if args.by is None:
-            kw.update(
-                starts=args.starts,
-                bootstrap_reps=args.bootstrap_reps,
-                progress=not args.no_progress,
-            )
+            kw.update(bootstrap_reps=args.bootstrap_reps, progress=not args.no_progress)
+            if args.starts is not None:
+                kw["starts"] = args.starts
+            elif args.types is None:
+                kw["starts"] = 3
         result = fit(
             args.model,
             args.data,
