@@ -148,3 +148,18 @@ def test_a_failed_automatic_cap_refits_at_the_default_cap(monkeypatch):
     assert post.run["planner_cap"] == "exact" and post.run["truncation_check"] is None
     assert "refitted at the default cap" in post.notes[0]
     assert post.model.options["max_target"] is None
+
+
+@pytest.mark.parametrize(
+    "spec", ["pt+tk+planner+probit", "crra+prelec+planner+tremble", "expo+planner+probit+tremble"]
+)
+def test_recapped_models_keep_spec_and_options(spec):
+    model = build_model(spec, contextual=True, wealth=3.0)
+    recapped = truncation.with_planner_cap(model, 40)
+    assert recapped.name == model.name and recapped.param_names == model.param_names
+    assert recapped.options["max_target"] == 40
+
+    def settings(m):
+        return {k: v for k, v in m.options.items() if k not in ("prepare", "max_target")}
+
+    assert settings(recapped) == settings(model)
