@@ -6,9 +6,13 @@ simulate a data set, sample the posterior with NUTS, thin to L = 99 draws (the f
 of the true value among them. If the sampler and the likelihood are right, ranks are uniform
 on 0..99; we bin them into 10 bins and apply Pearson's chi-square test (9 df).
 
-One NUTS program is compiled once and re-run on every data set (rows aggregated and padded to
-a fixed width, a fixed horizon). Run ``python -m benchmarks.study_sbc [replications]``; the
-section goes into benchmarks/RESULTS.md.
+Rows are aggregated and padded to a fixed width with a fixed horizon, so every data set has
+the same shapes. NumPyro compiles its sampler loop again for every run and JAX would keep
+each compiled loop (about 960 memory mappings per replication: the first 200-replication run
+died at Linux's limit of 65,530 after 60), so each replication builds its own sampler and
+releases the compiled programs afterwards (``bayes.release_compiled_programs``). Run
+``python -m benchmarks.study_sbc [replications]``; the section goes into
+benchmarks/RESULTS.md.
 """
 
 from __future__ import annotations
@@ -61,7 +65,7 @@ def run(replications: int) -> dict:
     design = stopping_design(SUBJECTS, TRIALS, P_SURVIVE, 1.0, SEED)
     key = jax.random.PRNGKey(SEED)
     ranks = {"r": [], "precision": []}
-    mcmc = setup = None
+    setup = None
     t0 = time.perf_counter()
     skipped = 0
     divergent = 0
@@ -75,26 +79,26 @@ def run(replications: int) -> dict:
             model, data, hierarchical=False, formulas=None, priors=None, pointwise="row"
         )
         args = bayes.pad_cells(args, WIDTH)
-        if mcmc is None:
-            setup = this_setup
-            kernel = NUTS(
-                partial(bayes.numpyro_model, setup),
-                init_strategy=bayes.init_near(
-                    values={f"z_{s.name}": float(s.to_unconstrained(s.start)) for s in model.params}
-                ),
-            )
-            mcmc = MCMC(
-                kernel,
-                num_warmup=WARMUP,
-                num_samples=DRAWS,
-                num_chains=CHAINS,
-                chain_method="vectorized",
-                progress_bar=False,
-                jit_model_args=True,
-            )
+        setup = setup or this_setup  # one Setup: the model's functions stay the same
+        kernel = NUTS(
+            partial(bayes.numpyro_model, setup),
+            init_strategy=bayes.init_near(
+                values={f"z_{s.name}": float(s.to_unconstrained(s.start)) for s in model.params}
+            ),
+        )
+        mcmc = MCMC(
+            kernel,
+            num_warmup=WARMUP,
+            num_samples=DRAWS,
+            num_chains=CHAINS,
+            chain_method="vectorized",
+            progress_bar=False,
+            jit_model_args=True,
+        )
         mcmc.run(k_run, args, extra_fields=("diverging",))
         divergent += int(np.sum(np.asarray(mcmc.get_extra_fields()["diverging"])))
-        samples = mcmc.get_samples(group_by_chain=True)
+        samples = {k: np.asarray(v) for k, v in mcmc.get_samples(group_by_chain=True).items()}
+        bayes.release_compiled_programs()
         for spec in model.params:
             z = np.asarray(samples[f"z_{spec.name}"])[:, ::THIN].reshape(-1)[:KEPT]
             x = np.asarray(spec.to_natural(z))

@@ -9,7 +9,10 @@ question) would have stopped long before it. This module measures the difference
   delta(theta) = | sum_i loglik_obs(theta, data)_i [cap max_target]
                    - sum_i loglik_obs(theta, data)_i [default cap] |
 
-at posterior draws, so a fit that uses a short cap says whether it was harmless.
+at posterior draws, so a fit that uses a short cap says whether it was harmless. The check
+covers the region the sampled posterior visits (as an importance-sampling diagnostic
+would); the observed decisions all lie before the cap, so a difference can only enter
+through the continuation values the planner computes for them.
 
 Bayesian fits of a planner model without ``max_target`` use an automatic cap
 (``planner_cap="auto"``, the default): H = data horizon + AUTO_EXTRA_STEPS. The check above
