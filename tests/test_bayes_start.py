@@ -239,3 +239,44 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
         if not centred[0]:
             expected = expected / start.sd[0] ** 2
         np.testing.assert_allclose(blocks[(subject_site,)], expected)
+
+
+def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
+    # One equilibrium per subject inside per-subject Newton fits is far too slow for a start
+    # (16 demo subjects: not done in 10 minutes), so contest models skip those fits.
+    import pandas as pd
+
+    from stopwise.estimation.mle import fit_mle
+    from stopwise.models.contest.build import build_contest_model
+
+    n, trials = 8, 10
+    design = pd.DataFrame(
+        {
+            "subject": np.repeat(np.arange(n), trials),
+            "trial": np.tile(np.arange(trials), n),
+            "p_survive": 0.8,
+            "gain": 1.0,
+            "n_players": 2,
+            "prize": 10.0,
+            "keep_bank": 0,
+        }
+    )
+    model = build_contest_model(["linear", "qre"], max_target=6)
+    data = to_stopping_data(model.simulate({"precision": 1.5}, design, jax.random.PRNGKey(2)))
+
+    def refuse(*_args, **_kw):
+        raise AssertionError("per-subject fits were run for a contest model")
+
+    monkeypatch.setattr(bayes, "per_subject_estimates", refuse)
+    notes: list[str] = []
+    start = bayes.hierarchical_start(model, data, None, notes)
+    pooled = fit_mle(model, data, se=None, progress=False)
+    expected = float(model.spec("precision").to_unconstrained(pooled.estimates()["precision"]))
+    assert start.mu[0] == pytest.approx(expected, rel=1e-6)
+    np.testing.assert_allclose(start.subject_z, expected, rtol=1e-6)
+    assert any("contest model" in note for note in notes)
+    post = bayes.fit_bayes(
+        model, data, hierarchical=True, chains=1, draws=10, warmup=10, progress=False
+    )
+    assert np.all(np.isfinite(post.draws("precision")))
+    assert any("contest model" in note for note in post.notes)
