@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 
 import jax.numpy as jnp
 import numpy as np
@@ -267,16 +268,12 @@ def test_every_sampler_problem_gives_a_named_warning():
     )
 
 
+@pytest.mark.skipif(not os.path.exists("/proc/self/maps"), reason="needs Linux /proc")
 def test_repeated_fits_do_not_accumulate_compiled_programs(bernoulli_data):
     # Every MCMC run compiles a new sampler loop that JAX would keep for good; a fit releases
     # them when it ends, so the process's memory mappings stop growing (without the release:
     # about 840 more per small pooled fit, and a study died at Linux's default limit of
     # 65,530 mappings, vm.max_map_count; common practice, no source).
-    import os
-
-    if not os.path.exists("/proc/self/maps"):
-        pytest.skip("needs Linux /proc")
-
     def mappings() -> int:
         with open("/proc/self/maps") as f:
             return sum(1 for _ in f)
