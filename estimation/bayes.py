@@ -82,6 +82,7 @@ from stopwise.estimation.bayes_start import (
     summarise_subject_fits,
 )
 from stopwise.estimation.cells import Cells, split_into_cells
+from stopwise.estimation.draws import flatten_chains, map_draws
 from stopwise.estimation.priors import (
     COEF_SD,
     HYPER_SD_SCALE,
@@ -844,27 +845,11 @@ def draws_pointwise(
 ) -> np.ndarray:
     """Log-likelihood per unit for every draw: sum over the unit's rows, shape
     (n_draws_total, n_units); computed in chunks of draws to bound memory."""
-    flat = {k: np.reshape(np.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
-    total = next(iter(flat.values())).shape[0]
 
-    @jax.jit
-    def one_chunk(block: Mapping[str, Any]) -> Any:
-        def per_draw(sites: Mapping[str, Any]) -> Any:
-            return jax.ops.segment_sum(row_loglik(setup, sites, args), args.row_unit, n_units)
+    def per_draw(sites: Mapping[str, Any]) -> Any:
+        return jax.ops.segment_sum(row_loglik(setup, sites, args), args.row_unit, n_units)
 
-        return jax.vmap(per_draw)(block)
-
-    out = np.empty((total, n_units))
-    for start in range(0, total, chunk):
-        stop = min(start + chunk, total)
-        block = {k: v[start:stop] for k, v in flat.items()}
-        if stop - start < chunk:  # pad the last block so one compiled shape serves all
-            block = {
-                k: jnp.concatenate([v, jnp.repeat(v[-1:], chunk - (stop - start), 0)])
-                for k, v in block.items()
-            }
-        out[start:stop] = np.asarray(one_chunk(block))[: stop - start]
-    return out
+    return map_draws(per_draw, flatten_chains(samples), chunk)
 
 
 # ---------------------------------------------------------------------------------------

@@ -36,6 +36,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.draws import flatten_chains
 from stopwise.estimation.priors import hyperprior_text
 from stopwise.estimation.truncation import truncation_warnings
 
@@ -594,7 +595,7 @@ def build_posterior(
     loglik = loglik_at_posterior_mean(setup, samples, args)
     warnings_ += data_fit_warnings(loglik, pointwise_ll, params)
     warnings_ += truncation_warnings(run.get("truncation_check"))
-    flat_samples = {k: np.asarray(v).reshape(-1, *np.shape(v)[2:]) for k, v in samples.items()}
+    flat_samples = flatten_chains(samples)
     post = Posterior(
         model=setup.model,
         idata=idata,

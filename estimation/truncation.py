@@ -28,9 +28,9 @@ from collections.abc import Mapping
 from dataclasses import replace
 from typing import Any
 
-import jax
 import numpy as np
 
+from stopwise.estimation.draws import flatten_chains, map_draws
 from stopwise.models.base import Model
 
 PLANNER_CAPS = ("auto", "exact")
@@ -80,7 +80,7 @@ def check_passed(check: Mapping[str, Any] | None) -> bool:
 
 def thinned_draws(samples: Mapping[str, Any], n_draws: int) -> dict[str, np.ndarray]:
     """``n_draws`` draws evenly spaced over all chains, (n, ...) per site."""
-    flat = {k: np.reshape(np.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
+    flat = flatten_chains(samples)
     total = next(iter(flat.values())).shape[0]
     index = np.unique(np.linspace(0, total - 1, min(n_draws, total)).round().astype(int))
     return {k: v[index] for k, v in flat.items()}
@@ -101,25 +101,13 @@ def truncation_check(
         prepare(data)
     ref_setup = replace(setup, model=reference)
 
-    @jax.jit
-    def difference(block: Mapping[str, Any]) -> Any:
-        def one(sites: Mapping[str, Any]) -> Any:
-            return total_loglik(setup, sites, args) - total_loglik(ref_setup, sites, args)
-
-        return jax.vmap(one)(block)
+    def difference(sites: Mapping[str, Any]) -> Any:
+        return total_loglik(setup, sites, args) - total_loglik(ref_setup, sites, args)
 
     draws = thinned_draws(samples, n_draws)
     n = next(iter(draws.values())).shape[0]
-    worst = 0.0
-    for start in range(0, n, CHUNK):
-        block = {k: v[start : start + CHUNK] for k, v in draws.items()}
-        if len(next(iter(block.values()))) < CHUNK:  # one compiled shape for every chunk
-            block = {
-                k: np.concatenate([v, np.repeat(v[-1:], CHUNK - len(v), 0)])
-                for k, v in block.items()
-            }
-        values = np.abs(np.asarray(difference(block)))
-        worst = max(worst, float(np.max(values)) if np.all(np.isfinite(values)) else math.inf)
+    values = np.abs(map_draws(difference, draws, CHUNK))
+    worst = float(np.max(values)) if np.all(np.isfinite(values)) else math.inf
     return {
         "max_target": int(setup.model.options["max_target"]),
         "draws_checked": int(n),
