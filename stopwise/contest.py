@@ -373,3 +373,23 @@ def _ranges(values: Sequence[int]) -> str:
             out.append(f"{start}" if start == prev else f"{start}-{prev}")
             start = cur
     return ", ".join(out)
+
+
+# ----------------------------------------------------------------------------- sweeps
+
+from stopwise.sweep import sweep_contests  # noqa: E402  (the sweep takes equilibrium as input)
+
+
+def sweep(
+    p_survive: float | Sequence[float],
+    prize: float | Sequence[float],
+    players: int = 2,
+    **options: Any,
+) -> pd.DataFrame:
+    """Symmetric play over a grid of survival chances and prizes, each point warm-started
+    from its neighbour and certified; points the warm start cannot certify are solved cold
+    by ``equilibrium``. One row per setting (columns: stopwise.sweep)."""
+    return sweep_contests(p_survive, prize, players, cold_solve=equilibrium, **options)
+
+
+__all__ += ["sweep"]
