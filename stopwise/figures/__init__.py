@@ -1,0 +1,1 @@
+"""Figures (matplotlib, Agg backend), one module per result kind."""
