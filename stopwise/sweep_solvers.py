@@ -297,7 +297,11 @@ def n_player_regret(game: ContestGame, sigma: np.ndarray) -> float:
 def n_player_support_search(
     game: ContestGame, start: np.ndarray, tolerance: float, max_steps: int = 30
 ) -> np.ndarray | None:
-    """Support updating for the symmetric N-player contest from the support of `start`."""
+    """Support updating for the symmetric N-player contest from the support of `start`:
+    solve the indifference system on S by Newton; if the solution has a negative weight or
+    an improving deviation, the next S holds the targets of positive weight and every
+    target t with U_t(sigma) > sigma . U(sigma) + tolerance (sigma the solution clipped at 0
+    and renormalised); stop when sigma >= 0 has regret <= tolerance."""
     support = sorted(int(t) for t in np.flatnonzero(start > 1e-9))
     guess = start
     seen: set[tuple[int, ...]] = set()
@@ -305,19 +309,19 @@ def n_player_support_search(
         if not support or tuple(support) in seen:
             return None
         seen.add(tuple(support))
-        sigma = newton_support(game, support, guess)
-        if sigma is None:
+        solution = newton_support(game, support, guess)
+        if solution is None:
             return None
-        if sigma.min() < -NEGATIVE_WEIGHT:
-            support.remove(int(np.argmin(sigma)))
-            continue
-        sigma = np.clip(sigma, 0.0, None)
+        sigma = np.clip(solution, 0.0, None)
         sigma /= sigma.sum()
         u = np.asarray(target_payoffs(game, jnp.asarray(sigma)))
         value = float(sigma @ u)
-        if u.max() - value <= tolerance:
+        if solution.min() >= -NEGATIVE_WEIGHT and u.max() - value <= tolerance:
             return sigma
-        support = sorted({*support, *(int(t) for t in np.flatnonzero(u > value + tolerance))})
+        kept = np.flatnonzero(solution > NEGATIVE_WEIGHT)
+        support = sorted(
+            {*(int(t) for t in kept), *(int(t) for t in np.flatnonzero(u > value + tolerance))}
+        )
         guess = sigma
     return None
 
