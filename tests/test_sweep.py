@@ -5,6 +5,7 @@ players, QRE, refusals and the command line."""
 from __future__ import annotations
 
 import itertools
+import sys
 
 import nashpy
 import numpy as np
@@ -224,3 +225,43 @@ def test_cli_uncertified_exits_1_unless_approximations_allowed(tmp_path, capsys,
     assert not out.exists()
     assert cli.main([*argv, "--allow-approximate"]) == 0
     assert not pd.read_csv(out)["certified"].any()
+
+
+@pytest.mark.parametrize(
+    ("concept", "options"),
+    [("levelk", {"precision": 2.0, "level": 2}), ("ch", {"precision": 2.0, "tau": 1.5})],
+)
+def test_levelk_and_ch_rows_equal_the_single_point_answer(concept, options):
+    # Exact by construction: each row equals stopwise.contest.equilibrium at the same cap.
+    table = contest.sweep([0.8, 0.85], 1.0, 2, concept=concept, max_target=10, **options)
+    assert table["certified"].all() and table["check"].str.startswith("exact").all()
+    for p, sigma in zip([0.8, 0.85], probs_of(table)):
+        single = contest.equilibrium(p, 2, 1.0, concept=concept, max_target=10, **options)
+        assert np.max(np.abs(sigma - np.asarray(single["probs"]))) <= 1e-10
+
+
+def test_progress_bar_only_on_a_terminal(capsys, monkeypatch):
+    argv = ["sweep", "--p-survive", "0.8,0.81,0.82", "--players", "2", "--max-target", "12"]
+    assert cli.main(argv) == 0
+    assert "3/3" not in capsys.readouterr().err  # captured stderr is not a terminal
+    monkeypatch.setattr(type(sys.stderr), "isatty", lambda self: True, raising=False)
+    assert cli.main(argv) == 0
+    assert "3/3" in capsys.readouterr().err
+    assert cli.main([*argv, "--quiet"]) == 0
+    assert "3/3" not in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    ("extra", "expected"),
+    [
+        (["--players", "1"], "players must be an integer >= 2"),
+        (["--players", "2", "--concept", "qre"], "needs precision"),
+        (["--players", "2", "--r", "1.5"], "r must be below 1"),
+        (["--players", "2", "--max-target", "0"], "max_target must be an integer >= 1"),
+    ],
+)
+def test_cli_bad_options_exit_2(tmp_path, capsys, extra, expected):
+    out = tmp_path / "t.csv"
+    assert cli.main(["sweep", "--p-survive", "0.9", "--out", str(out), *extra]) == 2
+    assert expected in capsys.readouterr().err
+    assert not out.exists()
