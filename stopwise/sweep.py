@@ -364,9 +364,15 @@ def sweep_contests(
     prizes = [float(v) for v in np.atleast_1d(prize)]
     check_grid(p_values, prizes)
     setting = make_setting(
-        p_values, players, keep_bank, concept, precision, tau, level, r, max_target, gain, start
+        p_values,
+        players,
+        keep_bank,
+        concept,
+        (precision, tau, level, r),
+        max_target,
+        (gain, start, bust_keep),
+        tolerance,
     )
-    setting = setting._replace(bust_keep=float(bust_keep), tolerance=float(tolerance))
     axis, points = grid_settings(p_values, prizes)
     rows: list[dict[str, Any]] = []
     bar = tqdm(
@@ -398,15 +404,15 @@ def make_setting(
     players: int,
     keep_bank: bool,
     concept: str,
-    precision: float | None,
-    tau: float | None,
-    level: int | None,
-    r: float | None,
+    concept_options: tuple[float | None, float | None, int | None, float | None],
     max_target: int | None,
-    gain: float,
-    start: float,
+    banks: tuple[float, float, float],
+    tolerance: float,
 ) -> Setting:
-    """Check the options of a sweep and fix the cap (module docstring)."""
+    """Check the options of a sweep and fix the cap (module docstring); `concept_options`
+    are (precision, tau, level, r), `banks` (gain, start, bust_keep)."""
+    precision, tau, level, r = concept_options
+    gain, start, bust_keep = (float(v) for v in banks)
     if concept not in SWEEP_CONCEPTS:
         raise StopwiseInputError(f"unknown concept {concept!r}; choose {', '.join(SWEEP_CONCEPTS)}")
     if int(players) != players or players < 2:
@@ -420,6 +426,13 @@ def make_setting(
         raise StopwiseInputError(f"r must be below 1 in contests (money can be 0), got {r}")
     if max_target is not None and (int(max_target) != max_target or max_target < 1):
         raise StopwiseInputError(f"max_target must be an integer >= 1, got {max_target}")
+    if not (gain > 0 and start >= 0 and 0 <= bust_keep <= 1):
+        raise StopwiseInputError(
+            f"expected gain > 0, start >= 0 and bust_keep in [0, 1], got {gain}, {start}, "
+            f"{bust_keep}"
+        )
+    if not tolerance > 0:
+        raise StopwiseInputError(f"tolerance must be positive, got {tolerance}")
     cap = int(max_target) if max_target is not None else default_max_target(max(p_values))
     return Setting(
         int(players),
@@ -431,10 +444,10 @@ def make_setting(
         r,
         cap,
         max_target is not None,
-        float(gain),
-        float(start),
-        0.0,
-        1e-6,
+        gain,
+        start,
+        bust_keep,
+        float(tolerance),
     )
 
 

@@ -258,6 +258,8 @@ def test_progress_bar_only_on_a_terminal(capsys, monkeypatch):
         (["--players", "2", "--concept", "qre"], "needs precision"),
         (["--players", "2", "--r", "1.5"], "r must be below 1"),
         (["--players", "2", "--max-target", "0"], "max_target must be an integer >= 1"),
+        (["--players", "2", "--gain", "0"], "expected gain > 0"),
+        (["--players", "2", "--tolerance", "0"], "tolerance must be positive"),
     ],
 )
 def test_cli_bad_options_exit_2(tmp_path, capsys, extra, expected):
