@@ -15,7 +15,7 @@ import pytest
 from stopwise import cli, contest
 from stopwise.sweep import UncertifiedSweepError, sweep_contests
 from stopwise.sweep_grid import parse_grid, total_variation
-from stopwise.sweep_solvers import two_player_tables
+from stopwise.sweep_solvers import symmetric_lemke_howson, two_player_tables
 from tests.sweep_reference import (
     brute_three_player_payoffs,
     brute_two_player,
@@ -267,3 +267,27 @@ def test_cli_bad_options_exit_2(tmp_path, capsys, extra, expected):
     assert cli.main(["sweep", "--p-survive", "0.9", "--out", str(out), *extra]) == 2
     assert expected in capsys.readouterr().err
     assert not out.exists()
+
+
+@pytest.mark.filterwarnings("ignore::RuntimeWarning")  # nashpy's note on degenerate games
+@pytest.mark.parametrize("seed", range(4))
+def test_symmetric_lemke_howson_is_among_nashpy_equilibria(seed):
+    # Outside reference: nashpy's (Knight & Campbell 2018) support enumeration on random
+    # symmetric games (B = A^T); our symmetric equilibrium must be one of its equilibria.
+    a = np.random.default_rng(seed).normal(size=(5, 5))
+    sigma = symmetric_lemke_howson(a)
+    reference = list(nashpy.Game(a, a.T).support_enumeration())
+    assert any(
+        np.allclose(sigma, x, atol=1e-9) and np.allclose(sigma, y, atol=1e-9) for x, y in reference
+    )
+
+
+def test_rescue_when_the_cold_solver_is_wrong():
+    # A cold answer that fails its certificate is replaced by a certified one from the
+    # rescue solvers, checked on the brute-force matrix.
+    table = sweep_contests([0.85, 0.86], 1.0, 2, _uniform_solver, max_target=20)
+    assert table["certified"].all()
+    assert table["method"].iloc[0].startswith("rescue")
+    for p, sigma in zip([0.85, 0.86], probs_of(table)):
+        a, payoff_range = brute_two_player(p, 1.0, False, 20)
+        assert symmetric_regret(a, sigma) <= 1e-9 * payoff_range
