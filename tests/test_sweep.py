@@ -11,17 +11,17 @@ import nashpy
 import numpy as np
 import pandas as pd
 import pytest
-
-from stopwise import cli, contest
-from stopwise.sweep import UncertifiedSweepError, sweep_contests
-from stopwise.sweep_grid import parse_grid, total_variation
-from stopwise.sweep_solvers import symmetric_lemke_howson, two_player_tables
-from tests.sweep_reference import (
+from sweep_reference import (
     brute_three_player_payoffs,
     brute_two_player,
     symmetric_regret,
     zero_sum_value_strategy,
 )
+
+from stopwise import cli, contest
+from stopwise.sweep import UncertifiedSweepError, sweep_contests
+from stopwise.sweep_grid import parse_grid, total_variation
+from stopwise.sweep_solvers import symmetric_lemke_howson, two_player_tables
 
 
 def probs_of(table: pd.DataFrame) -> np.ndarray:

@@ -67,7 +67,11 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         action="store_true",
         help="keep points that fail their certificate, marked certified = false (exit 0)",
     )
-    parser.add_argument("--out", metavar="TABLE", help="write the table (.csv, .parquet, .json)")
+    parser.add_argument(
+        "--out",
+        metavar="TABLE",
+        help='write the table: .csv, .parquet, or .json ({"axis": ..., "rows": [...]})',
+    )
     parser.add_argument("--figure", metavar="FILE", help="write the figure (.png or .svg)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     parser.set_defaults(func=run)
