@@ -13,7 +13,8 @@ every setting of the grid (public entry: ``stopwise.contest.sweep``, which passe
 ``regret_share`` = max_regret / payoff range; ``residual`` (QRE) = max_t |sigma_t -
 softmax(lambda U(sigma))_t|; ``tv_prev`` = (1/2) sum_t |sigma_t - sigma'_t|, the total
 variation distance to the previous point along the swept axis (p_survive when it takes
-several values, else prize), which locates the jumps of the equilibrium.
+several values, else prize), which locates the jumps of the equilibrium (NaN at the first
+point of each line of the grid and after an uncertified point).
 
 Every point starts from its neighbour along the swept axis (module stopwise.sweep_solvers):
 two-player Nash first re-solves the indifference system on the neighbour's support, then

@@ -140,7 +140,7 @@ def summary(table: Any, axis: str, top: int = 5) -> str:
     lines = [
         f"{len(table)} points, {int(table['certified'].sum())} certified, swept along {axis}, "
         f"targets 0..{int(table['cap'].iloc[0])}",
-        f"largest max regret (share of payoff range): {table['regret_share'].max():.3g}",
+        certificate_line(table),
         f"largest jumps (total variation to the previous {axis}):",
     ]
     jumps = table.dropna(subset=["tv_prev"]).nlargest(top, "tv_prev")
@@ -150,3 +150,17 @@ def summary(table: Any, axis: str, top: int = 5) -> str:
             f"(mean target {row.mean_target:.3f})"
         )
     return "\n".join(lines)
+
+
+def certificate_line(table: Any) -> str:
+    """The worst value of the concept's certificate (QRE regret is not a certificate: a
+    quantal response equilibrium is not a Nash equilibrium)."""
+    check = str(table["check"].iloc[0])
+    if check == "fixed-point residual":
+        return (
+            f"largest fixed-point residual: {table['residual'].max():.3g} (max regret, not a "
+            f"check for QRE: up to {table['regret_share'].max():.3g} of the payoff range)"
+        )
+    if check == "max regret":
+        return f"largest max regret (share of payoff range): {table['regret_share'].max():.3g}"
+    return f"check: {check}"
