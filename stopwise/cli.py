@@ -15,6 +15,8 @@ import os
 import sys
 from collections.abc import Sequence
 
+from stopwise._io import OutputWriteError
+from stopwise.commands._args import check_output_options
 from stopwise.data_schemas.errors import StopwiseInputError
 
 COMMANDS = ("validate", "describe", "fit", "compare", "simulate", "equilibrium", "demo")
@@ -90,10 +92,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         if not getattr(args, "func", None):
             parser.print_help(sys.stderr)
             return 2
+        check_output_options(args)
         return int(args.func(args) or 0)
     except StopwiseInputError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
+    except OutputWriteError as exc:
+        print(f"error: {exc.strerror}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 1
