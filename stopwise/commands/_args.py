@@ -18,6 +18,17 @@ FIT_CAP_HELP = (
 JSON_HELP = "write {what} as JSON to FILE ('-' for stdout)"
 
 
+def positive_int(text: str) -> int:
+    """argparse type: a whole number >= 1 (a count of starts, replications, ...)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {value}")
+    return value
+
+
 def add_data(parser: argparse.ArgumentParser) -> None:
     """The positional DATA file."""
     parser.add_argument("data", metavar="DATA", help="CSV or Parquet file")
