@@ -169,6 +169,34 @@ def output_mode(target: Path) -> int:
         return NEW_FILE_MODE & ~current_umask()
 
 
+_PENDING: set[str] = set()  # temporary files being written (removed on SIGTERM)
+
+
+def remove_pending_temporaries() -> None:
+    """Delete the temporary files of writes in progress (the command line's SIGTERM
+    handler calls this before it exits, so no hidden file is left behind)."""
+    for name in list(_PENDING):
+        try:
+            os.unlink(name)
+        except OSError:
+            pass
+        _PENDING.discard(name)
+
+
+def _open_temporary(target: Path) -> tuple[int, str]:
+    """Create ``.<name>.<random>.tmp`` beside ``target`` (mode 0600, exclusive). The name
+    is registered in _PENDING *before* the file exists, so a signal handler running at
+    any moment finds every temporary file."""
+    for _ in range(100):
+        name = os.path.join(target.parent, f".{target.name}.{os.urandom(6).hex()}.tmp")
+        _PENDING.add(name)
+        try:
+            return os.open(name, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600), name
+        except FileExistsError:
+            _PENDING.discard(name)
+    raise FileExistsError(f"no free temporary name beside {target}")
+
+
 def write_atomic(path: str | os.PathLike[str], data: str | bytes) -> Path:
     """Write ``data`` to ``path`` atomically (temporary sibling, then rename), following a
     symbolic link to its target; returns the path given."""
@@ -179,21 +207,19 @@ def write_atomic(path: str | os.PathLike[str], data: str | bytes) -> Path:
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         permissions = output_mode(target)
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+        fd, tmp = _open_temporary(target)
         with os.fdopen(fd, mode, **({} if mode == "wb" else {"encoding": "utf-8"})) as fh:
             os.fchmod(fh.fileno(), permissions)
             fh.write(data)
         os.replace(tmp, target)
     except OSError as exc:
-        if tmp is not None:
-            Path(tmp).unlink(missing_ok=True)
         raise OutputWriteError(
             exc.errno, f"cannot write {os.fspath(path)}: {exc.strerror or exc}"
         ) from exc
-    except BaseException:
+    finally:
         if tmp is not None:
             Path(tmp).unlink(missing_ok=True)
-        raise
+            _PENDING.discard(tmp)
     return Path(path)
 
 
