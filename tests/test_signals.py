@@ -18,7 +18,7 @@ import pytest
 from stopwise import _io
 from stopwise.cli import main
 
-STOPWISE = Path(sys.executable).with_name("stopwise")
+STOPWISE = Path(sys.executable).with_name("stopwise")  # the installed console script
 ROWS = (
     "subject,trial,step,p_survive,gain,action,outcome\n"
     "s1,1,0,0.9,1,draw,success\ns1,1,1,0.9,1,stop,\n"
@@ -39,19 +39,31 @@ def hidden_files(folder: Path) -> list[str]:
     return sorted(p.name for p in folder.iterdir() if p.name.startswith("."))
 
 
-def default_sigint() -> None:
-    """Children of a non-interactive shell may inherit an ignored SIGINT; restore it."""
-    signal.signal(signal.SIGINT, signal.SIG_DFL)
+# Children of a non-interactive shell may inherit an ignored SIGINT, which Python then
+# leaves ignored; each child script restores Python's own handler first (a preexec_fn
+# would fork this multithreaded process).
+RESTORE_SIGINT = "import signal; signal.signal(signal.SIGINT, signal.default_int_handler)\n"
+
+
+def python_child(script: str) -> list[str]:
+    return [sys.executable, "-c", RESTORE_SIGINT + textwrap.dedent(script)]
+
+
+def console_command(*argv: str) -> list[str]:
+    """The console command as its installed wrapper runs it (stopwise_launch.main)."""
+    return python_child(
+        f"""
+        import sys
+        from stopwise_launch import main
+        sys.argv = ["stopwise", *{list(argv)!r}]
+        sys.exit(main())
+        """
+    )
 
 
 def run_script(script: str, cwd: Path) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        [sys.executable, "-c", textwrap.dedent(script)],
-        capture_output=True,
-        text=True,
-        timeout=300,
-        cwd=cwd,
-        preexec_fn=default_sigint,
+        python_child(script), capture_output=True, text=True, timeout=300, cwd=cwd
     )
 
 
@@ -82,16 +94,15 @@ def test_a_signal_while_jax_is_imported_ends_quietly(tmp_path, signame, code, li
 
 
 def test_sigint_to_the_console_command_gives_130_and_one_line(tmp_path, data) -> None:
-    """The real console command, interrupted shortly after it starts (in start-up or in
+    """The console command, interrupted shortly after it starts (in start-up or in
     the fit; either way the outcome must be the same). The delay only schedules the
     signal; nothing about time is asserted."""
     out = tmp_path / "fit.json"
     child = subprocess.Popen(
-        [str(STOPWISE), "fit", str(data), "--model", "crra+planner+logit", "--json", str(out)],
+        console_command("fit", str(data), "--model", "crra+planner+logit", "--json", str(out)),
         stdout=subprocess.DEVNULL,
         stderr=subprocess.PIPE,
         text=True,
-        preexec_fn=default_sigint,
     )
     time.sleep(0.2)
     child.send_signal(signal.SIGINT)
