@@ -22,6 +22,11 @@ import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.formula_guard import (
+    ALLOWED_FUNCTIONS,
+    check_formula_rhs,
+    safe_namespace,
+)
 
 
 @dataclass(frozen=True)
@@ -79,19 +84,26 @@ def build_designs(
         param, rhs = parse_lhs(formula, param_names)
         if param in out:
             raise StopwiseInputError(f"parameter {param!r} has more than one formula")
+        check_formula_rhs(rhs, frame.columns, formula)
         try:
             matrix = patsy.dmatrix(
                 rhs,
                 frame,
                 NA_action="raise",
                 return_type="dataframe",
-                eval_env=patsy.EvalEnvironment([{}]),
+                eval_env=patsy.EvalEnvironment([safe_namespace()]),
             )
         except patsy.PatsyError as exc:
             raise StopwiseInputError(
                 f"formula {formula!r}: {str(exc).splitlines()[0]}; known covariate columns: {known}"
             ) from None
         design = np.asarray(matrix, dtype=np.float64)
+        if design.shape[1] == 0:
+            raise StopwiseInputError(
+                f"formula {formula!r}: the right-hand side has no terms, so {param} would be "
+                f"fixed at 0 on its unconstrained scale; write '{param} ~ 1' for a constant "
+                "or hold the parameter at a value with --fix / fixed="
+            )
         if np.linalg.matrix_rank(design) < design.shape[1]:
             raise StopwiseInputError(
                 f"formula {formula!r}: the design columns {list(matrix.columns)} are collinear "
@@ -134,6 +146,9 @@ def design_for_new_rows(formula: ParamFormula, frame: pd.DataFrame) -> np.ndarra
     import patsy
 
     text = f"{formula.param} ~ {formula.rhs}"
+    check_formula_rhs(formula.rhs, formula.variables, text)
+    for factor in formula.design_info.factor_infos:
+        check_formula_rhs(factor.code, formula.variables, text)
     known = ", ".join(map(str, frame.columns)) or "(none)"
     for name in formula.variables:
         if name not in frame.columns:
@@ -186,18 +201,7 @@ def formula_variables(formulas: Sequence[str] | Mapping[str, str] | None) -> lis
     names: list[str] = []
     for rhs in items:
         for token in re.findall(r"[A-Za-z_][A-Za-z0-9_.]*", rhs):
-            if token not in names and token not in {
-                "C",
-                "np",
-                "I",
-                "Treatment",
-                "Sum",
-                "log",
-                "exp",
-                "center",
-                "standardize",
-                "scale",
-            }:
+            if token not in names and token not in ALLOWED_FUNCTIONS:
                 names.append(token)
     return names
 

@@ -13,6 +13,11 @@ The cache is JAX's own (``jax_compilation_cache_dir``); stopwise only chooses it
 * a cache directory the user configured for JAX itself (``JAX_COMPILATION_CACHE_DIR`` or
   ``jax.config``) is left alone.
 
+JAX loads compiled programs from this folder and runs them, so the folder must not be
+writable by anyone else: a folder that is group- or world-writable, or owned by another
+user, is not used, with a warning (``cache_folder_problem``; its parent folders are not
+checked). New cache folders are created with mode 0o700.
+
 Only programs that took at least ``MIN_COMPILE_SECONDS`` to compile are stored, and JAX
 evicts the least recently used entries beyond ``MAX_CACHE_BYTES``.
 """
@@ -22,6 +27,8 @@ from __future__ import annotations
 import hashlib
 import os
 import platform
+import stat
+import warnings
 from collections.abc import Mapping
 from pathlib import Path
 
@@ -66,17 +73,38 @@ def chosen_cache_dir(environ: Mapping[str, str], jax_setting: str | None) -> Pat
     return default_cache_dir(environ)
 
 
+def cache_folder_problem(folder: Path) -> str | None:
+    """Why ``folder`` is unsafe for compiled programs (writable by group or others, or
+    owned by another user), or None when it is safe."""
+    info = os.stat(folder)
+    if info.st_mode & (stat.S_IWGRP | stat.S_IWOTH):
+        return f"it is writable by {'others' if info.st_mode & stat.S_IWOTH else 'its group'}"
+    if hasattr(os, "geteuid") and info.st_uid != os.geteuid():
+        return f"it belongs to another user (uid {info.st_uid})"
+    return None
+
+
 def enable_compilation_cache() -> Path | None:
     """Point JAX's persistent compilation cache at chosen_cache_dir(); returns the folder,
-    or None when no cache is set up (switched off, set by the user, or not writable)."""
+    or None when no cache is set up (switched off, set by the user, not writable, or
+    unsafe: cache_folder_problem, with a warning)."""
     folder = chosen_cache_dir(os.environ, jax.config.jax_compilation_cache_dir)
     if folder is None:
         return None
     try:
-        folder.mkdir(parents=True, exist_ok=True)
+        folder.mkdir(mode=0o700, parents=True, exist_ok=True)
     except OSError:
         return None
     if not os.access(folder, os.W_OK):
+        return None
+    problem = cache_folder_problem(folder)
+    if problem is not None:
+        warnings.warn(
+            f"stopwise: not using the compilation cache {folder}: {problem}, and compiled "
+            "programs are loaded from it (make it private: chmod go-w, or set "
+            "STOPWISE_CACHE_DIR to a folder of your own)",
+            stacklevel=2,
+        )
         return None
     jax.config.update("jax_compilation_cache_dir", str(folder))
     jax.config.update("jax_persistent_cache_min_compile_time_secs", MIN_COMPILE_SECONDS)

@@ -3,7 +3,9 @@
 Each command lives in ``stopwise/commands/<name>.py`` and exposes
 ``register(subparsers) -> argparse.ArgumentParser`` which sets ``func=run`` on its parser,
 with ``run(args) -> int``. Exit codes (DESIGN.md): 0 success; 2 bad input or usage (message
-on stderr, no traceback, nothing written); 1 anything else.
+on stderr, no traceback, nothing written); 1 anything else; 130 after an interrupt (SIGINT)
+and 143 after SIGTERM, each with one line on stderr and no temporary file left (the console
+command starts in ``stopwise_launch.py``, which covers the import of this module).
 """
 
 from __future__ import annotations
@@ -12,14 +14,48 @@ import argparse
 import importlib
 import importlib.util
 import os
+import signal
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from types import FrameType
+from typing import Any
 
+from stopwise._io import OutputWriteError, remove_pending_temporaries
+from stopwise.commands._args import check_output_options
 from stopwise.data_schemas.errors import StopwiseInputError
 
 COMMANDS = ("validate", "describe", "fit", "compare", "simulate", "equilibrium", "sweep", "demo")
 DEFAULT_CHAINS = 4  # the --chains default of fit and compare
 DEVICE_FLAG = "--xla_force_host_platform_device_count"
+EXIT_INTERRUPTED = 128 + signal.SIGINT  # 130, as a shell reports Ctrl-C
+EXIT_TERMINATED = 128 + signal.SIGTERM  # 143
+
+
+def exit_on_sigterm(signum: int, frame: FrameType | None) -> None:
+    """SIGTERM during a command: delete the temporary files of writes in progress (an
+    output is either complete or untouched), say so in one line and exit with 143.
+    os._exit, not an exception: an exception raised in a signal handler can be swallowed
+    where the handler happens to run (a garbage-collection callback, a __del__)."""
+    remove_pending_temporaries()
+    sys.stderr.write("terminated\n")
+    sys.stderr.flush()
+    os._exit(EXIT_TERMINATED)
+
+
+@contextmanager
+def sigterm_cleans_up() -> Iterator[None]:
+    """While the block runs, SIGTERM goes to exit_on_sigterm (main thread only; elsewhere
+    the handlers stay as they are); the previous handler is restored afterwards."""
+    try:
+        previous: Callable[..., Any] | int | None = signal.signal(signal.SIGTERM, exit_on_sigterm)
+    except ValueError:  # not the main thread
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -82,7 +118,14 @@ def give_chains_their_devices(args: argparse.Namespace) -> None:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point; returns the process exit code."""
+    """Entry point; returns the process exit code (an interrupt: 130, SIGTERM: 143, each
+    with one line on stderr; temporary output files are removed on the way out)."""
+    with sigterm_cleans_up():
+        return _run(argv)
+
+
+def _run(argv: Sequence[str] | None) -> int:
+    """Parse, check the outputs, run the command; map errors to exit codes."""
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
@@ -90,13 +133,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         if not getattr(args, "func", None):
             parser.print_help(sys.stderr)
             return 2
+        check_output_options(args)
         return int(args.func(args) or 0)
     except StopwiseInputError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
+    except OutputWriteError as exc:
+        print(f"error: {exc.strerror}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
-        return 1
+        return EXIT_INTERRUPTED
     except BrokenPipeError:
         return 1
     except Exception as exc:  # anything else: exit 1, traceback only on request

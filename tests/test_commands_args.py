@@ -6,6 +6,7 @@ import argparse
 
 import pytest
 
+from stopwise.cli import main
 from stopwise.commands import _args, compare, fit
 
 
@@ -31,3 +32,35 @@ def test_fit_and_compare_declare_their_shared_options_alike() -> None:
         assert a[dest] == b[dest], dest
     assert a["json"][4] == "write the result as JSON to FILE ('-' for stdout)"
     assert b["json"][4] == "write the comparison as JSON to FILE ('-' for stdout)"
+
+
+@pytest.mark.parametrize(
+    ("argv", "fragment"),
+    [
+        (["--starts", "0"], "--starts: expected a whole number >= 1, got 0"),
+        (["--starts", "-3"], "--starts: expected a whole number >= 1, got -3"),
+        (["--starts", "two"], "--starts: expected a whole number >= 1, got 'two'"),
+        (["--bootstrap-reps", "0"], "--bootstrap-reps: expected a whole number >= 1, got 0"),
+        (["--formula", "r ~ 0"], "right-hand side has no terms"),
+    ],
+)
+def test_meaningless_counts_and_empty_formulas_are_usage_errors(
+    tmp_path, argv, fragment, capsys
+) -> None:
+    """Issue 22 item 11: exit 2 with the option named, nothing written."""
+    data = tmp_path / "d.csv"
+    data.write_text(
+        "subject,trial,step,p_survive,gain,action,outcome\n"
+        "s1,1,0,0.9,1,draw,success\ns1,1,1,0.9,1,stop,\ns2,1,0,0.8,1,stop,\n",
+        encoding="utf-8",
+    )
+    out = tmp_path / "fit.json"
+    code = main(["fit", str(data), "--model", "crra+myopic+logit", *argv, "--json", str(out)])
+    assert code == 2
+    assert fragment in capsys.readouterr().err
+    assert not out.exists()
+
+
+@pytest.mark.parametrize(("text", "value"), [("1", 1), ("12", 12)])
+def test_positive_int_accepts_counts(text, value) -> None:
+    assert _args.positive_int(text) == value

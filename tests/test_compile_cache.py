@@ -53,3 +53,39 @@ def test_importing_stopwise_points_jax_at_the_folder(tmp_path):
     assert Path(run_python(code, STOPWISE_CACHE_DIR=str(folder))) == folder
     assert folder.is_dir()
     assert run_python(code, STOPWISE_CACHE_DIR="off") == "None"
+
+
+@pytest.mark.parametrize(("mode", "fragment"), [(0o777, "others"), (0o770, "its group")])
+def test_a_cache_folder_writable_by_others_is_refused(tmp_path, mode, fragment):
+    """Compiled programs are loaded from the cache, so a folder others can write is unsafe
+    (issue 22 item 3)."""
+    folder = tmp_path / "shared"
+    folder.mkdir()
+    folder.chmod(mode)
+    assert fragment in cc.cache_folder_problem(folder)
+    folder.chmod(0o700)
+    assert cc.cache_folder_problem(folder) is None
+
+
+def test_importing_stopwise_skips_an_unsafe_cache_with_a_warning(tmp_path):
+    folder = tmp_path / "shared"
+    folder.mkdir()
+    folder.chmod(0o777)
+    env = {k: v for k, v in os.environ.items() if k != "JAX_COMPILATION_CACHE_DIR"}
+    env["STOPWISE_CACHE_DIR"] = str(folder)
+    done = subprocess.run(
+        [sys.executable, "-c", "import jax, stopwise; print(jax.config.jax_compilation_cache_dir)"],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert done.returncode == 0
+    assert done.stdout.strip() == "None"
+    assert "writable by others" in done.stderr
+
+
+def test_a_new_cache_folder_is_private(tmp_path):
+    folder = tmp_path / "fresh" / "cache"
+    run_python("import stopwise", STOPWISE_CACHE_DIR=str(folder))
+    assert os.stat(folder).st_mode & 0o777 == 0o700

@@ -4,6 +4,10 @@ wherever a command offers them), and the mapping of ``--se`` to the engines' cho
 from __future__ import annotations
 
 import argparse
+from typing import Any
+
+from stopwise._io import check_output_folder, check_output_path
+from stopwise.data_schemas.errors import StopwiseInputError
 
 CONTEST_CAP_HELP = "cap on the targets a contest model considers"
 FIT_CAP_HELP = (
@@ -12,6 +16,17 @@ FIT_CAP_HELP = (
     "cap is faster, and Bayesian fits check it against the default at 100 posterior draws)"
 )
 JSON_HELP = "write {what} as JSON to FILE ('-' for stdout)"
+
+
+def positive_int(text: str) -> int:
+    """argparse type: a whole number >= 1 (a count of starts, replications, ...)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {value}")
+    return value
 
 
 def add_data(parser: argparse.ArgumentParser) -> None:
@@ -105,3 +120,36 @@ def add_allow_censored(parser: argparse.ArgumentParser) -> None:
 def se_choice(option: str | None) -> str | None:
     """``--se`` to the engines' ``se``: not given -> "auto", "none" -> None, else as given."""
     return {"none": None, None: "auto"}.get(option, option)
+
+
+OUTPUT_FILE_OPTIONS = ("json", "out", "table", "figure")  # dests that name an output file
+INPUT_OPTIONS = ("data",)  # dests that name an input file
+
+
+def _named_paths(args: argparse.Namespace, dests: tuple[str, ...]) -> list[tuple[str, str]]:
+    """(option, path) for each of ``dests`` that holds a path string."""
+    return [
+        (f"--{dest.replace('_', '-')}", value)
+        for dest in dests
+        if isinstance(value := getattr(args, dest, None), str) and value
+    ]
+
+
+def check_output_options(args: argparse.Namespace) -> None:
+    """Check every output path of a parsed command line before anything runs
+    (stopwise._io.check_output_path): regular file or new, not an input, in a folder that
+    takes new files, and no two outputs the same file. A command whose option names an
+    output folder lists it with ``parser.set_defaults(output_folders=("out",))``."""
+    folders = tuple(getattr(args, "output_folders", ()))
+    inputs = [path for _, path in _named_paths(args, INPUT_OPTIONS)]
+    files = [
+        (opt, p) for opt, p in _named_paths(args, OUTPUT_FILE_OPTIONS) if opt[2:] not in folders
+    ]
+    seen: dict[Any, str] = {}
+    for option, path in files:
+        target = check_output_path(path, inputs, option)
+        if target is not None and target in seen:
+            raise StopwiseInputError(f"{seen[target]} and {option} name the same file {path}")
+        seen[target] = option
+    for option, path in _named_paths(args, folders):
+        check_output_folder(path, option)

@@ -27,7 +27,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         default=120,
         help="number of invented participants (default: 120; at least 4)",
     )
-    parser.set_defaults(func=run)
+    parser.set_defaults(func=run, output_folders=("out",))
     return parser
 
 

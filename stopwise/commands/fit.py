@@ -42,7 +42,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     )
     parser.add_argument(
         "--bootstrap-reps",
-        type=int,
+        type=_args.positive_int,
         default=200,
         metavar="B",
         help="bootstrap replications with --se bootstrap (default 200)",
@@ -64,7 +64,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     )
     parser.add_argument(
         "--starts",
-        type=int,
+        type=_args.positive_int,
         default=None,
         metavar="N",
         help="optimiser starts (default 3; 8 with --types)",
