@@ -16,7 +16,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "fit",
         help="fit a model to choice data (maximum likelihood or Bayes)",
         description="Fit one model (SPEC such as crra+planner+logit) to stopping or "
-        "lottery-choice data and print a summary table: estimates, standard errors, 95%% "
+        "lottery-choice data and print a summary table: estimates, standard errors, 95% "
         "intervals, log-likelihood, AIC, BIC and convergence. Results are research "
         "estimates, not a basis for individual financial, clinical or hiring decisions.",
     )
