@@ -19,7 +19,16 @@ from typing import Any
 
 from stopwise.data_schemas.errors import StopwiseInputError
 
-COMMANDS = ("validate", "describe", "fit", "compare", "simulate", "equilibrium", "demo")
+COMMANDS = (
+    "validate",
+    "describe",
+    "fit",
+    "compare",
+    "simulate",
+    "recover",
+    "equilibrium",
+    "demo",
+)
 DEFAULT_CHAINS = 4  # the --chains default of fit and compare
 DEVICE_FLAG = "--xla_force_host_platform_device_count"
 
