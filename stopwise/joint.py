@@ -33,9 +33,7 @@ def subject_overlap_note(bundles: Sequence[Any]) -> str:
     )
 
 
-def fit_joint(
-    parts: Sequence[tuple[Any, Any]], *, max_target: int | None = None, **kw: Any
-) -> Fit:
+def fit_joint(parts: Sequence[tuple[Any, Any]], *, max_target: int | None = None, **kw: Any) -> Fit:
     """Fit [(model, data), ...] jointly, parameters shared by name (module docstring).
     ``model``: a spec or a Model; ``data``: a path, DataFrame, Dataset or array bundle.
     Other keywords go to the engine (se, starts, seed, fixed, bootstrap_reps, progress)."""
