@@ -34,6 +34,7 @@ _EXPORTS: dict[str, str] = {
     # estimation
     "fit": "stopwise.api:fit",
     "compare": "stopwise.api:compare",
+    "fit_joint": "stopwise.joint:fit_joint",
     "recover": "stopwise.api:recover",
     # demo
     "demo_data": "stopwise.demo:demo_data",
