@@ -109,7 +109,7 @@ def blank_solo_contest_fields(table: pd.DataFrame) -> pd.DataFrame:
     solo = out["task"].to_numpy() == "solo"
     for key in CONTEST_ONLY_KEYS:
         if key in out.columns:
-            out[key] = out[key].astype(object).where(~solo, None)
+            out[key] = out[key].astype(np.float64).where(~solo)
     return out
 
 
@@ -192,7 +192,7 @@ def _require_constant_in_trials(
     if differs.any():
         row = int(np.flatnonzero(differs)[0])
         raise StopwiseInputError(
-            f"row {row + 2}, column {column!r}: the value changes within a trial; split by a "
+            f"line {row + 2}, column {column!r}: the value changes within a trial; split by a "
             "column that is constant within each trial (a covariate or subject)"
         )
 

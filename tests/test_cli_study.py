@@ -223,6 +223,8 @@ def test_describe_by_a_covariate(tmp_path: Path, capsys: pytest.CaptureFixture[s
         assert table.loc[value, "bust_rate"] == pytest.approx(busts.get(value, 0) / trials[value])
     code, _, err = run_cli(["describe", str(data), "--by", "age"], capsys)
     assert code == 2 and "no column 'age'" in err
+    code, _, err = run_cli(["describe", str(data), "--by", "step"], capsys)
+    assert code == 2 and "column 'step': the value changes within a trial" in err
 
 
 def test_hierarchical_bayes_reports_each_subject(
