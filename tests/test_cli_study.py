@@ -228,28 +228,27 @@ def test_describe_by_a_covariate(tmp_path: Path, capsys: pytest.CaptureFixture[s
 
 
 def test_hierarchical_bayes_reports_each_subject(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
+    import stopwise.commands.fit as fit_command
+
     data = tmp_path / "six.csv"
     argv = ["simulate", "--model", "linear+myopic+logit", "--set", "precision=1.5"]
     assert run_cli([*argv, "--subjects", "6", "--trials", "20", "--out", str(data)], capsys)[0] == 0
-    fit = stopwise.fit(
-        "linear+myopic+logit",
-        data,
-        method="bayes",
-        hierarchical=True,
-        chains=2,
-        draws=150,
-        warmup=150,
-        progress=False,
-    )
-    rows = fit.to_dict()["subjects"]
+    shown: list = []  # the result object the command prints, kept for its posterior draws
+    real_emit = fit_command.emit
+    monkeypatch.setattr(fit_command, "emit", lambda r, path: (shown.append(r), real_emit(r, path)))
+    out_json = tmp_path / "hier.json"
+    argv = ["fit", str(data), "--model", "linear+myopic+logit", "--method", "bayes"]
+    argv += ["--hierarchical", "--chains", "2", "--draws", "150", "--warmup", "150"]
+    code, text, _ = run_cli([*argv, "--no-progress", "--json", str(out_json)], capsys)
+    assert code == 0
+    rows = json.loads(out_json.read_text())["subjects"]
     assert [(r["subject"], r["param"]) for r in rows] == [(s, "precision") for s in range(1, 7)]
-    draws = fit.draws("precision_subject")  # (chains * draws, subjects), straight from ArviZ
+    draws = shown[0].draws("precision_subject")  # (chains * draws, subjects), from ArviZ
     for s, row in enumerate(rows):
         assert row["estimate"] == pytest.approx(float(np.mean(draws[:, s])), rel=1e-9)
         assert row["ci_low"] <= row["estimate"] <= row["ci_high"]
-    text = fit.summary()
     assert "subject estimates (posterior mean [95% HDI]" in text
     assert f"{rows[0]['estimate']:.4g} [{rows[0]['ci_low']:.4g}" in text
 
