@@ -61,6 +61,26 @@ def test_numpy_floating_point_warnings_become_one_note(
     assert "numpy reported 1 floating-point warning(s) (overflow encountered in exp)" in err
 
 
+def test_compare_shows_no_raw_runtime_warnings(tmp_path: Path) -> None:
+    """A real case: scipy's trust-region steps overflow while fitting these probit data."""
+    data = tmp_path / "probit.csv"
+    simulate = ["simulate", "--model", "crra+myopic+probit", "--set", "r=0.5", "--set"]
+    assert (
+        cli.main([*simulate, "sigma=0.5", "--subjects", "30", "--seed", "3", "--out", str(data)])
+        == 0
+    )
+    compare = ["compare", str(data), "--model", "crra+myopic+probit", "--model"]
+    done = subprocess.run(
+        [sys.executable, "-m", "stopwise", *compare, "crra+myopic+logit", "--cv-folds", "0"],
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert done.returncode == 0 and "Model comparison" in done.stdout
+    assert "RuntimeWarning" not in done.stderr and "warnings.warn" not in done.stderr
+    assert "note: numpy reported" in done.stderr  # counted, not hidden
+
+
 def test_fit_help_shows_95_percent_once(capsys: pytest.CaptureFixture[str]) -> None:
     with pytest.raises(SystemExit) as stop:
         cli.main(["fit", "--help"])
