@@ -252,3 +252,18 @@ def test_import_stopwise_exposes_only_its_public_names() -> None:
     assert json.loads(dir_ok) is True
     assert set(json.loads(star)) == set(stopwise.__all__)
     assert not {"Any", "jax", "importlib", "annotations"} & set(stopwise.__all__)
+
+
+def test_level_k_fit_explains_its_level(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data = tmp_path / "contest.csv"
+    simulate = ["simulate", "--model", "linear+levelk", "--set", "precision=2", "--set"]
+    simulate += ["level=1.5", "--subjects", "10", "--trials", "6", "--p-survive", "0.8"]
+    assert run_cli([*simulate, "--max-target", "12", "--out", str(data)], capsys)[0] == 0
+    argv = ["fit", str(data), "--model", "linear+levelk", "--max-target", "12", "--json", "-"]
+    code, out, _ = run_cli([*argv, "--no-progress"], capsys)
+    assert code == 0
+    result = json.loads(out)
+    assert "level" in [p["name"] for p in result["params"]]
+    assert any("mean depth of a population of levels 0..6" in n for n in result["notes"])
+    fixed_depth = build_model("linear+levelk", level=2)  # --option level=2
+    assert "level" not in fixed_depth.param_names and not fixed_depth.options["notes"]
