@@ -5,7 +5,8 @@ followed by one closing row at step d: "draw"/"bust" when ``busted`` = 1, else "
 empty outcome; a censored trial (``censored`` = 1) has no closing row. Every other column is
 per trial and is repeated on its rows; back at trial level it must be constant within a
 trial. ``bank`` (= start + step * gain) is derived, so it is dropped at trial level and
-re-created on request.
+re-created by default at decision level: decisions -> trials -> decisions gives the bank
+back (pass ``bank=False`` to leave it out).
 """
 
 from __future__ import annotations
@@ -21,10 +22,10 @@ _TRIAL_CORE = ("subject", "trial", "draws", "busted", C.CENSORED)
 
 
 def trials_to_decisions(
-    trials: pd.DataFrame, bank: bool = False, validate: bool = True
+    trials: pd.DataFrame, bank: bool = True, validate: bool = True
 ) -> pd.DataFrame:
     """Expand trial-level rows into decision rows (rows of a trial in step order, trials in
-    input order); ``bank`` adds the column bank = start + step * gain."""
+    input order); ``bank`` (default) adds the column bank = start + step * gain."""
     if validate:
         _require_valid(trials, C.TRIALS)
     trials = trials.reset_index(drop=True)

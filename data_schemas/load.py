@@ -79,7 +79,7 @@ def load(
             report,
         )
     if report.data_format == C.TRIALS:
-        clean = trials_to_decisions(clean, validate=False)
+        clean = trials_to_decisions(clean, bank=False, validate=False)
     if report.data_format in (C.TRIALS, C.DECISIONS):
         clean = _label_columns(clean)
     return Dataset(

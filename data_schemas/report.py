@@ -16,6 +16,13 @@ from typing import Any
 import numpy as np
 
 # Human-readable titles of the problem kinds, in the order they are listed.
+STAT_LABELS: dict[str, str] = {  # JSON keys are snake_case; the summary reads as prose
+    "p_survive_values": "p_survive values",
+    "gain_values": "gain values",
+    "rows_by_task": "rows by task",
+    "covariates": "other columns (covariates)",
+}
+
 KIND_TITLES: dict[str, str] = {
     "empty_file": "empty file",
     "not_a_table": "not a table",
@@ -191,7 +198,8 @@ class ValidationReport:
             return "\n".join(lines)
         head = f"{self.source}: OK ({_format_name(self.data_format)}, {self.n_rows} rows)"
         body = [
-            f"  {name.replace('_', ' ')}: {_show_stat(value)}" for name, value in self.stats.items()
+            f"  {STAT_LABELS.get(name, name)}: {_show_stat(value)}"
+            for name, value in self.stats.items()
         ]
         return "\n".join([head, *body])
 
@@ -238,6 +246,8 @@ def _format_name(fmt: str | None) -> str:
 
 
 def _show_stat(value: Any) -> str:
+    if isinstance(value, dict):
+        return ", ".join(f"{k} {_show_stat(v)}" for k, v in value.items())
     if isinstance(value, (list, tuple)):
         return ", ".join(_show_stat(v) for v in value)
     if isinstance(value, float):

@@ -798,20 +798,20 @@ def _stopping_stats(
     stats: dict = {"subjects": int(subject.max()) + 1 if len(subject) else 0, "trials": n_trials}
     p = cols.get("p_survive")
     if p is not None:
-        stats["p_survive values"] = _distinct(p.values[p.ok])
+        stats["p_survive_values"] = _distinct(p.values[p.ok])
     g = cols.get("gain")
     if g is not None:
-        stats["gain values"] = _distinct(g.values[g.ok])
+        stats["gain_values"] = _distinct(g.values[g.ok])
     task = cols.get("task")
     if task is not None:
         counts = np.bincount(task.values[task.ok], minlength=len(C.TASKS))
-        stats["rows by task"] = [f"{name} {int(c)}" for name, c in zip(C.TASKS, counts)]
+        stats["rows_by_task"] = {name: int(c) for name, c in zip(C.TASKS, counts)}
     known = (
         set(C.DECISION_REQUIRED) | set(C.TRIAL_REQUIRED) | set(C.OPTIONAL_STOPPING) | {C.CENSORED}
     )
     extra = [str(c) for c in ch.frame.columns if c not in known]
     if extra:
-        stats["other columns (covariates)"] = extra
+        stats["covariates"] = extra
     return stats
 
 

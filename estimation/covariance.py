@@ -99,6 +99,8 @@ def covariance_for(
     info: dict[str, object] = {}
     if method is None:
         return None, warnings, info
+    if method == "robust":  # the clusters are the subjects, whether or not the SEs exist
+        info["clusters"] = problem.n_clusters
     if not is_positive_definite(h):
         eig = np.linalg.eigvalsh(0.5 * (h + h.T)) if np.all(np.isfinite(h)) else [np.nan]
         warnings.append(
@@ -111,7 +113,6 @@ def covariance_for(
         return hessian_covariance(h), warnings, info
     if method == "robust":
         scores = problem.cluster_scores(z)
-        info["clusters"] = problem.n_clusters
         if problem.n_clusters < 30:
             warnings.append(
                 f"only {problem.n_clusters} clusters (subjects): the clustered sandwich "

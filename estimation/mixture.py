@@ -199,7 +199,10 @@ def fit_mixture(
         index=pd.Index(labels, name="subject"),
         columns=[f"type{t + 1}" for t in range(len(layouts))],
     )
-    fit.notes.append("each subject's posterior type probabilities: fit.extras['posterior']")
+    fit.notes.append(
+        "each subject's posterior type probabilities: the JSON key type_probabilities "
+        "(Python: fit.extras['posterior'])"
+    )
     return fit
 
 

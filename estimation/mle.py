@@ -25,7 +25,12 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
 from stopwise.estimation.covariance import covariance_for, wald_rows
 from stopwise.estimation.formulas import build_designs, cells_from_designs
-from stopwise.estimation.optimize import OptimumRecord, multistart, start_design
+from stopwise.estimation.optimize import (
+    OptimumRecord,
+    multistart,
+    optimizer_message,
+    start_design,
+)
 from stopwise.estimation.problem import (
     CellRows,
     Layout,
@@ -263,7 +268,7 @@ def run_fit(
         "algorithm": "scipy trust-exact (exact JAX gradient and Hessian)",
         "grad_norm": best.grad_norm,
         "iterations": best.iterations,
-        "message": best.message,
+        "message": optimizer_message(best),
         "starts": len(runs),
         "spread": spread,
         "start_logliks": [-r.value for r in runs],

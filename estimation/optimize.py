@@ -83,6 +83,20 @@ def minimize_one(
     return OptimumRecord(z, float(value), gnorm, nit, converged, message, np.asarray(z_start))
 
 
+def optimizer_message(record: OptimumRecord) -> str:
+    """The optimiser's message as reported: a converged run (max |gradient| < GRAD_TOL, our
+    own criterion) says so, because scipy's trust-exact often ends a converged run with a
+    note that a trust-region step "failed to predict improvement" (no further step improves
+    a stationary point in floating point) which reads as a failure; an unconverged run keeps
+    scipy's message."""
+    if not record.converged:
+        return record.message
+    return (
+        f"converged: max |gradient| = {record.grad_norm:.2g} < {GRAD_TOL:g} after "
+        f"{record.iterations} iterations"
+    )
+
+
 def multistart(
     fun: Callable[[np.ndarray], float],
     grad: Callable[[np.ndarray], np.ndarray],

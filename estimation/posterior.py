@@ -38,6 +38,7 @@ from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.draws import flatten_chains
 from stopwise.estimation.priors import hyperprior_text
+from stopwise.estimation.subject_estimates import subject_lines, subject_records
 from stopwise.estimation.truncation import truncation_warnings
 
 RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend R-hat < 1.01
@@ -365,6 +366,7 @@ class Posterior:
             "diagnostics": diagnostics,
             "sampler": {k: v for k, v in self.run.items() if k != "seed"},
             "notes": list(self.notes),
+            "subjects": subject_records(self.subject_params),
         }
 
     def to_json(self) -> str:
@@ -427,6 +429,7 @@ class Posterior:
                 f"difference| from the default cap over {check['draws_checked']} draws "
                 f"{check['max_abs_loglik_difference']:.2g} (tolerance {check['tolerance']:g})"
             )
+        lines += subject_lines(self.subject_params, self.hdi_prob)
         lines.append(f"converged: {'yes' if self.converged else 'NO'}")
         lines += [f"warning: {w}" for w in self.warnings]
         lines += [f"note: {n}" for n in self.notes]

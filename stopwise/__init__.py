@@ -8,17 +8,15 @@ Public names are resolved lazily so that ``import stopwise`` stays fast and the 
 line starts quickly.
 """
 
-from __future__ import annotations
+import importlib as _importlib
+from typing import Any as _Any
 
-import importlib
-from typing import Any
+import jax as _jax
 
-import jax
+from stopwise._compile_cache import enable_compilation_cache as _enable_compilation_cache
 
-from stopwise._compile_cache import enable_compilation_cache
-
-jax.config.update("jax_enable_x64", True)
-enable_compilation_cache()
+_jax.config.update("jax_enable_x64", True)
+_enable_compilation_cache()
 
 __version__ = "0.1.0"
 
@@ -36,6 +34,7 @@ _EXPORTS: dict[str, str] = {
     # estimation
     "fit": "stopwise.api:fit",
     "compare": "stopwise.api:compare",
+    "fit_joint": "stopwise.joint:fit_joint",
     "recover": "stopwise.api:recover",
     # demo
     "demo_data": "stopwise.demo:demo_data",
@@ -44,17 +43,18 @@ _EXPORTS: dict[str, str] = {
 __all__ = [*sorted(_EXPORTS), "__version__", "contest"]
 
 
-def __getattr__(name: str) -> Any:
+def __getattr__(name: str) -> _Any:
     if name == "contest":
-        return importlib.import_module("stopwise.contest")
+        return _importlib.import_module("stopwise.contest")
     target = _EXPORTS.get(name)
     if target is None:
         raise AttributeError(f"module 'stopwise' has no attribute {name!r}")
     module_name, attribute = target.split(":")
-    value = getattr(importlib.import_module(module_name), attribute)
+    value = getattr(_importlib.import_module(module_name), attribute)
     globals()[name] = value
     return value
 
 
 def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(__all__))
+    """The public names only (``__all__``); helpers of this module start with "_"."""
+    return sorted(__all__)

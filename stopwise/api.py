@@ -179,6 +179,7 @@ def fit(
     the_model = resolve_model(model, max_target)
     bundle, frame = resolve_data(data)
     bundle, frame, notes = select_data(the_model, bundle, frame)
+    notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
     return _attach(
         _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw),

@@ -16,6 +16,7 @@ import importlib.util
 import os
 import signal
 import sys
+import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from types import FrameType
@@ -25,7 +26,17 @@ from stopwise._io import OutputWriteError, remove_pending_temporaries
 from stopwise.commands._args import check_output_options
 from stopwise.data_schemas.errors import StopwiseInputError
 
-COMMANDS = ("validate", "describe", "fit", "compare", "simulate", "equilibrium", "sweep", "demo")
+COMMANDS = (
+    "validate",
+    "describe",
+    "fit",
+    "compare",
+    "simulate",
+    "recover",
+    "equilibrium",
+    "sweep",
+    "demo",
+)
 DEFAULT_CHAINS = 4  # the --chains default of fit and compare
 DEVICE_FLAG = "--xla_force_host_platform_device_count"
 EXIT_INTERRUPTED = 128 + signal.SIGINT  # 130, as a shell reports Ctrl-C
@@ -117,6 +128,44 @@ def give_chains_their_devices(args: argparse.Namespace) -> None:
         os.environ["XLA_FLAGS"] = flags
 
 
+def is_floating_point_warning(category: type[Warning], message: object) -> bool:
+    """numpy's floating-point RuntimeWarnings ("overflow encountered in exp", "divide by
+    zero encountered in log", "invalid value encountered in ...")."""
+    return issubclass(category, RuntimeWarning) and " encountered in " in str(message)
+
+
+def floating_point_note(messages: list[str]) -> str:
+    """One line for the numpy floating-point warnings of a command, instead of raw lines."""
+    distinct = list(dict.fromkeys(messages))
+    shown = "; ".join(distinct[:3]) + ("; ..." if len(distinct) > 3 else "")
+    return (
+        f"note: numpy reported {len(messages)} floating-point warning(s) ({shown}), e.g. "
+        "from extreme trial values during a search; the results state their own checks "
+        "(convergence, max |gradient|, Hessian)"
+    )
+
+
+def run_command(args: argparse.Namespace) -> int:
+    """Run the chosen command; numpy floating-point warnings become one note on stderr,
+    other warnings are shown as usual."""
+    caught: list[str] = []
+    with warnings.catch_warnings():
+        shown = warnings.showwarning
+
+        def collect(message: Any, category: type[Warning], *rest: Any, **kw: Any) -> None:
+            if is_floating_point_warning(category, message):
+                caught.append(str(message))
+            else:
+                shown(message, category, *rest, **kw)
+
+        warnings.showwarning = collect
+        try:
+            return int(args.func(args) or 0)
+        finally:
+            if caught:
+                print(floating_point_note(caught), file=sys.stderr)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point; returns the process exit code (an interrupt: 130, SIGTERM: 143, each
     with one line on stderr; temporary output files are removed on the way out)."""
@@ -134,7 +183,7 @@ def _run(argv: Sequence[str] | None) -> int:
             parser.print_help(sys.stderr)
             return 2
         check_output_options(args)
-        return int(args.func(args) or 0)
+        return run_command(args)
     except StopwiseInputError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2

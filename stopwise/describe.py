@@ -18,11 +18,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.load import Dataset, load
 from stopwise.models.normative import risk_neutral_benchmark
 
 CONDITION_KEYS = ("p_survive", "gain", "task", "prize", "keep_bank")
 OPTIONAL_KEYS = ("start", "bust_keep")
+CONTEST_ONLY_KEYS = ("prize", "keep_bank")  # not applicable to solo rows: shown empty
 
 
 @dataclass(frozen=True)
@@ -35,12 +37,17 @@ class Description:
     stop_steps: pd.DataFrame | None = None
     switching: pd.DataFrame | None = None
     notes: tuple[str, ...] = field(default_factory=tuple)
+    by: str | None = None
 
     def __str__(self) -> str:
         title = (
             "Stopping data by condition" if self.kind == "stopping" else "Lottery choices by item"
         )
-        table = _stopping_text(self.table) if self.kind == "stopping" else _frame_text(self.table)
+        table = (
+            _stopping_text(self.table, self.by)
+            if self.kind == "stopping"
+            else _frame_text(self.table)
+        )
         parts = [f"{title} ({self.source})", table]
         if self.stop_steps is not None and len(self.stop_steps):
             parts += [
@@ -61,22 +68,49 @@ class Description:
         out: dict[str, Any] = {
             "kind": self.kind,
             "source": self.source,
-            "table": _records(self.table),
+            "by": self.by,
+            "table": _records(blank_solo_contest_fields(self.table)),
             "notes": list(self.notes),
         }
         if self.stop_steps is not None:
-            out["stop_steps"] = _records(self.stop_steps)
+            out["stop_steps"] = _records(blank_solo_contest_fields(self.stop_steps))
         if self.switching is not None:
             out["switching"] = _records(_switch_summary(self.switching))
         return out
 
 
-def describe(data: str | os.PathLike[str] | pd.DataFrame | Dataset) -> Description:
-    """Describe a path, DataFrame or Dataset (validated on the way in)."""
+def describe(
+    data: str | os.PathLike[str] | pd.DataFrame | Dataset, by: str | None = None
+) -> Description:
+    """Describe a path, DataFrame or Dataset (validated on the way in); ``by`` splits every
+    table by a column of the data as well (a covariate such as treatment, or subject)."""
     dataset = load(data)
+    if by is not None:
+        check_by_column(dataset.frame, by, dataset.source)
     if dataset.kind == "stopping":
-        return _describe_stopping(dataset)
-    return _describe_lottery(dataset)
+        return _describe_stopping(dataset, by)
+    return _describe_lottery(dataset, by)
+
+
+def check_by_column(frame: pd.DataFrame, by: str, source: str) -> None:
+    """``by`` must name a column of the data (its values then split the tables)."""
+    if by not in frame.columns:
+        raise StopwiseInputError(
+            f"{source}: no column {by!r} to split by; the data have "
+            f"{', '.join(map(str, frame.columns))}"
+        )
+
+
+def blank_solo_contest_fields(table: pd.DataFrame) -> pd.DataFrame:
+    """prize and keep_bank empty (NaN) on solo rows, where they do not apply."""
+    if "task" not in table.columns:
+        return table
+    out = table.copy()
+    solo = out["task"].to_numpy() == "solo"
+    for key in CONTEST_ONLY_KEYS:
+        if key in out.columns:
+            out[key] = out[key].astype(np.float64).where(~solo)
+    return out
 
 
 # ---------------------------------------------------------------------------------------
@@ -84,9 +118,10 @@ def describe(data: str | os.PathLike[str] | pd.DataFrame | Dataset) -> Descripti
 # ---------------------------------------------------------------------------------------
 
 
-def trial_summary(frame: pd.DataFrame) -> pd.DataFrame:
-    """One row per trial: condition keys, subject, draws attempted, successful draws,
-    busted, stopped and the final bank (k * bank at a bust, the bank otherwise)."""
+def trial_summary(frame: pd.DataFrame, by: str | None = None) -> pd.DataFrame:
+    """One row per trial: condition keys, subject (and the ``by`` column), draws attempted,
+    successful draws, busted, stopped and the final bank (k * bank at a bust, the bank
+    otherwise)."""
     keys = _condition_frame(frame)
     trial_id = frame.groupby(["subject", "trial"], sort=False, observed=True).ngroup()
     trial_id = trial_id.to_numpy()
@@ -102,6 +137,9 @@ def trial_summary(frame: pd.DataFrame) -> pd.DataFrame:
     first[trial_id[rows]] = rows
     per_trial = keys.iloc[first].reset_index(drop=True)
     per_trial.insert(0, "subject", frame["subject"].to_numpy()[first])
+    if by is not None and by != "subject":
+        _require_constant_in_trials(frame[by].to_numpy(), trial_id, first, by)
+        per_trial.insert(1, by, frame[by].to_numpy()[first])
     bank = per_trial["start"].to_numpy() + successes * per_trial["gain"].to_numpy()
     per_trial["draws_attempted"] = attempted.astype(np.int64)
     per_trial["successes"] = successes.astype(np.int64)
@@ -145,10 +183,25 @@ def _condition_frame(frame: pd.DataFrame) -> pd.DataFrame:
     )
 
 
-def _describe_stopping(dataset: Dataset) -> Description:
+def _require_constant_in_trials(
+    values: np.ndarray, trial_id: np.ndarray, first: np.ndarray, column: str
+) -> None:
+    """A split column must be constant within each trial (a trial is described once)."""
+    differs = pd.Series(values).ne(pd.Series(values[first[trial_id]])).to_numpy()
+    differs &= ~(pd.isna(values) & pd.isna(values[first[trial_id]]))
+    if differs.any():
+        row = int(np.flatnonzero(differs)[0])
+        raise StopwiseInputError(
+            f"line {row + 2}, column {column!r}: the value changes within a trial; split by a "
+            "column that is constant within each trial (a covariate or subject)"
+        )
+
+
+def _describe_stopping(dataset: Dataset, by: str | None = None) -> Description:
     frame = dataset.frame
-    trials = trial_summary(frame)
-    keys = list(CONDITION_KEYS) + [k for k in OPTIONAL_KEYS if k in frame.columns]
+    trials = trial_summary(frame, by)
+    keys = ([by] if by else []) + list(CONDITION_KEYS)
+    keys += [k for k in OPTIONAL_KEYS if k in frame.columns]
     grouped = trials.groupby(keys, sort=True)
     table = grouped.agg(
         n_subjects=("subject", "nunique"),
@@ -193,14 +246,18 @@ def _describe_stopping(dataset: Dataset) -> Description:
         notes.append(
             "for contest rows rn_target/rn_bank are the solo benchmark, not a contest equilibrium."
         )
-    return Description("stopping", dataset.source, table, stop_steps, None, tuple(notes))
+    return Description("stopping", dataset.source, table, stop_steps, None, tuple(notes), by)
 
 
 def _stop_step_lines(stop_steps: pd.DataFrame) -> str:
     keys = [c for c in stop_steps.columns if c not in ("stop_step", "n", "share")]
     lines = []
     for key, part in stop_steps.groupby(keys, sort=True):
-        label = ", ".join(f"{k}={_short(v)}" for k, v in zip(keys, key))
+        values = dict(zip(keys, key))
+        solo = values.get("task") == "solo"
+        label = ", ".join(
+            f"{k}={_short(v)}" for k, v in values.items() if not (solo and k in CONTEST_ONLY_KEYS)
+        )
         counts = " ".join(f"{int(s)}:{int(n)}" for s, n in zip(part["stop_step"], part["n"]))
         lines.append(f"  {label}: {counts}")
     return "\n".join(lines)
@@ -222,12 +279,14 @@ def _expected_value(frame: pd.DataFrame, option: str) -> np.ndarray:
     return total
 
 
-def _describe_lottery(dataset: Dataset) -> Description:
+def _describe_lottery(dataset: Dataset, by: str | None = None) -> Description:
     frame = dataset.frame.copy()
     frame["chose_b"] = (frame["choice"].astype(object) == "B").astype(np.float64)
     frame["ev_a"] = _expected_value(frame, "a")
     frame["ev_b"] = _expected_value(frame, "b")
     keys = ["block", "item"] if "block" in frame.columns else ["item"]
+    if by is not None and by not in keys:
+        keys = [by, *keys]
     table = (
         frame.groupby(keys, sort=True)
         .agg(
@@ -243,7 +302,7 @@ def _describe_lottery(dataset: Dataset) -> Description:
         "switches = changes between A and B along a list ordered by item; a single "
         "switch (or none) is a consistent response pattern.",
     )
-    return Description("lottery", dataset.source, table, None, switching, notes)
+    return Description("lottery", dataset.source, table, None, switching, notes, by)
 
 
 def switching_by_subject(frame: pd.DataFrame) -> pd.DataFrame:
@@ -292,11 +351,11 @@ def _short(value: Any) -> str:
     return str(value)
 
 
-def _stopping_text(table: pd.DataFrame, max_columns: int = 6) -> str:
+def _stopping_text(table: pd.DataFrame, by: str | None = None, max_columns: int = 6) -> str:
     """Few conditions: one column per condition (reads down); many: one row each."""
     if len(table) > max_columns:
-        return _frame_text(table)
-    keys = [k for k in (*CONDITION_KEYS, *OPTIONAL_KEYS) if k in table.columns]
+        return _frame_text(blank_solo_contest_fields(table))
+    keys = [k for k in (by, *CONDITION_KEYS, *OPTIONAL_KEYS) if k and k in table.columns]
     labels = [
         " ".join(
             f"{_KEY_LABELS.get(k, k)}={_short(v)}"
@@ -320,7 +379,8 @@ def _number(value: float) -> str:
 
 
 def _frame_text(frame: pd.DataFrame) -> str:
-    return frame.to_string(index=False, float_format=_number)
+    """A table with empty cells (not applicable) shown as "-"."""
+    return frame.to_string(index=False, float_format=_number, na_rep="-")
 
 
 def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:

@@ -66,6 +66,12 @@ MAX_LEVEL = 6
 _PRECISION = ParamSpec("precision", 0.0, np.inf, 1.0, "logit precision of responses")
 _TAU = ParamSpec("tau", 0.0, 8.0, 1.5, "cognitive-hierarchy mean thinking steps")
 _LEVEL = ParamSpec("level", 0.0, float(MAX_LEVEL), 1.5, "level-k depth")
+LEVEL_NOTE = (
+    f"level is the mean depth of a population of levels 0..{MAX_LEVEL} with binomial weights "
+    f"w_k = C({MAX_LEVEL},k) q^k (1-q)^({MAX_LEVEL}-k), q = level/{MAX_LEVEL} (a continuous "
+    "mean, not one integer depth: 1.5 means a mix of depths around 1.5); an integer depth "
+    "is fitted with the model option level=K"
+)
 _TREMBLE = ParamSpec("tremble", 0.0, 1.0, 0.05, "share of uniformly random targets")
 # money outcomes include 0, so CRRA needs r < 1 for a finite u(0)
 _CRRA_R = ParamSpec("r", -1.5, 0.95, 0.3, "CRRA curvature (u = x^(1-r)/(1-r))")
@@ -350,6 +356,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             "utility": utility_name,
             "target_distribution": target_distribution,
             "prepare": resolve_cap,
+            "notes": (LEVEL_NOTE,) if concept == "levelk" and level is None else (),
         },
         description=f"contest play: {concept} with {utility_name} utility"
         + (" and trembles" if tremble else ""),

@@ -123,16 +123,19 @@ def se_choice(option: str | None) -> str | None:
 
 
 OUTPUT_FILE_OPTIONS = ("json", "out", "table", "figure")  # dests that name an output file
-INPUT_OPTIONS = ("data",)  # dests that name an input file
+INPUT_OPTIONS = ("data", "joint", "params")  # dests that name an input file
 
 
 def _named_paths(args: argparse.Namespace, dests: tuple[str, ...]) -> list[tuple[str, str]]:
-    """(option, path) for each of ``dests`` that holds a path string."""
-    return [
-        (f"--{dest.replace('_', '-')}", value)
-        for dest in dests
-        if isinstance(value := getattr(args, dest, None), str) and value
-    ]
+    """(option, path) for each of ``dests`` that holds a path string or a list of them
+    (a repeatable option such as ``--joint``)."""
+    named = []
+    for dest in dests:
+        value = getattr(args, dest, None)
+        values = value if isinstance(value, list) else [value]
+        option = f"--{dest.replace('_', '-')}"
+        named += [(option, path) for path in values if isinstance(path, str) and path]
+    return named
 
 
 def check_output_options(args: argparse.Namespace) -> None:

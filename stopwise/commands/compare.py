@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from stopwise.commands import _args
-from stopwise.commands.fit import emit
+from stopwise.commands import _args, _options
+from stopwise.commands.fit import emit, option_note
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -27,6 +27,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         metavar="SPEC",
         help="a model spec (give at least two)",
     )
+    _options.add_option(parser)
     _args.add_method(parser, "Bayes")
     parser.add_argument(
         "--cv-folds",
@@ -54,9 +55,10 @@ def run(args: argparse.Namespace) -> int:
 
     if len(args.model) < 2:
         raise StopwiseInputError("compare needs at least two --model options")
+    models = [_options.cli_model(m, args.max_target, args.options) for m in args.model]
     if args.method == "bayes":
         result = compare(
-            args.model,
+            models,
             args.data,
             method="bayes",
             max_target=args.max_target,
@@ -77,12 +79,14 @@ def run(args: argparse.Namespace) -> int:
             raise StopwiseInputError("--cv-folds must be 0 (skip) or at least 2")
         se = _args.se_choice(args.se)
         result = compare(
-            args.model,
+            models,
             args.data,
             max_target=args.max_target,
             seed=args.seed,
             se=se,
             cv_folds=args.cv_folds,
         )
+    if isinstance(getattr(result, "notes", None), list):
+        result.notes += option_note(args.options)
     emit(result, args.json)
     return 0

@@ -13,7 +13,8 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     parser = subparsers.add_parser(
         "describe",
         help="summary table per condition with the risk-neutral benchmark",
-        description="Per condition (p_survive, gain, task, prize, keep_bank): subjects, "
+        description="Per condition (p_survive, gain, task, prize, keep_bank; and per value "
+        "of --by COLUMN): subjects, "
         "trials, draws attempted, final bank, bust rate, stop steps and the risk-neutral "
         "optimal target with its expected bank. Lottery data: choice shares per item and "
         "switching per subject.",
@@ -21,6 +22,12 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     _args.add_data(parser)
     _args.add_json_file(parser, help_text="also write the tables as JSON to FILE ('-' for stdout)")
     _args.add_allow_censored(parser)
+    parser.add_argument(
+        "--by",
+        default=None,
+        metavar="COLUMN",
+        help="also split every table by COLUMN: a covariate (e.g. treatment) or subject",
+    )
     parser.set_defaults(func=run)
     return parser
 
@@ -29,7 +36,7 @@ def run(args: argparse.Namespace) -> int:
     from stopwise.data_schemas.load import load
     from stopwise.describe import describe
 
-    description = describe(load(args.data, allow_censored=args.allow_censored))
+    description = describe(load(args.data, allow_censored=args.allow_censored), by=args.by)
     if args.json == "-":
         write_json("-", description.to_dict())
         return 0

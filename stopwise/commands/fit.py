@@ -7,7 +7,7 @@ import sys
 from typing import Any
 
 from stopwise._io import write_json
-from stopwise.commands import _args
+from stopwise.commands import _args, _options
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -16,17 +16,31 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "fit",
         help="fit a model to choice data (maximum likelihood or Bayes)",
         description="Fit one model (SPEC such as crra+planner+logit) to stopping or "
-        "lottery-choice data and print a summary table: estimates, standard errors, 95%% "
+        "lottery-choice data and print a summary table: estimates, standard errors, 95% "
         "intervals, log-likelihood, AIC, BIC and convergence. Results are research "
-        "estimates, not a basis for individual financial, clinical or hiring decisions.",
+        "estimates, not a basis for individual financial, clinical or hiring decisions. "
+        "In level-k fits, level is the mean depth of a binomial mixture of depths 0-6, not "
+        "one integer depth (fit an integer depth with --option level=K).",
     )
     _args.add_data(parser)
     parser.add_argument(
         "--model",
+        action="append",
         required=True,
         metavar="SPEC",
-        help="model spec, parts joined by '+', e.g. crra+planner+logit",
+        help="model spec, parts joined by '+', e.g. crra+planner+logit (give it once more "
+        "per --joint file)",
     )
+    parser.add_argument(
+        "--joint",
+        action="append",
+        default=[],
+        metavar="FILE",
+        help="joint fit: FILE (e.g. a lottery list of the same subjects) is explained by the "
+        "next --model and DATA by the first, in one likelihood with parameters shared by name "
+        "(e.g. r); repeatable",
+    )
+    _options.add_option(parser)
     _args.add_method(parser, "Bayesian posterior sampling")
     parser.add_argument(
         "--by",
@@ -134,15 +148,59 @@ def emit(result: Any, json_path: str | None) -> None:
         write_json(json_path, result.to_dict())
 
 
+def option_note(items: list[str]) -> list[str]:
+    """The model options of the command line, stated in the result's notes."""
+    return [f"model options: {', '.join(items)}"] if items else []
+
+
+def run_joint(args: argparse.Namespace) -> Any:
+    """``--joint``: DATA with the first --model, each --joint file with the next one."""
+    from stopwise.joint import fit_joint
+
+    if len(args.model) != len(args.joint) + 1:
+        raise StopwiseInputError(
+            f"--joint: give one --model for DATA and one per --joint file ({len(args.joint) + 1} "
+            f"in all); got {len(args.model)}"
+        )
+    if args.method != "mle" or args.by or args.types is not None or args.formula:
+        raise StopwiseInputError(
+            "--joint fits by maximum likelihood, pooled: no --method bayes, --by, --types or "
+            "--formula"
+        )
+    models = [_options.cli_model(m, args.max_target, args.options) for m in args.model]
+    kw: dict[str, Any] = {"fixed": parse_fixed(args.fix)} if args.fix else {}
+    return fit_joint(
+        list(zip(models, [args.data, *args.joint])),
+        se=_args.se_choice(args.se),
+        starts=3 if args.starts is None else args.starts,
+        seed=args.seed,
+        bootstrap_reps=args.bootstrap_reps,
+        progress=not args.no_progress,
+        **kw,
+    )
+
+
 def run(args: argparse.Namespace) -> int:
     from stopwise.api import fit
 
+    if args.joint:
+        result = run_joint(args)
+        result.notes += option_note(args.options)
+        add_profiles(result, args.profile)
+        emit(result, args.json)
+        return 0
+    if len(args.model) > 1:
+        raise StopwiseInputError(
+            "fit takes one --model (compare several with `stopwise compare`; fit several data "
+            "sets jointly with --joint FILE)"
+        )
+    model = _options.cli_model(args.model[0], args.max_target, args.options)
     se = _args.se_choice(args.se)
     if args.method == "bayes":
         if args.by or args.se or args.fix or args.types is not None:
             raise StopwiseInputError("--by, --se, --fix and --types apply to --method mle only")
         result = fit(
-            args.model,
+            model,
             args.data,
             method="bayes",
             max_target=args.max_target,
@@ -173,7 +231,7 @@ def run(args: argparse.Namespace) -> int:
             elif args.types is None:
                 kw["starts"] = 3
         result = fit(
-            args.model,
+            model,
             args.data,
             se=se,
             by=args.by,
@@ -183,5 +241,7 @@ def run(args: argparse.Namespace) -> int:
             **kw,
         )
         add_profiles(result, args.profile)
+    if isinstance(getattr(result, "notes", None), list):
+        result.notes += option_note(args.options)
     emit(result, args.json)
     return 0

@@ -1,9 +1,12 @@
 """``stopwise simulate``: draw an invented data set from a model.
 
 Stopping models: N subjects x T trials; trial t uses the (t mod k)-th value of the
-comma-separated ``--p-survive`` and ``--gain`` lists. Lottery models: each subject makes T
-choices cycling through the ten rows of the price list with the payoffs of Holt & Laury
-(2002): A = 2.00 / 1.60, B = 3.85 / 0.10, the high payoff with chance row/10.
+comma-separated ``--p-survive`` and ``--gain`` lists. Contest models: the same trials played
+in groups of ``--players`` subjects for ``--prize`` (``--keep-bank``: players keep their own
+bank on top). Lottery models: each subject answers the ten rows of the price list with the
+payoffs of Holt & Laury (2002): A = 2.00 / 1.60, B = 3.85 / 0.10, the high payoff with
+chance row/10 (``--trials`` at most 10: the first T rows). Subjects may differ: a
+``--params`` table, covariates and effects (stopwise/commands/_population.py).
 """
 
 from __future__ import annotations
@@ -11,25 +14,31 @@ from __future__ import annotations
 import argparse
 import math
 import sys
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from stopwise._io import write_table
-from stopwise.commands import _args
+from stopwise.commands import _args, _options, _population
 from stopwise.data_schemas.errors import StopwiseInputError
 
 PRICE_LIST_PAYOFFS = {"a_high": 2.00, "a_low": 1.60, "b_high": 3.85, "b_low": 0.10}
+PRICE_LIST_ROWS = 10
+OUTPUT_SUFFIXES = (".csv", ".parquet", ".pq")
+DEFAULT_SUBJECTS = 20
+DEFAULT_TRIALS = 30
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
     parser = subparsers.add_parser(
         "simulate",
         help="simulate decisions from a model (invented participants)",
-        description="Simulate decision-level stopping data (or lottery choices) from a model "
-        "spec with the parameter values given by --set; parameters not set take the model's "
-        "start values. Output: CSV or Parquet (by the file ending).",
+        description="Simulate decision-level stopping data, contest play or lottery choices "
+        "from a model spec with the parameter values given by --set (or per subject by "
+        "--params, --covariate and --effect); parameters not set take the model's start "
+        "values. Output: CSV or Parquet (by the file ending).",
     )
     parser.add_argument("--model", required=True, metavar="SPEC", help="e.g. crra+planner+logit")
     parser.add_argument(
@@ -40,8 +49,41 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         dest="assignments",
         help="a parameter value, e.g. --set r=0.4 (repeatable)",
     )
-    parser.add_argument("--subjects", type=int, default=20, metavar="N", help="default 20")
-    parser.add_argument("--trials", type=int, default=30, metavar="T", help="default 30")
+    parser.add_argument(
+        "--params",
+        default=None,
+        metavar="FILE",
+        help="CSV with one row per subject: a subject column and parameter columns (values "
+        "for parameters it lacks come from --set); the subjects simulated are its rows",
+    )
+    parser.add_argument(
+        "--covariate",
+        action="append",
+        default=[],
+        metavar="NAME=V1,V2",
+        help="a covariate column with the values given, assigned to subjects in turn over "
+        "the combinations of all covariates (repeatable)",
+    )
+    parser.add_argument(
+        "--effect",
+        action="append",
+        default=[],
+        metavar="PARAM:COVARIATE=B",
+        help="PARAM = its value + B x COVARIATE, on PARAM's natural scale, e.g. "
+        "--effect r:treatment=0.1 (repeatable)",
+    )
+    _options.add_option(parser)
+    parser.add_argument(
+        "--subjects", type=int, default=None, metavar="N", help=f"default {DEFAULT_SUBJECTS}"
+    )
+    parser.add_argument(
+        "--trials",
+        type=int,
+        default=None,
+        metavar="T",
+        help=f"default {DEFAULT_TRIALS}; lottery models: the first T of the {PRICE_LIST_ROWS} "
+        f"price-list rows (default {PRICE_LIST_ROWS})",
+    )
     parser.add_argument(
         "--p-survive", default="0.8,0.9", metavar="P[,P...]", help="default 0.8,0.9"
     )
@@ -49,6 +91,17 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     parser.add_argument("--start", type=float, default=0.0, help="bank at step 0 (default 0)")
     parser.add_argument(
         "--bust-keep", type=float, default=0.0, help="share of the bank kept on a bust"
+    )
+    parser.add_argument(
+        "--players", type=int, default=2, metavar="N", help="contest models: group size (default 2)"
+    )
+    parser.add_argument(
+        "--prize", type=float, default=10.0, metavar="X", help="contest models: prize (default 10)"
+    )
+    parser.add_argument(
+        "--keep-bank",
+        action="store_true",
+        help="contest models: players keep their own bank on top of the prize",
     )
     _args.add_max_target(
         parser, "a task cap on the number of draws (default: none; see the model docs)"
@@ -91,7 +144,7 @@ def parse_list(text: str, option: str) -> list[float]:
 
 
 def stopping_design(
-    subjects: int,
+    subjects: list[Any],
     trials: int,
     p_survive: list[float],
     gain: list[float],
@@ -99,10 +152,10 @@ def stopping_design(
     bust_keep: float,
 ) -> pd.DataFrame:
     """One row per (subject, trial); trial t uses p_survive[t mod k] and gain[t mod m]."""
-    trial = np.tile(np.arange(1, trials + 1), subjects)
+    trial = np.tile(np.arange(1, trials + 1), len(subjects))
     return pd.DataFrame(
         {
-            "subject": np.repeat(np.arange(1, subjects + 1), trials),
+            "subject": np.repeat(np.asarray(subjects, dtype=object), trials),
             "trial": trial,
             "p_survive": np.asarray(p_survive)[(trial - 1) % len(p_survive)],
             "gain": np.asarray(gain)[(trial - 1) % len(gain)],
@@ -112,14 +165,38 @@ def stopping_design(
     )
 
 
-def price_list_design(subjects: int, choices: int) -> pd.DataFrame:
-    """Each subject makes ``choices`` choices cycling through the ten price-list rows."""
-    item = np.tile(np.arange(1, choices + 1), subjects)
-    chance = ((item - 1) % 10 + 1) / 10.0
+def contest_design(base: pd.DataFrame, players: int, prize: float, keep_bank: bool) -> pd.DataFrame:
+    """The stopping design played as contests: in each trial, subjects 1..n form group 1,
+    n+1..2n group 2, ... (group ids "t<trial>-g<k>"); every row carries the contest fields."""
+    n_subjects = base["subject"].nunique()
+    position = base.groupby("trial", sort=False).cumcount().to_numpy()
+    design = base.copy()
+    design["task"] = "contest"
+    design["group"] = [f"t{t}-g{p // players + 1}" for t, p in zip(design["trial"], position)]
+    design["n_players"] = players
+    design["prize"] = prize
+    design["keep_bank"] = int(keep_bank)
+    if n_subjects % players:
+        raise StopwiseInputError(
+            f"--subjects {n_subjects} cannot be split into groups of --players {players}; "
+            "give a multiple of the group size"
+        )
+    return design
+
+
+def price_list_design(subjects: list[Any], choices: int) -> pd.DataFrame:
+    """Each subject answers the first ``choices`` of the ten price-list rows, once each."""
+    if not 1 <= choices <= PRICE_LIST_ROWS:
+        raise StopwiseInputError(
+            f"--trials {choices}: the price list has {PRICE_LIST_ROWS} rows and each subject "
+            f"answers each row once; give --trials between 1 and {PRICE_LIST_ROWS}"
+        )
+    item = np.tile(np.arange(1, choices + 1), len(subjects))
+    chance = item / 10.0
     pay = PRICE_LIST_PAYOFFS
     return pd.DataFrame(
         {
-            "subject": np.repeat(np.arange(1, subjects + 1), choices),
+            "subject": np.repeat(np.asarray(subjects, dtype=object), choices),
             "item": item,
             "a_x1": pay["a_high"],
             "a_p1": chance,
@@ -133,43 +210,104 @@ def price_list_design(subjects: int, choices: int) -> pd.DataFrame:
     )
 
 
-def run(args: argparse.Namespace) -> int:
-    from stopwise.models.simulate import simulate
-    from stopwise.models.spec import build_model
+def check_output_path(path: str) -> None:
+    """Only the documented formats: a CSV or Parquet file, told by its ending."""
+    if Path(path).suffix.lower() not in OUTPUT_SUFFIXES:
+        raise StopwiseInputError(
+            f"--out {path}: expected a file ending in .csv or .parquet (the format is told "
+            "from the ending)"
+        )
 
-    if args.subjects < 1 or args.trials < 1:
-        raise StopwiseInputError("--subjects and --trials must be at least 1")
-    options = {} if args.max_target is None else {"max_target": args.max_target}
-    model = build_model(args.model, **options)
-    given = parse_assignments(args.assignments)
+
+def check_parameters(model: Any, given: dict[str, float]) -> None:
     unknown = [n for n in given if n not in model.param_names]
     if unknown:
         raise StopwiseInputError(
             f"unknown parameter(s) {', '.join(unknown)} for model {model.name}; its parameters "
             f"are {', '.join(model.param_names) or 'none'}"
         )
-    if model.data_kind not in ("stopping", "lottery"):
+
+
+def subject_ids(args: argparse.Namespace, per_subject: pd.DataFrame | None) -> list[Any]:
+    """1..N, or the subjects of the --params file (then --subjects, if given, must agree)."""
+    if per_subject is None:
+        n = DEFAULT_SUBJECTS if args.subjects is None else args.subjects
+        if n < 1:
+            raise StopwiseInputError("--subjects must be at least 1")
+        return list(range(1, n + 1))
+    ids = per_subject["subject"].tolist()
+    if args.subjects is not None and args.subjects != len(ids):
         raise StopwiseInputError(
-            f"model {model.name} is a contest model; the simulate command draws solo stopping "
-            "or lottery data (contest play: use `stopwise equilibrium`)"
+            f"--subjects {args.subjects} disagrees with the {len(ids)} rows of --params "
+            f"{args.params}; leave --subjects out"
         )
-    missing = [n for n in model.param_names if n not in given]
+    return ids
+
+
+def make_design(model: Any, args: argparse.Namespace, subjects: list[Any]) -> pd.DataFrame:
+    """The per-trial (per-item) design for the model's kind of data."""
+    if model.data_kind == "lottery":
+        return price_list_design(subjects, PRICE_LIST_ROWS if args.trials is None else args.trials)
+    trials = DEFAULT_TRIALS if args.trials is None else args.trials
+    if trials < 1:
+        raise StopwiseInputError("--trials must be at least 1")
+    design = stopping_design(
+        subjects,
+        trials,
+        parse_list(args.p_survive, "--p-survive"),
+        parse_list(args.gain, "--gain"),
+        args.start,
+        args.bust_keep,
+    )
+    if model.data_kind != "contest":
+        return design
+    if args.players < 2 or not math.isfinite(args.prize) or args.prize <= 0:
+        raise StopwiseInputError("contests need --players of at least 2 and a positive --prize")
+    return contest_design(design, args.players, args.prize, args.keep_bank)
+
+
+def population(
+    model: Any, args: argparse.Namespace, given: dict[str, float]
+) -> tuple[list[Any], pd.DataFrame | None, pd.DataFrame, list[str]]:
+    """(subjects, per-subject parameter table or None when everyone shares ``given``,
+    covariate table, parameters given by the --params file)."""
+    covariates = _population.parse_covariates(args.covariate)
+    effects = _population.parse_effects(args.effect)
+    _population.check_effects(effects, model.param_names, covariates)
+    per_subject = (
+        _population.read_params_file(args.params, model.param_names) if args.params else None
+    )
+    subjects = subject_ids(args, per_subject)
+    table = _population.covariate_table(subjects, covariates)
+    from_file = [] if per_subject is None else [c for c in per_subject.columns if c != "subject"]
+    if per_subject is None and not effects:
+        return subjects, None, table, from_file
+    if model.data_kind == "contest":
+        raise StopwiseInputError(
+            "contest play is simulated with parameters common to all players (an "
+            "equilibrium of one game); --params and --effect apply to solo and lottery models"
+        )
+    base = {**model.start_theta(), **given}
+    params = _population.subject_parameters(subjects, base, per_subject, table, effects)
+    return subjects, params, table, from_file
+
+
+def run(args: argparse.Namespace) -> int:
+    from stopwise.models.simulate import simulate
+
+    check_output_path(args.out)
+    model = _options.cli_model(args.model, args.max_target, args.options)
+    given = parse_assignments(args.assignments)
+    check_parameters(model, given)
+    subjects, params, covariates, from_file = population(model, args, given)
+    design = make_design(model, args, subjects)
+    missing = [n for n in model.param_names if n not in given and n not in from_file]
     if missing:
         starts = ", ".join(f"{n}={model.spec(n).start:g}" for n in missing)
         print(f"note: not set, using start values: {starts}", file=sys.stderr)
-    theta = {**model.start_theta(), **given}
-    if model.data_kind == "stopping":
-        design = stopping_design(
-            args.subjects,
-            args.trials,
-            parse_list(args.p_survive, "--p-survive"),
-            parse_list(args.gain, "--gain"),
-            args.start,
-            args.bust_keep,
-        )
-    else:
-        design = price_list_design(args.subjects, args.trials)
+    design = design.merge(covariates, on="subject", how="left", validate="many_to_one")
+    theta: Any = {**model.start_theta(), **given} if params is None else params
     frame = simulate(model, theta, design, seed=args.seed)
     write_table(args.out, frame)
-    print(f"wrote {len(frame)} rows ({args.subjects} subjects, model {model.name}) to {args.out}")
+    print(f"wrote {len(frame)} rows ({len(subjects)} subjects, model {model.name}) to {args.out}")
     return 0
