@@ -208,9 +208,16 @@ class Fit:
             ),
         ]
         if "starts" in self.optimizer:
+            outcomes = list(self.optimizer.get("start_outcomes", []))
+            counts = (
+                f" ({outcomes.count('best')} at the best, {outcomes.count('lower optimum')} "
+                f"at a lower optimum, {outcomes.count('not converged')} not converged)"
+                if outcomes
+                else ""
+            )
             lines.append(
-                f"Starts: {self.optimizer['starts']}    spread of optima (loglik): "
-                f"{self.optimizer.get('spread', 0.0):.3g}"
+                f"Starts: {self.optimizer['starts']}{counts}    spread of converged optima "
+                f"(loglik): {self.optimizer.get('spread', 0.0):.3g}"
             )
         frame = self.params
         width = max([len("parameter")] + [len(str(n)) for n in frame.index])
