@@ -20,7 +20,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from stopwise.estimation.mle import _strip, build_problem, fit_mle, optimise, start_design
+from stopwise.estimation.identification import fit_identified
+from stopwise.estimation.mle import _strip, build_problem, optimise, start_design
 from stopwise.estimation.nesting import Relation, classify, verify_nesting
 from stopwise.estimation.pair_tests import (
     LEVEL,
@@ -184,8 +185,9 @@ def _nested_rows(
     notes = []
     text = relation.restriction_text()
     if verify and data is not None and not small.extras.get("designs"):
+        small_theta = {**dict(small.extras["layout"].fixed), **small.estimates()}
         agree, gap = verify_nesting(
-            big_model, small.estimates(), relation.restriction, _strip(data), small.loglik
+            big_model, small_theta, relation.restriction, _strip(data), small.loglik
         )
         if not agree:
             notes.append(
@@ -211,8 +213,17 @@ def _nested_rows(
         )
         row = {**base, "test": "likelihood ratio", "statistic": np.nan, "df": np.nan}
         return [{**row, "p_value": np.nan, "favours": "refused"}], notes, True
-    df = len(relation.restriction)
-    lr = likelihood_ratio(small.loglik, big.loglik, df, len(relation.boundary))
+    free_in_big = set(big.extras["layout"].free) if "layout" in big.extras else None
+    restricted = [p for p in relation.restriction if free_in_big is None or p in free_in_big]
+    df = len(restricted)
+    if df == 0:
+        notes.append(
+            f"every parameter that links {small.model} to {big.model} is held fixed in the "
+            "bigger fit (not identified): the two are compared as non-nested"
+        )
+        return [], notes, False
+    boundary = [p for p in relation.boundary if p in restricted]
+    lr = likelihood_ratio(small.loglik, big.loglik, df, len(boundary))
     favours = big.model if float(lr["p_value"]) < LEVEL else small.model
     notes.append(
         f"{small.model} is nested in {big.model} at {text} ({verified}); reference "
@@ -282,7 +293,7 @@ def compare_fits(
 ) -> Comparison:
     """Fit every model to the same data and compare (module docstring)."""
     fits = [
-        fit_mle(
+        fit_identified(
             m,
             data,
             se=se,

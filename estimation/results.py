@@ -72,6 +72,7 @@ class Fit:
     cov_z: np.ndarray | None = field(default=None, repr=False)
     predictor: Callable[[Any], dict[str, pd.DataFrame]] | None = field(default=None, repr=False)
     extras: dict[str, Any] = field(default_factory=dict, repr=False)
+    identification: Any = field(default=None, repr=False)  # estimation/identification.py
 
     @property
     def aic(self) -> float:
@@ -127,6 +128,11 @@ class Fit:
             "optimizer": {k: v for k, v in self.optimizer.items() if k != "runs"},
             "notes": list(self.notes),
             **self._type_probabilities(),
+            **(
+                {"identification": self.identification.to_dict()}
+                if self.identification is not None
+                else {}
+            ),
         }
 
     def _type_probabilities(self) -> dict[str, Any]:
@@ -235,6 +241,8 @@ class Fit:
                 "Effects named param:column are on the unconstrained scale "
                 "(log for positive parameters, logit for bounded ones)."
             )
+        if self.identification is not None:
+            lines.append(self.identification.summary_line())
         for note in self.notes:
             lines.append(f"Note: {note}")
         for w in self.warnings:
