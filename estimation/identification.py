@@ -34,6 +34,7 @@ from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.covariance import RowTable, wald_rows
 from stopwise.estimation.mle import fit_mle
+from stopwise.estimation.natural_profiles import attach_profiles
 from stopwise.estimation.results import Fit
 
 FLAT_DERIVATIVE = 1e-12
@@ -322,4 +323,6 @@ def fit_identified(model: Any, data: Any, **options: Any) -> Fit:
             "table; the other estimates are conditional on these values"
         )
         fit, report = refit, again
-    return apply_report(fit, report)
+    fit = apply_report(fit, report)
+    attach_profiles(fit)
+    return fit
