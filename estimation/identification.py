@@ -282,7 +282,8 @@ def apply_report(fit: Fit, report: Identification) -> Fit:
         )
         return fit
     ridge = {n for n, why in report.unidentified.items() if n not in report.fixed}
-    if ridge and fit.cov_z is None and report.null_space.shape[1] and fit.se_method:
+    analytic = fit.se_method in ("hessian", "robust")
+    if ridge and fit.cov_z is None and report.null_space.shape[1] and analytic:
         restricted_covariance(fit, report.null_space)
     if ridge:
         withhold_standard_errors(
