@@ -188,7 +188,9 @@ def assess(fit: Fit, model: Any, data: Any) -> Identification:
             others = [n for n in on_ridge if n != name]
             report.unidentified.setdefault(
                 name,
-                "a flat direction of the likelihood"
+                "runs off to a bound of its range, where the likelihood is flat in it"
+                if name in fit.at_bound and not others
+                else "a flat direction of the likelihood"
                 + (f" shared with {', '.join(others)}" if others else "")
                 + " (near-zero Hessian eigenvalue)",
             )
@@ -217,7 +219,7 @@ def _formula_targets(formulas: Any) -> list[str]:
     return [str(f).split("~", 1)[0].strip() for f in formulas]
 
 
-def restricted_covariance(fit: Fit, null_space: np.ndarray) -> None:
+def restricted_covariance(fit: Fit, null_space: np.ndarray, ridge: set[str]) -> None:
     """Standard errors for the identified directions when the Hessian is singular: with
     P = I - N N' (N the null-space eigenvectors), H+ = pinv(P H P) and V = H+ (Hessian) or
     c H+ (S'S) H+ (clustered sandwich, CR1 factor c). A coefficient whose unit vector is
@@ -233,6 +235,11 @@ def restricted_covariance(fit: Fit, null_space: np.ndarray) -> None:
         g, n, k = scores.shape[0], problem.n_obs, len(z) - null_space.shape[1]
         factor = g / (g - 1.0) * (n - 1.0) / (n - k) if g > 1 and n > k else 1.0
         cov = factor * h_plus @ (scores.T @ scores) @ h_plus
+        if g < 30:
+            fit.warnings.append(
+                f"only {g} clusters (subjects): the clustered sandwich understates "
+                "uncertainty below about 30 clusters"
+            )
     else:
         cov = h_plus
     fit.cov_z = cov
@@ -241,7 +248,7 @@ def restricted_covariance(fit: Fit, null_space: np.ndarray) -> None:
         parameter_of(c)
         for j, c in enumerate(problem.coef_names)
         if np.max(np.abs(null_space[j]), initial=0.0) > 1e-6
-    }
+    } - set(ridge)
     if leaning:
         withhold_standard_errors(
             fit,
@@ -257,7 +264,7 @@ def restricted_covariance(fit: Fit, null_space: np.ndarray) -> None:
     )
 
 
-def withhold_standard_errors(fit: Fit, names: set[str] | None, reason: str) -> None:
+def withhold_standard_errors(fit: Fit, names: set[str] | None, reason: str | None) -> None:
     """NaN standard errors and intervals for the rows of ``names`` (all rows if None)."""
     t = fit.table
     hit = np.array([names is None or parameter_of(n) in names for n in t.names], dtype=bool)
@@ -265,7 +272,8 @@ def withhold_standard_errors(fit: Fit, names: set[str] | None, reason: str) -> N
         return
     nan = np.where(hit, np.nan, 1.0)
     fit.table = RowTable(t.names, t.estimate, t.se * nan, t.ci_low * nan, t.ci_high * nan, t.scale)
-    fit.warnings.append(reason)
+    if reason:
+        fit.warnings.append(reason)
 
 
 def apply_report(fit: Fit, report: Identification) -> Fit:
@@ -284,7 +292,7 @@ def apply_report(fit: Fit, report: Identification) -> Fit:
     ridge = {n for n, why in report.unidentified.items() if n not in report.fixed}
     analytic = fit.se_method in ("hessian", "robust")
     if ridge and fit.cov_z is None and report.null_space.shape[1] and analytic:
-        restricted_covariance(fit, report.null_space)
+        restricted_covariance(fit, report.null_space, ridge)
     if ridge:
         withhold_standard_errors(
             fit,
@@ -293,13 +301,12 @@ def apply_report(fit: Fit, report: Identification) -> Fit:
             + "; ".join(f"{n} ({report.unidentified[n]})" for n in sorted(ridge))
             + "; their standard errors are not reported",
         )
+    fit.warnings[:] = [
+        w for w in fit.warnings if not any(w.startswith(f"{n} is at (or runs off") for n in ridge)
+    ]
     at_bound = set(fit.at_bound) - ridge
     if at_bound:
-        withhold_standard_errors(
-            fit,
-            at_bound,
-            f"{', '.join(sorted(at_bound))}: at a bound of the range, no standard error",
-        )
+        withhold_standard_errors(fit, at_bound, None)  # the engine's bound warning stands
     return fit
 
 
