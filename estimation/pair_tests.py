@@ -13,6 +13,8 @@
 * Both need variation in d: when every |d_g| is below a tolerance the two models make the
   same predictions on these data and the pair reads "indistinguishable" (for overlapping
   models this is Vuong's first step, the test that the two coincide).
+
+References are cited from memory.
 """
 
 from __future__ import annotations
