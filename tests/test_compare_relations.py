@@ -133,6 +133,7 @@ def test_nested_pair_gets_the_likelihood_ratio_test(logit_data) -> None:
     np.testing.assert_allclose(row["statistic"], lr, rtol=1e-8, atol=1e-10)
     np.testing.assert_allclose(row["p_value"], stats.chi2.sf(lr, 1), rtol=1e-8)
     assert any("verified on the data" in n for n in result.notes)
+    assert result.to_dict()["tests"][0]["restriction"] == "r = 0"
 
 
 def test_tremble_pair_is_nested_on_the_boundary_not_a_vuong_test(logit_data) -> None:

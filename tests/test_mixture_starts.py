@@ -3,6 +3,7 @@ not converged, in the note, the optimizer record and the summary."""
 
 from __future__ import annotations
 
+import dataclasses
 import re
 
 import jax
@@ -63,3 +64,17 @@ def test_mixture_note_and_summary_count_every_start(two_types) -> None:
     assert sum(numbers) == 8
     assert f"{outcomes.count('not converged')} not converged" in fit.summary()
     assert fit.to_dict()["optimizer"]["start_outcomes"] == outcomes
+
+
+def test_reordering_the_types_keeps_the_record_of_every_start(two_types) -> None:
+    from stopwise.estimation.mixture import _order_types, relabel
+
+    fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=8, se="hessian")
+    problem = fit.extras["problem"]
+    swapped = dataclasses.replace(fit, z=relabel(fit.z, np.array([1, 0]), problem.rows))
+    ordered = _order_types(swapped, problem, problem.rows, "hessian")
+    assert ordered.z is not swapped.z  # the types were put back in order by a refit
+    np.testing.assert_allclose(ordered.z, fit.z, atol=1e-5)
+    assert ordered.optimizer["starts"] == 8
+    assert ordered.optimizer["start_outcomes"] == fit.optimizer["start_outcomes"]
+    assert any(n.startswith("of 8 starts") for n in ordered.notes)
