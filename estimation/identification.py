@@ -50,6 +50,7 @@ class Identification:
 
     unidentified: dict[str, str] = field(default_factory=dict)  # parameter -> reason
     fixed: dict[str, float] = field(default_factory=dict)  # held at these values
+    cannot_move: list[str] = field(default_factory=list)  # zero derivative everywhere
     smallest_relative_eigenvalue: float = float("nan")
     perfect_prediction: bool = False
     null_space: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)), repr=False)
@@ -172,6 +173,7 @@ def assess(fit: Fit, model: Any, data: Any) -> Identification:
     names = [parameter_of(c) for c in problem.coef_names]
     for j, name in enumerate(names):
         if flat[j] and name not in report.unidentified:
+            report.cannot_move.append(name)
             report.unidentified[name] = (
                 "the data hold no losses (no outcome below the reference point), so it "
                 "never enters the likelihood"
@@ -204,10 +206,8 @@ def single_parameter_fixes(report: Identification, model: Any, formulas: Any) ->
     with_formula = set(_formula_targets(formulas))
     return {
         name: float(model.spec(name).start)
-        for name, reason in report.unidentified.items()
-        if ("never enters" in reason or "does not depend" in reason)
-        and name not in with_formula
-        and name in model.param_names
+        for name in report.cannot_move
+        if name not in with_formula and name in model.param_names
     }
 
 
@@ -323,6 +323,7 @@ def fit_identified(model: Any, data: Any, **options: Any) -> Fit:
         refit = fit_mle(model, data, fixed=held, **options)
         again = assess(refit, model, data)
         again.unidentified = {**report.unidentified, **again.unidentified}
+        again.cannot_move = list(dict.fromkeys(report.cannot_move + again.cannot_move))
         again.fixed = fixes
         refit.notes.append(
             "the data do not identify "
