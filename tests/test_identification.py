@@ -114,6 +114,14 @@ def test_a_flat_ridge_is_named_and_only_its_parameters_lose_their_se() -> None:
     assert np.isnan(fit.params.loc["b1", "se"]) and np.isnan(fit.params.loc["b2", "se"])
     assert np.isfinite(fit.params.loc["c", "se"])
     assert fit.identification.smallest_relative_eigenvalue < 1e-9
+    # Independent computation: holding b2 fixed removes the ridge (b1 absorbs the sum), and
+    # that fit's ordinary Hessian standard error of c must equal the pseudo-inverse one.
+    reduced = stopwise.fit(ridge, data, se="hessian", fixed={"b2": 0.5})
+    assert reduced.identification.status == "identified"
+    np.testing.assert_allclose(
+        fit.params.loc["c", "estimate"], reduced.params.loc["c", "estimate"], rtol=1e-6
+    )
+    np.testing.assert_allclose(fit.params.loc["c", "se"], reduced.params.loc["c", "se"], rtol=1e-5)
 
 
 def test_everyone_stopping_at_step_zero_is_refused() -> None:
