@@ -116,6 +116,11 @@ def test_delta_method_agrees_with_a_parametric_bootstrap() -> None:
     ratio = boot.std(axis=0, ddof=1) / delta_se
     assert np.all((ratio > 0.7) & (ratio < 1.4)), ratio
     assert np.all(np.abs(np.median(boot, axis=0) - profile_rows["estimate"]) < 0.5 * delta_se)
+    # The delta-method 95% interval against the bootstrap's 2.5% and 97.5% percentiles: a
+    # percentile from 60 draws is uncertain by about 0.35 sd, so 1 se is a 3-sigma bound.
+    low, high = np.percentile(boot, [2.5, 97.5], axis=0)
+    assert np.all(np.abs(low - profile_rows["ci_low"]) < delta_se)
+    assert np.all(np.abs(high - profile_rows["ci_high"]) < delta_se)
 
 
 def test_json_records_formulas_profiles_scales_and_bounds(formula_fit) -> None:
