@@ -143,15 +143,29 @@ def flat_coefficients(jac_at_estimate: np.ndarray, jac_at_start: np.ndarray) -> 
     )
 
 
-def null_directions(h: np.ndarray) -> tuple[float, list[np.ndarray]]:
-    """Smallest eigenvalue of H relative to the largest |eigenvalue|, and the eigenvectors
-    whose eigenvalue is at most NULL_EIGEN of it (module docstring, check 3)."""
+def null_directions(h: np.ndarray) -> tuple[float, list[tuple[float, np.ndarray]]]:
+    """Smallest eigenvalue of H relative to the largest |eigenvalue|, and (relative
+    eigenvalue, eigenvector) for every eigenvalue at most NULL_EIGEN of it (module
+    docstring, check 3; a clearly negative one means no maximum along that direction)."""
     if not np.all(np.isfinite(h)):
         return float("nan"), []
     lam, vec = np.linalg.eigh(0.5 * (h + h.T))
     top = max(float(np.max(np.abs(lam))), 1e-300)
-    flat = [vec[:, j] for j in range(len(lam)) if lam[j] <= NULL_EIGEN * top]
+    flat = [(float(lam[j] / top), vec[:, j]) for j in range(len(lam)) if lam[j] <= NULL_EIGEN * top]
     return float(lam.min() / top), flat
+
+
+def direction_reason(relative: float, others: list[str], at_bound: bool) -> str:
+    """Why a parameter on a flat (or downward) Hessian direction is not identified."""
+    shared = f" shared with {', '.join(others)}" if others else ""
+    if at_bound and not others:
+        return "runs off to a bound of its range, where the likelihood is flat in it"
+    if relative < -NULL_EIGEN:
+        return (
+            f"the log-likelihood curves upward along a direction{shared} (Hessian "
+            f"eigenvalue {relative:.2g} of the largest): no maximum there"
+        )
+    return f"a flat direction of the likelihood{shared} (near-zero Hessian eigenvalue)"
 
 
 def parameter_of(coef_name: str) -> str:
@@ -183,18 +197,15 @@ def assess(fit: Fit, model: Any, data: Any) -> Identification:
             )
     smallest, directions = null_directions(problem.hess(z))
     report.smallest_relative_eigenvalue = smallest
-    report.null_space = np.array(directions).T if directions else np.zeros((len(z), 0))
-    for v in directions:
+    report.null_space = (
+        np.array([v for _, v in directions]).T if directions else np.zeros((len(z), 0))
+    )
+    for relative, v in directions:
         on_ridge = sorted({names[j] for j in range(len(v)) if abs(v[j]) >= LOADING and not flat[j]})
         for name in on_ridge:
             others = [n for n in on_ridge if n != name]
             report.unidentified.setdefault(
-                name,
-                "runs off to a bound of its range, where the likelihood is flat in it"
-                if name in fit.at_bound and not others
-                else "a flat direction of the likelihood"
-                + (f" shared with {', '.join(others)}" if others else "")
-                + " (near-zero Hessian eigenvalue)",
+                name, direction_reason(relative, others, name in fit.at_bound)
             )
     report.perfect_prediction = bool(fit.loglik >= -PERFECT_PER_OBS * max(fit.n_obs, 1))
     return report

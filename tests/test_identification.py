@@ -175,3 +175,14 @@ def test_well_identified_fit_says_so() -> None:
     fit = stopwise.fit("crra+myopic+logit", data, se="hessian")
     assert fit.identification.status == "identified" and not fit.identification.unidentified
     assert "every parameter identified" in fit.summary()
+
+
+def test_hessian_directions_flat_and_downward() -> None:
+    from stopwise.estimation.identification import direction_reason, null_directions
+
+    # diag(4, 0, -2): eigenvalues relative to the largest |.| are 1, 0 and -0.5 (arithmetic).
+    smallest, found = null_directions(np.diag([4.0, 0.0, -2.0]))
+    assert smallest == pytest.approx(-0.5)
+    assert sorted(round(r, 6) for r, _ in found) == [-0.5, 0.0]
+    assert "no maximum" in direction_reason(-0.5, [], False)
+    assert "flat direction" in direction_reason(0.0, ["r"], False)
