@@ -151,6 +151,10 @@ def pairwise_tests(
     for i in range(len(fits)):
         for j in range(i + 1, len(fits)):
             relation = classify(models[i], models[j])
+            unconverged = [f.model for f in (fits[i], fits[j]) if not f.converged]
+            if unconverged:
+                rows.append(_refused_row(relation, fits[i], fits[j], unconverged))
+                continue
             if relation.kind == "nested":
                 pair = (i, j)
                 small, big = pair[relation.small], pair[relation.big]
@@ -169,6 +173,22 @@ def pairwise_tests(
                     "test applies once the two differ on these data (Vuong 1989, from memory)"
                 )
     return pd.DataFrame(rows, columns=PAIR_COLUMNS), notes
+
+
+def _refused_row(relation: Relation, a: Fit, b: Fit, unconverged: list[str]) -> dict[str, Any]:
+    """No test between fits whose optimiser did not converge: their log-likelihoods are not
+    maxima, so any statistic would compare wherever the optimisers stopped."""
+    return {
+        "model_a": a.model,
+        "model_b": b.model,
+        "relation": relation.kind,
+        "restriction": relation.restriction_text(),
+        "test": "none",
+        "statistic": np.nan,
+        "df": np.nan,
+        "p_value": np.nan,
+        "favours": f"refused: {' and '.join(unconverged)} did not converge",
+    }
 
 
 def classify_fallback(relation: Relation) -> Relation:

@@ -187,6 +187,9 @@ def test_a_fold_that_does_not_converge_gives_nan_and_a_warning(logit_data) -> No
     )
     cv = result.table["cv_log_score_3fold"]
     assert cv.isna().all()
+    # neither full fit converged in one iteration either: the pair test is refused
+    assert not result.table["converged"].any()
+    assert result.tests.iloc[0]["favours"].startswith("refused")
     assert any("fold 1 of 3 did not converge" in w for w in result.warnings)
     assert "cross-validation fold" in result.summary()
     assert isinstance(result.to_dict()["warnings"], list)
