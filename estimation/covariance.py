@@ -6,7 +6,9 @@
   Miller 2015, J. Human Resources 50(2), from memory; statsmodels' default, checked in tests).
 * Delta method: se(g(z)) = |g'(z)| se(z) for a reported row that maps one coefficient.
 
-A Hessian that is not positive definite gives NaN standard errors and a warning, never numbers.
+A Hessian that is not positive definite gives NaN standard errors and a warning, never numbers;
+so does a degenerate clustered sandwich (fewer than 3 clusters, or cluster scores that span
+fewer directions than there are coefficients, e.g. identical subjects).
 """
 
 from __future__ import annotations
@@ -49,6 +51,36 @@ def sandwich_covariance(
     if small_sample and g > 1 and n_obs > k:
         factor = g / (g - 1.0) * (n_obs - 1.0) / (n_obs - k)
     return factor * bread @ meat @ bread
+
+
+MIN_CLUSTERS = 3
+SANDWICH_RATIO = 1e-8  # smallest eigenvalue of H^-1/2 (S'S) H^-1/2 accepted
+
+
+def degenerate_sandwich(h: np.ndarray, scores: np.ndarray) -> str | None:
+    """Why a clustered sandwich would be degenerate, or None. With G clusters the scores
+    s_g sum to zero at the optimum, so S'S has rank at most G - 1: fewer than MIN_CLUSTERS
+    clusters, or clusters whose scores span fewer than k directions (identical subjects),
+    leave directions with (near-)zero sandwich variance. Measured as the smallest
+    eigenvalue of L^-1 (S'S) L^-T with H = L L' (the sandwich-to-Hessian variance ratio,
+    about 1 under a correct model), below SANDWICH_RATIO."""
+    g, k = scores.shape
+    if g < MIN_CLUSTERS:
+        return f"only {g} cluster(s) (subjects): a clustered sandwich needs at least {MIN_CLUSTERS}"
+    try:
+        chol = np.linalg.cholesky(0.5 * (h + h.T))
+    except np.linalg.LinAlgError:
+        return None  # the Hessian check reports this case
+    root = np.linalg.solve(chol, scores.T)  # L^-1 S'
+    ratio = float(np.linalg.eigvalsh(root @ root.T).min())
+    if not np.isfinite(ratio) or ratio < SANDWICH_RATIO:
+        return (
+            f"the {g} clusters' scores span fewer than the {k} estimated directions "
+            f"(smallest sandwich-to-Hessian variance ratio {ratio:.2g}; identical subjects "
+            "or too few clusters), so the clustered sandwich would report near-zero "
+            "standard errors"
+        )
+    return None
 
 
 @dataclass
@@ -113,6 +145,12 @@ def covariance_for(
         return hessian_covariance(h), warnings, info
     if method == "robust":
         scores = problem.cluster_scores(z)
+        degenerate = degenerate_sandwich(h, scores)
+        if degenerate:
+            warnings.append(
+                degenerate + ": standard errors are NaN; use se='hessian' or more subjects"
+            )
+            return None, warnings, info
         if problem.n_clusters < 30:
             warnings.append(
                 f"only {problem.n_clusters} clusters (subjects): the clustered sandwich "

@@ -217,7 +217,7 @@ def _order_types(fit: Fit, problem: Problem, rows: MixtureRows, se: str | None) 
     blocks = [fit.z[off : off + lay.size] for off in rows.offsets]
     eta = np.concatenate([[0.0], fit.z[rows.n_model_coef :]])[order]
     z_new = np.concatenate([blocks[i] for i in order] + [eta[1:] - eta[0]])
-    return run_fit(
+    ordered = run_fit(
         problem,
         fit.model,
         fit.n_subjects,
@@ -226,6 +226,10 @@ def _order_types(fit: Fit, problem: Problem, rows: MixtureRows, se: str | None) 
         seed=fit.seed,
         progress=False,
     )
+    keep = ("starts", "spread", "start_logliks", "start_outcomes")
+    ordered.optimizer.update({k: fit.optimizer[k] for k in keep if k in fit.optimizer})
+    ordered.notes = list(fit.notes) + [n for n in ordered.notes if n not in fit.notes]
+    return ordered
 
 
 def _add_shares(fit: Fit, n_model: int, k_types: int) -> None:

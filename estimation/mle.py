@@ -48,6 +48,7 @@ from stopwise.estimation.problem import (
     theta_scalars,
 )
 from stopwise.estimation.results import Fit
+from stopwise.estimation.start_accounting import account_starts
 
 SE_METHODS = ("auto", "robust", "hessian", "bootstrap", None)
 BOUND_Z = 12.0  # |z| beyond this counts as "at a bound" (e.g. logit 1 - 6e-6 of the range)
@@ -225,14 +226,10 @@ def run_fit(
             f"the optimiser did not converge: max |gradient| = {best.grad_norm:.3g} after "
             f"{best.iterations} iterations ({best.message}); estimates are not reliable"
         )
-    conv_values = [-r.value for r in runs if r.converged]
-    spread = float(max(conv_values) - min(conv_values)) if len(conv_values) > 1 else 0.0
-    if spread > 1e-3:
-        n_other = sum(1 for v in conv_values if -best.value - v > 1e-3)
-        notes.append(
-            f"{n_other} of {len(runs)} starts stopped at a lower optimum "
-            f"(up to {spread:.3g} log-likelihood units below); the best is kept"
-        )
+    account = account_starts(runs)
+    spread = account.spread
+    if account.note():
+        notes.append(str(account.note()))
     clusters = None
     extras: dict[str, Any] = {"problem": problem}
     se_label = se
@@ -272,6 +269,7 @@ def run_fit(
         "starts": len(runs),
         "spread": spread,
         "start_logliks": [-r.value for r in runs],
+        "start_outcomes": list(account.outcomes),
     }
     return Fit(
         model=model_name,

@@ -72,6 +72,7 @@ class Fit:
     cov_z: np.ndarray | None = field(default=None, repr=False)
     predictor: Callable[[Any], dict[str, pd.DataFrame]] | None = field(default=None, repr=False)
     extras: dict[str, Any] = field(default_factory=dict, repr=False)
+    identification: Any = field(default=None, repr=False)  # estimation/identification.py
 
     @property
     def aic(self) -> float:
@@ -98,13 +99,28 @@ class Fit:
         frame["at_bound"] = [n in self.at_bound for n in t.names]
         return frame
 
+    @property
+    def profiles(self) -> pd.DataFrame | None:
+        """Formula fits: each covariate profile's parameters on their natural scale with
+        delta-method 95% intervals (estimation/natural_profiles.py); None otherwise."""
+        table = self.extras.get("profiles")
+        return table if isinstance(table, pd.DataFrame) else None
+
     def estimates(self) -> dict[str, float]:
         return {n: float(v) for n, v in zip(self.table.names, self.table.estimate)}
 
     def to_dict(self) -> dict[str, Any]:
         t = self.table
+        scales = self.extras.get("row_scales", {})
         params = [
-            {"name": n, "estimate": _num(e), "se": _num(s), "ci_low": _num(lo), "ci_high": _num(hi)}
+            {
+                "name": n,
+                "estimate": _num(e),
+                "se": _num(s),
+                "ci_low": _num(lo),
+                "ci_high": _num(hi),
+                **scales.get(n, {}),
+            }
             for n, e, s, lo, hi in zip(t.names, t.estimate, t.se, t.ci_low, t.ci_high)
         ]
         return {
@@ -127,6 +143,24 @@ class Fit:
             "optimizer": {k: v for k, v in self.optimizer.items() if k != "runs"},
             "notes": list(self.notes),
             **self._type_probabilities(),
+            **self._formula_keys(),
+            **(
+                {"identification": self.identification.to_dict()}
+                if self.identification is not None
+                else {}
+            ),
+        }
+
+    def _formula_keys(self) -> dict[str, Any]:
+        """Formula fits: {"formulas": {param: rhs}, "profiles": [natural-scale rows]}."""
+        if self.profiles is None:
+            return {}
+        return {
+            "formulas": dict(self.extras.get("formulas", {})),
+            "profiles": [
+                {k: _plain(v) if not isinstance(v, float) else _num(v) for k, v in row.items()}
+                for row in self.profiles.to_dict(orient="records")
+            ],
         }
 
     def _type_probabilities(self) -> dict[str, Any]:
@@ -187,6 +221,25 @@ class Fit:
 
         return profile_interval(self, name, level)
 
+    def _scale_lines(self, frame: pd.DataFrame) -> list[str]:
+        """Where effects are not on the natural scale: each parameter's scale and bounds,
+        then the natural-scale profile table of a formula fit."""
+        if all(s == "natural" for s in frame["scale"]):
+            return []
+        scales = self.extras.get("row_scales", {})
+        stated = {n.split(":", 1)[0]: v["scale"] for n, v in scales.items() if ":" in n}
+        lines = [f"Effects on {p} (named {p}:column) are on the {s}." for p, s in stated.items()]
+        if not stated:
+            lines.append(
+                "Effects named param:column are on the unconstrained scale "
+                "(log for positive parameters, logit for bounded ones)."
+            )
+        if self.profiles is not None:
+            lines += ["", "Each covariate profile on the natural scale (delta-method 95% CI)"]
+            shown = self.profiles.drop(columns=["lower", "upper"])
+            lines.append(shown.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+        return lines
+
     def summary(self) -> str:
         """A plain-text table for a paper's appendix."""
         lines = [
@@ -208,9 +261,16 @@ class Fit:
             ),
         ]
         if "starts" in self.optimizer:
+            outcomes = list(self.optimizer.get("start_outcomes", []))
+            counts = (
+                f" ({outcomes.count('best')} at the best, {outcomes.count('lower optimum')} "
+                f"at a lower optimum, {outcomes.count('not converged')} not converged)"
+                if outcomes
+                else ""
+            )
             lines.append(
-                f"Starts: {self.optimizer['starts']}    spread of optima (loglik): "
-                f"{self.optimizer.get('spread', 0.0):.3g}"
+                f"Starts: {self.optimizer['starts']}{counts}    spread of converged optima "
+                f"(loglik): {self.optimizer.get('spread', 0.0):.3g}"
             )
         frame = self.params
         width = max([len("parameter")] + [len(str(n)) for n in frame.index])
@@ -223,11 +283,9 @@ class Fit:
             se = f"{row.se:10.4g}" if np.isfinite(row.se) else f"{'nan':>10}"
             lines.append(f"{name:<{width}}  {row.estimate:11.5g}  {se}  {ci:>25}{flag}")
         lines.append(rule)
-        if any(s != "natural" for s in frame["scale"]):
-            lines.append(
-                "Effects named param:column are on the unconstrained scale "
-                "(log for positive parameters, logit for bounded ones)."
-            )
+        lines += self._scale_lines(frame)
+        if self.identification is not None:
+            lines.append(self.identification.summary_line())
         for note in self.notes:
             lines.append(f"Note: {note}")
         for w in self.warnings:

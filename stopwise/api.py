@@ -222,9 +222,9 @@ def _fit_selected(
         return fit_by_subject(
             the_model, bundle, se="hessian" if se == "auto" else se, seed=seed, **kw
         )
-    from stopwise.estimation.mle import fit_mle
+    from stopwise.estimation.identification import fit_identified
 
-    return fit_mle(
+    return fit_identified(
         the_model,
         bundle,
         se=se,

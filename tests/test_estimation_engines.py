@@ -132,7 +132,7 @@ def test_comparison_lr_test_and_aic_match_statsmodels() -> None:
         data_kind="stopping",
         loglik_obs=_biased_loglik,
         simulate=lambda t, d, k: None,
-        options={"policy": "myopic"},
+        options={"policy": "myopic", "restrictions": {LOGIT: {"bias": 0.0}}},
         params=(ParamSpec("bias", start=0.0), ParamSpec("precision", 0.0, np.inf, 1.0)),
     )
     result = compare_fits([small, big], data, cv_folds=3)
@@ -147,6 +147,7 @@ def test_comparison_lr_test_and_aic_match_statsmodels() -> None:
     p = stats.chi2.sf(lr, df)
     test = result.tests.iloc[0]
     assert test["test"] == "likelihood ratio" and test["df"] == df
+    assert test["relation"] == "nested" and test["restriction"] == "bias = 0"
     np.testing.assert_allclose(test["statistic"], lr, rtol=1e-5)
     np.testing.assert_allclose(test["p_value"], p, rtol=1e-4)
     cv = result.table["cv_log_score_3fold"]
