@@ -17,6 +17,12 @@ import numpy as np
 import pandas as pd
 
 from . import columns as C
+from .checks_limits import (
+    decision_rows,
+    report_outcome_indices_beyond_limit,
+    report_steps_beyond_limit,
+    report_too_many_decisions,
+)
 from .errors import StopwiseInputError
 from .reading import read_table
 from .report import ProblemCollector, ValidationReport, show_value, suggest_label
@@ -25,6 +31,7 @@ Source = str | os.PathLike[str] | pd.DataFrame
 PROBABILITY_TOLERANCE = 1e-6
 BANK_RTOL = 1e-6
 BANK_ATOL = 1e-9
+EXACT_ID = 2.0**53  # integer ids are compared as float64, exact below this magnitude
 
 
 def validate(
@@ -61,11 +68,13 @@ def check_source(
     if raw.frame is None:
         assert raw.failure is not None
         problem_kind, what, line = raw.failure
-        expected = "a table with a header row" if problem_kind != "bad_row" else what
+        expected = raw.failure_expected or (
+            "a table with a header row" if problem_kind != "bad_row" else what
+        )
         collector.add(
             problem_kind,
             line,
-            None,
+            raw.failure_column,
             f"<{what}>" if problem_kind != "bad_row" else "<malformed row>",
             expected,
         )
@@ -342,7 +351,13 @@ def _check_design_columns(ch: _Checker) -> dict[str, _Column | None]:
     """Per-trial design columns (required p_survive and gain, optional start ... keep_bank)."""
     cols: dict[str, _Column | None] = {}
     cols["subject"] = ch.key("subject", "a participant id")
-    cols["trial"] = ch.numeric("trial", True, "an integer trial id", integer=True)
+    cols["trial"] = ch.numeric(
+        "trial",
+        True,
+        "an integer trial id below 2^53 = 9007199254740992 in magnitude",
+        integer=True,
+        bounds=(-EXACT_ID, EXACT_ID, True, True),
+    )
     cols["p_survive"] = ch.numeric(
         "p_survive",
         True,
@@ -484,7 +499,8 @@ def _config_changes(
             continue
         values = column.values[order]
         ok = column.ok[order]
-        changed = ok & ok[first] & (values != values[first])
+        empty = ch._empty_mask(ch.frame[name]).astype(bool)[order]  # empty = the default
+        changed = (ok & ok[first] & (values != values[first])) | (empty != empty[first])
         if not changed.any():
             continue
         raw = ch.frame[name].to_numpy()
@@ -523,6 +539,8 @@ def _check_decisions(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, 
         "outcome", C.OUTCOMES, False, f"{_quoted(C.OUTCOMES)} after a draw, empty after a stop"
     )
     bank = ch.numeric("bank", False, "a number (the bank before the decision)")
+    if step is not None:
+        report_steps_beyond_limit(ch.collector, ch.lines, "step", step.values, step.ok)
     draw_code, stop_code = C.ACTIONS.index("draw"), C.ACTIONS.index("stop")
     bust_code = C.OUTCOMES.index("bust")
     if action is not None and ch.has("outcome"):
@@ -823,7 +841,7 @@ def _stopping_stats(
 def _check_trials(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, dict]:
     ch.require(C.TRIAL_REQUIRED)
     cols = _check_design_columns(ch)
-    ch.numeric(
+    draws = ch.numeric(
         "draws",
         True,
         "an integer >= 0 (successful draws)",
@@ -844,6 +862,10 @@ def _check_trials(ch: _Checker, allow_censored: bool) -> tuple[pd.DataFrame, dic
         integer=True,
         bounds=(0.0, 1.0, False, False),
     )
+    if draws is not None:
+        report_steps_beyond_limit(ch.collector, ch.lines, "draws", draws.values, draws.ok)
+        flags = censored.values if censored is not None else None
+        report_too_many_decisions(ch.collector, decision_rows(draws.values, draws.ok, flags))
     if censored is not None:
         flagged = censored.ok & (censored.values == 1)
         if not allow_censored:
@@ -913,7 +935,8 @@ def _check_lottery(ch: _Checker) -> tuple[pd.DataFrame, dict]:
     subject = ch.key("subject", "a participant id")
     ch.key("item", "an item id")
     choice = ch.labels("choice", C.CHOICES, True, _quoted(C.CHOICES))
-    indices = C.lottery_outcome_indices(ch.frame.columns)
+    too_wide = report_outcome_indices_beyond_limit(ch.collector, ch.frame.columns)
+    indices = C.lottery_outcome_indices(c for c in ch.frame.columns if c not in too_wide)
     for option in ("a", "b"):
         wanted = indices[option] or [1]
         for k in wanted:
@@ -938,7 +961,12 @@ def _check_option(ch: _Checker, option: str, indices: list[int]) -> None:
     total = np.zeros(ch.n)
     usable = np.ones(ch.n, dtype=bool)
     for k in indices:
-        x = ch.numeric(f"{option}_x{k}", False, "a number (an outcome)")
+        x = ch.numeric(
+            f"{option}_x{k}",
+            False,
+            "a finite number (an outcome)",
+            bounds=(-np.inf, np.inf, False, False),
+        )
         p = ch.numeric(
             f"{option}_p{k}",
             False,
