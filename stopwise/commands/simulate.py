@@ -134,11 +134,12 @@ def price_list_design(subjects: int, choices: int) -> pd.DataFrame:
 
 
 def run(args: argparse.Namespace) -> int:
-    from stopwise.models.simulate import simulate
+    from stopwise.models.simulate import check_simulation_size, simulate
     from stopwise.models.spec import build_model
 
     if args.subjects < 1 or args.trials < 1:
         raise StopwiseInputError("--subjects and --trials must be at least 1")
+    check_simulation_size(args.subjects * args.trials)
     options = {} if args.max_target is None else {"max_target": args.max_target}
     model = build_model(args.model, **options)
     given = parse_assignments(args.assignments)
