@@ -4,6 +4,7 @@ wherever a command offers them), and the mapping of ``--se`` to the engines' cho
 from __future__ import annotations
 
 import argparse
+from typing import Any
 
 CONTEST_CAP_HELP = "cap on the targets a contest model considers"
 FIT_CAP_HELP = (
@@ -49,6 +50,31 @@ def add_se(parser: argparse.ArgumentParser, choices: tuple[str, ...], help_text:
 def add_max_target(parser: argparse.ArgumentParser, help_text: str = CONTEST_CAP_HELP) -> None:
     """``--max-target M``."""
     parser.add_argument("--max-target", type=int, default=None, metavar="M", help=help_text)
+
+
+def add_wealth(parser: argparse.ArgumentParser) -> None:
+    """``--wealth W`` (model option ``wealth``)."""
+    parser.add_argument(
+        "--wealth",
+        type=float,
+        default=None,
+        metavar="W",
+        help="utility over W + payoff (model option wealth); crra and expo need wealth + "
+        "outcome >= 0",
+    )
+
+
+def model_from_args(spec: str, args: argparse.Namespace) -> Any:
+    """The spec itself, or with ``--wealth`` a Model built with that wealth (and the
+    ``--max-target`` cap)."""
+    if getattr(args, "wealth", None) is None:
+        return spec
+    from stopwise.models.spec import build_model
+
+    options = {"wealth": args.wealth}
+    if args.max_target is not None:
+        options["max_target"] = args.max_target
+    return build_model(spec, **options)
 
 
 def add_hierarchical(parser: argparse.ArgumentParser) -> None:

@@ -41,6 +41,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "standard errors of each fit (default: clustered sandwich)",
     )
     _args.add_max_target(parser, _args.FIT_CAP_HELP)
+    _args.add_wealth(parser)
     _args.add_sampler(parser)
     _args.add_hierarchical(parser)
     _args.add_seed(parser, "random seed")
@@ -54,9 +55,10 @@ def run(args: argparse.Namespace) -> int:
 
     if len(args.model) < 2:
         raise StopwiseInputError("compare needs at least two --model options")
+    models = [_args.model_from_args(spec, args) for spec in args.model]
     if args.method == "bayes":
         result = compare(
-            args.model,
+            models,
             args.data,
             method="bayes",
             max_target=args.max_target,
@@ -77,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
             raise StopwiseInputError("--cv-folds must be 0 (skip) or at least 2")
         se = _args.se_choice(args.se)
         result = compare(
-            args.model,
+            models,
             args.data,
             max_target=args.max_target,
             seed=args.seed,

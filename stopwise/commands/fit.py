@@ -87,6 +87,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "(repeatable; pooled maximum likelihood only)",
     )
     _args.add_max_target(parser, _args.FIT_CAP_HELP)
+    _args.add_wealth(parser)
     _args.add_hierarchical(parser)
     _args.add_sampler(parser)
     _args.add_seed(parser, "random seed (starts, bootstrap, sampler)")
@@ -142,7 +143,7 @@ def run(args: argparse.Namespace) -> int:
         if args.by or args.se or args.fix or args.types is not None:
             raise StopwiseInputError("--by, --se, --fix and --types apply to --method mle only")
         result = fit(
-            args.model,
+            _args.model_from_args(args.model, args),
             args.data,
             method="bayes",
             max_target=args.max_target,
@@ -173,7 +174,7 @@ def run(args: argparse.Namespace) -> int:
             elif args.types is None:
                 kw["starts"] = 3
         result = fit(
-            args.model,
+            _args.model_from_args(args.model, args),
             args.data,
             se=se,
             by=args.by,
