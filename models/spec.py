@@ -35,6 +35,7 @@ from typing import Any
 
 import jax
 import numpy as np
+import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.limits import MAX_TARGET
@@ -272,7 +273,17 @@ def _stopping_model(
     )
 
     def simulate(theta: Any, design: Any, key: Any) -> Any:
+        check_design_tables(design)
         return simulate_stopping(policy, risk, caps, theta, design, key, tables_fn=sim_tables)
+
+    def check_design_tables(design: Any) -> None:
+        """The table-size limit for a simulation design (its survival chances in (0, 1))."""
+        if "p_survive" not in getattr(design, "columns", ()):
+            return
+        p = pd.to_numeric(design["p_survive"], errors="coerce").to_numpy(dtype=np.float64)
+        p = np.unique(p[(p > 0) & (p < 1)])
+        if p.size:
+            check_table_size(name, policy, risk.noise.base, p.size, 1, caps.sized_for(p))
 
     return Model(
         name=name,

@@ -155,6 +155,22 @@ def test_probit_target_model_at_p_0999_is_refused_with_the_limit() -> None:
     build_model("crra+target+probit").options["prepare"](_one_condition_data(0.99))  # fits
 
 
+def test_cli_fit_and_simulate_refuse_the_probit_target_table(tmp_path, capsys) -> None:
+    frame = pd.DataFrame(
+        [("s1", 1, 0, 0.999, 1.0, "stop", None)],
+        columns=["subject", "trial", "step", "p_survive", "gain", "action", "outcome"],
+    )
+    path = tmp_path / "long_odds.csv"
+    frame.to_csv(path, index=False)
+    assert main(["fit", str(path), "--model", "crra+target+probit"]) == 2
+    assert "limit of 2 GiB" in capsys.readouterr().err
+    out = tmp_path / "sim.csv"
+    args = ["simulate", "--model", "crra+target+probit", "--p-survive", "0.999"]
+    assert main([*args, "--out", str(out)]) == 2
+    assert "limit of 2 GiB" in capsys.readouterr().err
+    assert not out.exists()
+
+
 def _largest_intermediate(spec: str, data: object) -> int:
     """Size of the largest array in the traced log-likelihood (counted from the program
     JAX builds, independently of the estimate)."""
