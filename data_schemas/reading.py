@@ -160,8 +160,14 @@ def _read_csv(path: Path, name: str, head: bytes) -> RawTable:
         return RawTable(None, name, ("not_a_table", f"unreadable as CSV ({exc})", None))
     if options.get("skip_blank_lines") is False and len(frame.columns):
         frame = _drop_blank_rows(frame)
-    names = header_fields(_first_line(head), sep) if head else list(frame.columns)
+    names = header_fields(_first_line(head), sep) if head else _raw_header(path, sep)
     return _checked_shape(frame, name, names)
+
+
+def _raw_header(path: Path, sep: str) -> list:
+    """The header of a compressed CSV as written (pandas renames a repeated 'gain' to
+    'gain.1' when it reads the table, so repeats are looked for here)."""
+    return pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str).iloc[0].tolist()
 
 
 def _first_line(head: bytes) -> str:

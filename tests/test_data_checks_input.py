@@ -7,6 +7,7 @@ files; the cases here need a large file, a binary format, or a special file.
 
 from __future__ import annotations
 
+import gzip
 import os
 import threading
 from pathlib import Path
@@ -92,6 +93,16 @@ def test_list_valued_dataframe_cells_are_refused(decision_frame) -> None:
 def test_duplicate_columns_in_a_dataframe(decision_frame) -> None:
     frame = decision_frame.rename(columns={"age": " gain"})
     report = validate(frame)
+    assert [(p.kind, p.line, p.column) for p in report.problems] == [
+        ("duplicate_column", 1, "gain")
+    ]
+
+
+def test_duplicate_columns_in_a_compressed_csv(tmp_path) -> None:
+    path = tmp_path / "twice.csv.gz"
+    with gzip.open(path, "wt", encoding="utf-8") as fh:
+        fh.write("subject,trial,step,p_survive,gain,action,outcome,gain\ns1,1,0,0.9,1,stop,,2\n")
+    report = validate(path)
     assert [(p.kind, p.line, p.column) for p in report.problems] == [
         ("duplicate_column", 1, "gain")
     ]

@@ -4,6 +4,7 @@ front (exit code 2, the limit named, nothing allocated or written)."""
 
 from __future__ import annotations
 
+import json
 import math
 
 import jax
@@ -61,15 +62,15 @@ def test_wealth_makes_the_same_data_fit(demo_lottery, tmp_path) -> None:
     frame, path = demo_lottery
     wealth = -_lowest_outcome(frame)
     out = tmp_path / "fit.json"
-    code = main(["fit", path, "--model", "crra+logit", "--wealth", f"{wealth:g}"])
-    assert code == 0
+    args = ["fit", path, "--model", "crra+logit", "--wealth", f"{wealth:g}", "--json", str(out)]
+    assert main(args) == 0
+    assert json.loads(out.read_text())["converged"] is True
     result = stopwise.fit(build_model("crra+logit", wealth=wealth), frame)
     assert result.converged and math.isfinite(result.loglik)
     # a choice between two options cannot be worse than a coin flip at the optimum of a
     # model that includes random choice (precision -> 0): log-likelihood >= n log(1/2)
     # (common practice, no source)
     assert result.loglik >= len(frame) * math.log(0.5)
-    assert not out.exists()
 
 
 def test_prospect_theory_takes_losses_without_wealth(demo_lottery) -> None:
@@ -77,6 +78,8 @@ def test_prospect_theory_takes_losses_without_wealth(demo_lottery) -> None:
     model = build_model("pt+logit")
     bundle = stopwise.load(frame).arrays()
     model.options["prepare"](bundle)  # no refusal: pt is defined for losses
+    loglik = np.asarray(model.loglik_obs(model.start_theta(), bundle))
+    assert loglik.shape == (len(frame),) and np.all(np.isfinite(loglik))
 
 
 def test_stopping_data_with_a_negative_start_are_refused_for_crra(decision_frame) -> None:
