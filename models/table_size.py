@@ -2,16 +2,17 @@
 
 Every stopping policy works on per-condition tables (models.stopping). Their largest one has
 
-- ``myopic``: n_cond x n_steps values;
+- ``myopic``: 2 x n_cond x (n_steps + 1) values (both actions' tables, an upper bound);
 - ``planner``: n_cond x (H + 1), H the planner cap (``Caps.planner_cap``);
 - ``target`` with logit noise: n_cond x K, K the number of targets (``Caps.n_targets``);
 - ``target`` with probit noise: n_cond x K x K (every pair of targets is compared inside
   the Gauss-Hermite average, models.noise).
 
 The estimate is WORKING_COPIES x 8 bytes x that count: a gradient holds the table, its
-cotangent and a few intermediates of the same shape (6 copies, common practice, no source;
-at p_survive 0.999 with three conditions a probit target table of 2 GB grew to the 12 GB
-reported in issue 22). Beyond MAX_TABLE_BYTES (data_schemas.limits) the model is refused
+cotangent and a few intermediates of the same shape. Six copies is an assumption, not a
+measurement (the issue's 12 GB for crra+target+probit at p_survive 0.999 would be six
+copies of the 2 GB table of three such conditions; the data behind that report are not
+known here). Beyond MAX_TABLE_BYTES (data_schemas.limits) the model is refused
 with the cap that would fit.
 """
 
@@ -32,7 +33,7 @@ def largest_table_values(
 ) -> int:
     """Values in the largest table the policy builds (see the module docstring)."""
     if policy == "myopic":
-        return n_cond * max(n_steps, 1)
+        return 2 * n_cond * (n_steps + 1)
     if policy == "planner":
         return n_cond * (caps.planner_cap(n_steps) + 1)
     n_targets = caps.n_targets(n_steps)
