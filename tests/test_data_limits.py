@@ -128,6 +128,8 @@ def test_max_target_beyond_the_limit_exit_2(decision_frame, tmp_path, capsys) ->
     assert main(args) == 2
     assert f"at most {limits.MAX_TARGET}" in capsys.readouterr().err
     build_model("crra+target+logit", max_target=limits.MAX_TARGET)  # the limit itself is fine
+    with pytest.raises(StopwiseInputError, match=f"at most {limits.MAX_TARGET}"):
+        build_model("crra+qre", max_target=1_000_000_000)  # contest models alike
 
 
 def test_more_types_than_subjects_exit_2(demo_lottery, capsys) -> None:
