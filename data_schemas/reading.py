@@ -18,6 +18,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .checks_file import (
+    first_undecodable_byte,
+    line_at_offset,
+    read_head,
+    require_regular_file,
+    unclosed_quote_line,
+)
+from .checks_structure import duplicate_column, header_fields, nested_cell
 from .errors import StopwiseInputError
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
@@ -29,11 +37,14 @@ _PARSER_LINE = re.compile(r"line (\d+)")
 
 @dataclass(frozen=True)
 class RawTable:
-    """A read table (None when unreadable) and, if so, why: (problem kind, message, line)."""
+    """A read table (None when unreadable) and, if so, why: (problem kind, message, line),
+    with the column concerned and the expectation when the message alone does not say."""
 
     frame: pd.DataFrame | None
     source: str
     failure: tuple[str, str, int | None] | None = None
+    failure_column: str | None = None
+    failure_expected: str | None = None
 
 
 def source_name(source: object) -> str:
@@ -46,8 +57,7 @@ def read_table(source: str | os.PathLike[str] | pd.DataFrame) -> RawTable:
     """Read ``source``; the frame's index counts data rows from 0 (line = index + 2)."""
     if isinstance(source, pd.DataFrame):
         frame = source.reset_index(drop=True)
-        frame.columns = [str(c).strip() for c in frame.columns]
-        return RawTable(frame, "<DataFrame>")
+        return _checked_shape(frame, "<DataFrame>", list(frame.columns))
     if not isinstance(source, (str, os.PathLike)):
         raise StopwiseInputError(
             f"cannot read data from a {type(source).__name__}: expected a file path "
@@ -55,13 +65,9 @@ def read_table(source: str | os.PathLike[str] | pd.DataFrame) -> RawTable:
         )
     path = Path(source)
     name = str(source)
-    if not path.exists():
-        raise StopwiseInputError(f"{name}: no such file")
-    if path.is_dir():
-        raise StopwiseInputError(f"{name}: is a folder; expected a CSV or Parquet file")
+    require_regular_file(path, name)
     suffix = path.suffix.lower()
-    with open(path, "rb") as fh:
-        head = fh.read(_SNIFF_BYTES)
+    head = read_head(path, name, _SNIFF_BYTES)
     if suffix in PARQUET_SUFFIXES or head.startswith(b"PAR1"):
         return _read_parquet(path, name)
     if suffix in SPREADSHEET_SUFFIXES:
@@ -74,7 +80,8 @@ def read_table(source: str | os.PathLike[str] | pd.DataFrame) -> RawTable:
             return RawTable(None, name, ("empty_file", "an empty file", None))
         why = _not_text(head)
         if why:
-            return RawTable(None, name, ("not_a_table", why, None))
+            line = _line_of_bad_byte(path) if "UTF-8" in why else None
+            return RawTable(None, name, ("not_a_table", why, line))
     return _read_csv(path, name, head if not compressed else b"")
 
 
@@ -141,14 +148,75 @@ def _read_csv(path: Path, name: str, head: bytes) -> RawTable:
     except pd.errors.EmptyDataError:
         return RawTable(None, name, ("empty_file", "an empty file", None))
     except pd.errors.ParserError as exc:
-        match = _PARSER_LINE.search(str(exc))
-        line = int(match.group(1)) if match else None
-        return RawTable(None, name, ("bad_row", _parser_message(str(exc)), line))
-    except (UnicodeDecodeError, ValueError, OSError) as exc:
+        return _parser_failure(path, name, str(exc))
+    except UnicodeDecodeError:
+        found = first_undecodable_byte(path)
+        if found is None:
+            return RawTable(None, name, ("not_a_table", "not UTF-8 text", None))
+        offset, byte = found
+        why = f"not UTF-8 text (undecodable byte 0x{byte:02x} at offset {offset})"
+        return RawTable(None, name, ("not_a_table", why, line_at_offset(path, offset)))
+    except (ValueError, OSError) as exc:
         return RawTable(None, name, ("not_a_table", f"unreadable as CSV ({exc})", None))
-    frame.columns = [str(c).strip() for c in frame.columns]
     if options.get("skip_blank_lines") is False and len(frame.columns):
         frame = _drop_blank_rows(frame)
+    names = header_fields(_first_line(head), sep) if head else _raw_header(path, sep)
+    return _checked_shape(frame, name, names)
+
+
+def _raw_header(path: Path, sep: str) -> list:
+    """The header of a compressed CSV as written (pandas renames a repeated 'gain' to
+    'gain.1' when it reads the table, so repeats are looked for here)."""
+    return pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str).iloc[0].tolist()
+
+
+def _first_line(head: bytes) -> str:
+    return head.split(b"\n", 1)[0].decode("utf-8", errors="replace").rstrip("\r")
+
+
+def _line_of_bad_byte(path: Path) -> int | None:
+    found = first_undecodable_byte(path)
+    return None if found is None else line_at_offset(path, found[0])
+
+
+def _parser_failure(path: Path, name: str, text: str) -> RawTable:
+    """The parser's complaint on the file's own line (it counts rows, not lines, when a
+    quoted field is left open)."""
+    if "EOF inside string" in text:
+        line = unclosed_quote_line(path)
+        what = "a closing quote for the quoted field that opens on this line"
+        return RawTable(None, name, ("bad_row", what, line))
+    match = _PARSER_LINE.search(text)
+    line = int(match.group(1)) if match else None
+    return RawTable(None, name, ("bad_row", _parser_message(text), line))
+
+
+def _checked_shape(frame: pd.DataFrame, name: str, header: list) -> RawTable:
+    """The frame with stripped column names, unless a name repeats (pandas would rename
+    the second 'gain' to 'gain.1' and read it as a covariate) or a cell holds a list."""
+    repeated = duplicate_column(header)
+    if repeated is not None:
+        found = (
+            f"'{repeated.name}' again as column {repeated.again} (first as column {repeated.first})"
+        )
+        return RawTable(
+            None,
+            name,
+            ("duplicate_column", found, 1),
+            failure_column=repeated.name,
+            failure_expected="each column name once (names are compared without the "
+            "spaces around them)",
+        )
+    frame.columns = [str(c).strip() for c in frame.columns]
+    nested = nested_cell(frame)
+    if nested is not None:
+        return RawTable(
+            None,
+            name,
+            ("wrong_type", f"a {nested.type_name} of values", nested.row + 2),
+            failure_column=nested.column,
+            failure_expected="one value per cell (a number or a label, not a list)",
+        )
     return RawTable(frame, name)
 
 
@@ -176,5 +244,4 @@ def _read_parquet(path: Path, name: str) -> RawTable:
     except Exception as exc:  # pyarrow raises many types for corrupt files
         return RawTable(None, name, ("not_a_table", f"unreadable as Parquet ({exc})", None))
     frame = frame.reset_index(drop=True)
-    frame.columns = [str(c).strip() for c in frame.columns]
-    return RawTable(frame, name)
+    return _checked_shape(frame, name, list(frame.columns))

@@ -28,6 +28,7 @@ KIND_TITLES: dict[str, str] = {
     "not_a_table": "not a table",
     "bad_row": "malformed row",
     "missing_column": "missing column",
+    "duplicate_column": "column name given twice",
     "wrong_type": "wrong type",
     "missing_value": "missing value",
     "p_survive_range": "p_survive outside (0, 1)",
@@ -48,6 +49,7 @@ KIND_TITLES: dict[str, str] = {
     "probability_range": "negative probability",
     "probability_sum": "probabilities do not sum to 1",
     "wrong_format": "unexpected data format",
+    "size_limit": "beyond a documented size limit",
 }
 
 

@@ -35,6 +35,7 @@ from scipy import stats
 from scipy.optimize import linear_sum_assignment
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.limits import MAX_TYPES
 from stopwise.estimation.covariance import RowTable
 from stopwise.estimation.mle import _strip, run_fit
 from stopwise.estimation.optimize import start_design
@@ -92,6 +93,22 @@ def _components(rows: MixtureRows, z: Any, args: Any) -> Any:
     return rows.components(z, args)
 
 
+def check_type_count(k_types: int, n_subjects: int) -> None:
+    """Refuse more than MAX_TYPES types (README, "Limits"), and as many types as subjects or
+    more: types are told apart by subjects, so K >= subjects cannot be identified."""
+    if k_types > MAX_TYPES:
+        raise StopwiseInputError(
+            f"a mixture of {k_types} types is beyond the documented limit of {MAX_TYPES} "
+            "types (README, 'Limits')"
+        )
+    if k_types >= n_subjects:
+        raise StopwiseInputError(
+            f"a mixture of {k_types} types needs more subjects than types; the data have "
+            f"{n_subjects} subject(s), so use at most {max(n_subjects - 1, 1)} types (or fit "
+            "--by subject)"
+        )
+
+
 def mixture_starts(layouts: Sequence[Layout], n_starts: int, seed: int) -> np.ndarray:
     """Start 0: type k at its spec start shifted by (k - (K-1)/2) on every coordinate (types
     spread apart), equal shares; then a scrambled Sobol design around it."""
@@ -142,6 +159,7 @@ def fit_mixture(
         raise StopwiseInputError("a mixture needs at least two types")
     for m in model_list:
         check_kind(m, data)
+    check_type_count(len(model_list), data.n_subjects)
     same_model = all(m is model_list[0] for m in model_list)
     layouts = tuple(make_layout(m) for m in model_list)
     g = data.n_subjects

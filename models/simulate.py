@@ -13,6 +13,7 @@ planner cap (ceil(log(1e-15)/log(max p)) for the design's largest p)
 
 from __future__ import annotations
 
+import math
 import re
 import warnings
 from collections.abc import Mapping
@@ -24,6 +25,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.limits import MAX_SIMULATED_TRIALS
 from stopwise.models.stopping import (
     PLANNER_TOLERANCE,
     Caps,
@@ -274,7 +276,7 @@ def _resolve_theta(model: Any, given: Mapping[str, Any], where: str) -> dict[str
         )
     theta = {}
     for spec in model.params:
-        if spec.name not in given or pd.isna(given[spec.name]):
+        if spec.name not in given:
             theta[spec.name] = spec.start
             continue
         try:
@@ -283,6 +285,12 @@ def _resolve_theta(model: Any, given: Mapping[str, Any], where: str) -> dict[str
             raise StopwiseInputError(
                 f"{where}: parameter {spec.name} must be a number, got {given[spec.name]!r}"
             ) from None
+        if not math.isfinite(value):
+            raise StopwiseInputError(
+                f"{where}: parameter {spec.name} = {value}; expected a finite number in "
+                f"({spec.lower:g}, {spec.upper:g}) (leave it out to use its start value "
+                f"{spec.start:g})"
+            )
         if not spec.lower < value < spec.upper:
             raise StopwiseInputError(
                 f"{where}: parameter {spec.name} = {value} lies outside its range "
@@ -290,6 +298,16 @@ def _resolve_theta(model: Any, given: Mapping[str, Any], where: str) -> dict[str
             )
         theta[spec.name] = value
     return theta
+
+
+def check_simulation_size(n_rows: int) -> None:
+    """Refuse a design of more than MAX_SIMULATED_TRIALS rows (README, "Limits") before
+    anything is allocated for it."""
+    if n_rows > MAX_SIMULATED_TRIALS:
+        raise StopwiseInputError(
+            f"a simulation of {n_rows} trials or choices is beyond the documented limit of "
+            f"{MAX_SIMULATED_TRIALS} (README, 'Limits'); simulate in parts with different seeds"
+        )
 
 
 def _missing_names(model: Any, given: Any) -> list[str]:
@@ -311,6 +329,7 @@ def simulate(model: Any, params: Any, design: pd.DataFrame, seed: int = 0) -> pd
         model = build_model(model)
     if not isinstance(design, pd.DataFrame):
         raise StopwiseInputError(f"design must be a pandas DataFrame, got {type(design)}")
+    check_simulation_size(len(design))
     key = jax.random.PRNGKey(int(seed))
     if isinstance(params, pd.DataFrame):
         return _simulate_population(model, params, design, key)

@@ -35,9 +35,12 @@ from typing import Any
 
 import jax
 import numpy as np
+import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.limits import MAX_TARGET
 from stopwise.models.base import Model, ParamSpec
+from stopwise.models.domain import check_outcome_domain
 from stopwise.models.lottery import lottery_loglik, lottery_predict
 from stopwise.models.noise import NOISE
 from stopwise.models.simulate import simulate_lottery, simulate_stopping
@@ -50,6 +53,7 @@ from stopwise.models.stopping import (
     gather_rows,
     policy_tables,
 )
+from stopwise.models.table_size import check_table_size
 from stopwise.models.utility import UTILITIES
 from stopwise.models.weighting import WEIGHTINGS
 
@@ -157,6 +161,10 @@ def _check_options(options: Mapping[str, Any]) -> dict[str, Any]:
         ),
         (0 < merged["target_tolerance"] < 1, "target_tolerance must lie in (0, 1)"),
         (merged["max_target"] is None or merged["max_target"] >= 1, "max_target must be >= 1"),
+        (
+            merged["max_target"] is None or merged["max_target"] <= MAX_TARGET,
+            f"max_target must be at most {MAX_TARGET} (the documented limit, README 'Limits')",
+        ),
     ]
     for ok, message in checks:
         if not ok:
@@ -229,7 +237,10 @@ def _stopping_model(
         """Size the static caps from concrete data before an engine traces the likelihood
         (the largest survival chance seen so far wins), so traced evaluations do not fall
         back to the generous default bound."""
+        check_outcome_domain(name, risk.utility.name, risk.wealth, data)
         sized = caps.sized_for(data.cond_p_survive)
+        n_cond = len(np.asarray(data.cond_p_survive))
+        check_table_size(name, policy, risk.noise.base, n_cond, int(data.horizon), sized)
         previous = seen.get("caps")
         if sized.max_p_survive is not None and (
             previous is None or sized.max_p_survive > previous.p_bound
@@ -262,7 +273,17 @@ def _stopping_model(
     )
 
     def simulate(theta: Any, design: Any, key: Any) -> Any:
+        check_design_tables(design)
         return simulate_stopping(policy, risk, caps, theta, design, key, tables_fn=sim_tables)
+
+    def check_design_tables(design: Any) -> None:
+        """The table-size limit for a simulation design (its survival chances in (0, 1))."""
+        if "p_survive" not in getattr(design, "columns", ()):
+            return
+        p = pd.to_numeric(design["p_survive"], errors="coerce").to_numpy(dtype=np.float64)
+        p = np.unique(p[(p > 0) & (p < 1)])
+        if p.size:
+            check_table_size(name, policy, risk.noise.base, p.size, 1, caps.sized_for(p))
 
     return Model(
         name=name,
@@ -298,31 +319,16 @@ def warn_beyond_caps(data: Any, caps: Caps, policy: str) -> None:
         )
 
 
-def warn_outside_domain(data: Any, risk: RiskParts) -> None:
-    """Warn (for concrete data) when wealth + outcome < 0 under a power utility (crra, expo),
-    whose domain is x >= 0: such outcomes get the floor utility (see models.utility)."""
-    if risk.utility.name not in ("crra", "expo"):
-        return
-    outcomes = [getattr(data, name, None) for name in ("a_x", "b_x")]
-    if not all(isinstance(x, np.ndarray) and x.size for x in outcomes):
-        return
-    lowest = min(float(np.min(x)) for x in outcomes)
-    if risk.wealth + lowest < 0:
-        warnings.warn(
-            f"outcomes down to {lowest:g} lie below zero for {risk.utility.name} utility over "
-            f"wealth + outcome (wealth={risk.wealth:g}); they get the floor utility. Give a "
-            f"wealth of at least {-lowest:g}, or use pt for gains and losses",
-            stacklevel=3,
-        )
-
-
 def _lottery_model(
     name: str, params: tuple[ParamSpec, ...], risk: RiskParts, opts: dict[str, Any]
 ) -> Model:
     def loglik_obs(theta: Any, data: Any) -> Any:
         """log P(observed choice) per lottery row."""
-        warn_outside_domain(data, risk)
         return lottery_loglik(risk, theta, data)
+
+    def prepare(data: Any) -> None:
+        """Refuse outcomes outside a power utility's domain (models.domain) before fitting."""
+        check_outcome_domain(name, risk.utility.name, risk.wealth, data)
 
     def predict(theta: Any, data: Any) -> Any:
         """P(choose B) per row."""
@@ -334,6 +340,7 @@ def _lottery_model(
         return simulate_lottery(predict_jit, theta, design, key)
 
     lottery_opts = {k: opts[k] for k in ("wealth", "reference", "contextual")}
+    lottery_opts["prepare"] = prepare
     return Model(
         name=name,
         params=params,

@@ -23,9 +23,18 @@ Convention at the edge of the domain (power families ``crra`` and ``expo``): uti
 defined for x >= 0. For r >= 1, u(0) = -inf; an argument below 0 is outside the domain. Both
 are represented by the finite floor ``UTILITY_FLOOR`` (-1e100, "minus infinity for practical
 purposes"), so that choice probabilities and their gradients stay finite and NaN-free: a sure
-zero is then worse than any gamble that may avoid it. Give a positive ``wealth`` to avoid
-the edge altogether. Exponents of ``cara`` and ``expo`` are clipped at 700 (exp overflows at
-709), which only matters for extreme risk-loving parameters at large stakes.
+zero is then worse than any gamble that may avoid it. Data with outcomes below zero are
+refused before a fit (models.domain); give a positive ``wealth`` to avoid the edge.
+
+Finite by construction on the documented parameter box (README, "Limits"): every family's
+value lies in [UTILITY_FLOOR, UTILITY_CEILING] = [-1e100, 1e100] (clipped; the gradient is 0
+where a value is clipped, so no NaN or inf can come from it), and exponents of ``crra``,
+``cara`` and ``expo`` are clipped at 200 before exp (e^200 = 7e86, so even divided by the
+smallest |a| outside the series band, 1e-4, a value stays below 1e100). A noise rule then
+sees differences below 2e100 in size: times a precision up to 1e8 or divided by a sigma down
+to 1e-8 they stay near 1e108, whose square (log_ndtr) is about 1e216 < 1.8e308. Clipping
+only changes values for extreme risk-loving parameters at large stakes (cara/expo with
+a x^(1-r) < -200), where the true utility exceeds every float anyway.
 """
 
 from __future__ import annotations
@@ -39,8 +48,9 @@ import jax.numpy as jnp
 from stopwise.models.base import ParamSpec
 
 UTILITY_FLOOR = -1e100
+UTILITY_CEILING = 1e100
 _SERIES_BAND = 1e-4  # use the series within this distance of the removable singularity
-_MAX_EXPONENT = 700.0
+_MAX_EXPONENT = 200.0
 
 Theta = Mapping[str, Any]
 
@@ -58,7 +68,12 @@ class UtilityFamily:
 
 def _floor_outside(valid: Any, value: Any) -> Any:
     """Where ``valid`` is false, the floor utility; keeps gradients finite (double where)."""
-    return jnp.where(valid, value, UTILITY_FLOOR)
+    return jnp.where(valid, bounded(value), UTILITY_FLOOR)
+
+
+def bounded(u: Any) -> Any:
+    """u clipped to [UTILITY_FLOOR, UTILITY_CEILING] (gradient 0 where clipped)."""
+    return jnp.clip(u, UTILITY_FLOOR, UTILITY_CEILING)
 
 
 def linear_utility(x: Any, theta: Theta, ref: Any = 0.0) -> Any:
@@ -91,7 +106,7 @@ def crra_utility(x: Any, theta: Theta, ref: Any = 0.0) -> Any:
     safe_c = jnp.where(c > 0, c, 1.0)
     u_zero = jnp.where(c > 0, -1.0 / safe_c, UTILITY_FLOOR)
     u = jnp.where(positive, u_positive, jnp.where(x == 0, u_zero, UTILITY_FLOOR))
-    return jnp.maximum(u, UTILITY_FLOOR)
+    return bounded(u)
 
 
 def exponential_index(x: Any, a: Any) -> Any:
@@ -107,7 +122,7 @@ def exponential_index(x: Any, a: Any) -> Any:
 def cara_utility(x: Any, theta: Theta, ref: Any = 0.0) -> Any:
     """u(x) = (1 - exp(-a x))/a, the linear u = x in the limit a -> 0."""
     x = jnp.asarray(x, dtype=jnp.float64)
-    return exponential_index(x, jnp.asarray(theta["a"], dtype=jnp.float64))
+    return bounded(exponential_index(x, jnp.asarray(theta["a"], dtype=jnp.float64)))
 
 
 def expo_power_utility(x: Any, theta: Theta, ref: Any = 0.0) -> Any:
@@ -135,7 +150,7 @@ def prospect_value(x: Any, theta: Theta, ref: Any = 0.0) -> Any:
     safe_loss = jnp.where(loss, -z, 1.0)
     v_gain = jnp.exp(alpha * jnp.log(safe_gain))
     v_loss = -lam * jnp.exp(beta * jnp.log(safe_loss))
-    return jnp.where(gain, v_gain, jnp.where(loss, v_loss, 0.0))
+    return bounded(jnp.where(gain, v_gain, jnp.where(loss, v_loss, 0.0)))
 
 
 R_SPEC = ParamSpec("r", -3.0, 5.0, 0.3, "CRRA curvature (0 risk neutral, > 0 risk averse)")

@@ -138,7 +138,7 @@ def test_negative_outcomes_under_power_utility_are_reported():
     x = np.array([[-5.0, 10.0]])
     p = np.array([[0.5, 0.5]])
     data = LotteryData(np.zeros(1, np.int32), np.ones(1), x, p, x + 6.0, p)
-    with pytest.warns(UserWarning, match="wealth of at least 5"):
-        build_model("crra+logit").loglik_obs({"r": 0.5, "precision": 1.0}, data)
+    with pytest.raises(StopwiseInputError, match="wealth of at least 5"):
+        build_model("crra+logit").options["prepare"](data)  # before any fit traces it
     rich = build_model("crra+logit", wealth=5.0)
     assert np.isfinite(float(rich.loglik_obs({"r": 0.5, "precision": 1.0}, data)[0]))

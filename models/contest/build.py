@@ -41,6 +41,7 @@ import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.limits import MAX_TARGET
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.contest.agent import agent_qre_log_probs
 from stopwise.models.contest.game import (
@@ -215,6 +216,10 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         cap_memory["cap"] = int(options["max_target"])
         if cap_memory["cap"] < 1:
             raise StopwiseInputError("max_target must be at least 1")
+        if cap_memory["cap"] > MAX_TARGET:
+            raise StopwiseInputError(
+                f"max_target must be at most {MAX_TARGET} (the documented limit, README 'Limits')"
+            )
 
     def resolve_cap(data: Any) -> int:
         cap = cap_memory.get("cap")

@@ -7,6 +7,7 @@ import argparse
 from typing import Any
 
 from stopwise._io import check_output_folder, check_output_path
+from stopwise.commands._options import cli_model
 from stopwise.data_schemas.errors import StopwiseInputError
 
 CONTEST_CAP_HELP = "cap on the targets a contest model considers"
@@ -64,6 +65,29 @@ def add_se(parser: argparse.ArgumentParser, choices: tuple[str, ...], help_text:
 def add_max_target(parser: argparse.ArgumentParser, help_text: str = CONTEST_CAP_HELP) -> None:
     """``--max-target M``."""
     parser.add_argument("--max-target", type=int, default=None, metavar="M", help=help_text)
+
+
+def add_wealth(parser: argparse.ArgumentParser) -> None:
+    """``--wealth W`` (model option ``wealth``)."""
+    parser.add_argument(
+        "--wealth",
+        type=float,
+        default=None,
+        metavar="W",
+        help="utility over W + payoff (model option wealth); crra and expo need wealth + "
+        "outcome >= 0",
+    )
+
+
+def model_from_args(spec: str, args: argparse.Namespace) -> Any:
+    """The Model of ``spec`` with the ``--option`` values, ``--wealth`` (shorthand for
+    ``--option wealth=W``) and the ``--max-target`` cap."""
+    items = list(getattr(args, "options", None) or [])
+    if getattr(args, "wealth", None) is not None:
+        if any(item.partition("=")[0].strip() == "wealth" for item in items):
+            raise StopwiseInputError("--wealth and --option wealth=... both given; give one")
+        items.append(f"wealth={args.wealth!r}")
+    return cli_model(spec, getattr(args, "max_target", None), items)
 
 
 def add_hierarchical(parser: argparse.ArgumentParser) -> None:

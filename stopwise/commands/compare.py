@@ -42,6 +42,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "standard errors of each fit (default: clustered sandwich)",
     )
     _args.add_max_target(parser, _args.FIT_CAP_HELP)
+    _args.add_wealth(parser)
     _args.add_sampler(parser)
     _args.add_hierarchical(parser)
     _args.add_seed(parser, "random seed")
@@ -55,7 +56,7 @@ def run(args: argparse.Namespace) -> int:
 
     if len(args.model) < 2:
         raise StopwiseInputError("compare needs at least two --model options")
-    models = [_options.cli_model(m, args.max_target, args.options) for m in args.model]
+    models = [_args.model_from_args(spec, args) for spec in args.model]
     if args.method == "bayes":
         result = compare(
             models,

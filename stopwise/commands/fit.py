@@ -101,6 +101,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "(repeatable; pooled maximum likelihood only)",
     )
     _args.add_max_target(parser, _args.FIT_CAP_HELP)
+    _args.add_wealth(parser)
     _args.add_hierarchical(parser)
     _args.add_sampler(parser)
     _args.add_seed(parser, "random seed (starts, bootstrap, sampler)")
@@ -167,7 +168,7 @@ def run_joint(args: argparse.Namespace) -> Any:
             "--joint fits by maximum likelihood, pooled: no --method bayes, --by, --types or "
             "--formula"
         )
-    models = [_options.cli_model(m, args.max_target, args.options) for m in args.model]
+    models = [_args.model_from_args(m, args) for m in args.model]
     kw: dict[str, Any] = {"fixed": parse_fixed(args.fix)} if args.fix else {}
     return fit_joint(
         list(zip(models, [args.data, *args.joint])),
@@ -194,7 +195,7 @@ def run(args: argparse.Namespace) -> int:
             "fit takes one --model (compare several with `stopwise compare`; fit several data "
             "sets jointly with --joint FILE)"
         )
-    model = _options.cli_model(args.model[0], args.max_target, args.options)
+    model = _args.model_from_args(args.model[0], args)
     se = _args.se_choice(args.se)
     if args.method == "bayes":
         if args.by or args.se or args.fix or args.types is not None:

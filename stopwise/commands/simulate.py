@@ -293,9 +293,13 @@ def population(
 
 
 def run(args: argparse.Namespace) -> int:
-    from stopwise.models.simulate import simulate
+    from stopwise.models.simulate import check_simulation_size, simulate
 
     check_output_path(args.out)
+    check_simulation_size(
+        (DEFAULT_SUBJECTS if args.subjects is None else max(args.subjects, 1))
+        * (DEFAULT_TRIALS if args.trials is None else max(args.trials, 1))
+    )
     model = _options.cli_model(args.model, args.max_target, args.options)
     given = parse_assignments(args.assignments)
     check_parameters(model, given)
