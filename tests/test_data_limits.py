@@ -94,7 +94,7 @@ def test_stopping_data_with_a_negative_start_are_refused_for_crra(decision_frame
 
 @pytest.mark.parametrize("bad", [float("nan"), float("inf"), -float("inf")])
 def test_simulate_refuses_non_finite_parameters_by_name(bad: float) -> None:
-    design = stopping_design(2, 3, [0.9], [1.0], 0.0, 0.0)
+    design = stopping_design([1, 2], 3, [0.9], [1.0], 0.0, 0.0)
     with pytest.raises(StopwiseInputError, match="parameter r = "):
         stopwise.simulate("crra+myopic+logit", {"r": bad, "precision": 2.0}, design)
     population = pd.DataFrame({"subject": [1, 2], "r": [0.3, bad], "precision": [1.0, 1.0]})
