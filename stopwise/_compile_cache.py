@@ -20,12 +20,12 @@ evicts the least recently used entries beyond ``MAX_CACHE_BYTES``.
 from __future__ import annotations
 
 import hashlib
+import importlib.metadata
 import os
 import platform
 from collections.abc import Mapping
 from pathlib import Path
-
-import jax
+from typing import Any
 
 MIN_COMPILE_SECONDS = 0.5
 MAX_CACHE_BYTES = 1 << 30  # 1 GiB
@@ -52,7 +52,8 @@ def processor_fingerprint() -> str:
 def default_cache_dir(environ: Mapping[str, str]) -> Path:
     """$XDG_CACHE_HOME (or ~/.cache) / stopwise / jax-<jax version>-<processor hash>."""
     base = environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
-    return Path(base) / "stopwise" / f"jax-{jax.__version__}-{processor_fingerprint()}"
+    version = importlib.metadata.version("jax")  # without importing JAX (start-up speed)
+    return Path(base) / "stopwise" / f"jax-{version}-{processor_fingerprint()}"
 
 
 def chosen_cache_dir(environ: Mapping[str, str], jax_setting: str | None) -> Path | None:
@@ -66,10 +67,12 @@ def chosen_cache_dir(environ: Mapping[str, str], jax_setting: str | None) -> Pat
     return default_cache_dir(environ)
 
 
-def enable_compilation_cache() -> Path | None:
-    """Point JAX's persistent compilation cache at chosen_cache_dir(); returns the folder,
-    or None when no cache is set up (switched off, set by the user, or not writable)."""
-    folder = chosen_cache_dir(os.environ, jax.config.jax_compilation_cache_dir)
+def enable_compilation_cache(config: Any) -> Path | None:
+    """Point JAX's persistent compilation cache (``config`` is ``jax.config``) at
+    chosen_cache_dir(); returns the folder, or None when no cache is set up (switched off,
+    set by the user, or not writable). Called by stopwise/_jax_setup.py once JAX is
+    imported."""
+    folder = chosen_cache_dir(os.environ, config.jax_compilation_cache_dir)
     if folder is None:
         return None
     try:
@@ -78,7 +81,7 @@ def enable_compilation_cache() -> Path | None:
         return None
     if not os.access(folder, os.W_OK):
         return None
-    jax.config.update("jax_compilation_cache_dir", str(folder))
-    jax.config.update("jax_persistent_cache_min_compile_time_secs", MIN_COMPILE_SECONDS)
-    jax.config.update("jax_compilation_cache_max_size", MAX_CACHE_BYTES)
+    config.update("jax_compilation_cache_dir", str(folder))
+    config.update("jax_persistent_cache_min_compile_time_secs", MIN_COMPILE_SECONDS)
+    config.update("jax_compilation_cache_max_size", MAX_CACHE_BYTES)
     return folder
