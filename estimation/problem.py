@@ -90,8 +90,23 @@ def start_vector(layout: Layout) -> np.ndarray:
     """Spec start values on the unconstrained scale (intercepts), effects start at 0."""
     z = np.zeros(layout.size)
     for spec, off in zip(layout.specs(), layout.offsets):
-        z[off] = float(spec.to_unconstrained(spec.start))
+        z[off] = unconstrained_np(spec, spec.start)
     return z
+
+
+def unconstrained_np(spec: ParamSpec, x: float) -> float:
+    """ParamSpec.to_unconstrained in numpy (host side: no small JAX program is compiled for
+    a start value): logit: log(u) - log1p(-u), u = (x - lo) / (hi - lo); log: log(x - lo);
+    neglog: log(hi - x); identity: x."""
+    kind = spec.transform
+    if kind == "logit":
+        u = (float(x) - spec.lower) / (spec.upper - spec.lower)
+        return float(np.log(u) - np.log1p(-u))
+    if kind == "log":
+        return float(np.log(float(x) - spec.lower))
+    if kind == "neglog":
+        return float(np.log(spec.upper - float(x)))
+    return float(x)
 
 
 def theta_scalars(layout: Layout, z: Any) -> dict[str, Any]:

@@ -27,7 +27,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-MIN_COMPILE_SECONDS = 0.5
+MIN_COMPILE_SECONDS = 0.1
 MAX_CACHE_BYTES = 1 << 30  # 1 GiB
 OFF_VALUES = ("", "0", "off", "none", "false", "no")
 
