@@ -358,10 +358,18 @@ class Problem:
         key = (z.tobytes(), None if w is None else np.asarray(w, dtype=np.float64).tobytes())
         cache = self.__dict__.setdefault("_cache", {})
         if cache.get("key") != key:
-            weights = jnp.asarray(self.weights if w is None else w)
-            out = value_grad_hess(self.rows, jnp.asarray(z), self.args, weights)
+            args, base_weights = self.on_device()
+            weights = base_weights if w is None else jnp.asarray(w)
+            out = value_grad_hess(self.rows, jnp.asarray(z), args, weights)
             cache["key"], cache["value"] = key, tuple(np.asarray(a) for a in out)
         return cache["value"]
+
+    def on_device(self) -> tuple[Any, Any]:
+        """(args, weights) as device arrays, transferred once per Problem rather than at
+        every optimiser step."""
+        if "_device" not in self.__dict__:
+            self.__dict__["_device"] = (jax.device_put(self.args), jnp.asarray(self.weights))
+        return self.__dict__["_device"]
 
     def evaluate(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
         """(negll, gradient, Hessian, row Jacobian J[i, j] = d ll_i / dz_j) at z: the
@@ -383,12 +391,12 @@ class Problem:
         z = np.asarray(z, dtype=np.float64)
         cache = self.__dict__.setdefault("_scores", {})
         if cache.get("key") != z.tobytes():
-            _, jac = row_scores(self.rows, jnp.asarray(z), self.args)
+            _, jac = row_scores(self.rows, jnp.asarray(z), self.on_device()[0])
             cache["key"], cache["value"] = z.tobytes(), np.asarray(jac)
         return cache["value"]
 
     def row_loglik(self, z: np.ndarray) -> np.ndarray:
-        return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.args))
+        return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.on_device()[0]))
 
     def cluster_loglik(self, z: np.ndarray) -> np.ndarray:
         """Sum of weighted row log-likelihoods per cluster (subject), shape (n_clusters,)."""
