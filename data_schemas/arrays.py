@@ -1,7 +1,10 @@
 """Immutable array bundles handed to the models: one per data format.
 
 Both bundles are JAX pytrees (arrays are leaves, ``horizon`` and covariate names are static),
-so they pass through ``jit``/``vmap``/``grad`` unchanged. Labels (subject ids, trial ids)
+so they pass through ``jit``/``vmap``/``grad`` unchanged. This module does not import JAX
+(commands that only read data start without it): it registers the bundles itself when JAX
+is loaded already, and stopwise/_jax_setup.py calls ``register_pytrees`` when JAX is
+imported later. Labels (subject ids, trial ids)
 are kept on the bundle for reporting but dropped inside JAX transformations (they come back
 as ``None`` after a tree round trip).
 
@@ -13,11 +16,12 @@ condition table (``cond_*``, length n_cond) holds each distinct trial configurat
 
 from __future__ import annotations
 
+import sys
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields, replace
+from types import ModuleType
 from typing import Any
 
-import jax
 import numpy as np
 
 STOPPING_ROW_FIELDS = (
@@ -168,7 +172,7 @@ class LotteryData:
 _LABEL_FIELDS = {"subject_labels", "trial_labels", "item_labels"}
 
 
-def _register(cls: type, static: tuple[str, ...]) -> None:
+def _register(tree_util: ModuleType, cls: type, static: tuple[str, ...]) -> None:
     array_fields = tuple(
         f.name
         for f in fields(cls)
@@ -191,8 +195,21 @@ def _register(cls: type, static: tuple[str, ...]) -> None:
         kwargs.update(zip(static, static_values))
         return cls(**kwargs)
 
-    jax.tree_util.register_pytree_node(cls, flatten, unflatten)
+    tree_util.register_pytree_node(cls, flatten, unflatten)
 
 
-_register(StoppingData, static=("horizon",))
-_register(LotteryData, static=())
+_REGISTERED: list[ModuleType] = []
+
+
+def register_pytrees(tree_util: ModuleType) -> None:
+    """Register StoppingData (``horizon`` static) and LotteryData with ``jax.tree_util``,
+    once per process."""
+    if _REGISTERED:
+        return
+    _register(tree_util, StoppingData, static=("horizon",))
+    _register(tree_util, LotteryData, static=())
+    _REGISTERED.append(tree_util)
+
+
+if "jax" in sys.modules:  # JAX loaded first: register now (else stopwise/_jax_setup.py does)
+    register_pytrees(sys.modules["jax"].tree_util)

@@ -70,7 +70,7 @@ def bootstrap_estimates(
             block = np.vstack([block, np.repeat(block[:1], chunk - n_real, axis=0)])
         w = jnp.asarray(problem.weights[None, :] * block[:, problem.cluster])
         z0 = jnp.tile(jnp.asarray(z_hat), (chunk, 1))
-        z, _, _, _, _, ok = batched_newton(fun, z0, w, problem.args, max_iter, gtol)
+        z, _, _, _, _, ok = batched_newton(fun, z0, w, problem.on_device()[0], max_iter, gtol)
         zs.append(np.asarray(z)[:n_real])
         conv.append(np.asarray(ok)[:n_real])
         bar.update(n_real)

@@ -16,11 +16,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from stopwise.estimation.problem import Problem, Reported, report_derivatives, report_values
 
-NORMAL_95 = float(stats.norm.ppf(0.975))
+NORMAL_95 = float(special.ndtri(0.975))  # the normal quantile (scipy.stats loads slowly)
 
 
 def is_positive_definite(h: np.ndarray, rel_tol: float = 1e-10) -> bool:

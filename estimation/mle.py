@@ -46,6 +46,7 @@ from stopwise.estimation.problem import (
     subject_index,
     theta_per_cell,
     theta_scalars,
+    unconstrained_np,
 )
 from stopwise.estimation.results import Fit
 from stopwise.estimation.start_accounting import account_starts
@@ -118,7 +119,7 @@ def build_problem(
     z0 = start_vector(layout)
     for spec, off, n in zip(layout.specs(), layout.offsets, layout.n_coef):
         if spec.name in coef_names and "Intercept" not in coef_names[spec.name]:
-            z0[off : off + n] = float(spec.to_unconstrained(spec.start))
+            z0[off : off + n] = unconstrained_np(spec, spec.start)
     weights = cells.mask.reshape(-1).astype(np.float64)
     cluster = np.asarray(cells.data.subject).reshape(-1).astype(np.int64)
     problem = Problem(
@@ -157,7 +158,7 @@ def starts_from(problem: Problem, layout: Layout, starts: Any, seed: int) -> np.
                     raise StopwiseInputError(
                         f"start {spec.name}={value} lies outside ({spec.lower}, {spec.upper})"
                     )
-                z[off] = float(spec.to_unconstrained(value))
+                z[off] = unconstrained_np(spec, value)
         rows.append(z)
     return np.vstack(rows)
 

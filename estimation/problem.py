@@ -27,6 +27,7 @@ import numpy as np
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.optimize import value_grad_hess_forward
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------
@@ -89,8 +90,23 @@ def start_vector(layout: Layout) -> np.ndarray:
     """Spec start values on the unconstrained scale (intercepts), effects start at 0."""
     z = np.zeros(layout.size)
     for spec, off in zip(layout.specs(), layout.offsets):
-        z[off] = float(spec.to_unconstrained(spec.start))
+        z[off] = unconstrained_np(spec, spec.start)
     return z
+
+
+def unconstrained_np(spec: ParamSpec, x: float) -> float:
+    """ParamSpec.to_unconstrained in numpy (host side: no small JAX program is compiled for
+    a start value): logit: log(u) - log1p(-u), u = (x - lo) / (hi - lo); log: log(x - lo);
+    neglog: log(hi - x); identity: x."""
+    kind = spec.transform
+    if kind == "logit":
+        u = (float(x) - spec.lower) / (spec.upper - spec.lower)
+        return float(np.log(u) - np.log1p(-u))
+    if kind == "log":
+        return float(np.log(float(x) - spec.lower))
+    if kind == "neglog":
+        return float(np.log(spec.upper - float(x)))
+    return float(x)
 
 
 def theta_scalars(layout: Layout, z: Any) -> dict[str, Any]:
@@ -148,33 +164,33 @@ def _negll(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
     return -jnp.sum(jnp.where(w > 0, w * ll, 0.0))
 
 
-# XLA options for the second-order objective: it runs a handful of times per fit (one call
-# per optimiser iteration), so compile time dominates a fit; these two options cut the CPU
-# compile of crra+planner+logit from about 2.0 s to 1.1 s with the same run time and the same
-# values (benchmarks/bench_fit.py measures both; tests/test_estimation_mle.py checks the values).
-FAST_COMPILE_OPTIONS = {
-    "xla_backend_optimization_level": 0,
-    "xla_llvm_disable_expensive_passes": True,
-}
+# Every program below is compiled with XLA's full optimisation (JAX's defaults): a program
+# runs many times per fit (one call per optimiser step, and again for every start, CV fold,
+# bootstrap chunk, mixture and profile refit), so its run time, not its compile time, sets
+# the pace, and the persistent compilation cache (stopwise/_compile_cache.py) keeps the
+# compiled program for later processes. jax.jit keys each program by the static row
+# function (model, layout), the argument shapes (padded data size) and the function itself
+# (what is computed), so every refit of the same model on data of the same bucket reuses it.
 
 
-@partial(jax.jit, static_argnums=0, compiler_options=FAST_COMPILE_OPTIONS)
-def value_grad_hess_jac(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
-    """(negll, its gradient, its Hessian, J = d ll_i / dz) in one compiled function, all by
-    forward mode: J from k JVPs along the unit vectors (the primal ll comes with them),
-    gradient = -sum_i w_i J_i, Hessian = forward-mode Jacobian of that gradient. One trace of
-    the model serves an optimiser step and the sandwich (forward mode compiles faster than
-    reverse mode through the models' scans and costs little for a handful of parameters)."""
+@partial(jax.jit, static_argnums=0)
+def value_grad_hess(rows: Callable[..., Any], z: Any, args: Any, w: Any) -> Any:
+    """negll(z) = -sum_i w_i ll_i(z), its gradient and its Hessian, for one optimiser step.
+
+    Forward mode only (value_grad_hess_forward): the gradient from k JVPs along the unit
+    vectors, the Hessian as the forward-mode Jacobian of that gradient, symmetrised
+    0.5 (H + H'). No per-row quantity leaves the program."""
+    return value_grad_hess_forward(lambda zz: _negll(rows, zz, args, w), z)
+
+
+@partial(jax.jit, static_argnums=0)
+def row_scores(rows: Callable[..., Any], z: Any, args: Any) -> Any:
+    """(ll_i(z), J) with J[i, j] = d ll_i / d z_j, from k JVPs of the row function along the
+    unit vectors (the primal ll comes with them). Computed once per fit, where per-row or
+    per-cluster scores are used (clustered sandwich, Vuong/Clarke, bootstrap)."""
     k = z.shape[0]
-
-    def inner(zz: Any) -> tuple[Any, tuple[Any, Any, Any]]:
-        lls, jac_t = jax.vmap(lambda v: jax.jvp(lambda a: rows(a, args), (zz,), (v,)))(jnp.eye(k))
-        grad = -jnp.sum(jnp.where(w[None, :] > 0, w[None, :] * jac_t, 0.0), axis=1)
-        value = -jnp.sum(jnp.where(w > 0, w * lls[0], 0.0))
-        return grad, (value, grad, jac_t.T)
-
-    hess, (value, grad, jac) = jax.jacfwd(inner, has_aux=True)(z)
-    return value, grad, 0.5 * (hess + hess.T), jac
+    lls, jac_t = jax.vmap(lambda v: jax.jvp(lambda a: rows(a, args), (z,), (v,)))(jnp.eye(k))
+    return lls[0], jac_t.T
 
 
 @partial(jax.jit, static_argnums=0)
@@ -335,28 +351,52 @@ class Problem:
     def k(self) -> int:
         return len(self.z0)
 
-    def evaluate(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
-        """(negll, gradient, Hessian, row Jacobian) at z, cached for the last (z, w)."""
+    def second_order(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
+        """(negll, gradient, Hessian) at z (value_grad_hess), cached for the last (z, w): the
+        optimiser asks for the value, the gradient and the Hessian at the same point."""
         z = np.asarray(z, dtype=np.float64)
         key = (z.tobytes(), None if w is None else np.asarray(w, dtype=np.float64).tobytes())
         cache = self.__dict__.setdefault("_cache", {})
         if cache.get("key") != key:
-            weights = jnp.asarray(self.weights if w is None else w)
-            out = value_grad_hess_jac(self.rows, jnp.asarray(z), self.args, weights)
+            args, base_weights = self.on_device()
+            weights = base_weights if w is None else jnp.asarray(w)
+            out = value_grad_hess(self.rows, jnp.asarray(z), args, weights)
             cache["key"], cache["value"] = key, tuple(np.asarray(a) for a in out)
         return cache["value"]
 
+    def on_device(self) -> tuple[Any, Any]:
+        """(args, weights) as device arrays, transferred once per Problem rather than at
+        every optimiser step."""
+        if "_device" not in self.__dict__:
+            self.__dict__["_device"] = (jax.device_put(self.args), jnp.asarray(self.weights))
+        return self.__dict__["_device"]
+
+    def evaluate(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
+        """(negll, gradient, Hessian, row Jacobian J[i, j] = d ll_i / dz_j) at z: the
+        second-order triple and row_scores' Jacobian (two compiled programs)."""
+        value, grad, hess = self.second_order(z, w)
+        return value, grad, hess, self.row_jacobian(z)
+
     def value(self, z: np.ndarray, w: np.ndarray | None = None) -> float:
-        return float(self.evaluate(z, w)[0])
+        return float(self.second_order(z, w)[0])
 
     def grad(self, z: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
-        return self.evaluate(z, w)[1]
+        return self.second_order(z, w)[1]
 
     def hess(self, z: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
-        return self.evaluate(z, w)[2]
+        return self.second_order(z, w)[2]
+
+    def row_jacobian(self, z: np.ndarray) -> np.ndarray:
+        """J[i, j] = d ll_i / dz_j at z (row_scores), kept for the last z."""
+        z = np.asarray(z, dtype=np.float64)
+        cache = self.__dict__.setdefault("_scores", {})
+        if cache.get("key") != z.tobytes():
+            _, jac = row_scores(self.rows, jnp.asarray(z), self.on_device()[0])
+            cache["key"], cache["value"] = z.tobytes(), np.asarray(jac)
+        return cache["value"]
 
     def row_loglik(self, z: np.ndarray) -> np.ndarray:
-        return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.args))
+        return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.on_device()[0]))
 
     def cluster_loglik(self, z: np.ndarray) -> np.ndarray:
         """Sum of weighted row log-likelihoods per cluster (subject), shape (n_clusters,)."""
@@ -365,7 +405,7 @@ class Problem:
 
     def cluster_scores(self, z: np.ndarray) -> np.ndarray:
         """Per-cluster score s_g = sum_{i in g} w_i d ll_i / dz, shape (n_clusters, k)."""
-        jac = self.evaluate(z)[3]
+        jac = self.row_jacobian(z)
         jac = np.where(self.weights[:, None] > 0, jac * self.weights[:, None], 0.0)
         out = np.zeros((self.n_clusters, jac.shape[1]))
         np.add.at(out, self.cluster, jac)

@@ -1,22 +1,20 @@
 """stopwise: fit models of risk preference and strategic play to stopping and lottery data.
 
-Importing the package switches JAX to 64-bit floats (every likelihood runs in float64) and
-points JAX's persistent compilation cache at a per-user folder, so that a later run of the
-same fit loads its compiled likelihood (stopwise/_compile_cache.py; ``STOPWISE_CACHE_DIR=off``
-switches it off).
-Public names are resolved lazily so that ``import stopwise`` stays fast and the command
-line starts quickly.
+Importing the package does not import JAX. The moment JAX is imported (by stopwise or
+anyone) it is switched to 64-bit floats (every likelihood runs in float64), its persistent
+compilation cache is pointed at a per-user folder, so that a later run of the same fit loads
+its compiled programs (stopwise/_compile_cache.py; ``STOPWISE_CACHE_DIR=off`` switches it
+off), and the data bundles become pytrees (stopwise/_jax_setup.py).
+Public names are resolved lazily (a deliberate lazy import, for start-up speed) so that
+``import stopwise`` stays fast and the command line starts quickly.
 """
 
 import importlib as _importlib
 from typing import Any as _Any
 
-import jax as _jax
+from stopwise._jax_setup import configure_when_jax_loads
 
-from stopwise._compile_cache import enable_compilation_cache as _enable_compilation_cache
-
-_jax.config.update("jax_enable_x64", True)
-_enable_compilation_cache()
+configure_when_jax_loads()
 
 __version__ = "0.1.0"
 

@@ -25,16 +25,16 @@ evicts the least recently used entries beyond ``MAX_CACHE_BYTES``.
 from __future__ import annotations
 
 import hashlib
+import importlib.metadata
 import os
 import platform
 import stat
 import warnings
 from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
-import jax
-
-MIN_COMPILE_SECONDS = 0.5
+MIN_COMPILE_SECONDS = 0.1
 MAX_CACHE_BYTES = 1 << 30  # 1 GiB
 OFF_VALUES = ("", "0", "off", "none", "false", "no")
 
@@ -59,7 +59,8 @@ def processor_fingerprint() -> str:
 def default_cache_dir(environ: Mapping[str, str]) -> Path:
     """$XDG_CACHE_HOME (or ~/.cache) / stopwise / jax-<jax version>-<processor hash>."""
     base = environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
-    return Path(base) / "stopwise" / f"jax-{jax.__version__}-{processor_fingerprint()}"
+    version = importlib.metadata.version("jax")  # without importing JAX (start-up speed)
+    return Path(base) / "stopwise" / f"jax-{version}-{processor_fingerprint()}"
 
 
 def chosen_cache_dir(environ: Mapping[str, str], jax_setting: str | None) -> Path | None:
@@ -84,11 +85,12 @@ def cache_folder_problem(folder: Path) -> str | None:
     return None
 
 
-def enable_compilation_cache() -> Path | None:
-    """Point JAX's persistent compilation cache at chosen_cache_dir(); returns the folder,
-    or None when no cache is set up (switched off, set by the user, not writable, or
-    unsafe: cache_folder_problem, with a warning)."""
-    folder = chosen_cache_dir(os.environ, jax.config.jax_compilation_cache_dir)
+def enable_compilation_cache(config: Any) -> Path | None:
+    """Point JAX's persistent compilation cache (``config`` is ``jax.config``) at
+    chosen_cache_dir(); returns the folder, or None when no cache is set up (switched off,
+    set by the user, not writable, or unsafe: cache_folder_problem, with a warning). Called by stopwise/_jax_setup.py once JAX is
+    imported."""
+    folder = chosen_cache_dir(os.environ, config.jax_compilation_cache_dir)
     if folder is None:
         return None
     try:
@@ -106,7 +108,7 @@ def enable_compilation_cache() -> Path | None:
             stacklevel=2,
         )
         return None
-    jax.config.update("jax_compilation_cache_dir", str(folder))
-    jax.config.update("jax_persistent_cache_min_compile_time_secs", MIN_COMPILE_SECONDS)
-    jax.config.update("jax_compilation_cache_max_size", MAX_CACHE_BYTES)
+    config.update("jax_compilation_cache_dir", str(folder))
+    config.update("jax_persistent_cache_min_compile_time_secs", MIN_COMPILE_SECONDS)
+    config.update("jax_compilation_cache_max_size", MAX_CACHE_BYTES)
     return folder

@@ -7,6 +7,7 @@ model builder and the estimation engines together.
 
 from __future__ import annotations
 
+import functools
 import os
 import warnings
 from collections.abc import Mapping, Sequence
@@ -33,6 +34,34 @@ def resolve_model(model: str | Model, max_target: int | None = None) -> Model:
 
     options = {} if max_target is None else {"max_target": int(max_target)}
     return build_model(model, **options)
+
+
+@functools.lru_cache(maxsize=32)
+def _shared_model(spec: str, max_target: int | None, data_key: bytes) -> Model:
+    """One Model object per (spec, max_target, data_key): the engines' compiled programs are
+    keyed by the model object, so spec strings naming the same model share them."""
+    return resolve_model(spec, max_target)
+
+
+def preparation_key(bundle: Any) -> bytes:
+    """What a model's prepare() sizes its static parts from: the distinct (p_survive,
+    contest) conditions of stopping data (a stopping model's planner and target caps, a
+    contest model's cap on targets); lottery models prepare nothing."""
+    if not isinstance(bundle, StoppingData):
+        return type(bundle).__name__.encode()
+    conditions = np.stack(
+        [np.asarray(bundle.cond_p_survive, float), np.asarray(bundle.cond_contest, float)]
+    )
+    return np.unique(conditions, axis=1).tobytes()
+
+
+def model_for_data(model: str | Model, max_target: int | None, bundle: Any) -> Model:
+    """resolve_model, with one shared Model per spec string and data conditions: a new
+    model would be sized by prepare() exactly like the shared one, so sharing it changes no
+    number and lets a refit reuse the compiled programs (_shared_model)."""
+    if isinstance(model, str):
+        return _shared_model(model, max_target, preparation_key(bundle))
+    return resolve_model(model, max_target)
 
 
 def resolve_data(
@@ -179,6 +208,7 @@ def fit(
     the_model = resolve_model(model, max_target)
     bundle, frame = resolve_data(data)
     bundle, frame, notes = select_data(the_model, bundle, frame)
+    the_model = model_for_data(model, max_target, bundle)
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
     return _attach(
@@ -289,6 +319,7 @@ def compare(
             f"the same decisions; got {', '.join(f'{m.name} ({m.data_kind})' for m in resolved)}"
         )
     bundle, frame, _ = select_data(resolved[0], bundle, frame)
+    resolved = [model_for_data(m, max_target, bundle) for m in models]
     for m in resolved:
         prepare_model(m, bundle)
     if method == "bayes":

@@ -118,11 +118,13 @@ def host_device_flags(current: str | None, chains: int) -> str | None:
 def give_chains_their_devices(args: argparse.Namespace) -> None:
     """Set XLA_FLAGS (host_device_flags) before JAX starts its CPU backend; once the backend
     runs (e.g. main() called inside a Python session) device counts are fixed, and nothing
-    is changed. Single-device work is not slowed by the extra devices (bench_bayes.py)."""
-    from jax._src import xla_bridge
+    is changed. Single-device work is not slowed by the extra devices (bench_bayes.py).
+    Without JAX imported no backend runs: JAX is not imported here (start-up speed)."""
+    if "jax" in sys.modules:
+        from jax._src import xla_bridge  # JAX is loaded already: this import costs nothing
 
-    if xla_bridge.backends_are_initialized():
-        return
+        if xla_bridge.backends_are_initialized():
+            return
     flags = host_device_flags(os.environ.get("XLA_FLAGS"), getattr(args, "chains", None) or 0)
     if flags is not None:
         os.environ["XLA_FLAGS"] = flags

@@ -218,23 +218,3 @@ def test_predict_probabilities_and_stop_steps(logit_case) -> None:
     steps = out["stop_steps"]
     total = steps.groupby("cond")[["p_stop_here", "p_bust_here"]].sum().sum(axis=1)
     assert (total <= 1 + 1e-12).all() and (total > 0.99).all()
-
-
-def test_fast_compile_options_leave_the_objective_unchanged() -> None:
-    """The second-order objective compiled with the reduced XLA optimisation options
-    (estimation/problem.py FAST_COMPILE_OPTIONS) equals the default compilation."""
-    from functools import partial
-
-    from stopwise.estimation.mle import build_problem
-    from stopwise.estimation.problem import value_grad_hess_jac
-
-    model, _, data = simulated(
-        "crra+planner+logit", {"r": 0.4, "precision": 2.0}, subjects=10, trials=20
-    )
-    problem, _, _ = build_problem(model, data)
-    z = jnp.asarray(problem.z0 + 0.1)
-    w = jnp.asarray(problem.weights)
-    fast = value_grad_hess_jac(problem.rows, z, problem.args, w)
-    default = jax.jit(partial(value_grad_hess_jac.__wrapped__, problem.rows))(z, problem.args, w)
-    for a, b in zip(fast, default):
-        np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-10, atol=1e-12)
