@@ -12,9 +12,9 @@ Public names are resolved lazily (a deliberate lazy import, for start-up speed) 
 import importlib as _importlib
 from typing import Any as _Any
 
-from stopwise._jax_setup import configure_when_jax_loads
+from stopwise._jax_setup import configure_when_jax_loads as _configure_when_jax_loads
 
-configure_when_jax_loads()
+_configure_when_jax_loads()
 
 __version__ = "0.1.0"
 

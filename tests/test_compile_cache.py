@@ -87,5 +87,5 @@ def test_importing_stopwise_skips_an_unsafe_cache_with_a_warning(tmp_path):
 
 def test_a_new_cache_folder_is_private(tmp_path):
     folder = tmp_path / "fresh" / "cache"
-    run_python("import stopwise", STOPWISE_CACHE_DIR=str(folder))
+    run_python("import stopwise, jax", STOPWISE_CACHE_DIR=str(folder))  # set up when JAX loads
     assert os.stat(folder).st_mode & 0o777 == 0o700
