@@ -1,0 +1,137 @@
+"""The count reduction for pooled fits of solo stopping models without per-row covariates.
+
+Such a model's log-likelihood of decision row i depends on the row only through its key
+u_i = (subject, p_survive, gain, start, bust_keep, step, action, outcome): every stopping
+model tabulates log P(draw | condition, step) and log P(stop | ...) per condition and gathers
+by (condition, step) (DEVELOPERS.md). Hence, with n_u the number of rows with key u,
+
+    sum_i ll(theta; row_i) = sum_u n_u ll(theta; u),
+
+and the score and Hessian follow the same weighted sum, so estimates, Hessian and
+subject-clustered standard errors (the subject is part of the key) are those of the
+row-level fit. Data of any size reduce to at most subjects x conditions x steps x 3 rows.
+
+``reduction_gap`` certifies the identity for a given model on given rows (the row-level and
+the count log-likelihood at several parameter values); a model whose rows carry more than
+the key (per-trial effects, learning, contest play) fails it and must be fitted on rows.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import replace
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.estimation.mle import build_problem, run_fit, starts_from
+from stopwise.estimation.results import Fit
+
+KEY_COLUMNS = ("subject", "p_survive", "gain", "start", "bust_keep", "step", "action", "outcome")
+COUNT_COLUMN = "n"
+EXACT_TOLERANCE = 1e-9  # on |ll_rows - ll_counts| / max(1, |ll_rows|)
+# Columns whose presence means rows carry more than the key (contest play, pools, odds,
+# sequential moves): such data are fitted on rows.
+ROW_ONLY_COLUMNS = ("group", "pool_size", "pool_bad", "odds_known", "order", "rival_bank")
+DEFAULTS = {"start": 0.0, "bust_keep": 0.0}
+
+
+def counts_refusal(model: Any, frame_columns: Iterable[str], formulas: Any = None) -> str | None:
+    """Why the count reduction cannot serve this model and data (None when it can)."""
+    if getattr(model, "data_kind", None) != "stopping":
+        return f"{model.name} is not a solo stopping model"
+    if formulas:
+        return "formulas give each row its own parameters"
+    present = sorted(set(frame_columns) & set(ROW_ONLY_COLUMNS))
+    if present:
+        return f"the data have column(s) {', '.join(present)} that the count key does not carry"
+    return None
+
+
+def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
+    """n_u per key u (module docstring) for one partition of decision rows."""
+    keyed = frame.assign(**{c: v for c, v in DEFAULTS.items() if c not in frame.columns})
+    keyed = keyed.assign(outcome=keyed["outcome"].where(keyed["outcome"].notna(), ""))
+    grouped = keyed.groupby(list(KEY_COLUMNS), sort=False, observed=True).size()
+    return grouped.rename(COUNT_COLUMN).reset_index()
+
+
+def merge_counts(parts: Iterable[pd.DataFrame]) -> pd.DataFrame:
+    """Sum the counts of several partitions (n_u adds over partitions)."""
+    stacked = pd.concat(list(parts), ignore_index=True)
+    merged = stacked.groupby(list(KEY_COLUMNS), sort=True, observed=True)[COUNT_COLUMN].sum()
+    return merged.reset_index()
+
+
+def counts_frame(counts: pd.DataFrame) -> pd.DataFrame:
+    """One decision row per key (each its own one-row trial), for the array bundle."""
+    frame = counts[list(KEY_COLUMNS)].copy()
+    frame["outcome"] = frame["outcome"].replace("", None)
+    frame["trial"] = np.arange(len(frame))
+    return frame
+
+
+def counts_problem(model: Any, counts: pd.DataFrame) -> tuple[Any, Any, Any]:
+    """(Problem weighted by n_u, layout, bundle of the distinct keys)."""
+    bundle = to_stopping_data(counts_frame(counts))
+    problem, layout, _ = build_problem(model, bundle)
+    weights = problem.weights.copy()
+    weights[: bundle.n_obs] = counts[COUNT_COLUMN].to_numpy(dtype=np.float64)
+    problem = replace(problem, weights=weights, n_obs=int(counts[COUNT_COLUMN].sum()))
+    return problem, layout, bundle
+
+
+def row_problem(model: Any, frame: pd.DataFrame) -> Any:
+    """The ordinary row-level Problem of the same data (the reference for the check)."""
+    problem, _, _ = build_problem(model, to_stopping_data(frame))
+    return problem
+
+
+def reduction_gap(model: Any, frame: pd.DataFrame, n_points: int = 3, seed: int = 0) -> float:
+    """max over parameter points z of |ll_rows(z) - ll_counts(z)| / max(1, |ll_rows(z)|), with
+    z the model's start and ``n_points - 1`` points drawn around it (normal, sd 0.5, on the
+    unconstrained scale)."""
+    rows = row_problem(model, frame)
+    counts, _, _ = counts_problem(model, count_rows(frame))
+    rng = np.random.default_rng(seed)
+    points = [rows.z0] + [rows.z0 + rng.normal(0.0, 0.5, rows.k) for _ in range(n_points - 1)]
+    gaps = []
+    for z in points:
+        ll_rows = -rows.value(z)
+        ll_counts = -counts.value(z)
+        gaps.append(abs(ll_rows - ll_counts) / max(1.0, abs(ll_rows)))
+    return float(max(gaps))
+
+
+def fit_counts(
+    model: Any,
+    counts: pd.DataFrame,
+    *,
+    se: str | None = "auto",
+    starts: Any = 3,
+    seed: int = 0,
+    max_iter: int = 200,
+    bootstrap_reps: int = 200,
+    progress: bool = False,
+) -> Fit:
+    """Pooled maximum-likelihood fit on the counts n_u (module docstring)."""
+    problem, layout, bundle = counts_problem(model, counts)
+    fit = run_fit(
+        problem,
+        model.name,
+        bundle.n_subjects,
+        se=se,
+        starts=starts_from(problem, layout, starts, seed),
+        seed=seed,
+        max_iter=max_iter,
+        bootstrap_reps=bootstrap_reps,
+        progress=progress,
+    )
+    fit.extras["layout"] = layout
+    fit.notes.append(
+        f"fitted on counts: {len(counts)} distinct (subject, condition, step, action, outcome) "
+        f"keys for {problem.n_obs} decisions (estimation/counts.py)"
+    )
+    return fit
