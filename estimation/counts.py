@@ -18,7 +18,7 @@ the key (per-trial effects, learning, contest play) fails it and must be fitted 
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import replace
 from typing import Any
 
@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.data_schemas.partitioned import PartCheck, check_part
 from stopwise.estimation.mle import build_problem, run_fit, starts_from
 from stopwise.estimation.results import Fit
 
@@ -53,7 +54,10 @@ def counts_refusal(model: Any, frame_columns: Iterable[str], formulas: Any = Non
 def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
     """n_u per key u (module docstring) for one partition of decision rows."""
     keyed = frame.assign(**{c: v for c, v in DEFAULTS.items() if c not in frame.columns})
-    keyed = keyed.assign(outcome=keyed["outcome"].where(keyed["outcome"].notna(), ""))
+    outcome = keyed["outcome"].astype(object)
+    keyed = keyed.assign(
+        outcome=outcome.where(outcome.notna(), ""), action=keyed["action"].astype(str)
+    )
     grouped = keyed.groupby(list(KEY_COLUMNS), sort=False, observed=True).size()
     return grouped.rename(COUNT_COLUMN).reset_index()
 
@@ -135,3 +139,19 @@ def fit_counts(
         f"keys for {problem.n_obs} decisions (estimation/counts.py)"
     )
     return fit
+
+
+def check_and_count_part(
+    parts: Sequence[str],
+    index: int,
+    kind: str | None = None,
+    allow_censored: bool = False,
+    max_per_kind: int = 20,
+    count: bool = False,
+) -> tuple[PartCheck, pd.DataFrame | None]:
+    """One task of an out-of-core pass: validate part ``index`` (with its seams,
+    data_schemas/partitioned.py) and, if clean and ``count``, reduce it to counts n_u."""
+    check, clean = check_part(parts, index, kind, allow_censored, max_per_kind)
+    if not count or clean is None or check.data_format != "decisions":
+        return check, None
+    return check, count_rows(clean)
