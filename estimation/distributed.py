@@ -133,15 +133,21 @@ def run_tasks(
     progress: bool = True,
     desc: str = "tasks",
     timeout_s: float | None = None,
+    shared: Mapping[str, Any] | None = None,
 ) -> StudyRun:
-    """Run ``func(**inputs[i])`` for every i where ``plan_for`` says; results in task order.
-    ``func`` is sent to the workers (module-level functions travel by reference).
+    """Run ``func(**inputs[i], **shared)`` for every i where ``plan_for`` says; results in
+    task order. ``func`` is sent to the workers (module-level functions travel by
+    reference). ``shared`` values (a model, a design) are sent once to every worker and
+    reused there by all its tasks, so compiled programs keyed on them are reused too.
     ``timeout_s`` bounds the wait for a cluster's results (TimeoutError beyond it)."""
     plan = plan_for(workers, scheduler, len(inputs))
+    shared = dict(shared or {})
     if plan.kind == "in-process" or not inputs:
-        return _run_in_process(func, inputs, progress, desc)
+        return _run_in_process(func, inputs, shared, progress, desc)
     with dask_client(plan) as client:
-        return _run_on_client(client, func, inputs, progress, desc, plan.describe(), timeout_s)
+        return _run_on_client(
+            client, func, inputs, shared, progress, desc, plan.describe(), timeout_s
+        )
 
 
 def _error_text(exc: BaseException) -> str:
@@ -149,7 +155,11 @@ def _error_text(exc: BaseException) -> str:
 
 
 def _run_in_process(
-    func: Callable[..., Any], inputs: Sequence[Mapping[str, Any]], progress: bool, desc: str
+    func: Callable[..., Any],
+    inputs: Sequence[Mapping[str, Any]],
+    shared: Mapping[str, Any],
+    progress: bool,
+    desc: str,
 ) -> StudyRun:
     from tqdm import tqdm
 
@@ -158,7 +168,7 @@ def _run_in_process(
     for i in tqdm(range(len(inputs)), desc=desc, file=sys.stderr, disable=not progress):
         for attempt in range(RETRIES + 1):
             try:
-                results[i] = func(**inputs[i])
+                results[i] = func(**inputs[i], **shared)
                 break
             except Exception as exc:  # a task's failure is reported, not fatal to the study
                 if attempt == RETRIES:
@@ -170,6 +180,7 @@ def _run_on_client(
     client: Any,
     func: Callable[..., Any],
     inputs: Sequence[Mapping[str, Any]],
+    shared: Mapping[str, Any],
     progress: bool,
     desc: str,
     where: str,
@@ -178,9 +189,10 @@ def _run_on_client(
     from dask.distributed import as_completed
     from tqdm import tqdm
 
+    sent = {k: client.scatter(v, broadcast=True, hash=False) for k, v in shared.items()}
     futures = [
         client.submit(
-            func, **dict(inp), retries=RETRIES, pure=False, key=f"{desc}-{i}-{id(inputs)}"
+            func, **dict(inp), **sent, retries=RETRIES, pure=False, key=f"{desc}-{i}-{id(inputs)}"
         )
         for i, inp in enumerate(inputs)
     ]

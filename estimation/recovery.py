@@ -180,10 +180,7 @@ def recover(
         if isinstance(truths, Mapping) and name not in truths:
             raise ValueError(f"truths lack parameter {name!r} of {model.name}")
     payload = RecoveryPayload(model, design, to_bundle, se, starts, tuple(rivals), rival_starts)
-    inputs = [
-        {"rep": rep, "seed": seed, "truth": _truth_for(truths, rep), "payload": payload}
-        for rep in range(n_reps)
-    ]
+    inputs = [{"rep": rep, "seed": seed, "truth": _truth_for(truths, rep)} for rep in range(n_reps)]
     run = run_tasks(
         run_replication,
         inputs,
@@ -192,6 +189,7 @@ def recover(
         progress=progress,
         desc="recovery",
         timeout_s=timeout_s,
+        shared={"payload": payload},
     )
     done = [r for r in run.results if r is not None]
     if not done:
