@@ -51,15 +51,31 @@ def counts_refusal(model: Any, frame_columns: Iterable[str], formulas: Any = Non
     return None
 
 
+def _key_codes(frame: pd.DataFrame, column: str) -> tuple[np.ndarray, np.ndarray]:
+    """(integer code per row, label per code) of one key column; a missing optional column
+    takes its default, an empty outcome the label ""."""
+    if column not in frame.columns:
+        return np.zeros(len(frame), dtype=np.int64), np.asarray([DEFAULTS[column]])
+    codes, labels = pd.factorize(frame[column], use_na_sentinel=False)
+    labels = np.asarray(labels, dtype=object if column in ("action", "outcome") else None)
+    if column in ("action", "outcome"):
+        labels = np.asarray(["" if pd.isna(v) else str(v) for v in labels], dtype=object)
+    return np.asarray(codes, dtype=np.int64), labels
+
+
 def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
-    """n_u per key u (module docstring) for one partition of decision rows."""
-    keyed = frame.assign(**{c: v for c, v in DEFAULTS.items() if c not in frame.columns})
-    outcome = keyed["outcome"].astype(object)
-    keyed = keyed.assign(
-        outcome=outcome.where(outcome.notna(), ""), action=keyed["action"].astype(str)
-    )
-    grouped = keyed.groupby(list(KEY_COLUMNS), sort=False, observed=True).size()
-    return grouped.rename(COUNT_COLUMN).reset_index()
+    """n_u per key u (module docstring) for one partition of decision rows: each key column
+    is factorised to integer codes, the codes combined into one int64 per row
+    (``np.ravel_multi_index``) and the distinct combinations counted (``np.unique``)."""
+    codes, labels = zip(*(_key_codes(frame, c) for c in KEY_COLUMNS))
+    dims = tuple(max(len(u), 1) for u in labels)
+    if float(np.prod(np.asarray(dims, dtype=float))) >= 2.0**62:
+        raise ValueError(f"too many distinct keys to combine in one int64: {dims}")
+    combined = np.ravel_multi_index(codes, dims)
+    distinct, n = np.unique(combined, return_counts=True)
+    columns = np.unravel_index(distinct, dims)
+    out = {c: u[idx] for c, u, idx in zip(KEY_COLUMNS, labels, columns)}
+    return pd.DataFrame({**out, COUNT_COLUMN: n})
 
 
 def merge_counts(parts: Iterable[pd.DataFrame]) -> pd.DataFrame:
