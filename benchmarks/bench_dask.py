@@ -192,9 +192,8 @@ def section_bc() -> str:
 
 def main() -> str:
     header = "## Scale-out on Dask (bench_dask)"
-    stamp = f"_Measured {time.strftime('%Y-%m-%d')} on {machine()}._"
-    return "\n\n".join([header, section_a(), section_bc(), stamp])
+    return "\n\n".join([header, section_a(), section_bc()])  # write_section adds the stamp
 
 
 if __name__ == "__main__":
-    print(main())
+    print(main(), f"\n\n_Measured {time.strftime('%Y-%m-%d')} on {machine()}._")

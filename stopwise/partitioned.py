@@ -24,6 +24,7 @@ from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseDataError
 from stopwise.data_schemas.partitioned import check_part, is_partitioned, list_parts, merge_checks
 from stopwise.data_schemas.report import ValidationReport
+from stopwise.data_schemas.validate import validate as validate_source
 from stopwise.estimation.counts import (
     EXACT_TOLERANCE,
     check_and_count_part,
@@ -35,7 +36,7 @@ from stopwise.estimation.counts import (
 )
 from stopwise.estimation.distributed import run_tasks
 
-__all__ = ["fit_parts", "is_partitioned", "load_parts", "validate_parts"]
+__all__ = ["fit_parts", "is_partitioned", "load_parts", "validate", "validate_parts"]
 CERTIFY_ROWS = 20_000  # rows of the first part used to certify the count reduction
 FIT_OPTIONS = ("starts", "max_iter", "bootstrap_reps", "progress")
 
@@ -93,6 +94,23 @@ def validate_parts(
         source, kind, allow_censored, max_per_kind, False, workers, scheduler, progress
     )
     return report
+
+
+def validate(
+    source: Any,
+    kind: str | None = None,
+    allow_censored: bool = False,
+    max_per_kind: int = 20,
+    *,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+) -> ValidationReport:
+    """``stopwise.validate``: a file or DataFrame as before, a folder or glob part by part."""
+    if is_partitioned(source):
+        return validate_parts(
+            source, kind, allow_censored, max_per_kind, workers=workers, scheduler=scheduler
+        )
+    return validate_source(source, kind, allow_censored, max_per_kind)
 
 
 def _refuse(report: ValidationReport) -> None:

@@ -73,6 +73,7 @@ def test_clean_parts_with_trials_across_seams_validate_like_one_file(tmp_path: P
     whole = stopwise.validate(frame)
     parts = validate_parts(tmp_path / "parts")
     assert whole.ok and parts.ok, parts.format()
+    assert stopwise.validate(tmp_path / "parts").to_dict() == parts.to_dict()
     assert parts.n_rows == whole.n_rows == len(frame)
     assert parts.stats["trials"] == whole.stats["trials"] == 160
     assert parts.stats["subjects"] == whole.stats["subjects"] == 16
