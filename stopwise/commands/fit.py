@@ -220,7 +220,7 @@ def run(args: argparse.Namespace) -> int:
             raise StopwiseInputError(
                 "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
             )
-        kw: dict[str, Any] = {k: v for k, v in _cluster.cluster_kwargs(args).items() if v is not None}
+        kw: dict[str, Any] = _cluster.cluster_kwargs(args)  # used when DATA is a Parquet folder
         if args.fix:
             kw["fixed"] = parse_fixed(args.fix)
         if args.types is not None:
