@@ -7,6 +7,7 @@ study's results must arrive within STUDY_TIMEOUT_S (TimeoutError otherwise)."""
 
 from __future__ import annotations
 
+import json
 import os
 import sys
 from pathlib import Path
@@ -19,6 +20,7 @@ import pytest
 from dask.distributed import LocalCluster
 
 import stopwise
+from stopwise import cli
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import distributed as D
 from stopwise.estimation.recovery import recover, stopping_design
@@ -186,3 +188,18 @@ def test_api_recover_passes_workers_through() -> None:
         "where": "in-process",
         "failed": [],
     }
+
+
+def test_recover_command_reports_how_many_replications_ran(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "recovery.json"
+    argv = ["recover", "--model", "linear+myopic+logit", "--set", "precision=1.5", "--reps", "3"]
+    argv += ["--subjects", "6", "--trials", "6", "--workers", "0", "--no-progress"]
+    code = cli.main([*argv, "--json", str(out)])
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    record = json.loads(out.read_text())["replications"]
+    assert record["requested"] == record["ran"] == 3 and record["failed"] == []
+    assert cli.main([*argv[:-3], "--workers", "-1"]) == 2
+    assert "expected a whole number >= 0" in capsys.readouterr().err
