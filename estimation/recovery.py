@@ -9,11 +9,15 @@ when (a) more than 10% of replications put it at a bound or give NaN standard er
 correlate above 0.95 in absolute value with another parameter's (a ridge in the likelihood).
 With ``rivals``, every replication is also fitted by each rival model and the share of
 replications in which the generating model has the smallest AIC is reported.
+
+Replication r simulates with the JAX key fold_in(PRNGKey(seed), r) and refits with seed
+seed + r, so each replication depends only on (seed, r): run in-process or on Dask workers
+(estimation/distributed.py) the results are identical. Replications that fail twice are
+listed in ``Recovery.run`` and the summary; they are never dropped silently.
 """
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -22,6 +26,7 @@ import jax
 import numpy as np
 import pandas as pd
 
+from stopwise.estimation.distributed import StudyRun, run_tasks
 from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.results import DISCLAIMER
 
@@ -52,10 +57,12 @@ class Recovery:
     correlation: pd.DataFrame
     selection: dict[str, Any] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    run: StudyRun | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {
             "model": self.model,
+            "replications": _run_dict(self.run),
             "params": self.table.reset_index().to_dict(orient="records"),
             "correlation": self.correlation.to_dict(),
             "selection": self.selection,
@@ -76,6 +83,8 @@ class Recovery:
                 f"{self.selection['replications']} replications "
                 f"(rivals: {', '.join(self.selection['rivals'])})"
             )
+        if self.run is not None:
+            lines.append("Replications: " + self.run.summary_line("replications"))
         lines += [f"Note: {n}" for n in self.notes]
         lines.append(DISCLAIMER)
         return "\n".join(lines)
@@ -92,6 +101,60 @@ def _truth_for(
     return dict(truths[rep % len(truths)])
 
 
+@dataclass(frozen=True)
+class RecoveryPayload:
+    """What every replication shares: the model, the design and how to refit."""
+
+    model: Any
+    design: pd.DataFrame
+    to_bundle: Callable[..., Any]
+    se: str | None
+    starts: int
+    rivals: tuple[Any, ...]
+    rival_starts: int
+
+
+def run_replication(
+    rep: int, seed: int, truth: Mapping[str, float], payload: RecoveryPayload
+) -> tuple[list[dict[str, Any]], bool | None]:
+    """One replication: simulate with key fold_in(PRNGKey(seed), rep), refit with seed
+    seed + rep (and each rival); returns its estimate records and whether AIC picked the
+    generating model (None without rivals)."""
+    model = payload.model
+    key = jax.random.fold_in(jax.random.PRNGKey(seed), rep)
+    frame = model.simulate(dict(truth), payload.design, key)
+    if "step" in frame:
+        data = payload.to_bundle(frame, int(frame["step"].max()) + 5)
+    else:
+        data = payload.to_bundle(frame)
+    fit = fit_mle(
+        model, data, se=payload.se, starts=payload.starts, seed=seed + rep, progress=False
+    )
+    records = [
+        {
+            "rep": rep,
+            "name": name,
+            "truth": truth.get(name, np.nan),
+            "estimate": est,
+            "se": s,
+            "ci_low": lo,
+            "ci_high": hi,
+            "converged": fit.converged,
+            "at_bound": name in fit.at_bound,
+        }
+        for name, est, s, lo, hi in zip(
+            fit.table.names, fit.table.estimate, fit.table.se, fit.table.ci_low, fit.table.ci_high
+        )
+    ]
+    if not payload.rivals:
+        return records, None
+    aics = [fit.aic] + [
+        fit_mle(r, data, se=None, starts=payload.rival_starts, seed=seed + rep, progress=False).aic
+        for r in payload.rivals
+    ]
+    return records, int(np.argmin(aics)) == 0
+
+
 def recover(
     model: Any,
     truths: Mapping[str, float] | Sequence[Mapping[str, float]],
@@ -105,54 +168,40 @@ def recover(
     rivals: Sequence[Any] = (),
     rival_starts: int = 2,
     progress: bool = True,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+    timeout_s: float | None = None,
 ) -> Recovery:
     """Simulate ``n_reps`` data sets with model.simulate(truth, design, key), convert each with
-    ``to_bundle(frame, horizon)``, refit and summarise (module docstring)."""
-    from tqdm import tqdm
-
+    ``to_bundle(frame, horizon)``, refit and summarise (module docstring). ``workers`` and
+    ``scheduler`` choose where the replications run (estimation/distributed.py); ``timeout_s``
+    bounds the wait for a cluster's results."""
     for name in model.param_names:
         if isinstance(truths, Mapping) and name not in truths:
             raise ValueError(f"truths lack parameter {name!r} of {model.name}")
-    records = []
-    picks = []
-    horizon: int | None = None
-    key = jax.random.PRNGKey(seed)
-    for rep in tqdm(range(n_reps), desc="recovery", file=sys.stderr, disable=not progress):
-        truth = _truth_for(truths, rep)
-        key, sub = jax.random.split(key)
-        frame = model.simulate(truth, design, sub)
-        max_step = int(frame["step"].max()) + 1 if "step" in frame else None
-        if max_step is not None:
-            horizon = max(horizon or 0, max_step + 4)
-        data = to_bundle(frame, horizon) if max_step is not None else to_bundle(frame)
-        fit = fit_mle(model, data, se=se, starts=starts, seed=seed + rep, progress=False)
-        for name, est, s, lo, hi in zip(
-            fit.table.names, fit.table.estimate, fit.table.se, fit.table.ci_low, fit.table.ci_high
-        ):
-            records.append(
-                {
-                    "rep": rep,
-                    "name": name,
-                    "truth": truth.get(name, np.nan),
-                    "estimate": est,
-                    "se": s,
-                    "ci_low": lo,
-                    "ci_high": hi,
-                    "converged": fit.converged,
-                    "at_bound": name in fit.at_bound,
-                }
-            )
-        if rivals:
-            aics = [fit.aic] + [
-                fit_mle(r, data, se=None, starts=rival_starts, seed=seed + rep, progress=False).aic
-                for r in rivals
-            ]
-            picks.append(int(np.argmin(aics)) == 0)
-    estimates = pd.DataFrame(records)
+    payload = RecoveryPayload(model, design, to_bundle, se, starts, tuple(rivals), rival_starts)
+    inputs = [{"rep": rep, "seed": seed, "truth": _truth_for(truths, rep)} for rep in range(n_reps)]
+    run = run_tasks(
+        run_replication,
+        inputs,
+        workers=workers,
+        scheduler=scheduler,
+        progress=progress,
+        desc="recovery",
+        timeout_s=timeout_s,
+        shared={"payload": payload},
+    )
+    done = [r for r in run.results if r is not None]
+    if not done:
+        raise RuntimeError("every replication failed: " + run.summary_line("replications"))
+    estimates = pd.DataFrame([rec for records, _ in done for rec in records])
+    picks = [pick for _, pick in done if pick is not None]
     table = summarise(estimates)
     wide = estimates.pivot(index="rep", columns="name", values="estimate")
     corr = wide.corr() if len(wide) > 2 else pd.DataFrame()
     notes = _identification_notes(table, corr)
+    if not run.complete:
+        notes.append(f"only {run.n_done} of {run.n_tasks} replications ran; the table covers those")
     table["flag"] = [
         ", ".join(n for n in _flags_for(name, table.loc[name], corr)) or "" for name in table.index
     ]
@@ -163,7 +212,19 @@ def recover(
             "replications": len(picks),
             "rivals": [r.name for r in rivals],
         }
-    return Recovery(model.name, table, estimates, corr, selection, notes)
+    return Recovery(model.name, table, estimates, corr, selection, notes, run)
+
+
+def _run_dict(run: StudyRun | None) -> dict[str, Any] | None:
+    """The JSON record of where and how completely the replications ran."""
+    if run is None:
+        return None
+    return {
+        "requested": run.n_tasks,
+        "ran": run.n_done,
+        "where": run.where,
+        "failed": [{"rep": f.index, "error": f.error} for f in run.failures],
+    }
 
 
 def summarise(estimates: pd.DataFrame) -> pd.DataFrame:

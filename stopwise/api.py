@@ -19,6 +19,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.partitioned import is_partitioned
 from stopwise.models.base import Model
 
 METHODS = ("mle", "bayes")
@@ -71,6 +72,11 @@ def resolve_data(
     if isinstance(data, (StoppingData, LotteryData)):
         return data, None
     from stopwise.data_schemas.load import Dataset, load
+
+    if is_partitioned(data):  # a folder or glob of Parquet files, gathered in memory
+        from stopwise.partitioned import load_parts
+
+        data = load_parts(data)
 
     if isinstance(data, (str, os.PathLike, pd.DataFrame, Dataset)):
         dataset = load(data)
@@ -206,9 +212,22 @@ def fit(
     "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]."""
     _check_method(method)
     the_model = resolve_model(model, max_target)
+    cluster = {k: kw.pop(k) for k in ("workers", "scheduler") if k in kw}
+    part_notes: list[str] = []
+    if is_partitioned(data):  # a folder or glob of Parquet files (stopwise/partitioned.py)
+        from stopwise.partitioned import fit_parts
+
+        parts = fit_parts(
+            the_model, data, method=method, se=se, by=by, formulas=formulas, seed=seed,
+            kw=kw, prepare=prepare_model, **cluster,
+        )  # fmt: skip
+        if parts.fit is not None:
+            return _attach(parts.fit, [], parts.warnings)
+        data, part_notes = parts.rows, parts.notes
     bundle, frame = resolve_data(data)
     bundle, frame, notes = select_data(the_model, bundle, frame)
     the_model = model_for_data(model, max_target, bundle)
+    notes += part_notes
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
     return _attach(

@@ -34,9 +34,15 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
 
 def run(args: argparse.Namespace) -> int:
     from stopwise.data_schemas.load import load
+    from stopwise.data_schemas.partitioned import is_partitioned
     from stopwise.describe import describe
 
-    description = describe(load(args.data, allow_censored=args.allow_censored), by=args.by)
+    data = args.data
+    if is_partitioned(data):  # a folder or glob of Parquet files, gathered in memory
+        from stopwise.partitioned import load_parts
+
+        data = load_parts(data, allow_censored=args.allow_censored)
+    description = describe(load(data, allow_censored=args.allow_censored), by=args.by)
     if args.json == "-":
         write_json("-", description.to_dict())
         return 0

@@ -7,7 +7,7 @@ import sys
 from typing import Any
 
 from stopwise._io import write_json
-from stopwise.commands import _args, _options
+from stopwise.commands import _args, _cluster, _options
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -106,6 +106,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     _args.add_sampler(parser)
     _args.add_seed(parser, "random seed (starts, bootstrap, sampler)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
+    _cluster.add_cluster_options(parser)  # parts of a Parquet folder DATA, one task each
     _args.add_json_file(parser)
     parser.set_defaults(func=run)
     return parser
@@ -220,7 +221,7 @@ def run(args: argparse.Namespace) -> int:
             raise StopwiseInputError(
                 "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
             )
-        kw: dict[str, Any] = {}
+        kw: dict[str, Any] = _cluster.cluster_kwargs(args)  # used when DATA is a Parquet folder
         if args.fix:
             kw["fixed"] = parse_fixed(args.fix)
         if args.types is not None:

@@ -15,7 +15,7 @@ import argparse
 import sys
 from typing import Any
 
-from stopwise.commands import _args, _options
+from stopwise.commands import _args, _cluster, _options
 from stopwise.commands.fit import emit
 from stopwise.commands.simulate import (
     PRICE_LIST_ROWS,
@@ -75,6 +75,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     )
     _args.add_max_target(parser, _args.FIT_CAP_HELP)
     _args.add_seed(parser, "random seed (design, simulation, starts)")
+    _cluster.add_cluster_options(parser)
     parser.add_argument("--no-progress", action="store_true", help="hide the progress bar")
     _args.add_json_file(parser, "the recovery table")
     parser.set_defaults(func=run)
@@ -116,6 +117,13 @@ def run(args: argparse.Namespace) -> int:
         starts=args.starts,
         rivals=rivals,
         progress=not args.no_progress,
+        **_cluster.cluster_kwargs(args),
     )
     emit(result, args.json)
+    if not result.run.complete:
+        print(
+            "error: not every replication ran: " + result.run.summary_line("replications"),
+            file=sys.stderr,
+        )
+        return 1
     return 0

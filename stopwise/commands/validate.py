@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import argparse
 import sys
+from functools import partial
 from typing import Any
 
 from stopwise._io import write_json
-from stopwise.commands import _args
+from stopwise.commands import _args, _cluster
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
@@ -38,14 +39,21 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         metavar="N",
         help="list at most N problems of each kind (all are counted)",
     )
+    _cluster.add_cluster_options(parser)
     parser.set_defaults(func=run)
     return parser
 
 
 def run(args: argparse.Namespace) -> int:
+    from stopwise.data_schemas.partitioned import is_partitioned
     from stopwise.data_schemas.validate import validate
 
-    report = validate(
+    check = validate
+    if is_partitioned(args.data):  # a folder or glob of Parquet files, part by part
+        from stopwise.partitioned import validate_parts
+
+        check = partial(validate_parts, **_cluster.cluster_kwargs(args))
+    report = check(
         args.data,
         kind=args.kind,
         allow_censored=args.allow_censored,

@@ -1,0 +1,242 @@
+"""Run a study's independent tasks in-process or on Dask distributed.
+
+A study (recovery replications, bootstrap refits, a comparison grid, a sweep) is a list of
+tasks ``func(**inputs_i)``, i = 0..n-1. Every task carries everything it needs in its inputs
+(its seed is derived from the study seed and its index, ``task_seed``), so a task's result
+never depends on where or in which order it runs: serial and distributed runs agree exactly.
+
+Where the tasks run (``plan_for``), first match wins:
+
+1. ``scheduler="tcp://host:port"``: an existing Dask cluster;
+2. ``workers=0``: in-process, one task after another;
+3. ``workers=N >= 1``: a LocalCluster of N worker processes (one thread each) that listens on
+   127.0.0.1 only and is closed when the study ends;
+4. the environment variable ``STOPWISE_SCHEDULER``: an existing Dask cluster;
+5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
+   core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process.
+
+A task that raises is run once more (``retries=1``); a task whose worker dies is moved to
+another worker once (the scheduler's ``allowed-failures`` = 1). A task that still fails is
+reported with its index, inputs and error in ``StudyRun.failures``; no task is dropped
+silently (``StudyRun.summary_line`` says how many ran).
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import traceback
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+SCHEDULER_ENV = "STOPWISE_SCHEDULER"
+AUTO_MIN_TASKS = 16
+LOOPBACK = "127.0.0.1"
+CONNECT_TIMEOUT_S = 30
+RETRIES = 1
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Where a study runs: ``kind`` is "in-process", "local" (a LocalCluster we start) or
+    "remote" (an existing scheduler at ``address``)."""
+
+    kind: str
+    workers: int = 0
+    address: str | None = None
+
+    def describe(self) -> str:
+        if self.kind == "in-process":
+            return "in-process"
+        if self.kind == "local":
+            return f"a LocalCluster of {self.workers} worker process(es) on {LOOPBACK}"
+        return f"the Dask scheduler at {self.address}"
+
+
+@dataclass(frozen=True)
+class TaskFailure:
+    """A task that failed on every attempt: its index, inputs and the last error."""
+
+    index: int
+    inputs: dict[str, Any]
+    error: str
+
+    def describe(self) -> str:
+        shown = ", ".join(f"{k}={v!r}" for k, v in self.inputs.items() if k != "payload")
+        return f"task {self.index} ({shown}): {self.error}"
+
+
+@dataclass
+class StudyRun:
+    """The results of a study's tasks in task order (None where a task failed)."""
+
+    results: list[Any]
+    failures: list[TaskFailure] = field(default_factory=list)
+    where: str = "in-process"
+
+    @property
+    def n_tasks(self) -> int:
+        return len(self.results)
+
+    @property
+    def n_done(self) -> int:
+        return self.n_tasks - len(self.failures)
+
+    @property
+    def complete(self) -> bool:
+        return not self.failures
+
+    def summary_line(self, what: str = "tasks") -> str:
+        line = f"{self.n_done} of {self.n_tasks} {what} ran ({self.where})"
+        if self.failures:
+            line += f"; {len(self.failures)} failed after a retry: " + "; ".join(
+                f.describe() for f in self.failures
+            )
+        return line
+
+
+def task_seed(study_seed: int, index: int) -> int:
+    """A task's own seed: the first 32-bit word of numpy's SeedSequence([study_seed, index])
+    (independent streams per index; never from worker state)."""
+    return int(np.random.SeedSequence([int(study_seed), int(index)]).generate_state(1)[0])
+
+
+def plan_for(workers: int | None, scheduler: str | None, n_tasks: int) -> Plan:
+    """Where the study runs (module docstring, rules 1-5)."""
+    if workers is not None and workers < 0:
+        raise ValueError(f"workers must be >= 0, got {workers}")
+    if scheduler:
+        return Plan("remote", address=scheduler)
+    if workers == 0:
+        return Plan("in-process")
+    if workers is not None:
+        return Plan("local", workers=int(workers))
+    env = os.environ.get(SCHEDULER_ENV, "").strip()
+    if env:
+        return Plan("remote", address=env)
+    cores = os.cpu_count() or 1
+    if cores > 1 and n_tasks >= AUTO_MIN_TASKS:
+        return Plan("local", workers=min(cores, n_tasks))
+    return Plan("in-process")
+
+
+def run_tasks(
+    func: Callable[..., Any],
+    inputs: Sequence[Mapping[str, Any]],
+    *,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+    progress: bool = True,
+    desc: str = "tasks",
+    timeout_s: float | None = None,
+    shared: Mapping[str, Any] | None = None,
+) -> StudyRun:
+    """Run ``func(**inputs[i], **shared)`` for every i where ``plan_for`` says; results in
+    task order. ``func`` is sent to the workers (module-level functions travel by
+    reference). ``shared`` values (a model, a design) are sent once to every worker and
+    reused there by all its tasks, so compiled programs keyed on them are reused too.
+    ``timeout_s`` bounds the wait for a cluster's results (TimeoutError beyond it)."""
+    plan = plan_for(workers, scheduler, len(inputs))
+    shared = dict(shared or {})
+    if plan.kind == "in-process" or not inputs:
+        return _run_in_process(func, inputs, shared, progress, desc)
+    with dask_client(plan) as client:
+        return _run_on_client(
+            client, func, inputs, shared, progress, desc, plan.describe(), timeout_s
+        )
+
+
+def _error_text(exc: BaseException) -> str:
+    return "".join(traceback.format_exception_only(type(exc), exc)).strip()
+
+
+def _run_in_process(
+    func: Callable[..., Any],
+    inputs: Sequence[Mapping[str, Any]],
+    shared: Mapping[str, Any],
+    progress: bool,
+    desc: str,
+) -> StudyRun:
+    from tqdm import tqdm
+
+    results: list[Any] = [None] * len(inputs)
+    failures = []
+    for i in tqdm(range(len(inputs)), desc=desc, file=sys.stderr, disable=not progress):
+        for attempt in range(RETRIES + 1):
+            try:
+                results[i] = func(**inputs[i], **shared)
+                break
+            except Exception as exc:  # a task's failure is reported, not fatal to the study
+                if attempt == RETRIES:
+                    failures.append(TaskFailure(i, dict(inputs[i]), _error_text(exc)))
+    return StudyRun(results, failures, "in-process")
+
+
+def _run_on_client(
+    client: Any,
+    func: Callable[..., Any],
+    inputs: Sequence[Mapping[str, Any]],
+    shared: Mapping[str, Any],
+    progress: bool,
+    desc: str,
+    where: str,
+    timeout_s: float | None = None,
+) -> StudyRun:
+    from dask.distributed import as_completed
+    from tqdm import tqdm
+
+    sent = {k: client.scatter(v, broadcast=True, hash=False) for k, v in shared.items()}
+    futures = [
+        client.submit(
+            func, **dict(inp), **sent, retries=RETRIES, pure=False, key=f"{desc}-{i}-{id(inputs)}"
+        )
+        for i, inp in enumerate(inputs)
+    ]
+    index_of = {f.key: i for i, f in enumerate(futures)}
+    results: list[Any] = [None] * len(inputs)
+    failures = []
+    with tqdm(total=len(futures), desc=desc, file=sys.stderr, disable=not progress) as bar:
+        for future in as_completed(futures, timeout=timeout_s):
+            i = index_of[future.key]
+            if future.status == "finished":
+                results[i] = future.result()
+            else:
+                failures.append(TaskFailure(i, dict(inputs[i]), _error_text(future.exception())))
+            bar.update(1)
+            future.release()
+    failures.sort(key=lambda f: f.index)
+    return StudyRun(results, failures, where)
+
+
+@contextmanager
+def dask_client(plan: Plan) -> Iterator[Any]:
+    """A Dask client for ``plan``: a LocalCluster on the loopback interface (closed on exit)
+    or a connection to an existing scheduler (closed on exit; the cluster keeps running)."""
+    import dask
+    from dask.distributed import Client, LocalCluster
+
+    with dask.config.set({"distributed.scheduler.allowed-failures": RETRIES}):
+        if plan.kind == "remote":
+            client = Client(plan.address, timeout=CONNECT_TIMEOUT_S)
+            try:
+                yield client
+            finally:
+                client.close()
+            return
+        cluster = LocalCluster(
+            n_workers=plan.workers,
+            threads_per_worker=1,
+            processes=True,
+            host=LOOPBACK,
+            dashboard_address=None,
+            silence_logs=40,
+        )
+        try:
+            with Client(cluster, timeout=CONNECT_TIMEOUT_S) as client:
+                yield client
+        finally:
+            cluster.close()

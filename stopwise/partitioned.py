@@ -1,0 +1,208 @@
+"""Out-of-core data for the face: validate, describe and fit a folder or glob of Parquet files
+part by part (data_schemas/partitioned.py), each part a task of the study runner
+(estimation/distributed.py: in-process, a LocalCluster or an existing Dask cluster).
+
+A pooled maximum-likelihood fit of a solo stopping model without formulas is done on counts
+(estimation/counts.py): each part is validated and reduced to counts n_u on its worker, the
+counts are summed, and the reduction is certified on the first part's rows
+(``reduction_gap`` <= 1e-9 relative) before the fit. Every other fit, and a model that fails
+the certificate, says why and falls back to rows: the clean parts are gathered into one
+DataFrame in memory.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import pandas as pd
+import pyarrow.parquet as pq
+
+from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.data_schemas.errors import StopwiseDataError
+from stopwise.data_schemas.partitioned import check_part, is_partitioned, list_parts, merge_checks
+from stopwise.data_schemas.report import ValidationReport
+from stopwise.data_schemas.validate import validate as validate_source
+from stopwise.estimation.counts import (
+    EXACT_TOLERANCE,
+    check_and_count_part,
+    counts_frame,
+    counts_refusal,
+    fit_counts,
+    merge_counts,
+    reduction_gap,
+)
+from stopwise.estimation.distributed import run_tasks
+
+__all__ = ["fit_parts", "is_partitioned", "load_parts", "validate", "validate_parts"]
+CERTIFY_ROWS = 20_000  # rows of the first part used to certify the count reduction
+FIT_OPTIONS = ("starts", "max_iter", "bootstrap_reps", "progress")
+
+
+def _pass(
+    source: str | os.PathLike[str],
+    kind: str | None,
+    allow_censored: bool,
+    max_per_kind: int,
+    count: bool,
+    workers: int | None,
+    scheduler: str | None,
+    progress: bool,
+) -> tuple[ValidationReport, list[pd.DataFrame]]:
+    """Validate every part as one task each (and count them); the merged report and the
+    parts' counts."""
+    parts = list_parts(source)
+    inputs = [
+        {
+            "parts": parts,
+            "index": k,
+            "kind": kind,
+            "allow_censored": allow_censored,
+            "max_per_kind": max_per_kind,
+            "count": count,
+        }
+        for k in range(len(parts))
+    ]
+    run = run_tasks(
+        check_and_count_part,
+        inputs,
+        workers=workers,
+        scheduler=scheduler,
+        progress=progress,
+        desc="parts",
+    )
+    if not run.complete:
+        raise RuntimeError("not every part was checked: " + run.summary_line("parts"))
+    report = merge_checks(str(source), [c for c, _ in run.results], max_per_kind)
+    return report, [n for _, n in run.results if n is not None]
+
+
+def validate_parts(
+    source: str | os.PathLike[str],
+    kind: str | None = None,
+    allow_censored: bool = False,
+    max_per_kind: int = 20,
+    *,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+    progress: bool = False,
+) -> ValidationReport:
+    """Every problem of every part, each with its file and line."""
+    report, _ = _pass(
+        source, kind, allow_censored, max_per_kind, False, workers, scheduler, progress
+    )
+    return report
+
+
+def validate(
+    source: Any,
+    kind: str | None = None,
+    allow_censored: bool = False,
+    max_per_kind: int = 20,
+    *,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+) -> ValidationReport:
+    """``stopwise.validate``: a file or DataFrame as before, a folder or glob part by part."""
+    if is_partitioned(source):
+        return validate_parts(
+            source, kind, allow_censored, max_per_kind, workers=workers, scheduler=scheduler
+        )
+    return validate_source(source, kind, allow_censored, max_per_kind)
+
+
+def _refuse(report: ValidationReport) -> None:
+    if not report.ok:
+        raise StopwiseDataError(
+            f"{report.source}: the data are not valid ({report.n_problems} problem(s))\n"
+            f"{report.format()}",
+            report,
+        )
+
+
+def load_parts(
+    source: str | os.PathLike[str], kind: str | None = None, allow_censored: bool = False
+) -> pd.DataFrame:
+    """All parts as one validated DataFrame in memory (the rows fall-back)."""
+    parts = list_parts(source)
+    results = [check_part(parts, k, kind, allow_censored) for k in range(len(parts))]
+    _refuse(merge_checks(str(source), [c for c, _ in results], 20))
+    return pd.concat([f for _, f in results if f is not None], ignore_index=True)
+
+
+@dataclass
+class PartsFit:
+    """A fit on counts, or (fit None) the rows to fit instead and why."""
+
+    fit: Any = None
+    rows: pd.DataFrame | None = None
+    notes: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+
+def _columns_of(path: str) -> list[str]:
+    """The column names of a Parquet part (none if unreadable: its check reports it)."""
+    try:
+        return [str(c).strip() for c in pq.read_schema(path).names]
+    except Exception:  # pyarrow raises many types for corrupt files
+        return []
+
+
+def _certify(model: Any, parts: Sequence[str], kind: str | None) -> float:
+    """The count reduction's relative gap on (up to CERTIFY_ROWS of) the first part's rows."""
+    _, clean = check_part(parts, 0, kind)
+    if clean is None:
+        return 0.0
+    head = clean.iloc[:CERTIFY_ROWS]
+    last = head[["subject", "trial"]].iloc[-1]
+    whole = (head["subject"] != last["subject"]) | (head["trial"] != last["trial"])
+    return reduction_gap(model, head[whole] if whole.any() else head)
+
+
+def fit_parts(
+    model: Any,
+    source: str | os.PathLike[str],
+    *,
+    method: str,
+    se: str | None,
+    by: str | None,
+    formulas: Sequence[str] | Mapping[str, str] | None,
+    seed: int,
+    kw: Mapping[str, Any],
+    prepare: Callable[[Any, Any], list[str]],
+    workers: int | None = 0,
+    scheduler: str | None = None,
+) -> PartsFit:
+    """A pooled fit on counts when the model and data allow it (module docstring); else the
+    rows in memory with a note saying why."""
+    parts = list_parts(source)
+    header = _columns_of(parts[0])
+    why = counts_refusal(model, header, formulas)
+    if why is None and (method != "mle" or by is not None or kw.get("types") is not None):
+        why = "only a pooled maximum-likelihood fit uses counts"
+    unknown = sorted(set(kw) - set(FIT_OPTIONS))
+    if why is None and unknown:
+        why = f"option(s) {', '.join(unknown)} need the rows"
+    if why is not None:
+        return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
+    progress = bool(kw.get("progress", False))
+    report, pieces = _pass(source, None, False, 20, True, workers, scheduler, progress)
+    _refuse(report)
+    gap = _certify(model, parts, None)
+    if gap > EXACT_TOLERANCE:
+        why = (
+            f"{model.name}'s log-likelihood differs between rows and counts on the first "
+            f"part (relative gap {gap:.2g} > {EXACT_TOLERANCE:g})"
+        )
+        return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
+    counts = merge_counts(pieces)
+    warned = prepare(model, to_stopping_data(counts_frame(counts)))
+    options = {k: v for k, v in kw.items() if k in FIT_OPTIONS}
+    fit = fit_counts(model, counts, se=se, seed=seed, **options)
+    fit.notes.append(
+        f"count reduction certified on the first part: |ll_rows - ll_counts| <= "
+        f"{EXACT_TOLERANCE:g} x |ll| at 3 parameter points; {len(parts)} Parquet parts"
+    )
+    return PartsFit(fit=fit, warnings=warned)

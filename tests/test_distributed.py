@@ -1,0 +1,205 @@
+"""The task runner (estimation/distributed.py): where a study runs, retries and failure
+reports, and a real Dask LocalCluster on 127.0.0.1 (started and closed by this module)
+giving the same recovery study as the in-process run, also when a worker dies mid-study.
+
+The cluster tests are bounded in time: the cluster must start within CLUSTER_START_S and a
+study's results must arrive within STUDY_TIMEOUT_S (TimeoutError otherwise)."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+from typing import Any
+
+import cloudpickle
+import dask
+import pandas as pd
+import pytest
+from dask.distributed import LocalCluster
+
+import stopwise
+from stopwise import cli
+from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.estimation import distributed as D
+from stopwise.estimation.recovery import recover, stopping_design
+
+CLUSTER_START_S = 120
+STUDY_TIMEOUT_S = 300
+TRUTH = {"precision": 1.5}
+
+# The workers cannot import this test module: ship its functions to them by value.
+cloudpickle.register_pickle_by_value(sys.modules[__name__])
+
+
+def test_plan_follows_the_documented_order(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv(D.SCHEDULER_ENV, "tcp://10.1.2.3:8786")
+    assert D.plan_for(0, None, 100).kind == "in-process"  # --workers 0 beats the variable
+    assert D.plan_for(3, None, 100) == D.Plan("local", workers=3)
+    assert D.plan_for(None, None, 100) == D.Plan("remote", address="tcp://10.1.2.3:8786")
+    assert D.plan_for(0, "tcp://h:1", 5) == D.Plan("remote", address="tcp://h:1")
+    monkeypatch.delenv(D.SCHEDULER_ENV)
+    monkeypatch.setattr(os, "cpu_count", lambda: 4)
+    assert D.plan_for(None, None, D.AUTO_MIN_TASKS - 1).kind == "in-process"
+    assert D.plan_for(None, None, D.AUTO_MIN_TASKS) == D.Plan("local", workers=4)
+    with pytest.raises(ValueError):
+        D.plan_for(-1, None, 3)
+
+
+def test_task_seeds_depend_only_on_study_seed_and_index() -> None:
+    seeds = [D.task_seed(7, i) for i in range(50)]
+    assert len(set(seeds)) == 50
+    assert seeds == [D.task_seed(7, i) for i in range(50)]
+    assert D.task_seed(8, 0) != D.task_seed(7, 0)
+
+
+def _count_and_fail(index: int, log: str) -> int:
+    """Append a line to ``log`` on every attempt; task 1 always fails."""
+    with open(log, "a") as fh:
+        fh.write(f"{index}\n")
+    if index == 1:
+        raise ValueError("bad input for task 1")
+    return index * 10
+
+
+def test_in_process_failure_is_retried_once_then_reported(tmp_path: Path) -> None:
+    log = tmp_path / "attempts.txt"
+    run = D.run_tasks(
+        _count_and_fail, [{"index": i, "log": str(log)} for i in range(3)], progress=False
+    )
+    attempts = log.read_text().split()
+    assert attempts.count("1") == 2 and attempts.count("0") == 1
+    assert run.results == [0, None, 20]
+    assert [f.index for f in run.failures] == [1]
+    assert run.failures[0].inputs == {"index": 1, "log": str(log)}
+    assert "bad input for task 1" in run.failures[0].error
+    assert run.summary_line().startswith("2 of 3 tasks ran (in-process); 1 failed")
+
+
+@pytest.fixture(scope="module")
+def cluster() -> Any:
+    """Two worker processes, one thread each, on the loopback interface only."""
+    with dask.config.set({"distributed.scheduler.allowed-failures": D.RETRIES}):
+        local = LocalCluster(
+            n_workers=2,
+            threads_per_worker=1,
+            processes=True,
+            host=D.LOOPBACK,
+            dashboard_address=None,
+            silence_logs=40,
+            timeout=CLUSTER_START_S,
+        )
+    try:
+        assert local.scheduler_address.startswith(f"tcp://{D.LOOPBACK}:")
+        yield local
+    finally:
+        local.close()
+
+
+def _design() -> pd.DataFrame:
+    return stopping_design(12, 10, (0.7, 0.9), 1.0, seed=3)
+
+
+def _bundle(frame: pd.DataFrame, horizon: int | None = None) -> Any:
+    return to_stopping_data(frame, horizon=horizon)
+
+
+def _recovery(scheduler: str | None, to_bundle: Any) -> Any:
+    return recover(
+        stopwise.model("linear+myopic+logit"),
+        TRUTH,
+        _design(),
+        to_bundle,
+        n_reps=4,
+        seed=11,
+        se="hessian",
+        progress=False,
+        workers=0 if scheduler is None else None,
+        scheduler=scheduler,
+        timeout_s=STUDY_TIMEOUT_S,
+    )
+
+
+@pytest.fixture(scope="module")
+def serial_study() -> Any:
+    return _recovery(None, _bundle)
+
+
+def test_distributed_recovery_equals_serial(cluster: Any, serial_study: Any) -> None:
+    remote = _recovery(cluster.scheduler_address, _bundle)
+    assert remote.run.complete and remote.run.n_done == 4
+    assert "scheduler at tcp://127.0.0.1:" in remote.run.where
+    pd.testing.assert_frame_equal(remote.estimates, serial_study.estimates)
+    assert serial_study.run.where == "in-process"
+
+
+def test_worker_killed_mid_study_still_completes(
+    cluster: Any, serial_study: Any, tmp_path: Path
+) -> None:
+    marker = str(tmp_path / "killed-once")
+
+    def bundle_or_die(frame: pd.DataFrame, horizon: int | None = None) -> Any:
+        """The first conversion anywhere kills its worker process; every later one works."""
+        if not os.path.exists(marker):
+            with open(marker, "w") as fh:
+                fh.write(str(os.getpid()))
+            os._exit(1)
+        return to_stopping_data(frame, horizon=horizon)
+
+    remote = _recovery(cluster.scheduler_address, bundle_or_die)
+    assert os.path.exists(marker)  # a worker really died
+    assert remote.run.complete and remote.run.n_done == 4
+    assert sorted(remote.estimates["rep"].unique()) == [0, 1, 2, 3]
+    pd.testing.assert_frame_equal(remote.estimates, serial_study.estimates)
+
+
+def test_cluster_failure_is_reported_with_inputs(cluster: Any, tmp_path: Path) -> None:
+    log = tmp_path / "attempts.txt"
+    run = D.run_tasks(
+        _raise_for_one,
+        [{"index": i, "log": str(log)} for i in range(3)],
+        scheduler=cluster.scheduler_address,
+        progress=False,
+        timeout_s=STUDY_TIMEOUT_S,
+    )
+    assert run.results == [0, None, 20]
+    assert [f.index for f in run.failures] == [1]
+    assert "bad input for task 1" in run.failures[0].error
+    assert log.read_text().split().count("1") == 2  # tried, then retried once
+
+
+def _raise_for_one(index: int, log: str) -> int:
+    """As _count_and_fail (a second copy, so the two tests share no attempt log)."""
+    with open(log, "a") as fh:
+        fh.write(f"{index}\n")
+    if index == 1:
+        raise ValueError("bad input for task 1")
+    return index * 10
+
+
+def test_api_recover_passes_workers_through() -> None:
+    result = stopwise.recover(
+        "linear+myopic+logit", TRUTH, n_reps=2, subjects=6, trials=6, workers=0, progress=False
+    )
+    assert result.to_dict()["replications"] == {
+        "requested": 2,
+        "ran": 2,
+        "where": "in-process",
+        "failed": [],
+    }
+
+
+def test_recover_command_reports_how_many_replications_ran(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "recovery.json"
+    argv = ["recover", "--model", "linear+myopic+logit", "--set", "precision=1.5", "--reps", "3"]
+    argv += ["--subjects", "6", "--trials", "6", "--workers", "0", "--no-progress"]
+    code = cli.main([*argv, "--json", str(out)])
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    record = json.loads(out.read_text())["replications"]
+    assert record["requested"] == record["ran"] == 3 and record["failed"] == []
+    assert cli.main([*argv[:-3], "--workers", "-1"]) == 2
+    assert "expected a whole number >= 0" in capsys.readouterr().err
