@@ -127,3 +127,12 @@ def test_jax_is_configured_whatever_the_import_order(imports, tmp_path) -> None:
     assert Path(result["cache"]) == folder
     assert result["leaves"] > 10  # the bundle is a pytree (an unregistered one is 1 leaf)
     assert result["horizon"] == 3
+
+
+def test_the_command_line_names_the_scheduler_variable_as_the_runner_does() -> None:
+    """commands/_cluster.py keeps its own copy of the name so that light commands do not
+    import the estimation package; both must say the same."""
+    from stopwise.commands import _cluster
+    from stopwise.estimation import distributed
+
+    assert _cluster.SCHEDULER_ENV == distributed.SCHEDULER_ENV == "STOPWISE_SCHEDULER"

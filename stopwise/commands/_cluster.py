@@ -6,7 +6,10 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from stopwise.estimation.distributed import SCHEDULER_ENV
+# The environment variable naming an existing cluster; equal to
+# stopwise.estimation.distributed.SCHEDULER_ENV (tests/test_startup.py checks it). Written here
+# so that the light commands (validate, describe) do not import the estimation package.
+SCHEDULER_ENV = "STOPWISE_SCHEDULER"
 
 
 def non_negative_int(text: str) -> int:
@@ -35,7 +38,7 @@ def add_cluster_options(parser: argparse.ArgumentParser) -> None:
         "--scheduler",
         default=None,
         metavar="ADDRESS",
-        help=f"run the tasks on an existing Dask cluster, e.g. tcp://10.0.0.5:8786 (overrides "
+        help=f"run the tasks on an existing Dask cluster, e.g. tcp://scheduler.example.org:8786 (overrides "
         f"--workers and ${SCHEDULER_ENV})",
     )
 
