@@ -129,7 +129,9 @@ def concept_log_probs(
     n = game.n_targets
     if concept == "qre":
         x0 = jnp.full(n, -jnp.log(n))
-        log_sigma = _continuation(symmetric_residual, x0, theta["precision"], (game,), 24, 3, 6)
+        log_sigma = _continuation(
+            symmetric_residual, x0, theta["precision"], (game,), 24, 3, 6, game.payoff_range
+        )
     elif concept == "aqre":
         log_sigma = agent_qre_log_probs(theta["precision"], game)
     elif concept == "nash":  # mixed with the tremble in probability space (sigma_t may be 0)

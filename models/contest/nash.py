@@ -32,7 +32,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import linprog
 
-from stopwise.models.contest.game import ContestGame, target_payoffs
+from stopwise.models.contest.game import ContestGame, payoff_matrix, target_payoffs
 from stopwise.models.contest.qre import trace_symmetric
 
 REGRET_GOAL = 1e-9
@@ -377,8 +377,6 @@ def contest_nash(game: ContestGame) -> tuple[np.ndarray, float, str, list[str]]:
     game is constant-sum up to own-target terms: the zero-sum LP; otherwise
     ``symmetric_nash``."""
     if round(float(game.n_players)) == 2:
-        from stopwise.models.contest.game import payoff_matrix
-
         a = np.asarray(payoff_matrix(game))
         if constant_sum_split(a, a.T)[0]:
             eq = bimatrix_nash(a, a.T)
