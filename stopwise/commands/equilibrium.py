@@ -117,7 +117,8 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
 
 
 def run(args: argparse.Namespace) -> int:
-    from stopwise.contest import UncertifiedAnswer, equilibrium, format_equilibrium
+    from stopwise.contest_report import format_equilibrium
+    from stopwise.contest_solve import UncertifiedAnswer, equilibrium
 
     if not (0 < args.tolerance < 1):
         raise StopwiseInputError(f"--tolerance must lie in (0, 1), got {args.tolerance}")
