@@ -69,6 +69,7 @@ def test_fit_recovers_precision_through_the_engine(simulated):
     _, frame, _ = simulated
     fit = stopwise.fit("linear+qre", frame, max_target=CAP)
     assert fit.converged
+    assert fit.extras["max_target"] == CAP and fit.to_dict()["max_target"] == CAP
     est = fit.estimates()["precision"]
     se = float(fit.params["se"].iloc[0])
     assert abs(est - 1.5) < 4 * se
