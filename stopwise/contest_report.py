@@ -27,7 +27,7 @@ def format_equilibrium(result: Mapping[str, Any], min_prob: float = DEFAULT_MIN_
     for t, q in zip(result["targets"], result["probs"]):
         if q >= min_prob:
             lines.append(f"{t:>6}  {q:>8.4f}")
-        elif q > 0:
+        else:
             hidden, hidden_mass = hidden + 1, hidden_mass + q
     if hidden:
         lines.append(
