@@ -3,12 +3,17 @@ two-player stopping contest with 41 targets, against pygambit's logit solvers on
 normal form in the same process.
 
 Goals (issue 5): QRE + gradient at one precision <= 20 ms after compile; the branch until
-maximum regret <= 1e-6 (as a share of the payoff range) <= 2 s.
+maximum regret <= 1e-6 (as a share of the payoff range) <= 2 s. Issue 11: whole-process
+``stopwise equilibrium`` two-player Nash at the default cap within 2x a whole-process numpy +
+scipy LP script on the same matrix.
 """
 
 from __future__ import annotations
 
+import subprocess
+import sys
 import time
+from pathlib import Path
 
 import jax
 import jax.numpy as jnp
@@ -96,7 +101,64 @@ def bench_branch() -> tuple[str, float]:
     return rows, ours
 
 
+BASELINE_SCRIPT = """
+import numpy as np
+from scipy.optimize import linprog
+p, prize, cap = {p}, {prize}, {cap}
+t = np.arange(cap + 1.0)
+reach = p ** t
+zero = np.where(t == 0, 1.0, 1.0 - reach)
+own, rival = t[:, None], t[None, :]
+beats = np.where(own >= 1, reach[:, None] * np.where(rival < own, 1.0, zero[None, :]), 0.0)
+level = zero[:, None] * zero[None, :] + np.where((own == rival) & (own >= 1), reach ** 2, 0.0)
+a = prize * (beats + 0.5 * level)
+m = a.shape[0]
+res = linprog(np.r_[np.zeros(m), -1.0], A_ub=np.c_[-a.T, np.ones(m)], b_ub=np.zeros(m),
+              A_eq=np.r_[np.ones(m), 0.0][None, :], b_eq=[1.0],
+              bounds=[(0, None)] * m + [(None, None)], method="highs")
+x = res.x[:m]
+print(int(np.argmax(x)))
+"""
+
+
+def _whole_process(argv: list[str]) -> float:
+    start = time.perf_counter()
+    subprocess.run(argv, check=True, capture_output=True, cwd=Path(__file__).parent.parent)
+    return time.perf_counter() - start
+
+
+def bench_equilibrium_command() -> str:
+    """Whole-process ``stopwise equilibrium`` two-player winner-take-all Nash at the default
+    cap (p 0.9: 264 targets; certificate and dominance included) against a whole-process
+    script that builds the same payoff matrix with numpy and solves the LP with scipy (no
+    certificate, no dominance). One run each (issue 11 goal: ratio <= 2)."""
+    p, prize, cap = 0.9, 10.0, 263
+    stopwise_bin = str(Path(sys.executable).with_name("stopwise"))
+    ours = _whole_process(
+        [
+            stopwise_bin,
+            "equilibrium",
+            "--p-survive",
+            str(p),
+            "--players",
+            "2",
+            "--prize",
+            str(prize),
+            "--json",
+            "-",
+        ]
+    )
+    script = BASELINE_SCRIPT.format(p=p, prize=prize, cap=cap)
+    baseline = _whole_process([sys.executable, "-c", script])
+    return (
+        f"| `stopwise equilibrium` 2 players, Nash, p {p}, prize {prize:g}, default cap "
+        f"({cap + 1} targets), whole process | {ours:.2f} s | {baseline:.2f} s (numpy matrix + "
+        f"scipy LP, whole process) | {ours / baseline:.2f} (goal <= 2) |"
+    )
+
+
 def main() -> str:
+    command_row = bench_equilibrium_command()
     qre_row, qre_s = bench_qre_gradient()
     branch_row, branch_s = bench_branch()
     verdict = (
@@ -120,6 +182,12 @@ def main() -> str:
             branch_row,
             "",
             verdict,
+            "",
+            "### Whole-process two-player Nash (issue 11, Speed)",
+            "",
+            "| task | stopwise | baseline | ours / baseline |",
+            "|---|---|---|---|",
+            command_row,
         ]
     )
 

@@ -142,6 +142,7 @@ class Fit:
             "at_bound": list(self.at_bound),
             "optimizer": {k: v for k, v in self.optimizer.items() if k != "runs"},
             "notes": list(self.notes),
+            **({"max_target": self.extras["max_target"]} if "max_target" in self.extras else {}),
             **self._type_probabilities(),
             **self._formula_keys(),
             **(

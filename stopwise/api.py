@@ -230,11 +230,15 @@ def fit(
     notes += part_notes
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
-    return _attach(
+    result = _attach(
         _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw),
         notes,
         warned,
     )
+    cap_in_use = (the_model.options or {}).get("cap_in_use")
+    if callable(cap_in_use) and isinstance(getattr(result, "extras", None), dict):
+        result.extras["max_target"] = cap_in_use()  # the contest cap travels with the fit
+    return result
 
 
 def _fit_selected(

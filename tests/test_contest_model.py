@@ -69,6 +69,7 @@ def test_fit_recovers_precision_through_the_engine(simulated):
     _, frame, _ = simulated
     fit = stopwise.fit("linear+qre", frame, max_target=CAP)
     assert fit.converged
+    assert fit.extras["max_target"] == CAP and fit.to_dict()["max_target"] == CAP
     est = fit.estimates()["precision"]
     se = float(fit.params["se"].iloc[0])
     assert abs(est - 1.5) < 4 * se
@@ -247,3 +248,17 @@ def test_nash_implicit_derivative_matches_finite_differences():
     grad = float(jax.jit(jax.grad(total))(0.3))
     h = 1e-5
     assert grad == pytest.approx(float((total(0.3 + h) - total(0.3 - h)) / (2 * h)), rel=1e-5)
+
+
+def test_likelihood_qre_reports_its_fixed_point_residual(simulated):
+    # The QRE inside the likelihood carries its check: per contest condition the residual
+    # max |x - log_softmax(lambda U(exp x))| of the solution it uses (0 at a QRE by
+    # definition, McKelvey & Palfrey 1995). At the simulation's precision it is ~0; at
+    # precision 200 (x payoff range 10) the likelihood's fixed 24-step schedule does not reach
+    # the branch, and the residual flags it (a known limit, not yet fixed).
+    model, _, data = simulated
+    contest = np.asarray(data.cond_contest) > 0.5
+    residual = model.options["fixed_point_residual"]({"precision": 1.5}, data)
+    assert np.all(residual[contest] <= 1e-8)
+    residual = model.options["fixed_point_residual"]({"precision": 200.0}, data)
+    assert np.all(residual[contest] > 1e-6)

@@ -72,5 +72,18 @@ def agent_qre_log_probs(
 ) -> Any:
     """log P(T = t) under the symmetric agent QRE at `precision`."""
     y0 = jnp.zeros(game.n_targets - 1)
-    y = _continuation(agent_residual, y0, precision, (game,), steps, newton_per_step, polish)
+    y = _continuation(
+        agent_residual, y0, precision, (game,), steps, newton_per_step, polish, game.payoff_range
+    )
     return target_log_probs_from_behaviour(y)
+
+
+@jax.jit
+def agent_qre_with_residual(precision: Any, game: ContestGame) -> tuple[Any, Any]:
+    """(log P(T = t), max |F(y)|) of the agent QRE at `precision`: the distribution and the
+    fixed-point residual y - lambda (D(y) - pi_stop) in log-odds units."""
+    y0 = jnp.zeros(game.n_targets - 1)
+    y = _continuation(agent_residual, y0, precision, (game,), 24, 3, 6, game.payoff_range)
+    return target_log_probs_from_behaviour(y), jnp.max(
+        jnp.abs(agent_residual(y, (precision, game)))
+    )

@@ -58,7 +58,7 @@ from stopwise.models.contest.levelk import (
     levelk_strategies,
 )
 from stopwise.models.contest.nash import _support_equations, contest_nash
-from stopwise.models.contest.qre import _continuation, symmetric_residual
+from stopwise.models.contest.qre import _continuation, fixed_point_residual, symmetric_residual
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 CH_DEPTH = 15
@@ -136,7 +136,9 @@ def concept_log_probs(
     n = game.n_targets
     if concept == "qre":
         x0 = jnp.full(n, -jnp.log(n))
-        log_sigma = _continuation(symmetric_residual, x0, theta["precision"], (game,), 24, 3, 6)
+        log_sigma = _continuation(
+            symmetric_residual, x0, theta["precision"], (game,), 24, 3, 6, game.payoff_range
+        )
     elif concept == "aqre":
         log_sigma = agent_qre_log_probs(theta["precision"], game)
     elif concept == "nash":  # mixed with the tremble in probability space (sigma_t may be 0)
@@ -344,6 +346,45 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             )
         )
 
+    def fixed_point_residuals(theta: Mapping[str, Any], data: Any) -> np.ndarray:
+        """Per contest condition, the QRE fixed-point residual max |x - log_softmax(lambda U)|
+        of the likelihood's solution at theta (NaN for concepts without a fixed point)."""
+        if concept != "qre":
+            return np.full(np.asarray(data.cond_contest).shape, np.nan)
+        cap = resolve_cap(data)
+        log_sigma = condition_log_probs(theta, data, cap)
+        return np.asarray(
+            jax.vmap(lambda ls, g: fixed_point_residual(ls, theta["precision"], g))(
+                log_sigma, _condition_games(theta, data, cap)
+            )
+        )
+
+    def _condition_games(theta: Mapping[str, Any], data: Any, cap: int) -> ContestGame:
+        contest = data.cond_contest > 0.5
+        return jax.vmap(
+            lambda p, gain, start, keep, n, prize, kb, c: make_game(
+                p,
+                jnp.where(c, n, 2.0),
+                jnp.where(c, prize, 1.0),
+                jnp.where(c, kb, 0.0),
+                cap,
+                gain,
+                start,
+                keep,
+                utility,
+                theta,
+            )
+        )(
+            data.cond_p_survive,
+            data.cond_gain,
+            data.cond_start,
+            data.cond_bust_keep,
+            data.cond_n_players,
+            data.cond_prize,
+            data.cond_keep_bank,
+            contest,
+        )
+
     def simulate(theta: Mapping[str, Any], design: pd.DataFrame, key: Any) -> pd.DataFrame:
         return simulate_contest(target_distribution, theta, design, key, options)
 
@@ -362,6 +403,8 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             "target_distribution": target_distribution,
             "prepare": resolve_cap,
             "notes": (LEVEL_NOTE,) if concept == "levelk" and level is None else (),
+            "cap_in_use": lambda: cap_memory.get("cap"),
+            "fixed_point_residual": fixed_point_residuals,
         },
         description=f"contest play: {concept} with {utility_name} utility"
         + (" and trembles" if tremble else ""),

@@ -8,7 +8,9 @@ R \\ {t} does better against every opponent profile c of surviving targets:
 with eps* > 0 (scipy's HiGHS LP). Payoffs are multilinear in the opponents' mixtures, so pure
 opponent profiles suffice; in a symmetric contest they are the multisets of N-1 targets.
 Elimination repeats until no target is removed (the order of removals does not change the
-result for strict dominance).
+result for strict dominance). Each round first removes targets dominated by a single other
+target (one vectorised comparison); the LP for mixtures runs only when no pure domination is
+left, so the LP count is the number of survivors, not of all targets.
 """
 
 from __future__ import annotations
@@ -22,7 +24,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import linprog
 
-from stopwise.models.contest.game import ContestGame, target_payoffs_profile
+from stopwise.models.contest.game import ContestGame, payoff_matrix, target_payoffs_profile
 
 MAX_PROFILES = 5000
 
@@ -59,11 +61,24 @@ def dominating_margin(payoffs: np.ndarray, target: int, others: list[int]) -> tu
     return max(eps, best_pure), best_pure >= eps - 1e-12
 
 
+def purely_dominated(table: np.ndarray, surviving: list[int], margin: float) -> list[int]:
+    """Targets t in `surviving` with some other surviving s such that
+    min_c (table[s, c] - table[t, c]) > margin (strict domination by a pure target)."""
+    rows = table[surviving]
+    out = []
+    for i, t in enumerate(surviving):
+        worst_gap = np.min(rows - rows[i][None, :], axis=1)
+        worst_gap[i] = -np.inf
+        if np.max(worst_gap) > margin:
+            out.append(t)
+    return out
+
+
 def iterated_elimination(
     payoffs: np.ndarray, profiles: list[tuple[int, ...]], tol: float = 1e-10
 ) -> Elimination:
     """Iterated strict dominance on a payoff table (rows: own targets; columns: opponent
-    profiles, each a tuple of opponent targets)."""
+    profiles, each a tuple of opponent targets); pure domination first in each round."""
     scale = 1.0 + float(np.ptp(payoffs))
     surviving = list(range(payoffs.shape[0]))
     removed: list[tuple[int, int, str]] = []
@@ -73,11 +88,12 @@ def iterated_elimination(
         alive = set(surviving)
         columns = [j for j, prof in enumerate(profiles) if alive.issuperset(prof)]
         table = payoffs[:, columns]
-        dominated = []
-        for t in surviving:
-            eps, pure = dominating_margin(table, t, [s for s in surviving if s != t])
-            if eps > tol * scale:
-                dominated.append((t, round_, "pure" if pure else "mixed"))
+        dominated = [(t, round_, "pure") for t in purely_dominated(table, surviving, tol * scale)]
+        if not dominated:
+            for t in surviving:
+                eps, pure = dominating_margin(table, t, [s for s in surviving if s != t])
+                if eps > tol * scale:
+                    dominated.append((t, round_, "pure" if pure else "mixed"))
         if not dominated:
             return Elimination(removed, surviving, True)
         removed.extend(dominated)
@@ -98,6 +114,8 @@ def contest_elimination(game: ContestGame) -> Elimination:
             f"not checked: {count} opponent profiles exceed {MAX_PROFILES}",
         )
     profiles = list(itertools.combinations_with_replacement(range(n_targets), n_opp))
+    if n_opp == 1:  # two players: the columns are the payoff matrix A[t, s]
+        return iterated_elimination(np.asarray(payoff_matrix(game)), profiles)
     onehots = jax.nn.one_hot(jnp.asarray(profiles), n_targets, dtype=jnp.float64)
     columns = jax.jit(jax.vmap(lambda opp: target_payoffs_profile(game, opp)))(onehots)
     return iterated_elimination(np.asarray(columns).T, profiles)

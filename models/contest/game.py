@@ -30,6 +30,9 @@ until the M-th success, which happens with probability p^M, so replacing t by M 
 player's payoff by at most p^M * (payoff range). With M the smallest integer with
 p^M <= 1e-12, targets beyond M are payoff-equivalent to M up to 1e-12 of the payoff range:
 no target beyond the cap matters at the 1e-9 regret goal of the solvers.
+
+Every function below works on numpy arrays with numpy (a host-side solve compiles nothing)
+and on JAX arrays or tracers with jax.numpy (``array_module``).
 """
 
 from __future__ import annotations
@@ -48,6 +51,12 @@ CAP_TOLERANCE = 1e-12
 CAP_LIMIT = 1000
 
 Utility = Callable[[Any, Mapping[str, Any]], Any]
+
+
+def array_module(*arrays: Any) -> Any:
+    """numpy when every argument is a numpy array or a Python/numpy scalar, else jax.numpy."""
+    plain = (np.ndarray, np.generic, float, int, bool)
+    return np if all(isinstance(a, plain) for a in arrays) else jnp
 
 
 def default_max_target(p_survive: float, tolerance: float = CAP_TOLERANCE) -> int:
@@ -136,33 +145,43 @@ class ContestGame(NamedTuple):
 
     @property
     def q(self) -> Any:
-        return jnp.exp(self.log_q)
+        return array_module(self.log_q).exp(self.log_q)
+
+    @property
+    def payoff_range(self) -> Any:
+        """max - min of the slot payoffs u0 and u0 + du (the unit of regret shares)."""
+        xp = array_module(self.u0, self.du)
+        money = xp.concatenate([self.u0, self.u0 + self.du])
+        return xp.max(money) - xp.min(money)
 
 
 def slot_log_probs(p_survive: Any, cap: int) -> Any:
     """log P(slot | target), shape (cap+1, 2*cap+1) (module docstring)."""
-    t = jnp.arange(cap + 1, dtype=jnp.float64)
-    log_p = jnp.log(p_survive)
-    reach = jnp.where(jnp.eye(cap + 1, dtype=bool), t[:, None] * log_p, -jnp.inf)
-    k = jnp.arange(cap, dtype=jnp.float64)
-    bust_lp = k * log_p + jnp.log1p(-p_survive)
-    bust = jnp.where(k[None, :] < t[:, None], bust_lp[None, :], -jnp.inf)
-    return jnp.concatenate([reach, bust], axis=1)
+    xp = array_module(p_survive)
+    t = xp.arange(cap + 1, dtype=xp.float64)
+    log_p = xp.log(p_survive)
+    reach = xp.where(xp.eye(cap + 1, dtype=bool), t[:, None] * log_p, -xp.inf)
+    k = xp.arange(cap, dtype=xp.float64)
+    bust_lp = k * log_p + xp.log1p(-p_survive)
+    bust = xp.where(k[None, :] < t[:, None], bust_lp[None, :], -xp.inf)
+    return xp.concatenate([reach, bust], axis=1)
 
 
 def slot_scores(gain: Any, start: Any, bust_keep: Any, cap: int) -> Any:
     """Final bank of each slot: start + t*gain (reach t), bust_keep*(start + k*gain)."""
-    t = jnp.arange(cap + 1, dtype=jnp.float64)
-    k = jnp.arange(cap, dtype=jnp.float64)
-    return jnp.concatenate([start + t * gain, bust_keep * (start + k * gain)])
+    xp = array_module(gain, start, bust_keep)
+    t = xp.arange(cap + 1, dtype=xp.float64)
+    k = xp.arange(cap, dtype=xp.float64)
+    return xp.concatenate([start + t * gain, bust_keep * (start + k * gain)])
 
 
 def rank_relations(scores: Any) -> tuple[Any, Any]:
     """below[j, i] = s_j < s_i, equal[j, i] = s_j == s_i (relative tolerance 1e-9)."""
-    tol = 1e-9 * (1.0 + jnp.abs(scores[:, None]) + jnp.abs(scores[None, :]))
+    xp = array_module(scores)
+    tol = 1e-9 * (1.0 + xp.abs(scores[:, None]) + xp.abs(scores[None, :]))
     diff = scores[None, :] - scores[:, None]  # s_i - s_j at [j, i]
-    equal = (jnp.abs(diff) <= tol).astype(jnp.float64)
-    below = (diff > tol).astype(jnp.float64)
+    equal = (xp.abs(diff) <= tol).astype(xp.float64)
+    below = (diff > tol).astype(xp.float64)
     return below, equal
 
 
@@ -178,7 +197,7 @@ def make_game(
     utility: Utility = _linear,
     theta: Mapping[str, Any] | None = None,
 ) -> ContestGame:
-    """Build the contest's normal form over targets 0..cap (module docstring)."""
+    """Build the contest's normal form over targets 0..cap (module docstring), with JAX."""
     theta = {} if theta is None else theta
     p_survive = jnp.asarray(p_survive, dtype=jnp.float64)
     log_q = slot_log_probs(p_survive, cap)
@@ -203,6 +222,30 @@ def make_game(
     )
 
 
+def make_numpy_game(
+    p_survive: float,
+    n_players: int,
+    prize: float,
+    keep_bank: float,
+    cap: int,
+    gain: float = 1.0,
+    start: float = 0.0,
+    bust_keep: float = 0.0,
+    utility: Utility = _linear,
+    theta: Mapping[str, Any] | None = None,
+) -> ContestGame:
+    """The same normal form as ``make_game`` in numpy arrays (nothing compiled for linear
+    utility; other utilities are evaluated once by their JAX function)."""
+    log_q = slot_log_probs(np.float64(p_survive), cap)
+    scores = slot_scores(np.float64(gain), np.float64(start), np.float64(bust_keep), cap)
+    below, equal = rank_relations(scores)
+    own_money = float(keep_bank) * scores
+    theta = {} if theta is None else theta
+    u_lose = np.asarray(money_utility(utility, own_money, theta), dtype=np.float64)
+    u_win = np.asarray(money_utility(utility, own_money + prize, theta), dtype=np.float64)
+    return ContestGame(log_q, scores, below, equal, u_win - u_lose, u_lose, np.float64(n_players))
+
+
 def slot_distribution(game: ContestGame, sigma: Any) -> Any:
     """Distribution of a player's final slot when aiming by the mixed strategy sigma."""
     return sigma @ game.q
@@ -210,31 +253,32 @@ def slot_distribution(game: ContestGame, sigma: Any) -> Any:
 
 def win_prob_symmetric(game: ContestGame, opponent_slots: Any) -> Any:
     """W_i against N-1 opponents with slot distribution f each (module docstring)."""
+    xp = array_module(opponent_slots, game.below)
     b = opponent_slots @ game.below
     e = opponent_slots @ game.equal
     a = b + e
     n = game.n_players
     interior = b > 0
-    a_safe = jnp.where(interior, a, 1.0)
-    tie_share = jnp.where(interior, e / a_safe, 0.0)  # e/a in [0, 1)
-    below_share = jnp.maximum(jnp.where(interior, b / a_safe, 1.0), 1e-300)  # b/a = 1 - e/a
+    a_safe = xp.where(interior, a, 1.0)
+    tie_share = xp.where(interior, e / a_safe, 0.0)  # e/a in [0, 1)
+    below_share = xp.maximum(xp.where(interior, b / a_safe, 1.0), 1e-300)  # b/a = 1 - e/a
     small = tie_share < 0.5
-    z = jnp.where(  # z = log(b/a), accurate on both sides
+    z = xp.where(  # z = log(b/a), accurate on both sides
         small,
-        jnp.log1p(-jnp.where(small, tie_share, 0.0)),
-        jnp.log(jnp.where(small, 1.0, below_share)),
+        xp.log1p(-xp.where(small, tie_share, 0.0)),
+        xp.log(xp.where(small, 1.0, below_share)),
     )
-    near = jnp.abs(z) < 1e-6  # series 1 + (N-1) z/2 + (N-1)(2N-1) z^2/12 avoids 0/0
-    z_far = jnp.where(near, -1.0, z)
-    h = jnp.where(
+    near = xp.abs(z) < 1e-6  # series 1 + (N-1) z/2 + (N-1)(2N-1) z^2/12 avoids 0/0
+    z_far = xp.where(near, -1.0, z)
+    h = xp.where(
         near,
         1.0 + (n - 1.0) * z / 2.0 + (n - 1.0) * (2.0 * n - 1.0) * z * z / 12.0,
-        jnp.expm1(n * z_far) / (n * jnp.expm1(z_far)),
+        xp.expm1(n * z_far) / (n * xp.expm1(z_far)),
     )
-    general = jnp.exp((n - 1.0) * jnp.log(a_safe)) * h
+    general = xp.exp((n - 1.0) * xp.log(a_safe)) * h
     a_pos = a > 0
-    lowest = jnp.where(a_pos, jnp.exp((n - 1.0) * jnp.log(jnp.where(a_pos, a, 1.0))), 0.0) / n
-    return jnp.where(interior, general, lowest)
+    lowest = xp.where(a_pos, xp.exp((n - 1.0) * xp.log(xp.where(a_pos, a, 1.0))), 0.0) / n
+    return xp.where(interior, general, lowest)
 
 
 def win_prob_profile(game: ContestGame, opponents_slots: Any) -> Any:
@@ -257,7 +301,8 @@ def slot_payoffs(game: ContestGame, win_prob: Any) -> Any:
 
 
 def target_payoffs(game: ContestGame, sigma: Any) -> Any:
-    """Expected payoff of each target when all N-1 opponents play the mixed strategy sigma."""
+    """Expected payoff of each target when all N-1 opponents play the mixed strategy sigma:
+    U_t = sum_i q[t, i] pi_i(W(f)), f = sigma q."""
     w = win_prob_symmetric(game, slot_distribution(game, sigma))
     return game.q @ slot_payoffs(game, w)
 
@@ -270,7 +315,9 @@ def target_payoffs_profile(game: ContestGame, opponent_sigmas: Any) -> Any:
 
 def payoff_matrix(game: ContestGame) -> Any:
     """Two-player payoff matrix A[t, s] of the row player aiming t against target s
-    (ties split evenly: W = P(below) + P(level)/2); the column player's matrix is A.T."""
+    (ties split evenly: W = P(below) + P(level)/2); the column player's matrix is A.T:
+    A[t, s] = sum_i q[t, i] (w[s, i] du_i + u0_i), w[s, i] = sum_j q[s, j] (below + equal/2)[j, i].
+    """
     q = game.q
     w = q @ (game.below + 0.5 * game.equal)  # w[s, i]: win prob of slot i against target s
     return (q * game.du) @ w.T + (q @ game.u0)[:, None]
@@ -284,7 +331,8 @@ def expected_bank(game: ContestGame) -> Any:
 def target_distribution_stats(game: ContestGame, sigma: Any) -> dict[str, Any]:
     """Bust rate, expected bank and win probability of a player using sigma among
     opponents who also use sigma."""
-    reach = jnp.exp(jnp.diagonal(game.log_q))  # p^t: slot "reach t" of target t
+    xp = array_module(game.log_q, sigma)
+    reach = xp.exp(xp.diagonal(game.log_q))  # p^t: slot "reach t" of target t
     bust_rate = sigma @ (1.0 - reach)
     bank = sigma @ expected_bank(game)
     f = slot_distribution(game, sigma)
@@ -294,7 +342,7 @@ def target_distribution_stats(game: ContestGame, sigma: Any) -> dict[str, Any]:
 
 def max_regret(payoffs: Any, sigma: Any) -> Any:
     """max_t payoff_t - sigma . payoff (>= 0; 0 exactly at a best response)."""
-    return jnp.max(payoffs) - sigma @ payoffs
+    return array_module(payoffs).max(payoffs) - sigma @ payoffs
 
 
 def as_numpy_game(game: ContestGame) -> ContestGame:

@@ -1,11 +1,13 @@
 """Nash equilibria of two-player games and symmetric N-player contests.
 
-* ``constant_sum_split``: a two-player game (A, B) is *constant-sum up to own-target terms*
-  when A[t, s] + B[t, s] = alpha_t + beta_s. Subtracting alpha_t from the row player's payoff
-  and beta_s from the column player's changes no best response (each term depends on the
-  player's own choice alone), and leaves the zero-sum game A' = A - alpha 1^T. With linear
-  utility, or without ``keep_bank``, the contest is of this kind:
-  A[t, s] + A[s, t] = prize + kb*(E bank_t + E bank_s).
+* ``constant_sum_split``: a two-player game (A, B) is *constant-sum up to separable terms*
+  when A[t, s] + B[t, s] = alpha_t + beta_s (t the row player's choice, s the column
+  player's). Subtracting from each player's payoff the term that depends only on the
+  *rival's* choice changes no best response: A'[t, s] = A[t, s] - beta_s and
+  B'[t, s] = B[t, s] - alpha_t, and A' + B' = 0, so (A', -A') is a zero-sum game with the
+  same equilibria as (A, B). (Removing a player's *own*-choice term would change that
+  player's best responses.) With linear utility, or without ``keep_bank``, the contest is of
+  this kind: A[t, s] + A[s, t] = prize + kb*(E bank_t + E bank_s).
 * ``zero_sum_lp``: max v s.t. A'^T x >= v, sum x = 1, x >= 0 (and the dual for y), by
   scipy's HiGHS, then polished on the supports (``polish_on_supports``).
 * ``support_enumeration``: every equilibrium with supports of equal size (all equilibria of a
@@ -30,7 +32,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import linprog
 
-from stopwise.models.contest.game import ContestGame, target_payoffs
+from stopwise.models.contest.game import ContestGame, payoff_matrix, target_payoffs
 from stopwise.models.contest.qre import trace_symmetric
 
 REGRET_GOAL = 1e-9
@@ -54,7 +56,8 @@ def bimatrix_regret(a: np.ndarray, b: np.ndarray, x: np.ndarray, y: np.ndarray) 
 def constant_sum_split(
     a: np.ndarray, b: np.ndarray, tol: float = 1e-10
 ) -> tuple[bool, np.ndarray, np.ndarray]:
-    """Whether A + B = alpha_t + beta_s; alpha_t = mean_s S - mean S / 2, beta likewise."""
+    """Whether S = A + B = alpha_t + beta_s (module docstring), with
+    alpha_t = mean_s S[t, s] - mean S / 2 and beta_s = mean_t S[t, s] - mean S / 2."""
     s = a + b
     alpha = s.mean(axis=1) - s.mean() / 2.0
     beta = s.mean(axis=0) - s.mean() / 2.0
@@ -234,16 +237,17 @@ def lemke_howson(
 
 
 def bimatrix_nash(a: np.ndarray, b: np.ndarray) -> BimatrixEquilibrium:
-    """One Nash equilibrium: by LP if constant-sum up to own-choice terms, else by
-    Lemke-Howson (each label until the regret goal is met); polished on the supports."""
+    """One Nash equilibrium: by LP if constant-sum up to separable terms (the zero-sum game
+    A'[t, s] = A[t, s] - beta_s, module docstring), else by Lemke-Howson (each label until the
+    regret goal is met); polished on the supports. The regret is measured on (A, B)."""
     a, b = np.asarray(a, float), np.asarray(b, float)
-    constant, alpha, _ = constant_sum_split(a, b)
+    constant, _, beta = constant_sum_split(a, b)
     if constant:
-        x, y, _ = zero_sum_lp(a - alpha[:, None])
+        x, y, _ = zero_sum_lp(a - beta[None, :])
         x, y = polish_on_supports(a, b, x, y)
         note = (
-            "the game is constant-sum after removing payoff terms that depend on a "
-            "player's own target alone; solved as the zero-sum game A - alpha by LP"
+            "the game is constant-sum after removing from each player's payoff the term that "
+            "depends on the rival's target alone; solved as that zero-sum game by LP"
         )
         return BimatrixEquilibrium(x, y, bimatrix_regret(a, b, x, y), "zero-sum LP", [note])
     best: tuple[float, np.ndarray, np.ndarray] | None = None
@@ -373,8 +377,6 @@ def contest_nash(game: ContestGame) -> tuple[np.ndarray, float, str, list[str]]:
     game is constant-sum up to own-target terms: the zero-sum LP; otherwise
     ``symmetric_nash``."""
     if round(float(game.n_players)) == 2:
-        from stopwise.models.contest.game import payoff_matrix
-
         a = np.asarray(payoff_matrix(game))
         if constant_sum_split(a, a.T)[0]:
             eq = bimatrix_nash(a, a.T)

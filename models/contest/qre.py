@@ -97,6 +97,16 @@ def bimatrix_residual(x: Any, params: tuple[Any, Any, Any]) -> Any:
 # ----------------------------------------------------------------------------- QRE at one precision
 
 
+def precision_schedule(precision: Any, scale: Any, steps: int) -> Any:
+    """Continuation precisions lambda_k = lambda * exp(-L (1 - k/steps)), k = 1..steps,
+    L = log(1 + lambda * scale) + 1: geometric in lambda (equal steps in log lambda) from
+    about 1/scale, where play is still near uniform, up to lambda itself; ``scale`` is the
+    game's payoff range."""
+    span = jnp.log1p(precision * scale) + 1.0
+    k = jnp.arange(1, steps + 1, dtype=jnp.float64)
+    return precision * jnp.exp(-span * (1.0 - k / steps))
+
+
 def _continuation(
     residual: Residual,
     x0: Any,
@@ -105,16 +115,18 @@ def _continuation(
     steps: int,
     newton_per_step: int,
     polish: int,
+    scale: Any = 1.0,
 ) -> Any:
-    """Follow the branch from lambda = 0 in `steps` equal steps of lambda (Newton at each),
-    then polish at the target precision through ``solve_root`` (which carries gradients)."""
+    """Follow the branch from lambda ~ 0 along ``precision_schedule`` (Newton in log space at
+    each), then polish at the target precision through ``solve_root`` (which carries
+    gradients)."""
     frozen = jax.lax.stop_gradient((precision, *rest))
+    schedule = precision_schedule(frozen[0], jax.lax.stop_gradient(scale), steps)
 
-    def advance(x: Any, k: Any) -> tuple[Any, None]:
-        lam = frozen[0] * (k + 1.0) / steps
+    def advance(x: Any, lam: Any) -> tuple[Any, None]:
         return _newton(residual, x, (lam, *frozen[1:]), newton_per_step), None
 
-    x_start, _ = jax.lax.scan(advance, x0, jnp.arange(steps, dtype=jnp.float64))
+    x_start, _ = jax.lax.scan(advance, x0, schedule)
     return solve_root(residual, jax.lax.stop_gradient(x_start), (precision, *rest), polish)
 
 
@@ -124,7 +136,16 @@ def qre_symmetric(
     """Symmetric logit QRE sigma (all N players) on the principal branch at `precision`."""
     n = game.n_targets
     x0 = jnp.full(n, -jnp.log(n))
-    x = _continuation(symmetric_residual, x0, precision, (game,), steps, newton_per_step, polish)
+    x = _continuation(
+        symmetric_residual,
+        x0,
+        precision,
+        (game,),
+        steps,
+        newton_per_step,
+        polish,
+        game.payoff_range,
+    )
     return jnp.exp(x)
 
 
@@ -134,7 +155,10 @@ def qre_bimatrix(
     """Two-player logit QRE (sigma1, sigma2) on the principal branch at `precision`."""
     m, n = a.shape
     x0 = jnp.concatenate([jnp.full(m, -jnp.log(m)), jnp.full(n, -jnp.log(n))])
-    x = _continuation(bimatrix_residual, x0, precision, (a, b), steps, newton_per_step, polish)
+    scale = jnp.maximum(jnp.max(a), jnp.max(b)) - jnp.minimum(jnp.min(a), jnp.min(b))
+    x = _continuation(
+        bimatrix_residual, x0, precision, (a, b), steps, newton_per_step, polish, scale
+    )
     return jnp.exp(x[:m]), jnp.exp(x[m:])
 
 
@@ -171,11 +195,14 @@ def trace_principal_branch(
     first_step: float = 0.03,
     max_accel: float = 1.5,
     max_points: int = 5000,
+    stop_at_precision: bool = False,
 ) -> Branch:
     """Predictor-corrector path following of residual(x, lambda, params) = 0 from (x0, 0)
     upward (Turocy 2005). regret(x, params) is the maximum regret as a share of the payoff
     range; stop once it is <= tolerance. `residual` and `regret` must be module-level
-    functions (they are static arguments of the compiled step)."""
+    functions (they are static arguments of the compiled step). With ``stop_at_precision``
+    the regret test is skipped and tracing stops at the first point with lambda >=
+    max_precision (reported as converged)."""
     n = x0.shape[0]
     y = jnp.concatenate([jnp.asarray(x0, dtype=jnp.float64), jnp.zeros(1)])
     tangent = _initial_tangent(residual, params, y)
@@ -193,10 +220,10 @@ def trace_principal_branch(
         y, tangent = new_y, new_tangent
         current = float(current)
         points.append(BranchPoint(float(y[n]), np.asarray(y[:n]), current))
-        if current <= tolerance:
+        if not stop_at_precision and current <= tolerance:
             return Branch(points, True, f"max regret {current:.3g} <= {tolerance:g}")
         if float(y[n]) >= max_precision:
-            return Branch(points, False, f"precision reached {max_precision:g}")
+            return Branch(points, stop_at_precision, f"precision reached {max_precision:g}")
         if int(iterations) <= 3:  # quadratic convergence from a good predictor: lengthen
             step *= max_accel
     return Branch(points, False, f"stopped after {max_points} points")
@@ -321,6 +348,73 @@ def trace_symmetric(game: ContestGame, tolerance: float = 1e-6, **options: Any) 
     return trace_principal_branch(
         _symmetric_branch_residual, _symmetric_branch_regret, game, x0, tolerance, **options
     )
+
+
+# ----------------------------------------------------------------------------- certified QRE
+
+
+@dataclass(frozen=True)
+class CertifiedQre:
+    """A symmetric logit QRE with its fixed-point residual max |x - log_softmax(lambda U)|
+    (log-probability units) and the number of branch points traced."""
+
+    sigma: np.ndarray
+    residual: float
+    points: int
+    message: str
+
+
+@jax.jit
+def _polish_symmetric(x: Any, precision: Any, game: ContestGame) -> tuple[Any, Any]:
+    """40 Newton steps on F(x) = x - log_softmax(lambda U(exp x)) at fixed lambda, and the
+    final residual max-norm."""
+    x = _newton(symmetric_residual, x, (precision, game), 40)
+    return x, jnp.max(jnp.abs(symmetric_residual(x, (precision, game))))
+
+
+def fixed_point_residual(log_sigma: Any, precision: Any, game: ContestGame) -> Any:
+    """max_t |x_t - log_softmax(lambda U(exp x))_t|, x = log sigma: 0 exactly at a QRE."""
+    return jnp.max(jnp.abs(symmetric_residual(log_sigma, (precision, game))))
+
+
+@jax.jit
+def _scheduled_qre(precision: Any, game: ContestGame) -> tuple[Any, Any]:
+    """``qre_symmetric``'s fixed schedule (24 geometric steps, 3 Newton steps each, 6 polishing
+    steps) in log space, and the residual max-norm at `precision`."""
+    n = game.n_targets
+    x0 = jnp.full(n, -jnp.log(n))
+    x = _continuation(symmetric_residual, x0, precision, (game,), 24, 3, 6, game.payoff_range)
+    return x, jnp.max(jnp.abs(symmetric_residual(x, (precision, game))))
+
+
+def qre_symmetric_certified(
+    precision: float, game: ContestGame, tolerance: float = 1e-8
+) -> CertifiedQre:
+    """Symmetric logit QRE at `precision` on the principal branch, with its residual.
+
+    First the fixed geometric schedule of ``qre_symmetric`` (Newton in log space); if its
+    residual exceeds `tolerance` (the branch turns fast or folds in lambda), the branch is
+    traced
+    in (log sigma, lambda) by pseudo-arclength from lambda = 0 to the first point with
+    lambda >= precision, interpolated linearly to lambda = precision between the last two
+    points and polished by Newton at fixed lambda."""
+    x, residual = _scheduled_qre(jnp.float64(precision), game)
+    x = np.asarray(x)
+    if np.all(np.isfinite(x)) and float(residual) <= tolerance:
+        return CertifiedQre(np.exp(x), float(residual), 24, "geometric continuation in lambda")
+    branch = trace_symmetric(game, max_precision=float(precision), stop_at_precision=True)
+    points = branch.points
+    last = points[-1]
+    if len(points) >= 2 and last.precision > precision:
+        before = points[-2]
+        w = (precision - before.precision) / (last.precision - before.precision)
+        x0 = (1.0 - w) * before.log_probs + w * last.log_probs
+    else:
+        x0 = last.log_probs
+    x, residual = _polish_symmetric(jnp.asarray(x0), jnp.float64(precision), game)
+    x = np.asarray(x)
+    residual = float(residual) if np.all(np.isfinite(x)) else float("inf")
+    return CertifiedQre(np.exp(x), residual, len(points), f"branch tracing: {branch.message}")
 
 
 # ----------------------------------------------------------------------------- estimation

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from typing import Any
 
 from stopwise._io import write_json
 from stopwise.commands import _args
+from stopwise.data_schemas.errors import StopwiseInputError
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
@@ -17,7 +19,10 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "prize (ties broken at random), with --keep-bank everyone also keeps their bank. "
         "Prints the symmetric distribution of targets (numbers of draws aimed for) under "
         "Nash, logit QRE, level-k or cognitive hierarchy, with expected bank, bust rate, win "
-        "probability, efficiency loss, the maximum regret and strictly dominated targets.",
+        "probability, efficiency loss (1 - expected bank / the best solo risk-neutral expected "
+        "bank), strictly dominated targets and the answer's check (Nash: max regret; QRE: "
+        "fixed-point residual; level-k, CH: exact by construction). An answer that fails its "
+        "check is refused with exit code 1 unless --allow-approximate.",
     )
     parser.add_argument(
         "--p-survive",
@@ -27,7 +32,11 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="probability that one draw succeeds, in (0, 1)",
     )
     parser.add_argument(
-        "--players", type=int, required=True, metavar="N", help="number of players (>= 2)"
+        "--players",
+        type=int,
+        required=True,
+        metavar="N",
+        help="number of players, 2..20 (the limit of the symmetric solver)",
     )
     parser.add_argument(
         "--prize", type=float, required=True, metavar="X", help="prize paid to the top final bank"
@@ -53,14 +62,15 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         type=float,
         default=None,
         metavar="L",
-        help="logit precision (qre, levelk, ch, aqre)",
+        help="logit precision (qre, levelk, ch, aqre; refused with nash, which has none); "
+        "precision x payoff range is limited to 1e8, beyond which logit play is Nash play",
     )
     parser.add_argument(
         "--tau",
         type=float,
         default=None,
         metavar="T",
-        help="mean thinking steps of cognitive hierarchy (ch)",
+        help="mean thinking steps of cognitive hierarchy (ch only), in (0, 10]",
     )
     parser.add_argument(
         "--level", type=int, default=None, metavar="K", help="depth of level-k reasoning (levelk)"
@@ -74,8 +84,32 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     )
     _args.add_max_target(
         parser,
-        "largest target considered (default: smallest M with "
-        "p^M <= 1e-12, beyond which no target matters)",
+        "largest target considered (default: smallest M with p^M <= 1e-12). For nash the "
+        "default is exact: no target beyond it changes the equilibrium by more than 1e-12 of "
+        "the payoff range. For qre, aqre, levelk and ch the cap is part of the model: logit "
+        "play puts mass on every target up to it, so the answer changes with it",
+    )
+    parser.add_argument(
+        "--tolerance",
+        type=float,
+        default=1e-6,
+        metavar="TOL",
+        help="certificate tolerance: max regret as a share of the payoff range (nash), "
+        "fixed-point residual (qre, aqre) (default 1e-6)",
+    )
+    parser.add_argument(
+        "--allow-approximate",
+        action="store_true",
+        help="print an answer that fails its certificate, marked NOT CERTIFIED, instead of "
+        "exiting with code 1",
+    )
+    parser.add_argument(
+        "--min-prob",
+        type=float,
+        default=1e-4,
+        metavar="Q",
+        help="hide targets with probability below Q in the printed table (default 1e-4; "
+        "the table says how many it hid; --json keeps them all)",
     )
     _args.add_json_file(parser)
     parser.set_defaults(func=run)
@@ -83,9 +117,27 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
 
 
 def run(args: argparse.Namespace) -> int:
-    from stopwise.contest import equilibrium, format_equilibrium
+    from stopwise.contest_report import format_equilibrium
+    from stopwise.contest_solve import UncertifiedAnswer, equilibrium
 
-    result = equilibrium(
+    if not (0 < args.tolerance < 1):
+        raise StopwiseInputError(f"--tolerance must lie in (0, 1), got {args.tolerance}")
+    try:
+        result = _solve(args, equilibrium)
+    except UncertifiedAnswer as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    if args.json == "-":
+        write_json("-", result)
+        return 0
+    print(format_equilibrium(result, min_prob=args.min_prob))
+    if args.json:
+        write_json(args.json, result)
+    return 0
+
+
+def _solve(args: argparse.Namespace, equilibrium: Any) -> dict[str, Any]:
+    return equilibrium(
         p_survive=args.p_survive,
         players=args.players,
         prize=args.prize,
@@ -97,11 +149,6 @@ def run(args: argparse.Namespace) -> int:
         level=args.level,
         r=args.r,
         max_target=args.max_target,
+        tolerance=args.tolerance,
+        allow_approximate=args.allow_approximate,
     )
-    if args.json == "-":
-        write_json("-", result)
-        return 0
-    print(format_equilibrium(result))
-    if args.json:
-        write_json(args.json, result)
-    return 0
