@@ -127,7 +127,17 @@ class Fit:
             "optimizer": {k: v for k, v in self.optimizer.items() if k != "runs"},
             "notes": list(self.notes),
             **self._type_probabilities(),
+            **self.extras.get("record", {}),  # spec, options, data fingerprint (stopwise.saved)
+            **self._coefficients(),
         }
+
+    def _coefficients(self) -> dict[str, Any]:
+        """{"coefficients": {"z", "covariance"}}: the optimum on the unconstrained scale and
+        its covariance matrix (null entries where not estimated); {} without them."""
+        if self.z is None:
+            return {}
+        cov = None if self.cov_z is None else np.asarray(self.cov_z, dtype=float).tolist()
+        return {"coefficients": {"z": np.asarray(self.z, dtype=float).tolist(), "covariance": cov}}
 
     def _type_probabilities(self) -> dict[str, Any]:
         """A mixture's per-subject type probabilities: {"type_probabilities": [{"subject":

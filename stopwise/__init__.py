@@ -38,6 +38,8 @@ _EXPORTS: dict[str, str] = {
     "recover": "stopwise.api:recover",
     # demo
     "demo_data": "stopwise.demo:demo_data",
+    # saved results
+    "load_result": "stopwise.saved:load_result",
 }
 
 __all__ = [*sorted(_EXPORTS), "__version__", "contest"]

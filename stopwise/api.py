@@ -18,6 +18,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.fit_record import fit_record
 from stopwise.models.base import Model
 
 METHODS = ("mle", "bayes")
@@ -181,11 +182,11 @@ def fit(
     bundle, frame, notes = select_data(the_model, bundle, frame)
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
-    return _attach(
-        _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw),
-        notes,
-        warned,
-    )
+    record = fit_record(the_model, bundle, formulas, kw.get("fixed"))
+    result = _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw)
+    if isinstance(getattr(result, "extras", None), dict):
+        result.extras["record"] = record  # Fit.to_dict writes it; stopwise.load_result reads it
+    return _attach(result, notes, warned)
 
 
 def _fit_selected(
@@ -298,7 +299,7 @@ def compare(
     from stopwise.estimation.compare import compare_fits
 
     formulas = kw.pop("formulas", None)
-    return compare_fits(
+    result = compare_fits(
         resolved,
         bundle,
         seed=seed,
@@ -306,6 +307,9 @@ def compare(
         covariate_frame=frame if formulas else None,
         **kw,
     )
+    for model_fit, the_model in zip(result.fits, resolved):
+        model_fit.extras["record"] = fit_record(the_model, bundle, formulas)
+    return result
 
 
 def recover(
