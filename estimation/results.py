@@ -22,6 +22,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import tables
 from stopwise.estimation.covariance import RowTable
 
 DISCLAIMER = (
@@ -156,6 +157,15 @@ class Fit:
         from stopwise._io import dumps_json
 
         return dumps_json(self.to_dict())
+
+    def to_latex(self, interval: str = "se") -> str:
+        """This fit as a booktabs table (estimation/tables.py; several fits side by side:
+        tables.to_latex([fit1, fit2]))."""
+        return tables.to_latex([self], interval)
+
+    def to_markdown(self, interval: str = "se") -> str:
+        """This fit as a Markdown pipe table (estimation/tables.py)."""
+        return tables.to_markdown([self], interval)
 
     def predict(
         self, data: Any = None, *, covariates: pd.DataFrame | None = None

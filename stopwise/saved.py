@@ -26,6 +26,7 @@ import pandas as pd
 from stopwise.api import prepare_model, resolve_data, select_data
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import tables
 from stopwise.estimation.mle import stop_step_table
 from stopwise.fit_record import bundle_fingerprint
 from stopwise.models.base import Model
@@ -176,6 +177,12 @@ class SavedFit:
 
     def to_dict(self) -> dict[str, Any]:
         return dict(self.record)
+
+    def to_latex(self, interval: str = "se") -> str:
+        return tables.to_latex([self], interval)
+
+    def to_markdown(self, interval: str = "se") -> str:
+        return tables.to_markdown([self], interval)
 
 
 @dataclass
