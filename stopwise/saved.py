@@ -217,9 +217,10 @@ def result_from_record(record: Any, source: str = "<dict>") -> SavedFit | SavedC
     """A SavedFit (one fit) or SavedCollection (comparison, per-subject fits)."""
     if not isinstance(record, dict):
         raise StopwiseInputError(f"{source}: expected a JSON object, got {type(record).__name__}")
-    if "fits" in record and isinstance(record["fits"], list):
+    if isinstance(record.get("fits"), list) or isinstance(record.get("models"), list):
         fits = [
-            result_from_record(item, f"{source} fits[{i}]") for i, item in enumerate(record["fits"])
+            result_from_record(item, f"{source} fits[{i}]")
+            for i, item in enumerate(record.get("fits") or [])
         ]
         return SavedCollection(record, [f for f in fits if isinstance(f, SavedFit)], source)
     missing = [k for k in REQUIRED_KEYS if k not in record]

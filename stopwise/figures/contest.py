@@ -8,6 +8,8 @@ trials only and says so; the predicted distribution is the model's P(target = t)
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
@@ -21,20 +23,36 @@ SCHEME_MEASURES = (
 )
 
 
-def observed_contest_stops(frame: pd.DataFrame) -> pd.Series:
-    """Share of the stopped contest trials that stopped at each step."""
-    rows = frame[frame["task"].astype(str) == "contest"] if "task" in frame else frame.iloc[0:0]
+CONTEST_CONDITION = ["p_survive", "n_players", "prize", "keep_bank"]
+
+
+def contest_conditions(frame: pd.DataFrame) -> pd.DataFrame:
+    """One row per contest trial: its condition (p_survive, n_players, prize, keep_bank),
+    last step and whether it ended by a stop."""
+    if "task" not in frame:
+        return pd.DataFrame(columns=[*CONTEST_CONDITION, "step", "stopped"])
+    rows = frame[frame["task"].astype(str) == "contest"]
     last = rows.groupby(["subject", "trial"], sort=False).tail(1)
-    stops = last.loc[last["action"].astype(str) == "stop", "step"].astype(int)
+    out = last[CONTEST_CONDITION].copy()
+    out["keep_bank"] = out["keep_bank"].fillna(0).astype(bool)
+    out["step"] = last["step"].astype(int)
+    out["stopped"] = last["action"].astype(str) == "stop"
+    return out.reset_index(drop=True)
+
+
+def observed_contest_stops(trials: pd.DataFrame) -> pd.Series:
+    """Share of the stopped trials among ``trials`` (contest_conditions rows) stopping at
+    each step."""
+    stops = trials.loc[trials["stopped"], "step"]
     return stops.value_counts(normalize=True).sort_index()
 
 
 def target_distribution_figure(
-    plot_frame: pd.DataFrame, observed: pd.Series | None = None
+    plot_frame: pd.DataFrame, observed: Mapping[str, pd.Series] | None = None
 ) -> Figure:
     """One panel per scheme: each prediction's P(target = t) as lines (``plot_frame``:
-    Counterfactual.plot_frame, columns scheme, prediction, target, prob) and, if given, the
-    observed stop steps of stopped contest trials as bars."""
+    Counterfactual.plot_frame, columns scheme, prediction, target, prob) and, where
+    ``observed`` has the scheme, the stop steps of its stopped contest trials as bars."""
     schemes = list(dict.fromkeys(plot_frame["scheme"]))
     fig = new_figure(4.2 * len(schemes), 3.6)
     axes = fig.subplots(1, len(schemes), squeeze=False, sharey=True)[0]
