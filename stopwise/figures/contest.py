@@ -56,17 +56,18 @@ def target_distribution_figure(
     schemes = list(dict.fromkeys(plot_frame["scheme"]))
     fig = new_figure(4.2 * len(schemes), 3.6)
     axes = fig.subplots(1, len(schemes), squeeze=False, sharey=True)[0]
-    carried = plot_frame[plot_frame["prob"] > 1e-4]["target"]
+    carried = plot_frame[plot_frame["prob"] > 1e-3]["target"]
     last = int(carried.max()) + 2 if len(carried) else 10
     for ax, scheme in zip(axes, schemes):
         here = plot_frame[plot_frame["scheme"] == scheme]
-        if observed is not None and len(observed):
+        seen = (observed or {}).get(scheme)
+        if seen is not None and len(seen):
             ax.bar(
-                observed.index,
-                observed.to_numpy(),
+                seen.index,
+                seen.to_numpy(),
                 color=OBSERVED,
                 alpha=0.3,
-                label="observed stops",
+                label="observed stops (stopped trials)",
             )
         for i, (label, part) in enumerate(here.groupby("prediction", sort=False)):
             part = part[part["target"] <= last]

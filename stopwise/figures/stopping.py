@@ -13,6 +13,7 @@ from collections.abc import Mapping
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 from scipy.stats import beta
 
 from stopwise.figures.palette import BENCHMARK, OBSERVED, model_colour, new_figure
@@ -95,6 +96,16 @@ def risk_neutral_draw(steps: np.ndarray, threshold: float) -> np.ndarray:
     return np.where(tie, 0.5, (steps < threshold).astype(float))
 
 
+def condition_prediction(table: pd.DataFrame, condition: tuple[float, float]) -> pd.DataFrame:
+    """A model's stop-step rows of one (p_survive, gain) condition, one row per step: the
+    prediction table has one block per condition of the data (contest conditions too, whose
+    solo prediction is the same), so the first block of the condition is kept."""
+    here = table[(table["p_survive"] == condition[0]) & (table["gain"] == condition[1])]
+    if "cond" in here and here["cond"].nunique() > 1:
+        here = here[here["cond"] == here["cond"].iloc[0]]
+    return here
+
+
 def _panels(conditions: list[tuple[float, float]]) -> tuple[Figure, list]:
     shown = conditions[:MAX_PANELS]
     cols = min(3, len(shown))
@@ -103,6 +114,8 @@ def _panels(conditions: list[tuple[float, float]]) -> tuple[Figure, list]:
     axes = fig.subplots(nrows, cols, squeeze=False, sharey=True).ravel()
     for ax in axes[len(shown) :]:
         ax.set_visible(False)
+    for ax in axes:
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))  # steps are whole numbers
     return fig, list(axes[: len(shown)])
 
 
@@ -149,22 +162,23 @@ def stopping_curves_figure(
         )
         if threshold > last:
             ax.annotate(
-                f"risk-neutral: stop from step {threshold:.3g}",
-                (0.98, 0.9),
+                f"risk-neutral rule: draw up to step {threshold:.3g}",
+                (0.02, 0.03),
                 xycoords="axes fraction",
-                ha="right",
+                ha="left",
                 fontsize=8,
                 color=BENCHMARK,
             )
         for i, (label, table) in enumerate((predictions or {}).items()):
-            pred = table[(table["p_survive"] == condition[0]) & (table["gain"] == condition[1])]
+            pred = condition_prediction(table, condition)
             pred = pred[pred["step"] <= last]
             ax.plot(pred["step"], pred["p_draw"], color=model_colour(i), lw=2, label=label)
         ax.set_title(_condition_title(condition), fontsize=10)
         ax.set_xlabel("step (successful draws so far)")
         ax.set_ylim(-0.03, 1.03)
     axes[0].set_ylabel("P(draw again)")
-    axes[0].legend(fontsize=8, loc="lower left")
+    handles, labels = axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="outside lower center", ncol=len(labels), fontsize=8)
     fig.suptitle("Stopping curves: observed against the models")
     return fig
 
@@ -191,7 +205,7 @@ def stop_distribution_figure(
             label=f"observed (bust rate {here['busted'].mean():.2f})",
         )
         for i, (label, table) in enumerate((predictions or {}).items()):
-            pred = table[(table["p_survive"] == condition[0]) & (table["gain"] == condition[1])]
+            pred = condition_prediction(table, condition)
             bust = float(pred["p_bust_here"].sum())
             pred = pred[pred["step"] <= last]
             ax.plot(

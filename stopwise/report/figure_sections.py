@@ -25,6 +25,16 @@ from stopwise.report.blocks import Block, Inputs, Section, figure_block
 from stopwise.saved import SavedCollection, SavedFit
 
 MAX_CONTEST_SCHEMES = 4
+SCHEME_COLUMNS = (
+    "scheme",
+    "prediction",
+    "mean_target",
+    "bust_rate",
+    "expected_bank",
+    "efficiency_loss",
+    "win_prob",
+    "prize_outlay",
+)
 
 
 def model_kind(fit: SavedFit) -> str:
@@ -189,7 +199,7 @@ def contest_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -
                 f"contest_schemes_{len(blocks)}",
                 "Expected bank, bust rate and efficiency loss per condition and prediction.",
             ),
-            Block("table", table=result.table),
+            Block("table", table=result.table[[c for c in SCHEME_COLUMNS if c in result.table]]),
         ]
     return Section("Contests", blocks) if blocks else None
 
