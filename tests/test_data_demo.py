@@ -15,6 +15,8 @@ DEMO_OUTPUTS = sorted(
         "stopping.csv",
         "lottery.csv",
         "compare_solo.csv",
+        "compare_solo.json",
+        "report.html",
         "fit_solo.json",
         "fit_lottery.json",
         "fit_hier.json",
@@ -62,8 +64,13 @@ def test_odd_number_of_subjects_forms_one_group_of_three() -> None:
 def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out), "--subjects", "12"]) == 0
-    printed = capsys.readouterr().out
+    captured = capsys.readouterr()
+    printed = captured.out
     assert sorted(p.name for p in out.iterdir()) == DEMO_OUTPUTS
+    assert printed.rstrip().endswith(f"Report: {(out / 'report.html').resolve()}")
+    assert "FutureWarning" not in captured.err  # library chatter is not ours to show
+    page = (out / "report.html").read_text()
+    assert "<h2>Stopping behaviour</h2>" in page and "<h2>Contests</h2>" in page
     assert "OK (decision-level stopping data" in printed
     assert "Stopping data by condition" in printed and "Lottery choices by item" in printed
     assert "Model comparison" in printed and "Counterfactual bonus schemes" in printed

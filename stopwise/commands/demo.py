@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -37,5 +38,9 @@ def run(args: argparse.Namespace) -> int:
 
     if args.subjects < 4:
         raise StopwiseInputError(f"--subjects must be at least 4, got {args.subjects}")
-    run_demo(Path(args.out), n_subjects=args.subjects)
+    with warnings.catch_warnings():
+        # other libraries' deprecation banners are not the demo's business; ours still show
+        for category in (FutureWarning, DeprecationWarning):
+            warnings.filterwarnings("ignore", category=category, module=r"^(?!stopwise)")
+        run_demo(Path(args.out), n_subjects=args.subjects)
     return 0
