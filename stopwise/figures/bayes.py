@@ -29,6 +29,9 @@ def posterior_figure(idata: Any, var_names: Sequence[str]) -> Figure:
             point_estimate="mean",
             textsize=8,
         )
+        axes[i, 0].set_xlabel("rank (all chains)", fontsize=8)
+        axes[i, 0].set_ylabel("chain", fontsize=8)
+        axes[i, 0].tick_params(labelsize=8)
         axes[i, 0].set_title(f"{name}: rank plot by chain", fontsize=9)
         axes[i, 1].set_title(f"{name}: posterior (95% HDI)", fontsize=9)
     fig.suptitle("Bayesian fit: chain ranks and posterior densities")

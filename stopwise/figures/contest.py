@@ -13,6 +13,7 @@ from collections.abc import Mapping
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from stopwise.figures.palette import OBSERVED, model_colour, new_figure
 
@@ -74,6 +75,7 @@ def target_distribution_figure(
             ax.plot(part["target"], part["prob"], "o-", ms=3, color=model_colour(i), label=label)
         ax.set_title(str(scheme), fontsize=10)
         ax.set_xlabel("target (draws aimed for)")
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     axes[0].set_ylabel("probability")
     axes[0].legend(fontsize=8)
     fig.suptitle("Contest play: target distributions")

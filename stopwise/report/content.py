@@ -35,6 +35,16 @@ class ReportContent:
     disclaimer: str = DISCLAIMER
 
 
+def result_label(item: Any, index: int) -> str:
+    """How the report names a result object: its model, or the models it compares."""
+    fits = getattr(item, "fits", None)
+    if isinstance(fits, list) and fits:
+        return "the comparison of " + ", ".join(str(f.model) for f in fits)
+    model = getattr(item, "model", None)
+    name = getattr(model, "name", model)
+    return f"the fit of {name}" if name else f"result {index + 1}"
+
+
 def read_inputs(data: Any, results: Sequence[Any]) -> Inputs:
     """Load the data file or frame and every result (paths are loaded with load_result)."""
     files: list[str] = []
@@ -49,8 +59,7 @@ def read_inputs(data: Any, results: Sequence[Any]) -> Inputs:
             files.append(os.fspath(item))
             loaded.append((Path(item).name, load_result(item), None))
         else:
-            label = f"result {i + 1} ({getattr(item, 'model', type(item).__name__)})"
-            label = str(getattr(getattr(item, "model", None), "name", label))
+            label = result_label(item, i)
             loaded.append((label, result_from_record(item.to_dict(), label), item))
     return Inputs(dataset, loaded, files)
 
