@@ -2,7 +2,8 @@
 would do.
 
 Pairs of keepers harvest the same kind of hive; the bigger harvest wins a ribbon worth 8
-jars (ties split at random). We simulate logit-QRE play (crra+qre), fit QRE and level-k,
+jars (ties split at random). In every other round keepers also keep their own jars: with
+the ribbon alone, a CRRA r is barely identified (only the ranking pays), with both it is. We simulate logit-QRE play (crra+qre), fit QRE and level-k,
 compare them, and predict play under three schemes against Nash play.
 
 Run: python examples/03_contest.py   (under a minute; --small: quicker)
@@ -21,7 +22,7 @@ from stopwise.figures.palette import save_figure
 
 CAP = 20  # targets above 20 frames carry no weight at these chances (the fits check it)
 args = arguments(__doc__.splitlines()[0])
-keepers, rounds = (12, 8) if args.small else (30, 16)
+keepers, rounds = (8, 6) if args.small else (20, 12)
 design = pd.DataFrame(
     {
         "subject": np.repeat([f"k{i + 1:02d}" for i in range(keepers)], rounds),
@@ -30,7 +31,7 @@ design = pd.DataFrame(
         "gain": 1.0,
         "n_players": 2,
         "prize": 8.0,
-        "keep_bank": 0,
+        "keep_bank": np.tile(np.arange(rounds) % 2, keepers),
     }
 )
 truth = stopwise.model("crra+qre", max_target=CAP)

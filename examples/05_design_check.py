@@ -15,7 +15,7 @@ from _setup import arguments
 import stopwise
 
 args = arguments(__doc__.splitlines()[0])
-reps, keepers, rounds = (4, 8, 8) if args.small else (20, 30, 20)
+reps, keepers, rounds = (2, 6, 8) if args.small else (20, 30, 20)
 check = stopwise.recover(
     "crra+myopic+logit",
     {"r": 0.4, "precision": 3.0},
