@@ -14,11 +14,10 @@ from stopwise.report.content import ReportContent
 
 def table_markdown(frame: pd.DataFrame) -> str:
     """A pipe table; cells with '|' escaped, floats to 4 significant digits."""
-    shown = (
-        frame.reset_index()
-        if frame.index.name or not isinstance(frame.index, pd.RangeIndex)
-        else frame
-    )
+    numbered = isinstance(frame.index, pd.RangeIndex) and frame.index.name is None
+    shown = frame if numbered else frame.reset_index()
+    if not numbered and frame.index.name is None:
+        shown = shown.rename(columns={"index": ""})  # row labels need no heading
 
     def cell(value: object) -> str:
         if isinstance(value, float):
