@@ -116,3 +116,33 @@ def test_unknown_table_ending_is_refused_before_fitting(small_demo, tmp_path, ca
     assert code == 2
     assert ".tex, .md, .csv" in capsys.readouterr().err
     assert not out.exists()
+
+
+def test_compare_command_puts_the_models_side_by_side(small_demo, tmp_path):
+    data = tmp_path / "dives.csv"
+    small_demo["stopping"].to_csv(data, index=False)
+    out_json, out_tex = tmp_path / "cmp.json", tmp_path / "cmp.tex"
+    argv = [
+        "compare",
+        str(data),
+        "--model",
+        "crra+myopic+logit",
+        "--model",
+        "crra+target+logit",
+        "--cv-folds",
+        "0",
+        "--json",
+        str(out_json),
+        "--table",
+        str(out_tex),
+        "--table-interval",
+        "ci",
+    ]
+    assert cli.main(argv) == 0
+    fits = json.loads(out_json.read_text())["fits"]
+    header = next(ln for ln in out_tex.read_text().splitlines() if ln.startswith(" & ("))
+    assert header == r" & (1) crra+myopic+logit & (2) crra+target+logit \\"
+    for column, fit in enumerate(fits):
+        r = next(p for p in fit["params"] if p["name"] == "r")
+        row = next(ln for ln in out_tex.read_text().splitlines() if ln.startswith("r & "))
+        assert row.split(" & ")[column + 1].rstrip(" \\") == tables.number(r["estimate"])
