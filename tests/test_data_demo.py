@@ -83,3 +83,16 @@ def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     assert hier["method"] == "bayes" and hier["hierarchical"] is True
     assert hier["n_subjects"] == 12
     assert {"max_rhat", "min_ess_bulk", "divergences"} <= set(hier["diagnostics"])
+
+
+def test_demo_hides_library_deprecation_banners_but_not_ours() -> None:
+    import warnings
+
+    from stopwise.commands.demo import quiet_library_warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        with quiet_library_warnings():
+            for module in ("somelib.core", "stopwise.models.spec"):
+                warnings.warn_explicit("banner", FutureWarning, f"{module}.py", 1, module=module)
+    assert [w.filename for w in caught] == ["stopwise.models.spec.py"]
