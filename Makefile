@@ -3,17 +3,26 @@ PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-stamp
+DEMO_STAMP := $(VENV)/.demo-stamp
 PYTEST_ARGS ?=
 
 .PHONY: demo test test-slow bench lint format clean
+
+# the demo needs stopwise only; the test tools (incl. a compiled game solver) install once
+# for test, bench and lint
+$(DEMO_STAMP): pyproject.toml
+	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e .
+	@touch $(DEMO_STAMP)
 
 $(STAMP): pyproject.toml
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[dev]'
-	@touch $(STAMP)
+	@touch $(STAMP) $(DEMO_STAMP)
 
-demo: $(STAMP)  ## write the demo data set, validate, describe, fit and compare models
+demo: $(DEMO_STAMP)  ## write the demo data, fit and compare models, write demo_output/report.html
 	$(BIN)/stopwise demo --out demo_output
 
 test: $(STAMP)  ## the whole fast suite (slow statistical checks: make test-slow)

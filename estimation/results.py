@@ -22,6 +22,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import tables
 from stopwise.estimation.covariance import RowTable
 
 DISCLAIMER = (
@@ -150,6 +151,8 @@ class Fit:
                 if self.identification is not None
                 else {}
             ),
+            **self.extras.get("record", {}),  # spec, options, data fingerprint (stopwise.saved)
+            **self._coefficients(),
         }
 
     def _formula_keys(self) -> dict[str, Any]:
@@ -163,6 +166,14 @@ class Fit:
                 for row in self.profiles.to_dict(orient="records")
             ],
         }
+
+    def _coefficients(self) -> dict[str, Any]:
+        """{"coefficients": {"z", "covariance"}}: the optimum on the unconstrained scale and
+        its covariance matrix (null entries where not estimated); {} without them."""
+        if self.z is None:
+            return {}
+        cov = None if self.cov_z is None else np.asarray(self.cov_z, dtype=float).tolist()
+        return {"coefficients": {"z": np.asarray(self.z, dtype=float).tolist(), "covariance": cov}}
 
     def _type_probabilities(self) -> dict[str, Any]:
         """A mixture's per-subject type probabilities: {"type_probabilities": [{"subject":
@@ -181,6 +192,15 @@ class Fit:
         from stopwise._io import dumps_json
 
         return dumps_json(self.to_dict())
+
+    def to_latex(self, interval: str = "se") -> str:
+        """This fit as a booktabs table (estimation/tables.py; several fits side by side:
+        tables.to_latex([fit1, fit2]))."""
+        return tables.to_latex([self], interval)
+
+    def to_markdown(self, interval: str = "se") -> str:
+        """This fit as a Markdown pipe table (estimation/tables.py)."""
+        return tables.to_markdown([self], interval)
 
     def predict(
         self, data: Any = None, *, covariates: pd.DataFrame | None = None

@@ -36,6 +36,9 @@ _EXPORTS: dict[str, str] = {
     "recover": "stopwise.api:recover",
     # demo
     "demo_data": "stopwise.demo:demo_data",
+    # saved results
+    "load_result": "stopwise.saved:load_result",
+    "write_report": "stopwise.report.write:write_report",
 }
 
 __all__ = [*sorted(_EXPORTS), "__version__", "contest"]

@@ -20,6 +20,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned
+from stopwise.fit_record import fit_record
 from stopwise.models.base import Model
 
 METHODS = ("mle", "bayes")
@@ -230,15 +231,14 @@ def fit(
     notes += part_notes
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
-    result = _attach(
-        _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw),
-        notes,
-        warned,
-    )
-    cap_in_use = (the_model.options or {}).get("cap_in_use")
-    if callable(cap_in_use) and isinstance(getattr(result, "extras", None), dict):
-        result.extras["max_target"] = cap_in_use()  # the contest cap travels with the fit
-    return result
+    record = fit_record(the_model, bundle, formulas, kw.get("fixed"))
+    result = _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw)
+    if isinstance(getattr(result, "extras", None), dict):
+        result.extras["record"] = record  # Fit.to_dict writes it; stopwise.load_result reads it
+        cap_in_use = (the_model.options or {}).get("cap_in_use")
+        if callable(cap_in_use):
+            result.extras["max_target"] = cap_in_use()  # the contest cap travels with the fit
+    return _attach(result, notes, warned)
 
 
 def _fit_selected(
@@ -352,7 +352,7 @@ def compare(
     from stopwise.estimation.compare import compare_fits
 
     formulas = kw.pop("formulas", None)
-    return compare_fits(
+    result = compare_fits(
         resolved,
         bundle,
         seed=seed,
@@ -360,6 +360,9 @@ def compare(
         covariate_frame=frame if formulas else None,
         **kw,
     )
+    for model_fit, the_model in zip(result.fits, resolved):
+        model_fit.extras["record"] = fit_record(the_model, bundle, formulas)
+    return result
 
 
 def recover(

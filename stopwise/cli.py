@@ -36,6 +36,7 @@ COMMANDS = (
     "equilibrium",
     "sweep",
     "demo",
+    "report",
 )
 DEFAULT_CHAINS = 4  # the --chains default of fit and compare
 DEVICE_FLAG = "--xla_force_host_platform_device_count"
@@ -180,6 +181,7 @@ def _run(argv: Sequence[str] | None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        args.argv = list(sys.argv[1:] if argv is None else argv)  # the exact command (report)
         give_chains_their_devices(args)
         if not getattr(args, "func", None):
             parser.print_help(sys.stderr)

@@ -18,6 +18,7 @@ can lose crates). Everything is synthetic and reproducible from the seed.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -286,7 +287,7 @@ def _heading(text: str) -> None:
     print(f"\n=== {text} ===\n", flush=True)
 
 
-def fit_solo_models(path: Path, out: Path) -> None:
+def fit_solo_models(path: Path, out: Path) -> Any:
     """Compare solo stopping models, then fit the generating model with a treatment effect
     on r (both written to ``out`` as JSON/CSV)."""
     from stopwise._io import write_json
@@ -300,9 +301,11 @@ def fit_solo_models(path: Path, out: Path) -> None:
     result = fit(SOLO_SPECS[0], path, formulas=["r ~ 1 + treatment"], seed=1)
     print(result.summary())
     write_json(out / "fit_solo.json", result.to_dict())
+    write_json(out / "compare_solo.json", comparison.to_dict())
+    return comparison
 
 
-def fit_lottery_model(path: Path, out: Path) -> None:
+def fit_lottery_model(path: Path, out: Path) -> Any:
     """Fit crra+logit to the price list over the 20-crate endowment."""
     from stopwise._io import write_json
     from stopwise.api import fit
@@ -312,9 +315,10 @@ def fit_lottery_model(path: Path, out: Path) -> None:
     result = fit(build_model(LOTTERY_MODEL, wealth=LOTTERY_WEALTH), path, seed=1)
     print(result.summary())
     write_json(out / "fit_lottery.json", result.to_dict())
+    return result
 
 
-def fit_contest_models(path: Path, out: Path) -> None:
+def fit_contest_models(path: Path, out: Path) -> Any:
     """Compare contest play concepts and predict play under other bonus schemes."""
     from stopwise.api import compare
     from stopwise.contest import counterfactual
@@ -330,6 +334,7 @@ def fit_contest_models(path: Path, out: Path) -> None:
     table = counterfactual(best, schemes).table
     print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     write_table(out / "counterfactual.csv", table)
+    return comparison
 
 
 HIER_MODEL = "crra+myopic+logit"  # cheap policy: the demo's Bayesian step stays short
@@ -340,7 +345,7 @@ HIER_SUBJECTS = 20
 HIER_CHAINS, HIER_DRAWS, HIER_WARMUP = 4, 600, 300
 
 
-def fit_hierarchical_model(path: Path, out: Path) -> None:
+def fit_hierarchical_model(path: Path, out: Path) -> Any:
     """A small hierarchical Bayesian fit (NUTS) of HIER_MODEL to the solo dives of the first
     HIER_SUBJECTS divers, with its diagnostics, written to ``out/fit_hier.json``."""
     from stopwise._io import write_json
@@ -368,6 +373,21 @@ def fit_hierarchical_model(path: Path, out: Path) -> None:
     )
     print(posterior.summary())
     write_json(out / "fit_hier.json", posterior.to_dict())
+    return posterior
+
+
+def write_demo_report(data: Path, results: list[Any], out: Path, n_subjects: int) -> Path:
+    """The HTML report of the demo (stopwise.report): data, fits, comparisons, figures."""
+    from stopwise.report.write import write_report
+
+    _heading("Report")
+    return write_report(
+        out / "report.html",
+        data,
+        results,
+        title="stopwise demo: an invented salvage-diving study",
+        call=f"stopwise demo --out {out} --subjects {n_subjects}",
+    )
 
 
 def run_demo(out: Path, n_subjects: int = 120) -> None:
@@ -380,11 +400,15 @@ def run_demo(out: Path, n_subjects: int = 120) -> None:
     print()
     validate_demo_files(paths)
     describe_demo_files(paths)
-    fit_solo_models(paths["stopping"], out)
-    fit_lottery_model(paths["lottery"], out)
-    fit_contest_models(paths["stopping"], out)
-    fit_hierarchical_model(paths["stopping"], out)
+    results = [
+        fit_solo_models(paths["stopping"], out),
+        fit_lottery_model(paths["lottery"], out),
+        fit_contest_models(paths["stopping"], out),
+        fit_hierarchical_model(paths["stopping"], out),
+    ]
+    report = write_demo_report(paths["stopping"], results, out, n_subjects)
     print(
         f"\nTables and JSON results are in {out}/. These are research estimates on invented "
         "data, not a basis for individual financial, clinical or hiring decisions."
     )
+    print(f"\nReport: {report.resolve()}")

@@ -15,6 +15,8 @@ DEMO_OUTPUTS = sorted(
         "stopping.csv",
         "lottery.csv",
         "compare_solo.csv",
+        "compare_solo.json",
+        "report.html",
         "fit_solo.json",
         "fit_lottery.json",
         "fit_hier.json",
@@ -62,8 +64,13 @@ def test_odd_number_of_subjects_forms_one_group_of_three() -> None:
 def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out), "--subjects", "12"]) == 0
-    printed = capsys.readouterr().out
+    captured = capsys.readouterr()
+    printed = captured.out
     assert sorted(p.name for p in out.iterdir()) == DEMO_OUTPUTS
+    assert printed.rstrip().endswith(f"Report: {(out / 'report.html').resolve()}")
+    assert "FutureWarning" not in captured.err  # library chatter is not ours to show
+    page = (out / "report.html").read_text()
+    assert "<h2>Stopping behaviour</h2>" in page and "<h2>Contests</h2>" in page
     assert "OK (decision-level stopping data" in printed
     assert "Stopping data by condition" in printed and "Lottery choices by item" in printed
     assert "Model comparison" in printed and "Counterfactual bonus schemes" in printed
@@ -76,3 +83,16 @@ def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     assert hier["method"] == "bayes" and hier["hierarchical"] is True
     assert hier["n_subjects"] == 12
     assert {"max_rhat", "min_ess_bulk", "divergences"} <= set(hier["diagnostics"])
+
+
+def test_demo_hides_library_deprecation_banners_but_not_ours() -> None:
+    import warnings
+
+    from stopwise.commands.demo import quiet_library_warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        with quiet_library_warnings():
+            for module in ("somelib.core", "stopwise.models.spec"):
+                warnings.warn_explicit("banner", FutureWarning, f"{module}.py", 1, module=module)
+    assert [w.filename for w in caught] == ["stopwise.models.spec.py"]

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from stopwise.commands import _args, _options
+from stopwise.commands import _args, _options, _table
 from stopwise.commands.fit import emit, option_note
 from stopwise.data_schemas.errors import StopwiseInputError
 
@@ -47,6 +47,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     _args.add_hierarchical(parser)
     _args.add_seed(parser, "random seed")
     _args.add_json_file(parser, "the comparison")
+    _table.add_table_option(parser)
     parser.set_defaults(func=run)
     return parser
 
@@ -54,6 +55,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
 def run(args: argparse.Namespace) -> int:
     from stopwise.api import compare
 
+    _table.check_table_path(args.table)
     if len(args.model) < 2:
         raise StopwiseInputError("compare needs at least two --model options")
     models = [_args.model_from_args(spec, args) for spec in args.model]
@@ -90,4 +92,5 @@ def run(args: argparse.Namespace) -> int:
     if isinstance(getattr(result, "notes", None), list):
         result.notes += option_note(args.options)
     emit(result, args.json)
+    _table.write_paper_table(args.table, result, args.table_interval)
     return 0

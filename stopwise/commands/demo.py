@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import argparse
+import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -37,5 +40,16 @@ def run(args: argparse.Namespace) -> int:
 
     if args.subjects < 4:
         raise StopwiseInputError(f"--subjects must be at least 4, got {args.subjects}")
-    run_demo(Path(args.out), n_subjects=args.subjects)
+    with quiet_library_warnings():
+        run_demo(Path(args.out), n_subjects=args.subjects)
     return 0
+
+
+@contextmanager
+def quiet_library_warnings() -> Iterator[None]:
+    """Hide FutureWarning and DeprecationWarning raised from other libraries' modules
+    (deprecation banners are not the demo's business); stopwise's own warnings still show."""
+    with warnings.catch_warnings():
+        for category in (FutureWarning, DeprecationWarning):
+            warnings.filterwarnings("ignore", category=category, module=r"^(?!stopwise)")
+        yield

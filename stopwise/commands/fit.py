@@ -7,7 +7,7 @@ import sys
 from typing import Any
 
 from stopwise._io import write_json
-from stopwise.commands import _args, _cluster, _options
+from stopwise.commands import _args, _cluster, _options, _table
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -108,6 +108,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
     _cluster.add_cluster_options(parser)  # parts of a Parquet folder DATA, one task each
     _args.add_json_file(parser)
+    _table.add_table_option(parser)
     parser.set_defaults(func=run)
     return parser
 
@@ -185,11 +186,13 @@ def run_joint(args: argparse.Namespace) -> Any:
 def run(args: argparse.Namespace) -> int:
     from stopwise.api import fit
 
+    _table.check_table_path(args.table)
     if args.joint:
         result = run_joint(args)
         result.notes += option_note(args.options)
         add_profiles(result, args.profile)
         emit(result, args.json)
+        _table.write_paper_table(args.table, result, args.table_interval)
         return 0
     if len(args.model) > 1:
         raise StopwiseInputError(
@@ -246,4 +249,5 @@ def run(args: argparse.Namespace) -> int:
     if isinstance(getattr(result, "notes", None), list):
         result.notes += option_note(args.options)
     emit(result, args.json)
+    _table.write_paper_table(args.table, result, args.table_interval)
     return 0

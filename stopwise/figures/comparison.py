@@ -1,0 +1,50 @@
+"""Figure of a model comparison: each model's difference to the best one.
+
+ML comparisons show ΔAIC_m = AIC_m - min AIC (Akaike 1974; Burnham & Anderson 2002, from
+memory, read ΔAIC > 10 as essentially no support); Bayesian ones show elpd_best - elpd_m
+with the standard error of the difference (Vehtari, Gelman & Gabry 2017) as error bars.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from stopwise.figures.palette import BENCHMARK, model_colour, new_figure
+
+
+def comparison_figure(
+    table: pd.DataFrame, value: str = "delta_aic", error: str | None = None
+) -> Figure:
+    """Horizontal bars, best model on top: ``table`` indexed by model with the column
+    ``value`` (e.g. delta_aic, or an elpd difference) and optionally ``error`` (its SE)."""
+    ordered = table.sort_values(value)
+    values = ordered[value].to_numpy(float)
+    errors = ordered[error].to_numpy(float) if error and error in ordered else None
+    fig = new_figure(7.0, 1.2 + 0.55 * len(ordered))
+    ax = fig.subplots()
+    y = np.arange(len(ordered))[::-1]
+    ax.barh(
+        y,
+        values,
+        xerr=errors,
+        color=[model_colour(i) for i in range(len(ordered))],
+        capsize=3,
+        height=0.6,
+    )
+    for yi, v in zip(y, values):
+        ax.annotate(
+            f"{v:.1f}", (v, yi), xytext=(4, 0), textcoords="offset points", va="center", fontsize=8
+        )
+    ax.set_yticks(y, [str(m) for m in ordered.index])
+    if value == "delta_aic":
+        ax.axvline(10.0, ls=":", color=BENCHMARK, lw=1)
+        ax.set_xlabel("ΔAIC to the best model (dotted: 10)")
+    else:
+        ax.set_xlabel(value.replace("_", " "))
+    ax.set_xlim(
+        0, max(1.0, float(np.nanmax(values + (errors if errors is not None else 0)))) * 1.15
+    )
+    ax.set_title("Model comparison (best model on top, at 0)")
+    return fig

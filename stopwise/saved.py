@@ -1,0 +1,248 @@
+"""Result JSON files loaded back into objects that predict, simulate, feed
+``contest.counterfactual`` and ``report`` without refitting (``stopwise.load_result``).
+
+A saved pooled fit predicts with its point estimates theta: per condition c and step s the
+draw probability h_s(theta) and the stop-step distribution (estimation.mle.stop_step_table);
+per row P(draw) = h_{step}(theta) of the row's condition. On data whose fingerprint equals
+the fitted data's (``data_sha256``) it certifies itself first: the log-likelihood
+sum_i log P(y_i | theta) recomputed from the rebuilt model must equal the saved one within
+1e-6 (relative), otherwise it refuses (the model or its options were not rebuilt exactly).
+No pickle: the JSON is parsed with the standard library only.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import jax.numpy as jnp
+import numpy as np
+import pandas as pd
+
+from stopwise.api import prepare_model, resolve_data, select_data
+from stopwise.data_schemas.arrays import LotteryData
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import tables
+from stopwise.estimation.mle import stop_step_table
+from stopwise.fit_record import bundle_fingerprint
+from stopwise.models.base import Model
+from stopwise.models.simulate import simulate
+from stopwise.models.spec import build_model
+
+LOGLIK_RTOL = 1e-6
+REQUIRED_KEYS = ("model", "params")
+
+
+def params_frame(records: Sequence[Mapping[str, Any]]) -> pd.DataFrame:
+    """The saved "params" list as a frame indexed by name (estimate, se, ci_low, ci_high)."""
+    frame = pd.DataFrame(list(records))
+    for column in ("estimate", "se", "ci_low", "ci_high"):
+        if column not in frame:
+            frame[column] = np.nan
+    return frame.set_index("name")[["estimate", "se", "ci_low", "ci_high"]].astype(float)
+
+
+@dataclass
+class SavedFit:
+    """One fit read from JSON. ``record`` is the whole JSON object; ``source`` its file."""
+
+    record: dict[str, Any]
+    source: str = "<dict>"
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def model(self) -> str:
+        return str(self.record["model"])
+
+    @property
+    def method(self) -> str:
+        return str(self.record.get("method", "mle"))
+
+    @property
+    def params(self) -> pd.DataFrame:
+        return params_frame(self.record["params"])
+
+    @property
+    def options(self) -> dict[str, Any]:
+        return dict((self.record.get("spec") or {}).get("options") or {})
+
+    @property
+    def formulas(self) -> list[str]:
+        return list((self.record.get("spec") or {}).get("formulas") or [])
+
+    def estimates(self) -> dict[str, float]:
+        """The model's parameters on their natural scale (held-fixed values included)."""
+        values = dict(self.params["estimate"])
+        values.update((self.record.get("spec") or {}).get("fixed") or {})
+        return {k: float(v) for k, v in values.items()}
+
+    def build_model(self) -> Model:
+        """The model rebuilt from its spec and recorded options."""
+        return build_model(self.model, **self.options)
+
+    def theta(self, model: Model) -> dict[str, float]:
+        """Point estimates for every model parameter; refuses formula and mixture fits,
+        whose parameters differ across rows or subjects."""
+        if self.formulas or "type_probabilities" in self.record:
+            raise StopwiseInputError(
+                f"{self.source}: a saved fit with covariate formulas or types predicts per "
+                "covariate profile or type; load_result serves pooled fits only (refit to "
+                "predict from this one)"
+            )
+        values = self.estimates()
+        missing = [n for n in model.param_names if n not in values]
+        if missing:
+            raise StopwiseInputError(f"{self.source}: no estimate for parameter(s) {missing}")
+        return {n: values[n] for n in model.param_names}
+
+    def _selected(self, data: Any) -> tuple[Model, Any, dict[str, float]]:
+        if "spec" not in self.record:
+            raise StopwiseInputError(
+                f"{self.source}: this result records no model spec and options (written by "
+                "an older stopwise); refit it to predict"
+            )
+        model = self.build_model()
+        bundle, frame = resolve_data(data)
+        bundle, _, _ = select_data(model, bundle, frame)
+        prepare_model(model, bundle)
+        theta = self.theta(model)
+        if bundle_fingerprint(bundle) == self.record.get("data_sha256"):
+            self.certify(model, theta, bundle)
+        return model, bundle, theta
+
+    def certify(self, model: Model, theta: Mapping[str, float], bundle: Any) -> float:
+        """Recompute the log-likelihood at theta on the fitted data; refuse on a mismatch.
+        Returns the relative difference."""
+        saved = self.record.get("loglik")
+        values = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in theta.items()}
+        loglik = float(jnp.sum(model.loglik_obs(values, bundle)))
+        if saved is None:
+            raise StopwiseInputError(f"{self.source}: no saved log-likelihood to check against")
+        gap = abs(loglik - float(saved)) / max(1.0, abs(float(saved)))
+        if not gap <= LOGLIK_RTOL:
+            raise StopwiseInputError(
+                f"{self.source}: the rebuilt model gives log-likelihood {loglik:.6f} on the "
+                f"fitted data, the saved fit {float(saved):.6f}; refusing to predict with it"
+            )
+        return gap
+
+    def predict(self, data: Any) -> dict[str, pd.DataFrame]:
+        """As Fit.predict: "rows" (P(draw) or P(choose B) per row) and, for stopping data,
+        "stop_steps" (per condition and step: p_draw, p_reach, p_stop_here, p_bust_here)."""
+        model, bundle, theta = self._selected(data)
+        subject = np.asarray(bundle.subject)
+        labels = (
+            subject if bundle.subject_labels is None else np.asarray(bundle.subject_labels)[subject]
+        )
+        if isinstance(bundle, LotteryData):
+            probe = replace(bundle, choice_b=np.ones_like(np.asarray(bundle.choice_b)))
+            values = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in theta.items()}
+            prob = np.exp(np.asarray(model.loglik_obs(values, probe)))
+            return {
+                "rows": pd.DataFrame(
+                    {"subject": labels, "p_choose_b": prob, "chose_b": np.asarray(bundle.choice_b)}
+                )
+            }
+        table = stop_step_table(model, theta, bundle)
+        cond, step = np.asarray(bundle.cond), np.asarray(bundle.step)
+        grid = table["p_draw"].to_numpy().reshape(bundle.n_cond, -1)
+        rows = pd.DataFrame(
+            {
+                "subject": labels,
+                "step": step,
+                "cond": cond,
+                "p_draw": grid[cond, step],
+                "drew": np.asarray(bundle.draw),
+            }
+        )
+        return {"rows": rows, "stop_steps": table}
+
+    def simulate(self, design: pd.DataFrame, seed: int = 0) -> pd.DataFrame:
+        """Data simulated at the point estimates over ``design`` (stopwise.simulate)."""
+        model = self.build_model()
+        return simulate(model, self.theta(model), design, seed=seed)
+
+    def contest_input(self) -> dict[str, Any]:
+        """{"model": Model, "params": ..., "max_target": ...} for contest.counterfactual."""
+        model = self.build_model()
+        return {
+            "model": model,
+            "params": self.theta(model),
+            "max_target": self.options.get("max_target"),
+        }
+
+    def to_dict(self) -> dict[str, Any]:
+        return dict(self.record)
+
+    def to_latex(self, interval: str = "se") -> str:
+        return tables.to_latex([self], interval)
+
+    def to_markdown(self, interval: str = "se") -> str:
+        return tables.to_markdown([self], interval)
+
+
+@dataclass
+class SavedCollection:
+    """A comparison (``table`` of models) or a per-subject fit (``by`` = "subject")."""
+
+    record: dict[str, Any]
+    fits: list[SavedFit]
+    source: str = "<dict>"
+
+    @property
+    def kind(self) -> str:
+        return "by_subject" if self.record.get("by") == "subject" else "comparison"
+
+    @property
+    def table(self) -> pd.DataFrame:
+        """Comparison: one row per model; per-subject fits: the long parameter frame."""
+        if self.kind == "comparison":
+            return pd.DataFrame(self.record.get("models", [])).set_index("model")
+        frames = []
+        for fit in self.fits:
+            frame = fit.params.reset_index()
+            frame.insert(0, "subject", fit.record.get("subject"))
+            frames.append(frame)
+        return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
+
+    def to_dict(self) -> dict[str, Any]:
+        return dict(self.record)
+
+
+def result_from_record(record: Any, source: str = "<dict>") -> SavedFit | SavedCollection:
+    """A SavedFit (one fit) or SavedCollection (comparison, per-subject fits)."""
+    if not isinstance(record, dict):
+        raise StopwiseInputError(f"{source}: expected a JSON object, got {type(record).__name__}")
+    if isinstance(record.get("fits"), list) or isinstance(record.get("models"), list):
+        fits = [
+            result_from_record(item, f"{source} fits[{i}]")
+            for i, item in enumerate(record.get("fits") or [])
+        ]
+        return SavedCollection(record, [f for f in fits if isinstance(f, SavedFit)], source)
+    missing = [k for k in REQUIRED_KEYS if k not in record]
+    if missing:
+        raise StopwiseInputError(
+            f"{source}: not a stopwise result (missing key(s) {', '.join(missing)}); "
+            "expected the JSON written by fit --json or compare --json"
+        )
+    return SavedFit(record, source)
+
+
+def load_result(path: str | os.PathLike[str]) -> SavedFit | SavedCollection:
+    """Read a result JSON written by stopwise (fit, compare, fit --by subject)."""
+    source = os.fspath(path)
+    try:
+        text = Path(source).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise StopwiseInputError(f"{source}: cannot read ({exc.strerror or exc})") from None
+    try:
+        record = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise StopwiseInputError(
+            f"{source}: line {exc.lineno}, column {exc.colno}: not valid JSON ({exc.msg})"
+        ) from None
+    return result_from_record(record, source)
