@@ -42,15 +42,15 @@ IDENTIFICATION_RCOND = 1e-10
 
 @dataclass(frozen=True)
 class PathTables:
-    """Per condition and step (n_cond, H): log P(draw), log P(stop), their gradients
-    (n_cond, H, k) with respect to the natural-scale parameters, and log P(reach step)."""
+    """Per parameter point, condition and step (m, n_cond, H): log P(draw), log P(stop),
+    their gradients (m, n_cond, H, k) in the natural-scale parameters, log P(reach step)."""
 
     log_draw: np.ndarray
     log_stop: np.ndarray
     grad_draw: np.ndarray
     grad_stop: np.ndarray
     log_reach: np.ndarray
-    truncated_mass: np.ndarray  # (n_cond,) P(reach step H)
+    truncated_mass: np.ndarray  # (m, n_cond) P(reach step H)
 
 
 def cap_steps(p_survive: Sequence[float], tolerance: float = DEFAULT_TOLERANCE) -> int:
@@ -88,10 +88,11 @@ def condition_probe(
 
 
 def values_and_gradients(
-    model: Model, theta: Mapping[str, float], data: Any
+    model: Model, thetas: np.ndarray, data: Any
 ) -> tuple[np.ndarray, np.ndarray]:
-    """(loglik_obs(theta, data), its Jacobian (n_obs, k) in the natural parameters), jitted
-    once with the concrete data closed over."""
+    """For each row of ``thetas`` (m, k; natural scale, the model's parameter order):
+    loglik_obs(theta, data), shape (m, n_obs), and its Jacobian, (m, n_obs, k); exact JAX
+    derivatives, jitted once with the concrete data closed over and vmapped over thetas."""
     names = model.param_names
     prepare = model.options.get("prepare")
     if prepare is not None:
@@ -100,47 +101,50 @@ def values_and_gradients(
     def loglik(vector: Any) -> Any:
         return model.loglik_obs({n: vector[i] for i, n in enumerate(names)}, data)
 
-    both = jax.jit(lambda v: (loglik(v), jax.jacfwd(loglik)(v)))
-    values, grads = both(jnp.asarray(theta_vector(model, theta)))
+    both = jax.jit(jax.vmap(lambda v: (loglik(v), jax.jacfwd(loglik)(v))))
+    values, grads = both(jnp.asarray(np.atleast_2d(thetas), dtype=jnp.float64))
     return np.asarray(values), np.asarray(grads)
 
 
-def theta_vector(model: Model, theta: Mapping[str, float]) -> np.ndarray:
-    """The model's parameters in its own order as a float64 vector."""
-    return np.array([float(theta[n]) for n in model.param_names], dtype=np.float64)
+def theta_matrix(model: Model, thetas: Sequence[Mapping[str, float]]) -> np.ndarray:
+    """Parameter dicts -> (m, k) matrix in the model's parameter order."""
+    return np.array([[float(t[n]) for n in model.param_names] for t in thetas], dtype=np.float64)
 
 
 def path_tables(
     model: Model,
-    theta: Mapping[str, float],
+    thetas: Sequence[Mapping[str, float]],
     p_survive: Sequence[float],
     gain: float = 1.0,
     start: float = 0.0,
     tolerance: float = DEFAULT_TOLERANCE,
 ) -> PathTables:
-    """Decision probabilities, their exact gradients and reach probabilities (module doc)."""
+    """Decision probabilities, their exact gradients and reach probabilities (module doc),
+    each with a leading axis over the parameter points ``thetas``."""
     n_steps = cap_steps(p_survive, tolerance)
-    shape = (2, len(p_survive), n_steps)
+    n_points = len(thetas)
+    shape = (n_points, 2, len(p_survive), n_steps)
     probe = condition_probe(p_survive, gain, start, n_steps)
-    values, grads = values_and_gradients(model, theta, probe)
+    values, grads = values_and_gradients(model, theta_matrix(model, thetas), probe)
     values = values.reshape(shape)
     grads = grads.reshape((*shape, len(model.param_names)))
-    log_draw, log_stop = values
-    grad_draw, grad_stop = grads
-    log_p = np.log(np.asarray(p_survive, dtype=np.float64))[:, None]
-    steps_taken = np.cumsum(log_draw + log_p, axis=1)
-    log_reach = np.concatenate([np.zeros((shape[1], 1)), steps_taken[:, :-1]], axis=1)
+    log_draw, log_stop = values[:, 0], values[:, 1]
+    grad_draw, grad_stop = grads[:, 0], grads[:, 1]
+    log_p = np.log(np.asarray(p_survive, dtype=np.float64))[None, :, None]
+    steps_taken = np.cumsum(log_draw + log_p, axis=2)
+    first = np.zeros((n_points, len(p_survive), 1))
+    log_reach = np.concatenate([first, steps_taken[:, :, :-1]], axis=2)
     return PathTables(
-        log_draw, log_stop, grad_draw, grad_stop, log_reach, np.exp(steps_taken[:, -1])
+        log_draw, log_stop, grad_draw, grad_stop, log_reach, np.exp(steps_taken[:, :, -1])
     )
 
 
 def condition_information(tables: PathTables) -> np.ndarray:
-    """I_c = sum_s R_s [d_s g_s g_s' + (1 - d_s) h_s h_s'], shape (n_cond, k, k)."""
+    """I_c = sum_s R_s [d_s g_s g_s' + (1 - d_s) h_s h_s'], shape (m, n_cond, k, k)."""
     w_draw = np.exp(tables.log_reach + tables.log_draw)
     w_stop = np.exp(tables.log_reach + tables.log_stop)
-    draw_part = np.einsum("cs,csi,csj->cij", w_draw, tables.grad_draw, tables.grad_draw)
-    stop_part = np.einsum("cs,csi,csj->cij", w_stop, tables.grad_stop, tables.grad_stop)
+    draw_part = np.einsum("mcs,mcsi,mcsj->mcij", w_draw, tables.grad_draw, tables.grad_draw)
+    stop_part = np.einsum("mcs,mcsi,mcsj->mcij", w_stop, tables.grad_stop, tables.grad_stop)
     return draw_part + stop_part
 
 
@@ -150,16 +154,18 @@ def trial_counts(n_conditions: int, trials: int) -> np.ndarray:
 
 
 def lottery_information(
-    model: Model, theta: Mapping[str, float], items: pd.DataFrame
+    model: Model, thetas: Sequence[Mapping[str, float]], items: pd.DataFrame
 ) -> np.ndarray:
-    """Per item (n_items, k, k): P(B) g_B g_B' + P(A) g_A g_A' with g = grad log P(choice)."""
+    """Per point and item (m, n_items, k, k): P(B) g_B g_B' + P(A) g_A g_A', with
+    g = grad log P(choice)."""
     parts = []
     for choice in ("B", "A"):
         frame = items.assign(subject=0, choice=choice)
         if "item" not in frame:
             frame = frame.assign(item=np.arange(1, len(frame) + 1))
-        log_prob, grad = values_and_gradients(model, theta, to_lottery_data(frame))
-        parts.append(np.exp(log_prob)[:, None, None] * np.einsum("ni,nj->nij", grad, grad))
+        data = to_lottery_data(frame)
+        log_prob, grad = values_and_gradients(model, theta_matrix(model, thetas), data)
+        parts.append(np.exp(log_prob)[..., None, None] * np.einsum("mni,mnj->mnij", grad, grad))
     return parts[0] + parts[1]
 
 
