@@ -121,16 +121,18 @@ class DesignResult:
 
     def se_table(self) -> pd.DataFrame:
         """Per parameter: expected SE pooled over the plan's participants at the given values
-        (the first point), mean and worst over the points, and for one participant."""
+        (the first point), mean and worst over the range points (the points after the
+        first; without ranges the given values), and for one participant."""
         n = self.plan.subjects
         pooled = np.array([p.se_pooled(n) for p in self.precisions])
         one = self.precisions[0].se_one
+        over = pooled[1:] if len(pooled) > 1 else pooled
         return pd.DataFrame(
             {
                 "value": [self.points[0][name] for name in self.names],
                 f"se_{n}_subjects": pooled[0],
-                "se_mean_over_range": pooled.mean(axis=0),
-                "se_worst_over_range": pooled.max(axis=0),
+                "se_mean_over_range": over.mean(axis=0),
+                "se_worst_over_range": over.max(axis=0),
                 "se_one_subject": one,
             },
             index=pd.Index(self.names, name="parameter"),
@@ -147,13 +149,13 @@ class DesignResult:
         return {
             "model": self.model,
             "plan": self.plan.to_dict(),
-            "points": len(self.points),
+            "range_points": max(len(self.points) - 1, 0) if len(self.points) > 1 else 0,
             "params": table.to_dict(orient="records"),
             "correlation": self.correlation().to_dict(),
             "information_per_subject": first.information.tolist(),
             "checks": self.checks(),
             "certified": self.certified,
-            **self.extras,
+            **{k: v for k, v in self.extras.items() if not k.endswith("_text")},
             "notes": list(self.notes),
         }
 
@@ -172,7 +174,7 @@ class DesignResult:
         checks = self.checks()
         lines = [
             f"Expected precision of a design for {self.model}",
-            f"plan: {self.plan.to_dict()}; parameter points: {len(self.points)}",
+            f"plan: {self.plan.to_dict()}; range points: {max(len(self.points) - 1, 0)}",
             self.se_table().to_string(float_format=lambda v: f"{v:.4g}"),
             "",
             "Expected correlation of the estimates",
@@ -198,7 +200,7 @@ def expected_precision(
     ranges: Mapping[str, tuple[float, float]] | None = None,
 ) -> DesignResult:
     """Expected SEs and correlations of ``plan`` at ``theta`` (averaged over ``ranges``)."""
-    points = range_points(theta, ranges or {})
+    points = [dict(theta)] + (range_points(theta, ranges) if ranges else [])
     per_trial, counts, truncated = per_trial_information(model, points, plan)
     info = participant_information(per_trial, counts)
     precisions = [D.precision_from_information(model.param_names, i) for i in info]

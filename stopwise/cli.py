@@ -35,6 +35,7 @@ COMMANDS = (
     "recover",
     "equilibrium",
     "sweep",
+    "design",
     "demo",
 )
 DEFAULT_CHAINS = 4  # the --chains default of fit and compare
