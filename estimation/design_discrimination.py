@@ -40,6 +40,7 @@ from stopwise.models.base import Model
 TARGET_PROBABILITIES = (0.8, 0.95)
 MAX_PARTICIPANTS = 10**7
 GRADIENT_TOLERANCE = 1e-5
+NONFINITE_WALL = 1e100
 INDISTINGUISHABLE = 1e-9  # mean log-ratio per participant below this: the rival mimics
 
 
@@ -119,8 +120,13 @@ def pseudo_true(
     objective = jax.jit(jax.value_and_grad(negative_expected))
 
     def scipy_objective(z: np.ndarray) -> tuple[float, np.ndarray]:
+        """Non-finite values (a singular point of the rival, e.g. log utility at r = 1
+        reached by a step) become a wall the line search backs away from."""
         value, grad = objective(jnp.asarray(z))
-        return float(value), np.asarray(grad)
+        grad = np.asarray(grad)
+        if not (np.isfinite(value) and np.all(np.isfinite(grad))):
+            return NONFINITE_WALL, np.zeros_like(grad)
+        return float(value), grad
 
     best = None
     for start in starts:
@@ -204,25 +210,25 @@ def discrimination(
     )
     extra = len(truth.param_names) - len(rival.param_names)
     indistinguishable = mu < INDISTINGUISHABLE
+    converged = grad_norm < GRADIENT_TOLERANCE * max(1.0, plan.trials)
     needed = {
-        f"aic_{round(100 * t)}": participants_needed(mu, var, extra, t)
+        f"aic_{round(100 * t)}": participants_needed(mu, var, extra, t) if converged else None
         for t in TARGET_PROBABILITIES
     }
+    at_plan = aic_pick_probability(plan.subjects, mu, var, extra) if converged else math.nan
     return {
         "truth": truth.name,
         "truth_params": dict(theta),
         "rival": rival.name,
         "rival_pseudo_true": rival_theta,
         "pseudo_true_gradient_max": grad_norm,
-        "pseudo_true_converged": grad_norm < GRADIENT_TOLERANCE * max(1.0, plan.trials),
+        "pseudo_true_converged": converged,
         "rival_expected_loglik_per_subject": expected_loglik,
         "llr_mean_per_subject": mu,
         "llr_sd_per_subject": math.sqrt(max(var, 0.0)),
         "participants_needed": needed,
         "indistinguishable": indistinguishable,
-        f"aic_pick_probability_at_{plan.subjects}": aic_pick_probability(
-            plan.subjects, mu, var, extra
-        ),
+        f"aic_pick_probability_at_{plan.subjects}": at_plan,
     }
 
 
@@ -250,7 +256,12 @@ def discrimination_text(rows: list[dict[str, Any]], subjects: int) -> str:
             f"{needed['aic_80']}, 95%: {needed['aic_95']}; pseudo-true converged: "
             f"{row['pseudo_true_converged']}"
         )
-        if row["indistinguishable"]:
+        if not row["pseudo_true_converged"]:
+            lines.append(
+                "    REFUSED: the rival's pseudo-true values did not converge (largest "
+                f"gradient {row['pseudo_true_gradient_max']:.2g}); no sample size is given"
+            )
+        elif row["indistinguishable"]:
             lines.append(
                 "    the rival reproduces the truth at its pseudo-true values (it nests it): "
                 "no number of participants separates them; AIC then prefers the smaller model"
