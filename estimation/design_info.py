@@ -24,6 +24,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import jax
@@ -87,22 +88,30 @@ def condition_probe(
     )
 
 
+@partial(jax.jit, static_argnums=0)
+def _values_and_jacobians(model: Model, thetas: Any, data: Any) -> tuple[Any, Any]:
+    """vmap over the rows of ``thetas`` of (loglik_obs, its Jacobian); compiled once per
+    model and data shape (the data are an argument, not a constant)."""
+    names = model.param_names
+
+    def loglik(vector: Any) -> Any:
+        return model.loglik_obs({n: vector[i] for i, n in enumerate(names)}, data)
+
+    return jax.vmap(lambda v: (loglik(v), jax.jacfwd(loglik)(v)))(thetas)
+
+
 def values_and_gradients(
     model: Model, thetas: np.ndarray, data: Any
 ) -> tuple[np.ndarray, np.ndarray]:
     """For each row of ``thetas`` (m, k; natural scale, the model's parameter order):
     loglik_obs(theta, data), shape (m, n_obs), and its Jacobian, (m, n_obs, k); exact JAX
-    derivatives, jitted once with the concrete data closed over and vmapped over thetas."""
-    names = model.param_names
+    derivatives. The model's ``prepare`` sizes its static caps from the concrete data first
+    (the probe's horizon H fixes them: equal shapes, equal caps)."""
     prepare = model.options.get("prepare")
     if prepare is not None:
         prepare(data)
-
-    def loglik(vector: Any) -> Any:
-        return model.loglik_obs({n: vector[i] for i, n in enumerate(names)}, data)
-
-    both = jax.jit(jax.vmap(lambda v: (loglik(v), jax.jacfwd(loglik)(v))))
-    values, grads = both(jnp.asarray(np.atleast_2d(thetas), dtype=jnp.float64))
+    thetas = jnp.asarray(np.atleast_2d(thetas), dtype=jnp.float64)
+    values, grads = _values_and_jacobians(model, thetas, data)
     return np.asarray(values), np.asarray(grads)
 
 
