@@ -61,10 +61,26 @@ def cap_steps(p_survive: Sequence[float], tolerance: float = DEFAULT_TOLERANCE) 
     return int(min(max(steps, 1), MAX_STEPS))
 
 
+@dataclass(frozen=True)
+class ContestScheme:
+    """A contest played in every trial: group size, prize to the top bank, and whether
+    players keep their own bank besides the prize."""
+
+    players: int
+    prize: float
+    keep_bank: bool = False
+
+
 def condition_probe(
-    p_survive: Sequence[float], gain: float, start: float, n_steps: int
+    p_survive: Sequence[float],
+    gain: float,
+    start: float,
+    n_steps: int,
+    contest: ContestScheme | None = None,
 ) -> StoppingData:
-    """Rows (action, condition, step < n_steps): first every draw row, then every stop row."""
+    """Rows (action, condition, step < n_steps): first every draw row, then every stop row.
+    With ``contest`` every condition is that contest (a contest model's decisions depend on
+    the condition only: each player follows the concept's target distribution)."""
     ps = np.asarray(p_survive, dtype=np.float64)
     n_cond = len(ps)
     n = n_cond * n_steps
@@ -80,11 +96,11 @@ def condition_probe(
         cond_gain=np.full(n_cond, float(gain)),
         cond_start=np.full(n_cond, float(start)),
         cond_bust_keep=np.zeros(n_cond),
-        cond_contest=np.zeros(n_cond),
-        cond_n_players=np.ones(n_cond),
-        cond_prize=np.zeros(n_cond),
-        cond_keep_bank=np.ones(n_cond),
-        horizon=n_steps,
+        cond_contest=np.full(n_cond, 0.0 if contest is None else 1.0),
+        cond_n_players=np.full(n_cond, 1.0 if contest is None else float(contest.players)),
+        cond_prize=np.full(n_cond, 0.0 if contest is None else float(contest.prize)),
+        cond_keep_bank=np.full(n_cond, 1.0 if contest is None else float(contest.keep_bank)),
+        horizon=n_steps if contest is None else n_steps + 1,  # contests: targets 0..H
     )
 
 
@@ -127,20 +143,21 @@ def path_tables(
     gain: float = 1.0,
     start: float = 0.0,
     tolerance: float = DEFAULT_TOLERANCE,
+    contest: ContestScheme | None = None,
 ) -> PathTables:
     """Decision probabilities, their exact gradients and reach probabilities (module doc),
     each with a leading axis over the parameter points ``thetas``."""
     n_steps = cap_steps(p_survive, tolerance)
     n_points = len(thetas)
     shape = (n_points, 2, len(p_survive), n_steps)
-    probe = condition_probe(p_survive, gain, start, n_steps)
+    probe = condition_probe(p_survive, gain, start, n_steps, contest)
     values, grads = values_and_gradients(model, theta_matrix(model, thetas), probe)
     values = values.reshape(shape)
     grads = grads.reshape((*shape, len(model.param_names)))
     log_draw, log_stop = values[:, 0], values[:, 1]
     grad_draw, grad_stop = grads[:, 0], grads[:, 1]
     log_p = np.log(np.asarray(p_survive, dtype=np.float64))[None, :, None]
-    steps_taken = np.cumsum(log_draw + log_p, axis=2)
+    steps_taken = np.cumsum(np.nan_to_num(log_draw, nan=-np.inf) + log_p, axis=2)
     first = np.zeros((n_points, len(p_survive), 1))
     log_reach = np.concatenate([first, steps_taken[:, :, :-1]], axis=2)
     return PathTables(
@@ -150,11 +167,22 @@ def path_tables(
 
 def condition_information(tables: PathTables) -> np.ndarray:
     """I_c = sum_s R_s [d_s g_s g_s' + (1 - d_s) h_s h_s'], shape (m, n_cond, k, k)."""
-    w_draw = np.exp(tables.log_reach + tables.log_draw)
-    w_stop = np.exp(tables.log_reach + tables.log_stop)
-    draw_part = np.einsum("mcs,mcsi,mcsj->mcij", w_draw, tables.grad_draw, tables.grad_draw)
-    stop_part = np.einsum("mcs,mcsi,mcsj->mcij", w_stop, tables.grad_stop, tables.grad_stop)
+    w_draw, g_draw = reached(tables.log_reach, tables.log_draw, tables.grad_draw)
+    w_stop, g_stop = reached(tables.log_reach, tables.log_stop, tables.grad_stop)
+    draw_part = np.einsum("mcs,mcsi,mcsj->mcij", w_draw, g_draw, g_draw)
+    stop_part = np.einsum("mcs,mcsi,mcsj->mcij", w_stop, g_stop, g_stop)
     return draw_part + stop_part
+
+
+def reached(log_reach: np.ndarray, log_prob: np.ndarray, grad: np.ndarray) -> tuple[Any, Any]:
+    """Weights R_s P(action at s) and gradients, zero where the action has probability 0
+    or the step cannot be reached (a target distribution with no mass beyond some step
+    leaves undefined log-ratios there, which carry no weight)."""
+    log_w = log_reach + log_prob
+    ok = np.isfinite(log_w)
+    weight = np.where(ok, np.exp(np.where(ok, log_w, -np.inf)), 0.0)
+    safe = np.where((weight > 0)[..., None] & np.isfinite(grad), grad, 0.0)
+    return weight, safe
 
 
 def trial_counts(n_conditions: int, trials: int) -> np.ndarray:
