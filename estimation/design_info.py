@@ -61,26 +61,13 @@ def cap_steps(p_survive: Sequence[float], tolerance: float = DEFAULT_TOLERANCE) 
     return int(min(max(steps, 1), MAX_STEPS))
 
 
-@dataclass(frozen=True)
-class ContestScheme:
-    """A contest played in every trial: group size, prize to the top bank, and whether
-    players keep their own bank besides the prize."""
-
-    players: int
-    prize: float
-    keep_bank: bool = False
-
-
 def condition_probe(
     p_survive: Sequence[float],
     gain: float,
     start: float,
     n_steps: int,
-    contest: ContestScheme | None = None,
 ) -> StoppingData:
-    """Rows (action, condition, step < n_steps): first every draw row, then every stop row.
-    With ``contest`` every condition is that contest (a contest model's decisions depend on
-    the condition only: each player follows the concept's target distribution)."""
+    """Rows (action, condition, step < n_steps): first every draw row, then every stop row."""
     ps = np.asarray(p_survive, dtype=np.float64)
     n_cond = len(ps)
     n = n_cond * n_steps
@@ -96,11 +83,11 @@ def condition_probe(
         cond_gain=np.full(n_cond, float(gain)),
         cond_start=np.full(n_cond, float(start)),
         cond_bust_keep=np.zeros(n_cond),
-        cond_contest=np.full(n_cond, 0.0 if contest is None else 1.0),
-        cond_n_players=np.full(n_cond, 1.0 if contest is None else float(contest.players)),
-        cond_prize=np.full(n_cond, 0.0 if contest is None else float(contest.prize)),
-        cond_keep_bank=np.full(n_cond, 1.0 if contest is None else float(contest.keep_bank)),
-        horizon=n_steps if contest is None else n_steps + 1,  # contests: targets 0..H
+        cond_contest=np.zeros(n_cond),
+        cond_n_players=np.ones(n_cond),
+        cond_prize=np.zeros(n_cond),
+        cond_keep_bank=np.ones(n_cond),
+        horizon=n_steps,
     )
 
 
@@ -143,14 +130,13 @@ def path_tables(
     gain: float = 1.0,
     start: float = 0.0,
     tolerance: float = DEFAULT_TOLERANCE,
-    contest: ContestScheme | None = None,
 ) -> PathTables:
     """Decision probabilities, their exact gradients and reach probabilities (module doc),
     each with a leading axis over the parameter points ``thetas``."""
     n_steps = cap_steps(p_survive, tolerance)
     n_points = len(thetas)
     shape = (n_points, 2, len(p_survive), n_steps)
-    probe = condition_probe(p_survive, gain, start, n_steps, contest)
+    probe = condition_probe(p_survive, gain, start, n_steps)
     values, grads = values_and_gradients(model, theta_matrix(model, thetas), probe)
     values = values.reshape(shape)
     grads = grads.reshape((*shape, len(model.param_names)))

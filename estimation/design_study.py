@@ -44,20 +44,11 @@ class Plan:
     gain: float = 1.0
     start: float = 0.0
     items: pd.DataFrame | None = None
-    contest: D.ContestScheme | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"trials": self.trials, "subjects": self.subjects}
         if self.items is None:
             out.update(p_survive=list(self.p_survive), gain=self.gain, start=self.start)
-        if self.contest is not None:
-            out["contest"] = {
-                "players": self.contest.players,
-                "prize": self.contest.prize,
-                "keep_bank": self.contest.keep_bank,
-            }
-        else:
-            out["items"] = len(self.items)
         return out
 
 
@@ -91,14 +82,12 @@ def per_trial_information(
             raise StopwiseInputError(f"model {model.name} answers a lottery list: give items")
         info = D.lottery_information(model, points, plan.items)
         return info, np.ones(info.shape[1]), np.zeros(info.shape[:2])
-    if model.data_kind != "stopping" or plan.contest is not None:
+    if model.data_kind != "stopping":
         raise StopwiseInputError(
             f"model {model.name} ({model.data_kind}): design takes solo stopping and lottery "
             "models; contest designs are not supported yet"
         )
-    tables = D.path_tables(
-        model, points, plan.p_survive, plan.gain, plan.start, contest=plan.contest
-    )
+    tables = D.path_tables(model, points, plan.p_survive, plan.gain, plan.start)
     counts = D.trial_counts(len(plan.p_survive), plan.trials)
     return D.condition_information(tables), counts, tables.truncated_mass
 
