@@ -34,6 +34,7 @@ _EXPORTS: dict[str, str] = {
     "compare": "stopwise.api:compare",
     "fit_joint": "stopwise.joint:fit_joint",
     "recover": "stopwise.api:recover",
+    "design": "stopwise.planning:design",
     # demo
     "demo_data": "stopwise.demo:demo_data",
     # saved results

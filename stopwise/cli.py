@@ -35,6 +35,7 @@ COMMANDS = (
     "recover",
     "equilibrium",
     "sweep",
+    "design",
     "demo",
     "report",
 )

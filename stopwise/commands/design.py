@@ -1,0 +1,138 @@
+"""``stopwise design --model SPEC --set NAME=VALUE ...``: precision of a study before data.
+
+Prints the expected standard errors (pooled over ``--subjects`` participants and for one
+participant), their correlation and the checks; ``--range`` averages over a parameter's
+range, ``--versus`` adds the discrimination of a rival model, ``--optimise p_survive`` the
+best sets of ``--choose`` survival chances among ``--candidates``. ``--json`` writes the
+result, ``--figure`` a PNG of expected SE against participants (stopwise.planning).
+"""
+
+from __future__ import annotations
+
+import argparse
+from typing import Any
+
+from stopwise._io import write_atomic
+from stopwise.commands import _args, _options
+from stopwise.commands.fit import emit
+from stopwise.commands.simulate import (
+    PRICE_LIST_ROWS,
+    check_parameters,
+    parse_assignments,
+    parse_list,
+    price_list_design,
+)
+from stopwise.data_schemas.errors import StopwiseInputError
+
+
+def register(subparsers: Any) -> argparse.ArgumentParser:
+    parser = subparsers.add_parser(
+        "design",
+        help="expected precision, best survival chances and model discrimination of a plan",
+        description="Before collecting data: expected standard errors and correlations of "
+        "a planned study, exact over the model's decision paths, with optional parameter "
+        "ranges, a rival model and a search over survival chances.",
+    )
+    parser.add_argument("--model", required=True, metavar="SPEC", help="e.g. crra+planner+logit")
+    parser.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        dest="assignments",
+        help="an assumed parameter value (repeatable; others: start values)",
+    )
+    _options.add_option(parser)
+    parser.add_argument(
+        "--p-survive", default="0.6,0.75,0.9", metavar="P[,P...]", help="default 0.6,0.75,0.9"
+    )
+    parser.add_argument(
+        "--trials",
+        type=_args.positive_int,
+        default=60,
+        metavar="T",
+        help=f"trials per participant (default 60; lottery models: the first T of the "
+        f"{PRICE_LIST_ROWS} price-list rows)",
+    )
+    parser.add_argument("--subjects", type=_args.positive_int, default=100, metavar="N")
+    parser.add_argument("--gain", type=float, default=1.0, metavar="G", help="default 1")
+    parser.add_argument(
+        "--range",
+        action="append",
+        default=[],
+        metavar="NAME=LO:HI",
+        dest="ranges",
+        help="average over this range of the parameter (repeatable)",
+    )
+    parser.add_argument("--versus", metavar="SPEC", help="a rival model to tell apart")
+    parser.add_argument(
+        "--optimise", choices=("p_survive",), help="search survival chances among --candidates"
+    )
+    parser.add_argument("--candidates", default="0.5:0.97:0.01", metavar="LO:HI:STEP")
+    parser.add_argument("--choose", type=_args.positive_int, default=3, metavar="K")
+    parser.add_argument(
+        "--criterion", default="d", metavar="d|se:NAME", help="D-optimality or one SE"
+    )
+    parser.add_argument("--best", type=_args.positive_int, default=5, metavar="B")
+    parser.add_argument("--max-payout", type=float, metavar="X", help="expected payout cap")
+    _args.add_max_target(parser, _args.FIT_CAP_HELP)
+    _args.add_json_file(parser, "the design result")
+    parser.add_argument("--figure", metavar="FILE", help="PNG of expected SE against participants")
+    parser.set_defaults(func=run)
+    return parser
+
+
+def parse_ranges(items: list[str]) -> dict[str, tuple[float, float]]:
+    """['r=0.1:0.7'] -> {'r': (0.1, 0.7)}."""
+    ranges = {}
+    for item in items:
+        name, sep, text = item.partition("=")
+        lo, colon, hi = text.partition(":")
+        try:
+            ranges[name.strip()] = (float(lo), float(hi))
+        except ValueError:
+            colon = ""
+        if not sep or not colon or not name.strip():
+            raise StopwiseInputError(f"--range {item!r}: expected NAME=LO:HI, e.g. r=0.1:0.7")
+    return ranges
+
+
+def run(args: argparse.Namespace) -> int:
+    from stopwise.figures.design import precision_figure
+    from stopwise.planning import candidate_grid, design
+
+    model = _options.cli_model(args.model, args.max_target, args.options)
+    given = parse_assignments(args.assignments)
+    check_parameters(model, given)
+    items = None
+    if model.data_kind == "lottery":
+        items = price_list_design([1], args.trials).drop(columns="subject")
+    elif model.data_kind != "stopping":
+        raise StopwiseInputError(
+            f"model {model.name}: design takes solo stopping and lottery models"
+        )
+    if args.figure and not args.figure.lower().endswith(".png"):
+        raise StopwiseInputError(f"--figure {args.figure}: expected a .png file")
+    candidates = candidate_grid(args.candidates) if args.optimise else None
+    versus = _options.cli_model(args.versus, args.max_target, args.options) if args.versus else None
+    result = design(
+        model,
+        given,
+        p_survive=parse_list(args.p_survive, "--p-survive"),
+        trials=args.trials,
+        subjects=args.subjects,
+        gain=args.gain,
+        items=items,
+        ranges=parse_ranges(args.ranges),
+        versus=versus,
+        candidates=candidates,
+        choose=args.choose,
+        criterion=args.criterion,
+        best=args.best,
+        max_payout=args.max_payout,
+    )
+    picture = precision_figure(result) if args.figure else None
+    emit(result, args.json)
+    if picture is not None:
+        write_atomic(args.figure, picture)
+    return 0 if result.certified else 1

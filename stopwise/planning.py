@@ -1,0 +1,134 @@
+"""``stopwise.design(...)``: the expected precision of a planned study before any data,
+optionally with the best sets of survival chances and the discrimination of a rival model.
+
+Wires the engines of stopwise.estimation.design_study (expected SEs, exact over decision
+paths), design_search (choosing survival chances) and design_discrimination (expected
+log-likelihood ratio, participants AIC needs) to model specs and plain values.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.design_discrimination import both_directions, discrimination_text
+from stopwise.estimation.design_search import search_designs
+from stopwise.estimation.design_study import DesignResult, Plan, expected_precision
+from stopwise.models.base import Model
+from stopwise.models.spec import build_model
+
+
+def resolve(model: str | Model, options: Mapping[str, Any] | None) -> Model:
+    """A Model from a spec string (with ``options``) or as given."""
+    if isinstance(model, Model):
+        return model
+    return build_model(model, **dict(options or {}))
+
+
+def check_values(model: Model, params: Mapping[str, float], ranges: Mapping[str, Any]) -> None:
+    """Every given value and range names a parameter and lies inside its bounds."""
+    for name, value in params.items():
+        spec = _spec(model, name)
+        if not spec.lower < float(value) < spec.upper:
+            raise StopwiseInputError(
+                f"{name}={value}: expected a value in ({spec.lower:g}, {spec.upper:g})"
+            )
+    for name, (lo, hi) in ranges.items():
+        spec = _spec(model, name)
+        if not spec.lower < lo < hi < spec.upper:
+            raise StopwiseInputError(
+                f"range {name}={lo}:{hi}: expected LO < HI inside ({spec.lower:g}, {spec.upper:g})"
+            )
+
+
+def _spec(model: Model, name: str) -> Any:
+    if name not in model.param_names:
+        raise StopwiseInputError(
+            f"model {model.name} has no parameter {name!r}; it has {', '.join(model.param_names)}"
+        )
+    return model.spec(name)
+
+
+def check_plan(plan: Plan) -> None:
+    """Survival chances in (0, 1), at least one trial and participant, gain > 0."""
+    if plan.items is None:
+        if not plan.p_survive or not all(0 < p < 1 for p in plan.p_survive):
+            raise StopwiseInputError("p_survive: expected values strictly between 0 and 1")
+        if not plan.gain > 0:
+            raise StopwiseInputError(f"gain {plan.gain}: expected a number > 0")
+    if plan.trials < 1 or plan.subjects < 1:
+        raise StopwiseInputError("trials and subjects: expected whole numbers >= 1")
+
+
+def design(
+    model: str | Model,
+    params: Mapping[str, float],
+    *,
+    p_survive: Sequence[float] = (0.6, 0.75, 0.9),
+    trials: int = 60,
+    subjects: int = 100,
+    gain: float = 1.0,
+    start: float = 0.0,
+    items: pd.DataFrame | None = None,
+    ranges: Mapping[str, tuple[float, float]] | None = None,
+    versus: str | Model | None = None,
+    candidates: Sequence[float] | None = None,
+    choose: int = 3,
+    criterion: str = "d",
+    best: int = 5,
+    max_payout: float | None = None,
+    options: Mapping[str, Any] | None = None,
+) -> DesignResult:
+    """Expected SEs, correlations and checks of a plan (``subjects`` x ``trials`` over
+    ``p_survive``, or the lottery ``items`` once each) at ``params``, averaged over
+    ``ranges``; with ``candidates`` the best sets of ``choose`` survival chances by
+    ``criterion`` ("d" or "se:NAME"); with ``versus`` the discrimination of that rival."""
+    the_model = resolve(model, options)
+    ranges = dict(ranges or {})
+    check_values(the_model, params, ranges)
+    theta = {**the_model.start_theta(), **{k: float(v) for k, v in params.items()}}
+    plan = Plan(tuple(float(p) for p in p_survive), trials, subjects, gain, start, items)
+    if the_model.data_kind == "lottery":
+        if items is None:
+            raise StopwiseInputError(f"model {the_model.name} answers a lottery list: give items")
+        plan = Plan((), len(items), subjects, gain, start, items)
+    check_plan(plan)
+    result = expected_precision(the_model, theta, plan, ranges)
+    if candidates is not None:
+        if the_model.data_kind != "stopping":
+            raise StopwiseInputError("optimising survival chances needs a stopping model")
+        found = search_designs(
+            the_model, theta, plan, candidates, choose, criterion, ranges, best, max_payout
+        )
+        result.extras["optimisation"] = found.to_dict()
+        result.extras["optimisation_text"] = found.summary()
+    if versus is not None:
+        rival = resolve(versus, options)
+        if rival.data_kind != the_model.data_kind:
+            raise StopwiseInputError(
+                f"--versus {rival.name} is a {rival.data_kind} model; {the_model.name} is a "
+                f"{the_model.data_kind} model"
+            )
+        rows = both_directions(the_model, theta, rival, plan)
+        result.extras["discrimination"] = rows
+        result.extras["discrimination_text"] = discrimination_text(rows, plan.subjects)
+    return result
+
+
+def candidate_grid(text: str) -> list[float]:
+    """'0.5:0.97:0.01' -> [0.5, 0.51, ..., 0.97] (LO:HI:STEP, both ends included)."""
+    parts = text.split(":")
+    try:
+        lo, hi, step = (float(p) for p in parts)
+    except ValueError:
+        raise StopwiseInputError(
+            f"--candidates {text!r}: expected LO:HI:STEP, e.g. 0.5:0.97:0.01"
+        ) from None
+    if not (0 < lo < hi < 1 and step > 0):
+        raise StopwiseInputError(f"--candidates {text!r}: expected 0 < LO < HI < 1 and STEP > 0")
+    count = int(np.floor((hi - lo) / step + 1e-9)) + 1
+    return [round(lo + i * step, 10) for i in range(count)]
