@@ -144,6 +144,11 @@ class Fit:
             "optimizer": {k: v for k, v in self.optimizer.items() if k != "runs"},
             "notes": list(self.notes),
             **({"max_target": self.extras["max_target"]} if "max_target" in self.extras else {}),
+            **(
+                {"qre_residual": self.extras["qre_residual"]}
+                if "qre_residual" in self.extras
+                else {}
+            ),
             **self._type_probabilities(),
             **self._formula_keys(),
             **(

@@ -20,6 +20,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned
+from stopwise.fit_checks import certify_fixed_points
 from stopwise.fit_record import fit_record
 from stopwise.models.base import Model
 
@@ -235,6 +236,7 @@ def fit(
     result = _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw)
     if isinstance(getattr(result, "extras", None), dict):
         result.extras["record"] = record  # Fit.to_dict writes it; stopwise.load_result reads it
+        certify_fixed_points(the_model, bundle, result)
         cap_in_use = (the_model.options or {}).get("cap_in_use")
         if callable(cap_in_use):
             result.extras["max_target"] = cap_in_use()  # the contest cap travels with the fit

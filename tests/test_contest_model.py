@@ -262,3 +262,29 @@ def test_likelihood_qre_reports_its_fixed_point_residual(simulated):
     assert np.all(residual[contest] <= 1e-8)
     residual = model.options["fixed_point_residual"]({"precision": 200.0}, data)
     assert np.all(residual[contest] > 1e-6)
+
+
+def test_a_fit_whose_likelihood_qre_is_unsolved_is_marked_not_converged(simulated):
+    # The fit's check (stopwise/fit_checks.py): at the estimate, the QRE fixed point of every
+    # contest condition must hold (residual 0 at a QRE by definition, McKelvey & Palfrey
+    # 1995). A result at precision 200, where the likelihood's schedule misses the branch
+    # (previous test), is warned about and marked not converged; one at the simulation's
+    # precision passes untouched.
+    from types import SimpleNamespace
+
+    from stopwise.fit_checks import certify_fixed_points
+
+    model, _, data = simulated
+
+    def result_at(precision):
+        return SimpleNamespace(
+            estimates=lambda: {"precision": precision}, converged=True, warnings=[], extras={}
+        )
+
+    good = result_at(1.5)
+    certify_fixed_points(model, data, good)
+    assert good.converged and not good.warnings and good.extras["qre_residual"] <= 1e-8
+    bad = result_at(200.0)
+    certify_fixed_points(model, data, bad)
+    assert not bad.converged and bad.extras["qre_residual"] > 1e-6
+    assert "not certified" in bad.warnings[0]
