@@ -25,6 +25,7 @@ from typing import Any
 from stopwise._io import OutputWriteError, remove_pending_temporaries
 from stopwise.commands._args import check_output_options
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.certify import UncertifiedAnswer
 
 COMMANDS = (
     "validate",
@@ -194,6 +195,9 @@ def _run(argv: Sequence[str] | None) -> int:
         return 2
     except OutputWriteError as exc:
         print(f"error: {exc.strerror}", file=sys.stderr)
+        return 1
+    except UncertifiedAnswer as exc:  # an answer that failed its check is never written
+        print(f"error: {exc}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)

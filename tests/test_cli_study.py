@@ -105,7 +105,7 @@ def test_simulate_option_wealth_moves_the_stopping_point(
 
 def test_simulate_contests_in_groups(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     out = tmp_path / "contest.csv"
-    argv = ["simulate", "--model", "linear+qre", "--set", "precision=2000", "--subjects", "8"]
+    argv = ["simulate", "--model", "linear+nash", "--set", "tremble=1e-9", "--subjects", "8"]
     argv += ["--trials", "12", "--p-survive", "0.7", "--prize", "0.001", "--keep-bank"]
     argv += ["--max-target", "12", "--out", str(out)]
     assert run_cli(argv, capsys)[0] == 0
@@ -280,3 +280,16 @@ def test_readme_lists_every_command() -> None:
     missing = [name for name in cli.COMMANDS if f"stopwise {name}" not in readme]
     assert missing == []
     assert "stopwise recover --model" in readme and "--joint" in readme
+
+
+def test_simulating_an_unsolved_qre_is_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # At precision 2000 x a payoff range of ~12 the QRE's continuation misses its fixed point
+    # (residual check, McKelvey & Palfrey 1995): nothing is simulated from such an answer.
+    out = tmp_path / "contest.csv"
+    argv = ["simulate", "--model", "linear+qre", "--set", "precision=2000", "--subjects", "8"]
+    argv += ["--trials", "12", "--p-survive", "0.7", "--prize", "0.001", "--keep-bank"]
+    argv += ["--max-target", "12", "--out", str(out)]
+    code, _, err = run_cli(argv, capsys)
+    assert code == 1 and "not solved" in err and not out.exists()

@@ -146,3 +146,11 @@ def test_compare_command_puts_the_models_side_by_side(small_demo, tmp_path):
         r = next(p for p in fit["params"] if p["name"] == "r")
         row = next(ln for ln in out_tex.read_text().splitlines() if ln.startswith("r & "))
         assert row.split(" & ")[column + 1].rstrip(" \\") == tables.number(r["estimate"])
+
+
+def test_the_command_line_knows_the_endings_the_renderer_writes() -> None:
+    """commands/_table.py keeps its own copy so the parser imports no estimation module."""
+    from stopwise.commands import _table
+    from stopwise.estimation import tables
+
+    assert _table.TABLE_SUFFIXES == tables.TABLE_SUFFIXES

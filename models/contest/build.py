@@ -44,6 +44,7 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.limits import MAX_TARGET
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.contest.agent import agent_qre_log_probs
+from stopwise.models.contest.certify import UncertifiedAnswer
 from stopwise.models.contest.game import (
     ContestGame,
     default_max_target,
@@ -63,6 +64,7 @@ from stopwise.models.contest.qre import _continuation, fixed_point_residual, sym
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 CH_DEPTH = 15
 MAX_LEVEL = 6
+QRE_SIMULATION_TOLERANCE = 1e-6  # largest fixed-point residual a simulation accepts
 
 _PRECISION = ParamSpec("precision", 0.0, np.inf, 1.0, "logit precision of responses")
 _TAU = ParamSpec("tau", 0.0, 8.0, 1.5, "cognitive-hierarchy mean thinking steps")
@@ -385,8 +387,31 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             contest,
         )
 
+    def certified_distribution(theta: Mapping[str, Any], *setting: Any) -> np.ndarray:
+        """target_distribution, refused (UncertifiedAnswer) for logit QRE when its fixed
+        point is not solved: residual max |log sigma - log_softmax(lambda U(sigma))| above
+        QRE_SIMULATION_TOLERANCE (McKelvey & Palfrey 1995)."""
+        sigma = target_distribution(theta, *setting)
+        if concept != "qre":
+            return sigma
+        p_survive, n_players, prize, keep_bank, cap, *rest = setting
+        natural = {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()}
+        game = make_game(
+            p_survive, n_players, prize, keep_bank, cap, *rest, utility=utility, theta=natural
+        )
+        pure = target_distribution({**theta, "tremble": 0.0} if tremble else theta, *setting)
+        log_sigma = jnp.log(jnp.clip(jnp.asarray(pure), 1e-300, None))
+        residual = float(fixed_point_residual(log_sigma, natural["precision"], game))
+        if not residual <= QRE_SIMULATION_TOLERANCE:
+            raise UncertifiedAnswer(
+                f"the logit QRE at precision {float(natural['precision']):g} is not solved "
+                f"(fixed-point residual {residual:.3g} > {QRE_SIMULATION_TOLERANCE:g}); "
+                "nothing was simulated: lower the precision or use the nash concept"
+            )
+        return sigma
+
     def simulate(theta: Mapping[str, Any], design: pd.DataFrame, key: Any) -> pd.DataFrame:
-        return simulate_contest(target_distribution, theta, design, key, options)
+        return simulate_contest(certified_distribution, theta, design, key, options)
 
     name = "+".join([utility_name, concept] + (["tremble"] if tremble else []))
     return Model(

@@ -8,7 +8,10 @@ from typing import Any
 
 from stopwise._io import write_atomic
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.tables import TABLE_SUFFIXES, render_table
+
+# The endings estimation/tables.py renders (tests/test_paper_tables.py checks they agree);
+# kept here so that building the command-line parser imports no estimation module.
+TABLE_SUFFIXES = (".tex", ".md", ".csv")
 
 
 def add_table_option(parser: argparse.ArgumentParser) -> None:
@@ -49,4 +52,6 @@ def table_fits(result: Any) -> list[Any]:
 def write_paper_table(path: str | None, result: Any, interval: str = "se") -> None:
     if path is None:
         return
+    from stopwise.estimation.tables import render_table  # lazy: start-up of light commands
+
     write_atomic(path, render_table(table_fits(result), Path(path).suffix, interval))
