@@ -50,10 +50,10 @@ def test_accounting_of_three_kinds_of_start() -> None:
 
 
 def test_mixture_note_and_summary_count_every_start(two_types) -> None:
-    fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=8, se="hessian")
+    fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=2, se="hessian")
     outcomes = fit.optimizer["start_outcomes"]
     assert fit.optimizer["starts"] == 8 and len(outcomes) == 8
-    assert "not converged" in outcomes  # 8 iterations are too few for some starts
+    assert "not converged" in outcomes  # 2 iterations (and a 3-step Newton polish) are too few for some starts
     note = next(n for n in fit.notes if n.startswith("of 8 starts"))
     numbers = [int(x) for x in re.findall(r"(\d+) (?:converged|did not)", note)]
     assert numbers == [
@@ -69,7 +69,7 @@ def test_mixture_note_and_summary_count_every_start(two_types) -> None:
 def test_reordering_the_types_keeps_the_record_of_every_start(two_types) -> None:
     from stopwise.estimation.mixture import _order_types, relabel
 
-    fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=8, se="hessian")
+    fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=2, se="hessian")
     problem = fit.extras["problem"]
     swapped = dataclasses.replace(fit, z=relabel(fit.z, np.array([1, 0]), problem.rows))
     ordered = _order_types(swapped, problem, problem.rows, "hessian")
