@@ -71,6 +71,12 @@ from numpyro.infer import MCMC, NUTS
 
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.bayes_pooled import (
+    PooledStart,
+    ml_start,
+    start_inverse_mass,
+    start_sites,
+)
 from stopwise.estimation.bayes_start import (
     PARAMETRISATIONS,
     SubjectStart,
@@ -782,10 +788,12 @@ def run_nuts(
     chain_method: str,
     dense_mass: bool = False,
     inverse_mass: Mapping[tuple[str, ...], Any] | None = None,
+    adapt_mass: bool = True,
 ) -> MCMC:
     """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations;
     ``dense_mass``: one dense mass-matrix block for the population sites, diagonal elsewhere;
-    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None)."""
+    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None);
+    ``adapt_mass``: re-estimate it from the warm-up draws (the step size is always adapted)."""
     kernel = NUTS(
         partial(numpyro_model, setup),
         target_accept_prob=target_accept,
@@ -793,6 +801,7 @@ def run_nuts(
         init_strategy=init_near(values=init_values, scales=init_scales),
         dense_mass=[population_sites(setup)] if dense_mass else False,
         inverse_mass_matrix=None if inverse_mass is None else dict(inverse_mass),
+        adapt_mass_matrix=adapt_mass,
     )
     mcmc = MCMC(
         kernel,
@@ -940,7 +949,9 @@ def fit_bayes(
         raise StopwiseInputError(
             f"parametrisation={parametrisation!r}: expected one of {', '.join(PARAMETRISATIONS)}"
         )
-    natural = initial_natural(model, data, init, formulas, notes)
+    pooled = ml_start(model, data, formulas) if pooled_from_ml(hierarchical, init) else None
+    notes += pooled.notes if pooled else []
+    natural = initial_natural(model, data, pooled.natural if pooled else init, formulas, notes)
     start, form = None, ()
     t_start = time.perf_counter()
     if hierarchical:
@@ -977,6 +988,12 @@ def fit_bayes(
     start_seconds = time.perf_counter() - t_start
     values = initial_values(setup, natural)
     scales = inverse_mass = None
+    if pooled is not None and pooled.coef is not None:
+        values, scales = start_sites(pooled, setup.names, setup.coef_names)
+        if pooled.cov is not None:
+            sites = population_sites(setup)
+            inverse_mass = start_inverse_mass(pooled, setup.names, setup.coef_names, sites)
+            dense_mass = True if dense_mass is None else dense_mass
     if dense_mass is None:
         dense_mass = hierarchical
     if start is not None:
@@ -1000,6 +1017,7 @@ def fit_bayes(
         chain_method=method,
         dense_mass=bool(dense_mass),
         inverse_mass=inverse_mass,
+        adapt_mass=not (pooled is not None and pooled.cov is not None),
     )
     # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower; the
     # conversion also waits for chains that run asynchronously (pmap), so time after it
@@ -1039,7 +1057,7 @@ def fit_bayes(
             "chain_method": method,
             "target_accept": target_accept,
             "max_tree_depth": max_tree_depth,
-            "init": _init_text(init),
+            "init": _init_text(init, pooled),
             "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": bool(dense_mass),
             "start_seconds": start_seconds,
@@ -1063,7 +1081,16 @@ def _check_counts(**counts: int) -> None:
             raise StopwiseInputError(f"{name}={value!r}: expected a positive whole number")
 
 
-def _init_text(init: Any) -> str:
+def pooled_from_ml(hierarchical: bool, init: Any) -> bool:
+    """Pooled fits with init None or "mle" start at the ML estimate (estimation/bayes_pooled.py)."""
+    return not hierarchical and (init is None or (isinstance(init, str) and init == "mle"))
+
+
+def _init_text(init: Any, pooled: PooledStart | None = None) -> str:
+    if pooled is not None:
+        if pooled.cov is not None:
+            return "ML estimate, inverse mass matrix from the ML covariance"
+        return "ML estimate" if pooled.coef is not None else "model start values"
     if isinstance(init, Mapping):
         return "user values"
     return "model start values" if init in (None, "start") else str(init)
