@@ -71,6 +71,7 @@ from numpyro.infer import MCMC, NUTS
 
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import loo_subject
 from stopwise.estimation.bayes_pooled import (
     PooledStart,
     ml_start,
@@ -885,6 +886,8 @@ def fit_bayes(
     dense_mass: bool | None = None,
     hdi_prob: float = 0.95,
     pointwise: str | None = None,
+    loo: str | None = None,
+    loo_refits: bool = True,
     aggregate: bool = True,
     planner_cap: str = "auto",
     se: Any = None,
@@ -901,8 +904,9 @@ def fit_bayes(
     parametrisation: hierarchical only; "auto" (the documented rule), "centred" or
     "noncentred". dense_mass: a dense mass matrix for the population sites (default: on for
     hierarchical fits, off for pooled ones).
-    pointwise: unit of the ArviZ log-likelihood: "trial" (stopping default), "row" (lottery
-    default) or "subject". planner_cap: for a planner model without ``max_target``,
+    loo (alias ``pointwise``): unit of the ArviZ log-likelihood and of LOO: "subject"
+    (default with several subjects: leave-one-subject-out, Pareto k > 0.7 repaired by refits
+    when ``loo_refits``, estimation/loo_subject.py), "trial" (stopping) or "row". planner_cap: for a planner model without ``max_target``,
     "auto" samples with the cap horizon + 30 and checks it at 100 posterior draws against the
     default cap, refitting at the default cap if the check fails; "exact" uses the default
     cap (estimation/truncation.py). Returns a
@@ -943,8 +947,12 @@ def fit_bayes(
     if callable(size_from_data):  # size static parts (caps) from concrete data before tracing
         size_from_data(data)
     check_kind(model, data)
+    pointwise = loo if loo is not None else pointwise
+    if pointwise == "trial" and not isinstance(data, StoppingData):
+        pointwise = "row"  # a lottery choice is its own trial
     if pointwise is None:
-        pointwise = "trial" if isinstance(data, StoppingData) else "row"
+        several = data.n_subjects > 1
+        pointwise = "subject" if several else "trial" if isinstance(data, StoppingData) else "row"
     if parametrisation not in PARAMETRISATIONS:
         raise StopwiseInputError(
             f"parametrisation={parametrisation!r}: expected one of {', '.join(PARAMETRISATIONS)}"
@@ -1072,7 +1080,36 @@ def fit_bayes(
         notes=notes,
     )
     release_compiled_programs()
+    if unit_name == "subject" and loo_refits:
+        if post.converged:
+            repair_subject_loo(post, arguments)
+        elif post.loo_summary()["n_pareto_k_above_0.7"]:
+            post.notes.append(
+                "leave-one-subject-out: subjects with Pareto k > 0.7 were not refitted because "
+                "the fit did not converge; its elpd is not trustworthy"
+            )
     return post
+
+
+def repair_subject_loo(post: Any, arguments: Mapping[str, Any]) -> None:
+    """Leave-one-subject-out terms with Pareto k > 0.7 replaced by refits of the same fit
+    without those subjects (estimation/loo_subject.py); the result is stored on ``post``."""
+    psis = post.loo()
+
+    def refit(data: Any, seed: int) -> Any:
+        again = {**arguments, "data": data, "seed": seed, "progress": False}
+        return fit_bayes(**{**again, "loo_refits": False})
+
+    result = loo_subject.repair(
+        post,
+        np.asarray(psis["loo_i"].values),
+        np.asarray(psis["pareto_k"].values),
+        refit,
+        has_formulas=bool(arguments.get("formulas")),
+    )
+    post.loo_repair = result
+    post._loo = loo_subject.corrected_elpd(psis, result)
+    post.notes.extend(result.notes)
 
 
 def _check_counts(**counts: int) -> None:

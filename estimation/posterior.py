@@ -291,6 +291,7 @@ class Posterior:
     cells: Any = field(default=None, repr=False)
     data: Any = field(default=None, repr=False)
     _loo: Any = field(default=None, repr=False)
+    loo_repair: Any = field(default=None, repr=False)  # estimation/loo_subject.SubjectLoo
 
     @property
     def converged(self) -> bool:
@@ -319,6 +320,7 @@ class Posterior:
     def loo_summary(self) -> dict[str, Any]:
         res = self.loo()
         k = np.asarray(res.pareto_k)
+        repair = self.loo_repair
         return {
             "elpd_loo": float(res.elpd_loo),
             "se": float(res.se),
@@ -326,6 +328,8 @@ class Posterior:
             "unit": self.unit_name,
             "n_units": int(k.size),
             "n_pareto_k_above_0.7": int(np.sum(k > PARETO_K_MAX)),
+            "method": repair.method if repair is not None else "PSIS-LOO",
+            "refits": repair.refits if repair is not None else 0,
         }
 
     def draws(self, name: str) -> np.ndarray:
@@ -422,8 +426,9 @@ class Posterior:
         )
         loo = self.loo_summary()
         lines.append(
-            f"PSIS-LOO per {loo['unit']}: elpd {loo['elpd_loo']:.2f} (se {loo['se']:.2f}),"
-            f" p_loo {loo['p_loo']:.1f}, Pareto k > 0.7: {loo['n_pareto_k_above_0.7']}"
+            f"leave-one-{loo['unit']}-out elpd {loo['elpd_loo']:.2f} (se {loo['se']:.2f}),"
+            f" p_loo {loo['p_loo']:.1f}, Pareto k > 0.7: {loo['n_pareto_k_above_0.7']}; "
+            f"{loo['method']}"
         )
         check = r.get("truncation_check")
         if check:
@@ -713,6 +718,7 @@ class LooComparison:
 
     table: pd.DataFrame
     notes: list[str]
+    unit: str = "trial"
 
     def __str__(self) -> str:
         cols = [
@@ -728,7 +734,7 @@ class LooComparison:
         text = self.table[cols].to_string(float_format=lambda v: f"{v:.2f}")
         return "\n".join(
             [
-                "Model comparison by PSIS-LOO (higher elpd_loo is better)",
+                f"Model comparison by leave-one-{self.unit}-out elpd (higher is better)",
                 text,
                 *[f"note: {n}" for n in self.notes],
             ]
@@ -742,6 +748,7 @@ class LooComparison:
         return {
             "method": "bayes",
             "criterion": "elpd_loo",
+            "unit": self.unit,
             "models": records,
             "notes": list(self.notes),
         }
@@ -763,7 +770,7 @@ def loo_compare(fits: Sequence[Posterior], names: Sequence[str] | None = None) -
             f"unit; got units {sorted(units)} and sizes {sorted(sizes)}"
         )
     loos = {n: f.loo() for n, f in zip(names, fits)}
-    table = az.compare(dict(zip(names, (f.idata for f in fits))), ic="loo")
+    table = az.compare(loos, ic="loo")
     table = table.rename(columns={"elpd_loo": "elpd_loo", "d_loo": "elpd_diff"})
     if "elpd_diff" not in table.columns and "elpd_loo" in table.columns:
         table["elpd_diff"] = table["elpd_loo"].max() - table["elpd_loo"]
@@ -780,6 +787,12 @@ def loo_compare(fits: Sequence[Posterior], names: Sequence[str] | None = None) -
                 f"{PARETO_K_MAX}; PSIS-LOO is unreliable for this model (refit leaving those "
                 "units out, or use K-fold cross-validation)"
             )
+    unit = units.pop()
+    methods = {f.loo_summary()["method"] for f in fits}
+    notes.insert(
+        0,
+        f"every model scored by the same unit: leave-one-{unit}-out ({'; '.join(sorted(methods))})",
+    )
     best = table.index[0]
     for n in table.index[1:]:
         diff, dse = float(table.loc[n, "elpd_diff"]), float(table.loc[n, "dse"])
@@ -791,4 +804,4 @@ def loo_compare(fits: Sequence[Posterior], names: Sequence[str] | None = None) -
     unconverged = [n for n, f in zip(names, fits) if not f.converged]
     if unconverged:
         notes.append(f"not converged (see their warnings): {', '.join(unconverged)}")
-    return LooComparison(table=table, notes=notes)
+    return LooComparison(table=table, notes=notes, unit=unit)

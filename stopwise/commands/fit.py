@@ -208,6 +208,7 @@ def run(args: argparse.Namespace) -> int:
             hierarchical=args.hierarchical,
             parametrisation=args.parametrisation,
             planner_cap=args.planner_cap,
+            loo=args.loo,
             chains=args.chains,
             draws=args.draws,
             warmup=args.warmup,
@@ -215,9 +216,11 @@ def run(args: argparse.Namespace) -> int:
             formulas=args.formula or None,
         )
     else:
-        if args.hierarchical or args.parametrisation != "auto" or args.planner_cap != "auto":
+        bayes_only = args.parametrisation != "auto" or args.planner_cap != "auto" or args.loo
+        if args.hierarchical or bayes_only:
             raise StopwiseInputError(
-                "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
+                "--hierarchical, --parametrisation, --planner-cap and --loo apply to "
+                "--method bayes"
             )
         kw: dict[str, Any] = {}
         if args.fix:
