@@ -219,8 +219,7 @@ def run(args: argparse.Namespace) -> int:
         bayes_only = args.parametrisation != "auto" or args.planner_cap != "auto" or args.loo
         if args.hierarchical or bayes_only:
             raise StopwiseInputError(
-                "--hierarchical, --parametrisation, --planner-cap and --loo apply to "
-                "--method bayes"
+                "--hierarchical, --parametrisation, --planner-cap and --loo apply to --method bayes"
             )
         kw: dict[str, Any] = {}
         if args.fix:
