@@ -24,7 +24,9 @@ and w[c, i] counts the data rows each stands for (0 on padding). Aggregation is 
 start values against the plain row sum and dropped if it does not reproduce it; contest
 models are never aggregated.
 
-Hierarchical fits start near per-subject ML estimates (estimation/bayes_start.py) and use a
+Pooled fits (init None or "mle") start at the ML estimate with the Laplace covariance of the
+posterior as a dense inverse mass matrix, kept through the warm-up while the step size adapts
+(estimation/bayes_pooled.py). Hierarchical fits start near per-subject ML estimates (estimation/bayes_start.py) and use a
 dense mass matrix for the population sites (intercepts, effects, sd_z, L_corr; ``dense_mass``)
 and a diagonal one for the subject sites; the warm-up starts from an inverse mass matrix of
 normal-approximation posterior variances built from the per-subject standard errors
@@ -75,6 +77,7 @@ from stopwise.estimation import loo_subject
 from stopwise.estimation.bayes_pooled import (
     PooledStart,
     ml_start,
+    prior_precision,
     start_inverse_mass,
     start_sites,
 )
@@ -712,6 +715,15 @@ def initial_inverse_mass(
     return blocks
 
 
+def pooled_log_prior(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """log prior of the pooled population sites: the intercepts' priors through their
+    transforms plus Normal(0, COEF_SD) for every covariate effect."""
+    effects = [
+        jnp.sum(dist.Normal(0.0, COEF_SD).log_prob(v)) for k, v in sites.items() if k[0] == "b"
+    ]
+    return intercept_prior(setup, sites) + sum(effects, jnp.zeros(()))
+
+
 def population_sites(setup: Setup) -> tuple[str, ...]:
     """Names of the population-level sites (one dense block of the mass matrix)."""
     names: list[str] = []
@@ -896,8 +908,9 @@ def fit_bayes(
 ) -> Any:
     """Posterior of ``model`` given ``data`` by NUTS (see the module docstring).
 
-    init: None/"start" (model start values), "mle" (the ML estimate when the ML engine is
-    available) or a mapping name -> natural value; chains start near it with a small jitter.
+    init: None (pooled: the ML estimate and covariance, estimation/bayes_pooled.py;
+    hierarchical: see below), "start" (model start values), "mle" or a mapping name ->
+    natural value; chains start near it with a small jitter.
     Hierarchical fits start every subject near its own ML estimate and the population sd at
     the subjects' spread; with init=None the population location starts at the subjects'
     median (estimation/bayes_start.py), otherwise at the values ``init`` names.
@@ -1000,7 +1013,10 @@ def fit_bayes(
         values, scales = start_sites(pooled, setup.names, setup.coef_names)
         if pooled.cov is not None:
             sites = population_sites(setup)
-            inverse_mass = start_inverse_mass(pooled, setup.names, setup.coef_names, sites)
+            precision = prior_precision(partial(pooled_log_prior, setup), sites, values)
+            inverse_mass = start_inverse_mass(
+                pooled, setup.names, setup.coef_names, sites, precision
+            )
             dense_mass = True if dense_mass is None else dense_mass
     if dense_mass is None:
         dense_mass = hierarchical

@@ -21,10 +21,12 @@ one to the other by column name.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+import jax
+import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
@@ -150,9 +152,44 @@ def start_inverse_mass(
     names: Sequence[str],
     coef_names: Mapping[str, Sequence[str]],
     sites: tuple[str, ...],
+    prior_precision: np.ndarray | None = None,
 ) -> dict[tuple[str, ...], np.ndarray]:
-    """NUTS's initial inverse mass matrix: one dense block over the population sites equal
-    to the ML covariance H^-1, rows and columns in the sampler's site order."""
+    """NUTS's inverse mass matrix: one dense block over the population sites, rows and
+    columns in the sampler's site order, equal to the Laplace covariance of the posterior
+
+      (H + P)^-1,   H = (ML covariance)^-1,  P = -d^2 log prior / dz^2 at the ML estimate,
+
+    (H^-1 itself without ``prior_precision``). P matters where the data say little: a
+    direction the likelihood leaves flat gets the prior's width instead of a huge one."""
     assert start.cov is not None
     order = population_permutation(names, coef_names)
-    return {sites: start.cov[np.ix_(order, order)]}
+    cov = start.cov[np.ix_(order, order)]
+    if prior_precision is None:
+        return {sites: cov}
+    return {sites: laplace_covariance(cov, prior_precision)}
+
+
+def laplace_covariance(ml_cov: np.ndarray, prior_precision: np.ndarray) -> np.ndarray:
+    """(ml_cov^-1 + P)^-1, with P's negative eigenvalues (a prior convex downwards there)
+    set to 0 so the result stays positive definite and no wider than ml_cov."""
+    values, vectors = np.linalg.eigh(0.5 * (prior_precision + prior_precision.T))
+    p = (vectors * np.maximum(values, 0.0)) @ vectors.T
+    h = np.linalg.inv(ml_cov)
+    out = np.linalg.inv(0.5 * (h + h.T) + p)
+    return 0.5 * (out + out.T)
+
+
+def prior_precision(
+    log_prior: Callable[[Mapping[str, Any]], Any], sites: Sequence[str], values: Mapping[str, Any]
+) -> np.ndarray:
+    """P = -d^2 log_prior / dz^2 at ``values`` over the flattened ``sites`` (in that order;
+    a site named z_<k> is a scalar, b_<k> a vector)."""
+    sizes = [int(np.size(values[s])) for s in sites]
+    flat = np.concatenate([np.ravel(np.asarray(values[s], np.float64)) for s in sites])
+
+    def negative_log_prior(x: Any) -> Any:
+        parts = jnp.split(x, np.cumsum(sizes)[:-1])
+        at = {s: (p[0] if s.startswith("z_") else p) for s, p in zip(sites, parts)}
+        return -log_prior(at)
+
+    return np.asarray(jax.hessian(negative_log_prior)(jnp.asarray(flat)))

@@ -14,7 +14,9 @@ from stopwise.data_schemas.arrays import StoppingData
 from stopwise.estimation.bayes import fit_bayes
 from stopwise.estimation.bayes_pooled import (
     PooledStart,
+    laplace_covariance,
     population_permutation,
+    prior_precision,
     start_inverse_mass,
     start_sites,
 )
@@ -146,3 +148,43 @@ def test_crra_myopic_default_meets_the_pooled_goal(seed):
     d = post.diagnostics
     assert d["min_ess_bulk"] >= ESS_GOAL, post.params
     assert d["max_rhat"] <= RHAT_GOAL and d["divergences"] == 0
+
+
+def test_laplace_covariance_adds_the_prior_and_ignores_its_convex_directions():
+    ml_cov = np.array([[4.0, 1.0], [1.0, 2.0]])
+    precision = np.diag([0.5, 0.0])
+    # conjugate normal: posterior precision = data precision + prior precision (common
+    # practice, no source), computed here with plain numpy
+    expected = np.linalg.inv(np.linalg.inv(ml_cov) + precision)
+    np.testing.assert_allclose(laplace_covariance(ml_cov, precision), expected, rtol=1e-12)
+    # a prior curving upwards (negative precision) must not widen the mass matrix
+    widened = laplace_covariance(ml_cov, np.diag([-3.0, 0.0]))
+    np.testing.assert_allclose(widened, ml_cov, rtol=1e-12)
+    assert np.all(np.linalg.eigvalsh(laplace_covariance(ml_cov, np.diag([-3.0, 5.0]))) > 0)
+
+
+def test_prior_precision_matches_finite_differences():
+    sites = ("z_a", "b_a")
+    values = {"z_a": 0.3, "b_a": np.array([0.1, -0.2])}
+
+    def log_prior(at):
+        return (
+            jnp.log(jnp.cosh(at["z_a"])) * -2.0  # a smooth non-Gaussian density of z
+            + jnp.sum(-0.5 * at["b_a"] ** 2 / 4.0)
+        )
+
+    got = prior_precision(log_prior, sites, values)
+
+    # central differences of the same density written with numpy (independent code path)
+    def f(x):
+        return 2.0 * np.log(np.cosh(x[0])) + np.sum(0.5 * x[1:] ** 2 / 4.0)
+
+    x0, h = np.array([0.3, 0.1, -0.2]), 1e-4
+    numeric = np.zeros((3, 3))
+    for i in range(3):
+        for j in range(3):
+            e_i, e_j = np.eye(3)[i] * h, np.eye(3)[j] * h
+            numeric[i, j] = (
+                f(x0 + e_i + e_j) - f(x0 + e_i - e_j) - f(x0 - e_i + e_j) + f(x0 - e_i - e_j)
+            ) / (4 * h * h)
+    np.testing.assert_allclose(got, numeric, atol=1e-6)
