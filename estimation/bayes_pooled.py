@@ -30,6 +30,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.mle import fit_mle
 
 
 @dataclass(frozen=True)
@@ -82,8 +83,6 @@ def population_permutation(
 def ml_start(model: Any, data: Any, formulas: Any) -> PooledStart:
     """The pooled ML fit (Hessian covariance, estimation/mle.py) as a sampler start; a fit
     that fails or whose Hessian is not positive definite gives what it can with a note."""
-    from stopwise.estimation.mle import fit_mle
-
     try:
         fit = fit_mle(model, data, se="hessian", formulas=formulas, progress=False)
     except StopwiseInputError:
