@@ -24,7 +24,9 @@ and w[c, i] counts the data rows each stands for (0 on padding). Aggregation is 
 start values against the plain row sum and dropped if it does not reproduce it; contest
 models are never aggregated.
 
-Hierarchical fits start near per-subject ML estimates (estimation/bayes_start.py) and use a
+Pooled fits (init None or "mle") start at the ML estimate with the Laplace covariance of the
+posterior as a dense inverse mass matrix, kept through the warm-up while the step size adapts
+(estimation/bayes_pooled.py). Hierarchical fits start near per-subject ML estimates (estimation/bayes_start.py) and use a
 dense mass matrix for the population sites (intercepts, effects, sd_z, L_corr; ``dense_mass``)
 and a diagonal one for the subject sites; the warm-up starts from an inverse mass matrix of
 normal-approximation posterior variances built from the per-subject standard errors
@@ -71,6 +73,14 @@ from numpyro.infer import MCMC, NUTS
 
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import loo_subject
+from stopwise.estimation.bayes_pooled import (
+    PooledStart,
+    ml_start,
+    prior_precision,
+    start_inverse_mass,
+    start_sites,
+)
 from stopwise.estimation.bayes_start import (
     PARAMETRISATIONS,
     SubjectStart,
@@ -705,6 +715,15 @@ def initial_inverse_mass(
     return blocks
 
 
+def pooled_log_prior(setup: Setup, sites: Mapping[str, Any]) -> Any:
+    """log prior of the pooled population sites: the intercepts' priors through their
+    transforms plus Normal(0, COEF_SD) for every covariate effect."""
+    effects = [
+        jnp.sum(dist.Normal(0.0, COEF_SD).log_prob(v)) for k, v in sites.items() if k[0] == "b"
+    ]
+    return intercept_prior(setup, sites) + sum(effects, jnp.zeros(()))
+
+
 def population_sites(setup: Setup) -> tuple[str, ...]:
     """Names of the population-level sites (one dense block of the mass matrix)."""
     names: list[str] = []
@@ -782,10 +801,12 @@ def run_nuts(
     chain_method: str,
     dense_mass: bool = False,
     inverse_mass: Mapping[tuple[str, ...], Any] | None = None,
+    adapt_mass: bool = True,
 ) -> MCMC:
     """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations;
     ``dense_mass``: one dense mass-matrix block for the population sites, diagonal elsewhere;
-    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None)."""
+    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None);
+    ``adapt_mass``: re-estimate it from the warm-up draws (the step size is always adapted)."""
     kernel = NUTS(
         partial(numpyro_model, setup),
         target_accept_prob=target_accept,
@@ -793,6 +814,7 @@ def run_nuts(
         init_strategy=init_near(values=init_values, scales=init_scales),
         dense_mass=[population_sites(setup)] if dense_mass else False,
         inverse_mass_matrix=None if inverse_mass is None else dict(inverse_mass),
+        adapt_mass_matrix=adapt_mass,
     )
     mcmc = MCMC(
         kernel,
@@ -876,6 +898,8 @@ def fit_bayes(
     dense_mass: bool | None = None,
     hdi_prob: float = 0.95,
     pointwise: str | None = None,
+    loo: str | None = None,
+    loo_refits: bool = True,
     aggregate: bool = True,
     planner_cap: str = "auto",
     se: Any = None,
@@ -884,16 +908,18 @@ def fit_bayes(
 ) -> Any:
     """Posterior of ``model`` given ``data`` by NUTS (see the module docstring).
 
-    init: None/"start" (model start values), "mle" (the ML estimate when the ML engine is
-    available) or a mapping name -> natural value; chains start near it with a small jitter.
+    init: None (pooled: the ML estimate and covariance, estimation/bayes_pooled.py;
+    hierarchical: see below), "start" (model start values), "mle" or a mapping name ->
+    natural value; chains start near it with a small jitter.
     Hierarchical fits start every subject near its own ML estimate and the population sd at
     the subjects' spread; with init=None the population location starts at the subjects'
     median (estimation/bayes_start.py), otherwise at the values ``init`` names.
     parametrisation: hierarchical only; "auto" (the documented rule), "centred" or
     "noncentred". dense_mass: a dense mass matrix for the population sites (default: on for
     hierarchical fits, off for pooled ones).
-    pointwise: unit of the ArviZ log-likelihood: "trial" (stopping default), "row" (lottery
-    default) or "subject". planner_cap: for a planner model without ``max_target``,
+    loo (alias ``pointwise``): unit of the ArviZ log-likelihood and of LOO: "subject"
+    (default with several subjects: leave-one-subject-out, Pareto k > 0.7 repaired by refits
+    when ``loo_refits``, estimation/loo_subject.py), "trial" (stopping) or "row". planner_cap: for a planner model without ``max_target``,
     "auto" samples with the cap horizon + 30 and checks it at 100 posterior draws against the
     default cap, refitting at the default cap if the check fails; "exact" uses the default
     cap (estimation/truncation.py). Returns a
@@ -934,13 +960,19 @@ def fit_bayes(
     if callable(size_from_data):  # size static parts (caps) from concrete data before tracing
         size_from_data(data)
     check_kind(model, data)
+    pointwise = loo if loo is not None else pointwise
+    if pointwise == "trial" and not isinstance(data, StoppingData):
+        pointwise = "row"  # a lottery choice is its own trial
     if pointwise is None:
-        pointwise = "trial" if isinstance(data, StoppingData) else "row"
+        several = data.n_subjects > 1
+        pointwise = "subject" if several else "trial" if isinstance(data, StoppingData) else "row"
     if parametrisation not in PARAMETRISATIONS:
         raise StopwiseInputError(
             f"parametrisation={parametrisation!r}: expected one of {', '.join(PARAMETRISATIONS)}"
         )
-    natural = initial_natural(model, data, init, formulas, notes)
+    pooled = ml_start(model, data, formulas) if pooled_from_ml(hierarchical, init) else None
+    notes += pooled.notes if pooled else []
+    natural = initial_natural(model, data, pooled.natural if pooled else init, formulas, notes)
     start, form = None, ()
     t_start = time.perf_counter()
     if hierarchical:
@@ -977,6 +1009,15 @@ def fit_bayes(
     start_seconds = time.perf_counter() - t_start
     values = initial_values(setup, natural)
     scales = inverse_mass = None
+    if pooled is not None and pooled.coef is not None:
+        values, scales = start_sites(pooled, setup.names, setup.coef_names)
+        if pooled.cov is not None:
+            sites = population_sites(setup)
+            precision = prior_precision(partial(pooled_log_prior, setup), sites, values)
+            inverse_mass = start_inverse_mass(
+                pooled, setup.names, setup.coef_names, sites, precision
+            )
+            dense_mass = True if dense_mass is None else dense_mass
     if dense_mass is None:
         dense_mass = hierarchical
     if start is not None:
@@ -1000,6 +1041,7 @@ def fit_bayes(
         chain_method=method,
         dense_mass=bool(dense_mass),
         inverse_mass=inverse_mass,
+        adapt_mass=not (pooled is not None and pooled.cov is not None),
     )
     # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower; the
     # conversion also waits for chains that run asynchronously (pmap), so time after it
@@ -1039,7 +1081,7 @@ def fit_bayes(
             "chain_method": method,
             "target_accept": target_accept,
             "max_tree_depth": max_tree_depth,
-            "init": _init_text(init),
+            "init": _init_text(init, pooled),
             "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": bool(dense_mass),
             "start_seconds": start_seconds,
@@ -1054,7 +1096,36 @@ def fit_bayes(
         notes=notes,
     )
     release_compiled_programs()
+    if unit_name == "subject" and loo_refits:
+        if post.converged:
+            repair_subject_loo(post, arguments)
+        elif post.loo_summary()["n_pareto_k_above_0.7"]:
+            post.notes.append(
+                "leave-one-subject-out: subjects with Pareto k > 0.7 were not refitted because "
+                "the fit did not converge; its elpd is not trustworthy"
+            )
     return post
+
+
+def repair_subject_loo(post: Any, arguments: Mapping[str, Any]) -> None:
+    """Leave-one-subject-out terms with Pareto k > 0.7 replaced by refits of the same fit
+    without those subjects (estimation/loo_subject.py); the result is stored on ``post``."""
+    psis = post.loo()
+
+    def refit(data: Any, seed: int) -> Any:
+        again = {**arguments, "data": data, "seed": seed, "progress": False}
+        return fit_bayes(**{**again, "loo_refits": False})
+
+    result = loo_subject.repair(
+        post,
+        np.asarray(psis["loo_i"].values),
+        np.asarray(psis["pareto_k"].values),
+        refit,
+        has_formulas=bool(arguments.get("formulas")),
+    )
+    post.loo_repair = result
+    post._loo = loo_subject.corrected_elpd(psis, result)
+    post.notes.extend(result.notes)
 
 
 def _check_counts(**counts: int) -> None:
@@ -1063,7 +1134,16 @@ def _check_counts(**counts: int) -> None:
             raise StopwiseInputError(f"{name}={value!r}: expected a positive whole number")
 
 
-def _init_text(init: Any) -> str:
+def pooled_from_ml(hierarchical: bool, init: Any) -> bool:
+    """Pooled fits with init None or "mle" start at the ML estimate (estimation/bayes_pooled.py)."""
+    return not hierarchical and (init is None or (isinstance(init, str) and init == "mle"))
+
+
+def _init_text(init: Any, pooled: PooledStart | None = None) -> str:
+    if pooled is not None:
+        if pooled.cov is not None:
+            return "ML estimate, inverse mass matrix from the ML covariance"
+        return "ML estimate" if pooled.coef is not None else "model start values"
     if isinstance(init, Mapping):
         return "user values"
     return "model start values" if init in (None, "start") else str(init)

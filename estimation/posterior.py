@@ -2,14 +2,14 @@
 
 Reported quantities (posterior group of the InferenceData, and rows of ``Posterior.params``):
 
-  <k>            the parameter on its natural scale: to_natural(intercept of z_k); pooled: the
-                 parameter; hierarchical: the population median subject (covariates at 0)
+  <k>            pooled: the parameter on its natural scale, to_natural(intercept of z_k)
   <k>:<column>   a covariate effect on the unconstrained scale (as the ML engine names it)
-  mean(<k>)      hierarchical: population mean of the natural-scale parameter,
-                 E[to_natural(mu_k + sd_k e)], e ~ Normal(0, 1), by 40-point Gauss-Hermite
-  sd(<k>)        hierarchical: population sd of the natural-scale parameter (same quadrature)
-  sd_z(<k>)      hierarchical: population sd on the unconstrained scale
-  corr(<j>,<k>)  hierarchical: population correlation on the unconstrained scale
+  hierarchical:  "<k>: population median", "<k>: population mean", "<k>: between-subject
+                 sd", "<k>: between-subject sd (unconstrained scale)" and "<j>, <k>:
+                 between-subject correlation (unconstrained scale)"; see
+                 estimation/bayes_labels.py. The population mean and sd of the natural-scale
+                 parameter are E[to_natural(mu_k + sd_k e)], e ~ Normal(0, 1), and its sd, by
+                 40-point Gauss-Hermite quadrature
   <k>_subject    hierarchical: each subject's natural-scale parameter (at the covariates of
                  the subject's first row)
 
@@ -36,6 +36,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation import bayes_labels
 from stopwise.estimation.draws import flatten_chains
 from stopwise.estimation.priors import hyperprior_text
 from stopwise.estimation.subject_estimates import subject_lines, subject_records
@@ -110,22 +111,24 @@ def _derived_draws(
     for k, spec in enumerate(setup.specs):
         name = spec.name
         if setup.has_intercept(name):
-            out[name] = spec.to_natural(samples[f"z_{name}"])
+            label = bayes_labels.population_median(name) if setup.hierarchical else name
+            out[label] = spec.to_natural(samples[f"z_{name}"])
         effects = [c for c in setup.coef_names[name] if c != "Intercept"]
         for e, column in enumerate(effects):
-            out[f"{name}:{column}"] = samples[f"b_{name}"][..., e]
+            out[bayes_labels.covariate_effect(name, column)] = samples[f"b_{name}"][..., e]
         if setup.hierarchical:
             sd = samples["sd_z"][..., k]
             if setup.has_intercept(name):
                 mean, sd_nat = gauss_hermite_moments(spec, samples[f"z_{name}"], sd)
-                out[f"mean({name})"] = mean
-                out[f"sd({name})"] = sd_nat
-            out[f"sd_z({name})"] = sd
+                out[bayes_labels.population_mean(name)] = mean
+                out[bayes_labels.between_subject_sd(name)] = sd_nat
+            out[bayes_labels.between_subject_sd_unconstrained(name)] = sd
     if setup.hierarchical and len(setup.names) > 1:
         chol = samples["L_corr"]
         corr = chol @ jnp.swapaxes(chol, -1, -2)
         for i, j in combinations(range(len(setup.names)), 2):
-            out[f"corr({setup.names[i]},{setup.names[j]})"] = corr[..., i, j]
+            label = bayes_labels.between_subject_correlation(setup.names[i], setup.names[j])
+            out[label] = corr[..., i, j]
     if setup.hierarchical and first is not None:
         z = jax.vmap(jax.vmap(lambda s: cell_z(setup, s, args)))(dict(samples))
         index = jnp.asarray(first)
@@ -203,14 +206,14 @@ def sampler_warnings(
         out.append(
             f"{n_div} divergent transitions after warm-up: the posterior has regions NUTS "
             "cannot explore; raise target_accept (e.g. 0.95), give tighter priors, or use a "
-            "pooled model if the population sd is near zero"
+            "pooled model if a between-subject sd is near zero"
         )
     for chain, value in enumerate(np.atleast_1d(ebfmi)):
         if value < EBFMI_MIN:
             out.append(
                 f"E-BFMI {value:.2f} below {EBFMI_MIN} in chain {chain}: the momentum resampling "
                 "explores the energy poorly (often heavy tails or a funnel); try longer warm-up "
-                "or tighter priors on population sds"
+                "or tighter priors on the between-subject sds"
             )
     hits = int(np.sum(stats["reached_max_treedepth"]))
     if hits:
@@ -288,6 +291,7 @@ class Posterior:
     cells: Any = field(default=None, repr=False)
     data: Any = field(default=None, repr=False)
     _loo: Any = field(default=None, repr=False)
+    loo_repair: Any = field(default=None, repr=False)  # estimation/loo_subject.SubjectLoo
 
     @property
     def converged(self) -> bool:
@@ -316,6 +320,7 @@ class Posterior:
     def loo_summary(self) -> dict[str, Any]:
         res = self.loo()
         k = np.asarray(res.pareto_k)
+        repair = self.loo_repair
         return {
             "elpd_loo": float(res.elpd_loo),
             "se": float(res.se),
@@ -323,6 +328,8 @@ class Posterior:
             "unit": self.unit_name,
             "n_units": int(k.size),
             "n_pareto_k_above_0.7": int(np.sum(k > PARETO_K_MAX)),
+            "method": repair.method if repair is not None else "PSIS-LOO",
+            "refits": repair.refits if repair is not None else 0,
         }
 
     def draws(self, name: str) -> np.ndarray:
@@ -419,8 +426,9 @@ class Posterior:
         )
         loo = self.loo_summary()
         lines.append(
-            f"PSIS-LOO per {loo['unit']}: elpd {loo['elpd_loo']:.2f} (se {loo['se']:.2f}),"
-            f" p_loo {loo['p_loo']:.1f}, Pareto k > 0.7: {loo['n_pareto_k_above_0.7']}"
+            f"leave-one-{loo['unit']}-out elpd {loo['elpd_loo']:.2f} (se {loo['se']:.2f}),"
+            f" p_loo {loo['p_loo']:.1f}, Pareto k > 0.7: {loo['n_pareto_k_above_0.7']}; "
+            f"{loo['method']}"
         )
         check = r.get("truncation_check")
         if check:
@@ -592,7 +600,13 @@ def build_posterior(
     priors = {name: p.text for name, p in setup.priors.items()}
     hyper = hyperprior_text()
     if setup.hierarchical:
-        priors.update({f"population {k}": hyper[k] for k in ("location", "sd", "correlation")})
+        priors.update(
+            {
+                "population median": hyper["location"],
+                "between-subject sd (unconstrained scale)": hyper["sd"],
+                "between-subject correlation (unconstrained scale)": hyper["correlation"],
+            }
+        )
     if any(setup.effect_columns(n) for n in setup.names):
         priors["covariate effects"] = hyper["covariate effects"]
     loglik = loglik_at_posterior_mean(setup, samples, args)
@@ -646,16 +660,10 @@ def population_table(
                 "r_hat": float(diag.loc[name, "r_hat"]),
                 "ess_bulk": float(diag.loc[name, "ess_bulk"]),
                 "ess_tail": float(diag.loc[name, "ess_tail"]),
-                "scale": _scale_of(name),
+                "scale": bayes_labels.scale_of(name),
             }
         )
     return pd.DataFrame(rows).set_index("name")
-
-
-def _scale_of(name: str) -> str:
-    if ":" in name or name.startswith(("sd_z(", "corr(")):
-        return "unconstrained"
-    return "natural"
 
 
 def subject_table(
@@ -710,6 +718,7 @@ class LooComparison:
 
     table: pd.DataFrame
     notes: list[str]
+    unit: str = "trial"
 
     def __str__(self) -> str:
         cols = [
@@ -725,7 +734,7 @@ class LooComparison:
         text = self.table[cols].to_string(float_format=lambda v: f"{v:.2f}")
         return "\n".join(
             [
-                "Model comparison by PSIS-LOO (higher elpd_loo is better)",
+                f"Model comparison by leave-one-{self.unit}-out elpd (higher is better)",
                 text,
                 *[f"note: {n}" for n in self.notes],
             ]
@@ -739,6 +748,7 @@ class LooComparison:
         return {
             "method": "bayes",
             "criterion": "elpd_loo",
+            "unit": self.unit,
             "models": records,
             "notes": list(self.notes),
         }
@@ -760,7 +770,7 @@ def loo_compare(fits: Sequence[Posterior], names: Sequence[str] | None = None) -
             f"unit; got units {sorted(units)} and sizes {sorted(sizes)}"
         )
     loos = {n: f.loo() for n, f in zip(names, fits)}
-    table = az.compare(dict(zip(names, (f.idata for f in fits))), ic="loo")
+    table = az.compare(loos, ic="loo")
     table = table.rename(columns={"elpd_loo": "elpd_loo", "d_loo": "elpd_diff"})
     if "elpd_diff" not in table.columns and "elpd_loo" in table.columns:
         table["elpd_diff"] = table["elpd_loo"].max() - table["elpd_loo"]
@@ -777,6 +787,12 @@ def loo_compare(fits: Sequence[Posterior], names: Sequence[str] | None = None) -
                 f"{PARETO_K_MAX}; PSIS-LOO is unreliable for this model (refit leaving those "
                 "units out, or use K-fold cross-validation)"
             )
+    unit = units.pop()
+    methods = {f.loo_summary()["method"] for f in fits}
+    notes.insert(
+        0,
+        f"every model scored by the same unit: leave-one-{unit}-out ({'; '.join(sorted(methods))})",
+    )
     best = table.index[0]
     for n in table.index[1:]:
         diff, dse = float(table.loc[n, "elpd_diff"]), float(table.loc[n, "dse"])
@@ -788,4 +804,4 @@ def loo_compare(fits: Sequence[Posterior], names: Sequence[str] | None = None) -
     unconverged = [n for n, f in zip(names, fits) if not f.converged]
     if unconverged:
         notes.append(f"not converged (see their warnings): {', '.join(unconverged)}")
-    return LooComparison(table=table, notes=notes)
+    return LooComparison(table=table, notes=notes, unit=unit)

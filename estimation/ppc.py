@@ -30,6 +30,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.bayes_labels import population_median
 
 
 def subject_theta_draws(posterior: Any, n_draws: int) -> dict[str, np.ndarray]:
@@ -307,9 +308,9 @@ def shrinkage_table(posterior: Any, ml: Any = None) -> pd.DataFrame:
     post = post.assign(subject=post["subject"].astype(str))
     table = post.merge(ml_frame, on=["subject", "param"], how="left")
     centre = {
-        name: float(posterior.params.loc[name, "estimate"])
+        name: float(posterior.params.loc[population_median(name), "estimate"])
         for name in posterior.model.param_names
-        if name in posterior.params.index
+        if population_median(name) in posterior.params.index
     }
     table["population_median"] = table["param"].map(centre)
     distance = table["ml_estimate"] - table["population_median"]

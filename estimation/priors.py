@@ -219,7 +219,7 @@ def _check_prior_inside_bounds(prior: Prior, spec: ParamSpec) -> None:
 def hyperprior_text() -> dict[str, str]:
     """The population-level priors of hierarchical fits (unconstrained scale)."""
     return {
-        "location": "the parameter's natural-scale prior on to_natural(mu)",
+        "location": "the parameter's natural-scale prior on the population median",
         "sd": f"HalfNormal({HYPER_SD_SCALE:g}) on the unconstrained scale",
         "correlation": f"LKJ({LKJ_CONCENTRATION:g})",
         "covariate effects": f"Normal(0, {COEF_SD:g}) on the unconstrained scale",

@@ -90,6 +90,7 @@ def conjugate_fit(bernoulli_data):
         warmup=500,
         seed=3,
         progress=False,
+        loo="trial",  # one row per trial: the exact leave-one-row-out check below
     )
 
 
@@ -180,18 +181,33 @@ def test_hierarchical_short_run_warns_and_reports_subjects(bernoulli_data):
         seed=1,
         progress=False,
     )
-    assert {"p", "mean(p)", "sd(p)", "sd_z(p)"} <= set(post.params.index)
+    # every hierarchical row says what it is; the bare name belongs to pooled fits only
+    assert set(post.params.index) == {
+        "p: population median",
+        "p: population mean",
+        "p: between-subject sd",
+        "p: between-subject sd (unconstrained scale)",
+    }
+    assert post.params.loc["p: between-subject sd (unconstrained scale)", "scale"] == (
+        "unconstrained"
+    )
+    assert post.params.loc["p: population mean", "scale"] == "natural"
+    json_names = {row["name"] for row in json.loads(post.to_json())["params"]}
+    assert json_names == set(post.params.index)
+    assert "p: population median" in post.summary()
     assert len(post.subject_params) == bernoulli_data.n_subjects
     # 120 draws cannot give a bulk ESS of 400: the warning names a quantity and a remedy
     ess_warnings = [w for w in post.warnings if "ESS below 400" in w]
     assert ess_warnings and "increase draws" in ess_warnings[0]
     assert post.converged is False
-    assert "population sd" in post.summary()
+    assert "between-subject sd (unconstrained scale)" in post.summary()
 
 
 def test_compare_ranks_by_elpd(conjugate_fit, bernoulli_data):
     # 30% draws: a free p fits better than p near 1/2
-    coin = fit_bayes(NEAR_HALF, bernoulli_data, chains=2, draws=200, warmup=100, progress=False)
+    coin = fit_bayes(
+        NEAR_HALF, bernoulli_data, chains=2, draws=200, warmup=100, progress=False, loo="trial"
+    )
     result = compare_bayes([coin, conjugate_fit])
     assert result.table.index[0] == "constant-draw"
     assert result.table["elpd_diff"].iloc[1] > 0

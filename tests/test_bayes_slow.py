@@ -76,7 +76,7 @@ def test_hierarchical_recovers_population_mean_and_sd_of_r():
     )
     # population mean and sd of r on its natural scale, from the generating distribution
     draws = np.asarray(spec_r.to_natural(mu_z + sd_z * np.random.default_rng(0).normal(size=10**6)))
-    truth = {"mean(r)": draws.mean(), "sd(r)": draws.std()}
+    truth = {"r: population mean": draws.mean(), "r: between-subject sd": draws.std()}
     for name, value in truth.items():
         lo, hi = np.quantile(post.draws(name), [0.05, 0.95])
         assert lo < value < hi, (name, lo, value, hi)

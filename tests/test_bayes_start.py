@@ -167,7 +167,7 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
         expected = "centred" if form == "centred" else "non-centred"
         assert post.run["parametrisation"] == expected and post.run["dense_mass"] is True
         assert any("per-subject ML fits" in note for note in post.notes)
-        assert np.all(np.isfinite(post.draws("r")))
+        assert np.all(np.isfinite(post.draws("r: population median")))
         assert expected in post.summary()
         assert any("R-hat cannot be computed" in w for w in post.warnings)  # one chain
         assert post.converged is False
@@ -278,5 +278,5 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     post = bayes.fit_bayes(
         model, data, hierarchical=True, chains=1, draws=10, warmup=10, progress=False
     )
-    assert np.all(np.isfinite(post.draws("precision")))
+    assert np.all(np.isfinite(post.draws("precision: population median")))
     assert any("contest model" in note for note in post.notes)

@@ -219,6 +219,11 @@ def test_bayes_parametrisation_option_reaches_the_sampler(
     assert cli.main([*base, "--method", "bayes", "--planner-cap", "exact"]) == 0
     assert seen["planner_cap"] == "exact"
     assert cli.main([*base, "--planner-cap", "exact"]) == 2  # an ML fit has no automatic cap
+    assert cli.main([*base, "--method", "bayes"]) == 0
+    assert seen["loo"] is None  # the engine picks: subject with several subjects
+    assert cli.main([*base, "--method", "bayes", "--loo", "trial"]) == 0
+    assert seen["loo"] == "trial"
+    assert cli.main([*base, "--loo", "subject"]) == 2  # leave-one-out units are a Bayes choice
 
 
 @pytest.fixture(scope="module")

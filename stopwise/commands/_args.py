@@ -125,6 +125,14 @@ def add_sampler(parser: argparse.ArgumentParser) -> None:
         "draws against the default cap and refits at the default cap if the check fails; "
         "exact uses the default cap",
     )
+    parser.add_argument(
+        "--loo",
+        choices=("subject", "trial"),
+        default=None,
+        help="Bayes: unit of leave-one-out (default subject when the data have several "
+        "subjects: leave-one-subject-out, subjects with Pareto k > 0.7 refitted without "
+        "them; trial: leave-one-trial-out, rows for lottery data)",
+    )
 
 
 def add_seed(parser: argparse.ArgumentParser, help_text: str) -> None:

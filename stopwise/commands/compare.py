@@ -72,11 +72,13 @@ def run(args: argparse.Namespace) -> int:
             hierarchical=args.hierarchical,
             parametrisation=args.parametrisation,
             planner_cap=args.planner_cap,
+            loo=args.loo,
         )
     else:
-        if args.hierarchical or args.parametrisation != "auto" or args.planner_cap != "auto":
+        bayes_only = args.parametrisation != "auto" or args.planner_cap != "auto" or args.loo
+        if args.hierarchical or bayes_only:
             raise StopwiseInputError(
-                "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
+                "--hierarchical, --parametrisation, --planner-cap and --loo apply to --method bayes"
             )
         if args.cv_folds < 0 or args.cv_folds == 1:
             raise StopwiseInputError("--cv-folds must be 0 (skip) or at least 2")

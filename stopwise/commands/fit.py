@@ -213,6 +213,7 @@ def run(args: argparse.Namespace) -> int:
             hierarchical=args.hierarchical,
             parametrisation=args.parametrisation,
             planner_cap=args.planner_cap,
+            loo=args.loo,
             chains=args.chains,
             draws=args.draws,
             warmup=args.warmup,
@@ -220,9 +221,10 @@ def run(args: argparse.Namespace) -> int:
             formulas=args.formula or None,
         )
     else:
-        if args.hierarchical or args.parametrisation != "auto" or args.planner_cap != "auto":
+        bayes_only = args.parametrisation != "auto" or args.planner_cap != "auto" or args.loo
+        if args.hierarchical or bayes_only:
             raise StopwiseInputError(
-                "--hierarchical, --parametrisation and --planner-cap apply to --method bayes"
+                "--hierarchical, --parametrisation, --planner-cap and --loo apply to --method bayes"
             )
         kw: dict[str, Any] = _cluster.cluster_kwargs(args)  # used when DATA is a Parquet folder
         if args.fix:
