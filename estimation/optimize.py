@@ -22,7 +22,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from scipy import optimize as sopt
-from scipy.stats import qmc
+
+from stopwise.estimation.sobol import scrambled_sobol
 
 GRAD_TOL = 1e-4  # max |d negll / dz| accepted as a stationary point
 Z_LIMIT = 30.0  # unconstrained values are kept within +-Z_LIMIT
@@ -42,11 +43,11 @@ class OptimumRecord:
 
 
 def start_design(z0: np.ndarray, n_starts: int, seed: int, spread: float = 1.5) -> np.ndarray:
-    """Starts: z0 itself, then z0 + spread * (2u - 1) for a scrambled Sobol sequence u."""
+    """Starts: z0 itself, then z0 + spread * (2u - 1) for a scrambled Sobol sequence u
+    (estimation/sobol.py: scipy's points, without loading scipy.stats)."""
     if n_starts <= 1:
         return z0[None, :]
-    sampler = qmc.Sobol(d=len(z0), scramble=True, seed=seed)
-    u = sampler.random(int(2 ** np.ceil(np.log2(n_starts - 1))))[: n_starts - 1]
+    u = scrambled_sobol(len(z0), int(2 ** np.ceil(np.log2(n_starts - 1))), seed)[: n_starts - 1]
     return np.vstack([z0, z0 + spread * (2.0 * u - 1.0)])
 
 

@@ -4,6 +4,7 @@ function, and refits of one model share their compiled programs."""
 
 from __future__ import annotations
 
+import re
 from functools import partial
 
 import jax
@@ -20,6 +21,7 @@ from stopwise.estimation.mle import build_problem, fit_mle
 from stopwise.estimation.optimize import newton_polish
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
+from stopwise.models.stopping import computed_once, gather_rows
 
 PREVIOUS_COMPILE_OPTIONS = {
     "xla_backend_optimization_level": 0,
@@ -162,3 +164,42 @@ def test_newton_polish_refuses_an_indefinite_hessian_and_a_rising_step() -> None
 
     np.testing.assert_array_equal(newton_polish(value, grad, hess, np.array([2.0])), [2.0])
     assert abs(newton_polish(value, grad, hess, np.array([0.3]))[0]) < 1e-9  # converges
+
+
+def row_fusions_reading_the_table(problem) -> list[str]:
+    """Compiled computations (other than the entry) that work on row-shaped arrays and
+    evaluate log1p, the logit table's transcendental: the table recomputed per row."""
+    args, w = problem.on_device()
+    compiled = engine.value_grad_hess.lower(problem.rows, jnp.asarray(problem.z0), args, w)
+    text = compiled.compile().as_text()
+    row_shape = f"f64[{len(problem.weights)}"
+    parts = re.split(r"\n(?=%?\S+ \(|ENTRY)", text)
+    return [
+        p.split()[0]
+        for p in parts
+        if not p.startswith("ENTRY") and row_shape in p and "log-plus-one" in p
+    ]
+
+
+def test_myopic_table_is_computed_once_not_per_row() -> None:
+    """Without stopping.computed_once XLA fused the myopic table's construction into the
+    row gather (found 2026-12-02 in the compiled program: one fusion held log-plus-one on
+    the (n_cond, n_steps) table next to the f64[rows] gather), so every row and tangent
+    recomputed its entry."""
+    model, _, data = simulated("crra+myopic+logit")
+    problem, _, _ = build_problem(model, data)
+    assert row_fusions_reading_the_table(problem) == []
+
+
+def test_computed_once_returns_the_table_bit_for_bit_and_the_gather_reads_it() -> None:
+    table = jnp.asarray([-0.0, -1.5, -np.inf, -1e-300, 3.25])
+    for anchor in (jnp.asarray([1.0, 2.0]), jnp.asarray([np.nan])):
+        same = jax.jit(computed_once)(table, anchor)
+        assert np.array_equal(np.asarray(same), np.asarray(table))
+    _, _, data = simulated("crra+myopic+logit")
+    shape = (len(np.asarray(data.cond_gain)), int(data.horizon))
+    log_draw, log_stop = -np.random.default_rng(0).exponential(size=(2, *shape))
+    cond, step = np.asarray(data.cond), np.asarray(data.step)
+    expected = np.where(np.asarray(data.draw) > 0.5, log_draw[cond, step], log_stop[cond, step])
+    rows = jax.jit(gather_rows)(jnp.asarray(log_draw), jnp.asarray(log_stop), data)
+    assert np.array_equal(np.asarray(rows), expected)
