@@ -46,6 +46,8 @@ KIND_TITLES: dict[str, str] = {
     "config_changes": "design changes inside a trial",
     "contest_fields": "contest row without group/n_players/prize",
     "group_size": "contest group size differs from n_players",
+    "pool_range": "pool_size / pool_bad out of range",
+    "pool_p_survive": "p_survive disagrees with the pool",
     "probability_range": "negative probability",
     "probability_sum": "probabilities do not sum to 1",
     "wrong_format": "unexpected data format",
