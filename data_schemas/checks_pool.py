@@ -3,8 +3,9 @@
 - ``pool_size`` N and ``pool_bad`` B (integers, per trial, both given or both empty): draws
   without replacement from N items of which B bust. With G = N - B good items, the draw at
   step s survives with chance (G - s) / (N - s), and ``p_survive`` on that row must equal it
-  (absolute tolerance ``POOL_P_TOL``). A row needs s < G (at s = G only bad items are left,
-  so its chance would be 0, outside the p_survive range).
+  (absolute tolerance ``POOL_P_TOL``). At s = G only bad items are left: the trial ends
+  there with a forced "stop" whose p_survive is 0 (the only place a p_survive of 0 is
+  accepted); steps beyond G cannot occur.
 - ``odds_known`` (0 or 1, per trial, empty = 1): 0 marks trials whose survival chance was
   not told to the participant; ``p_survive`` stays the true chance (the simulator's).
 
@@ -18,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from . import columns as C
 from .checker import Checker, Column
 
 POOL_P_TOL = 1e-6
@@ -66,11 +68,15 @@ def pool_survival_chance(pool_size: np.ndarray, pool_bad: np.ndarray, step: np.n
         return (good - step) / (pool_size - step)
 
 
-def check_pool_rows(ch: Checker, cols: dict[str, Column | None], step: Column | None) -> None:
-    """Both pool columns or neither per row; B < N; s < G; p_survive = (G - s) / (N - s)."""
+def check_pool_rows(
+    ch: Checker, cols: dict[str, Column | None], step: Column | None, action: Column | None
+) -> None:
+    """Both pool columns or neither per row; B < N; s <= G with a stop at s = G;
+    p_survive = (G - s) / (N - s); p_survive 0 nowhere else."""
     size, bad = cols.get("pool_size"), cols.get("pool_bad")
     if size is None and bad is None:
         return
+    _check_zero_chances(ch, cols, step, action)
     if size is None or bad is None:
         absent = "pool_bad" if bad is None else "pool_size"
         ch.missing_column(absent, [str(c) for c in ch.frame.columns])
@@ -101,22 +107,54 @@ def check_pool_rows(ch: Checker, cols: dict[str, Column | None], step: Column | 
     _check_pool_chances(ch, cols, step, both & (bad.values < size.values) & step.ok)
 
 
+def _check_zero_chances(
+    ch: Checker, cols: dict[str, Column | None], step: Column | None, action: Column | None
+) -> None:
+    """p_survive 0 only on a pool row at s = G (no good item left), and there a "stop"."""
+    p, size, bad = cols.get("p_survive"), cols.get("pool_size"), cols.get("pool_bad")
+    if p is None:
+        return
+    zero = p.ok & (p.values == 0.0)
+    cleared = np.zeros(ch.n, dtype=bool)
+    if size is not None and bad is not None and step is not None:
+        cleared = size.ok & bad.ok & step.ok & (step.values == size.values - bad.values)
+    stray = np.flatnonzero(zero & ~cleared)
+    ch.collector.add_rows(
+        "p_survive_range",
+        ch.lines[stray],
+        "p_survive",
+        p.values[stray],
+        "a probability strictly between 0 and 1 (0 only where a pool has no good item left)",
+    )
+    if action is None:
+        return
+    stop_code = C.ACTIONS.index("stop")
+    drawn = np.flatnonzero(cleared & action.ok & (action.values != stop_code))
+    ch.collector.add_rows(
+        "pool_p_survive",
+        ch.lines[drawn],
+        "action",
+        np.full(len(drawn), "draw", dtype=object),
+        "'stop': no good item is left in the pool, so the trial ends here",
+    )
+
+
 def _check_pool_chances(
     ch: Checker, cols: dict[str, Column | None], step: Column, rows: np.ndarray
 ) -> None:
     size, bad, p = cols["pool_size"], cols["pool_bad"], cols.get("p_survive")
     good = size.values - bad.values
-    cleared = np.flatnonzero(rows & (step.values >= good))
+    beyond = np.flatnonzero(rows & (step.values > good))
     ch.collector.add_rows(
         "pool_p_survive",
-        ch.lines[cleared],
+        ch.lines[beyond],
         "step",
-        step.values[cleared],
-        [f"a step below the pool's {good[i]:g} good items" for i in cleared[:SHOWN]],
+        step.values[beyond],
+        [f"at most the pool's {good[i]:g} good items" for i in beyond[:SHOWN]],
     )
     if p is None:
         return
-    checked = rows & (step.values < good) & p.ok
+    checked = rows & (step.values <= good) & p.ok
     expected = pool_survival_chance(size.values, bad.values, step.values)
     off = np.flatnonzero(checked & (np.abs(p.values - expected) > POOL_P_TOL))
     ch.collector.add_rows(

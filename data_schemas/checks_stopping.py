@@ -39,7 +39,8 @@ def check_design_columns(ch: Checker) -> dict[str, Column | None]:
         "p_survive",
         True,
         "a probability strictly between 0 and 1",
-        bounds=(0.0, 1.0, True, True),
+        # 0 is allowed (and checked in checks_pool) only where a pool has no good item left
+        bounds=(0.0, 1.0, not ch.has("pool_size"), True),
         range_kind="p_survive_range",
     )
     cols["gain"] = ch.numeric(
@@ -93,7 +94,7 @@ def check_decisions(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, di
     )
     bank = ch.numeric("bank", False, "a number (the bank before the decision)")
     cols.update(check_pool_columns(ch))
-    check_pool_rows(ch, cols, step)
+    check_pool_rows(ch, cols, step, action)
     if step is not None:
         report_steps_beyond_limit(ch.collector, ch.lines, "step", step.values, step.ok)
     draw_code, stop_code = C.ACTIONS.index("draw"), C.ACTIONS.index("stop")

@@ -87,12 +87,31 @@ def test_pool_changing_inside_a_trial_is_a_design_change(pool_frame) -> None:
     assert ("config_changes", 3, "pool_size") in [p[:3] for p in problems]
 
 
-def test_a_step_at_or_beyond_the_good_items_is_refused() -> None:
+def cleared_trial() -> list[dict]:
+    """A 4-item pool with 2 bad: both good items drawn, then the forced stop at step 2."""
     rows = pool_trial_rows(1, 1, 4, 2, 1)
-    rows.append(dict(rows[-1], step=2, action="stop", p_survive=0.5))
     rows[1] = dict(rows[1], action="draw", outcome="success")
+    rows.append(dict(rows[-1], step=2, action="stop", outcome=None, p_survive=0.0))
+    return rows
+
+
+def test_a_cleared_pool_ends_with_a_stop_at_p_survive_0() -> None:
+    assert validate(pd.DataFrame(cleared_trial())).ok
+
+
+def test_p_survive_0_elsewhere_a_draw_at_a_cleared_pool_and_steps_beyond_are_refused() -> None:
+    rows = cleared_trial()
+    rows[2] = dict(rows[2], action="draw", outcome="bust")
     problems = _problems(pd.DataFrame(rows))
-    assert ("pool_p_survive", 4, "step", "a step below the pool's 2 good items") in problems
+    expected = "'stop': no good item is left in the pool, so the trial ends here"
+    assert ("pool_p_survive", 4, "action", expected) in problems
+    rows = cleared_trial()
+    rows[2] = dict(rows[2], step=3)
+    problems = _problems(pd.DataFrame(rows))
+    assert ("pool_p_survive", 4, "step", "at most the pool's 2 good items") in problems
+    assert any(p[:3] == ("p_survive_range", 4, "p_survive") for p in problems)
+    plain = pd.DataFrame(cleared_trial()).drop(columns=["pool_size", "pool_bad"])
+    assert any(p[:3] == ("p_survive_range", 4, "p_survive") for p in _problems(plain))
 
 
 def test_odds_known_must_be_0_or_1_and_constant(pool_frame) -> None:
