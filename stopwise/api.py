@@ -18,6 +18,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.learning_check import learning_warnings
 from stopwise.models.base import Model
 
 METHODS = ("mle", "bayes")
@@ -181,11 +182,10 @@ def fit(
     bundle, frame, notes = select_data(the_model, bundle, frame)
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
-    return _attach(
-        _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw),
-        notes,
-        warned,
-    )
+    result = _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw)
+    if (the_model.options or {}).get("learning") and method == "mle":
+        warned += learning_warnings(result)
+    return _attach(result, notes, warned)
 
 
 def _fit_selected(
