@@ -168,3 +168,23 @@ def _check_pool_chances(
             for i in off[:SHOWN]
         ],
     )
+
+
+def check_variant_contests(ch: Checker, cols: dict[str, Column | None], contest: Any) -> None:
+    """Contest rows with a pool or untold odds are refused: the contest games assume one
+    constant, told survival chance (refused rather than fitted as if it were)."""
+    size, known = cols.get("pool_size"), cols.get("odds_known")
+    for name, column, flagged in (
+        ("pool_size", size, None if size is None else size.ok),
+        ("odds_known", known, None if known is None else known.ok & (known.values == 0)),
+    ):
+        if column is None:
+            continue
+        rows = np.flatnonzero(contest & flagged)
+        ch.collector.add_rows(
+            "variant_contest",
+            ch.lines[rows],
+            name,
+            column.values[rows],
+            "a solo trial: contests from a pool or with untold odds are not modelled",
+        )

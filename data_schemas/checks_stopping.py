@@ -11,7 +11,7 @@ from . import columns as C
 from .checker import Checker, Column, add_sorted, factorize_optional, quoted_labels, sort_rows
 from .checks_contests import check_contest, contest_rows
 from .checks_limits import decision_rows, report_steps_beyond_limit, report_too_many_decisions
-from .checks_pool import check_pool_columns, check_pool_rows, pool_rows
+from .checks_pool import check_pool_columns, check_pool_rows, check_variant_contests, pool_rows
 from .checks_sequences import (
     check_bank,
     check_config_changes,
@@ -143,6 +143,7 @@ def check_decisions(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, di
         check_config_changes(ch, cols, order, first, pool_rows(cols))
         contest = contest_rows(ch, cols)
         check_contest(ch, cols, subject.values, contest)
+        check_variant_contests(ch, cols, contest)
         stats = stopping_stats(ch, cols, subject.values, int(new_trial.sum()))
     integers = ("trial", "step", "n_players", "keep_bank", "pool_size", "pool_bad", "odds_known")
     clean = ch.clean_frame(integers) if ch.collector.ok else None

@@ -48,6 +48,7 @@ KIND_TITLES: dict[str, str] = {
     "group_size": "contest group size differs from n_players",
     "pool_range": "pool_size / pool_bad out of range",
     "pool_p_survive": "p_survive disagrees with the pool",
+    "variant_contest": "contest from a pool or with untold odds",
     "probability_range": "negative probability",
     "probability_sum": "probabilities do not sum to 1",
     "wrong_format": "unexpected data format",

@@ -132,3 +132,12 @@ def test_trial_level_data_refuse_pool_columns() -> None:
         ("wrong_format", 1, "pool_size"),
         ("wrong_format", 1, "pool_bad"),
     ]
+
+
+def test_contests_from_a_pool_or_with_untold_odds_are_refused(decision_frame) -> None:
+    frame = decision_frame.assign(odds_known=1)
+    frame.loc[frame.task == "contest", "odds_known"] = 0
+    problems = _problems(frame)
+    contest_lines = [i + 2 for i in np.flatnonzero(frame.task == "contest")]
+    assert [p[1] for p in problems if p[0] == "variant_contest"] == contest_lines
+    assert all(p[2] == "odds_known" for p in problems if p[0] == "variant_contest")
