@@ -10,9 +10,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.load import load
 from stopwise.data_schemas.validate import validate
 from stopwise.describe import describe
+from stopwise.estimation.mle import stop_step_table
 from stopwise.models.noise import NOISE
 from stopwise.models.pool_normative import pool_chances, pool_dynamic_programme
 from stopwise.models.spec import build_model
@@ -116,7 +118,9 @@ def test_sharp_risk_neutral_planner_draws_exactly_before_the_pool_optimum(size, 
 def test_target_values_of_a_linear_utility_are_enumerated_expected_banks(size, bad):
     good = size - bad
     theta = {"precision": 1.0}
-    values = np.asarray(target_values(_parts("linear"), theta, _pool_conditions([(size, bad)]), good + 1))
+    values = np.asarray(
+        target_values(_parts("linear"), theta, _pool_conditions([(size, bad)]), good + 1)
+    )
     expected = [enumerated_bank(size, bad, n, 1.0, 0.0, 0.0) for n in range(good + 1)]
     np.testing.assert_allclose(values[0], expected, rtol=1e-12, atol=1e-14)
 
@@ -140,3 +144,31 @@ def test_simulated_pool_data_validate_fit_and_describe(tmp_path):
     table = describe(load(frame)).table
     assert table["rn_target"].tolist() == [float(pool_dynamic_programme(6, 2, 1.0).targets[0])]
     assert table["p_survive"].tolist() == [4 / 6]
+
+
+def test_stop_step_table_of_a_pool_uses_each_steps_chance():
+    # 4 items, 2 bad; a trial that cleared the pool reaches step G = 2 (forced stop there)
+    rows = [
+        (0, 0.5, "draw", "success"),
+        (1, 1 / 3, "draw", "success"),
+        (2, 0.0, "stop", None),
+    ]
+    frame = pd.DataFrame(
+        [
+            {"subject": 1, "trial": 1, "step": s, "p_survive": p, "gain": 1.0, "action": a}
+            | {"outcome": o, "pool_size": 4, "pool_bad": 2}
+            for s, p, a, o in rows
+        ]
+    )
+    assert validate(frame).ok
+    model = build_model("crra+myopic+logit")
+    theta = {"r": 0.3, "precision": 2.0}
+    table = stop_step_table(model, theta, to_stopping_data(frame))
+    h = table["p_draw"].to_numpy()
+    chances = np.array([0.5, 1 / 3, 0.0])
+    reach = np.array([1.0, h[0] * 0.5, h[0] * 0.5 * h[1] / 3])  # the pool's chances by hand
+    np.testing.assert_allclose(table["p_reach"], reach, rtol=1e-12)
+    np.testing.assert_allclose(table["p_bust_here"], reach * h * (1 - chances), rtol=1e-12)
+    assert h[2] == 0.0  # forced stop
+    total = table["p_stop_here"].sum() + table["p_bust_here"].sum()
+    assert total == pytest.approx(1.0, abs=1e-12)  # every trial ends (probability law)
