@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from stopwise.cli import main
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.load import load
 from stopwise.data_schemas.validate import validate
@@ -172,3 +173,17 @@ def test_stop_step_table_of_a_pool_uses_each_steps_chance():
     assert h[2] == 0.0  # forced stop
     total = table["p_stop_here"].sum() + table["p_bust_here"].sum()
     assert total == pytest.approx(1.0, abs=1e-12)  # every trial ends (probability law)
+
+
+def test_cli_simulates_pools_and_untold_odds_and_refuses_a_bad_pool(tmp_path, capsys):
+    base = ["simulate", "--model", "crra+myopic+logit", "--set", "r=0.3", "--set"]
+    base += ["precision=2", "--subjects", "3", "--trials", "4"]
+    out = tmp_path / "pool.csv"
+    assert main([*base, "--pool", "12:3", "--odds-unknown", "--out", str(out)]) == 0
+    frame = pd.read_csv(out)
+    assert validate(frame).ok
+    assert (frame.pool_size == 12).all() and (frame.odds_known == 0).all()
+    bad = tmp_path / "bad.csv"
+    assert main([*base, "--pool", "3:5", "--out", str(bad)]) == 2
+    assert "--pool: expected N:B" in capsys.readouterr().err
+    assert not bad.exists()
