@@ -14,10 +14,11 @@ from scipy.stats import betabinom
 
 import stopwise
 from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.load import load
 from stopwise.data_schemas.validate import validate
 from stopwise.estimation.learning_check import learning_warnings
-from stopwise.models.learning import learner_conditions, predictive_chance
+from stopwise.models.learning import check_learning_data, learner_conditions, predictive_chance
 from stopwise.models.spec import build_model
 from stopwise.models.stopping import Conditions, log_reach_probabilities, step_chances
 
@@ -192,3 +193,15 @@ def test_confounded_prior_and_risk_attitude_are_reported():
     assert len(warned) == 1 and warned[0].startswith("prior_strength and r cannot be told apart")
     cov[0, 3] = cov[3, 0] = 0.5
     assert learning_warnings(fit) == []
+
+
+def test_learning_about_a_pool_is_refused_by_name():
+    data = SimpleNamespace(
+        cond_odds_known=np.array([0.0, 1.0]), cond_pool_size=np.array([20.0, 0.0])
+    )
+    with pytest.raises(StopwiseInputError, match="learning about a pool's composition"):
+        check_learning_data("crra+learn+myopic+logit", data)
+    told_pool = SimpleNamespace(
+        cond_odds_known=np.array([1.0, 0.0]), cond_pool_size=np.array([20.0, 0.0])
+    )
+    assert check_learning_data("crra+learn+myopic+logit", told_pool) == []

@@ -187,3 +187,17 @@ def test_cli_simulates_pools_and_untold_odds_and_refuses_a_bad_pool(tmp_path, ca
     assert main([*base, "--pool", "3:5", "--out", str(bad)]) == 2
     assert "--pool: expected N:B" in capsys.readouterr().err
     assert not bad.exists()
+
+
+def test_a_pool_condition_is_keyed_on_the_pool_with_its_first_chance_in_any_row_order():
+    rows = [
+        {"subject": 1, "trial": 1, "step": s, "p_survive": (4 - s) / (6 - s), "gain": 1.0}
+        | {"action": "draw" if s < 2 else "stop", "outcome": "success" if s < 2 else None}
+        | {"pool_size": 6, "pool_bad": 2}
+        for s in range(3)
+    ]
+    shuffled = pd.DataFrame(rows).iloc[[2, 0, 1]]
+    data = to_stopping_data(shuffled)
+    assert data.n_cond == 1
+    assert float(data.cond_p_survive[0]) == 4 / 6
+    assert (float(data.cond_pool_size[0]), float(data.cond_pool_bad[0])) == (6.0, 2.0)
