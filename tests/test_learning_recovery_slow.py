@@ -21,8 +21,11 @@ TRUTH = {"r": 0.5, "precision": 3.0, "prior_mean": 0.6, "prior_strength": 10.0}
 SPEC = "crra+learn+myopic+logit"
 
 
-def recovery_table(n_reps: int, n_subjects: int = 30, n_trials: int = 20) -> pd.DataFrame:
-    """One row per data set and parameter: estimate, interval and whether it covers."""
+def recovery_table(
+    n_reps: int, n_subjects: int = 30, n_trials: int = 20, first_rep: int = 0
+) -> pd.DataFrame:
+    """One row per data set and parameter: estimate, interval and whether it covers
+    (data set i is simulated with seed 1000 + i, i = first_rep .. first_rep + n_reps - 1)."""
     model = build_model(SPEC)
     design = pd.DataFrame(
         {
@@ -34,7 +37,7 @@ def recovery_table(n_reps: int, n_subjects: int = 30, n_trials: int = 20) -> pd.
         }
     )
     rows = []
-    for rep in range(n_reps):
+    for rep in range(first_rep, first_rep + n_reps):
         frame = model.simulate(TRUTH, design, jax.random.PRNGKey(1000 + rep))
         fit = stopwise.fit(SPEC, load(frame), progress=False)
         for name, row in fit.params.iterrows():
@@ -64,7 +67,8 @@ def test_risk_attitude_and_prior_strength_are_recovered_with_honest_intervals():
 if __name__ == "__main__":  # prints the recovery figures for the issue note
     import sys
 
-    result = recovery_table(int(sys.argv[1]) if len(sys.argv) > 1 else 100)
+    n_reps = int(sys.argv[1]) if len(sys.argv) > 1 else 100
+    result = recovery_table(n_reps, first_rep=int(sys.argv[2]) if len(sys.argv) > 2 else 0)
     summary = result.groupby("name").agg(
         mean=("estimate", "mean"), sd=("estimate", "std"), coverage=("covered", "mean")
     )
