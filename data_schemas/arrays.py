@@ -12,6 +12,12 @@ Stopping rows are decisions. Per-row fields are numpy/JAX arrays of length n_obs
 condition table (``cond_*``, length n_cond) holds each distinct trial configuration, and
 ``cond[i]`` points row i at its condition, so models compute one table per condition
 (n_cond x horizon) and gather, instead of repeating work per row.
+
+Task variants (DESIGN.md) are part of the condition: a pool (``cond_pool_size``,
+``cond_pool_bad``; 0 for constant odds) and, for trials whose odds were not told
+(``cond_odds_known`` 0), what the participant had seen before the trial: own successful
+draws and busts on earlier trials of the same learning stream (same subject and true
+p_survive, trials in the order of their ids). So every such trial has its own condition.
 """
 
 from __future__ import annotations
@@ -42,6 +48,11 @@ STOPPING_COND_FIELDS = (
     "cond_n_players",  # 1.0 for solo
     "cond_prize",  # 0.0 for solo
     "cond_keep_bank",  # 1.0 for solo (the player keeps the bank)
+    "cond_pool_size",  # items in the pool (0.0: constant odds)
+    "cond_pool_bad",  # bad items in the pool (0.0: constant odds)
+    "cond_odds_known",  # 1.0 told, 0.0 not told (learning)
+    "cond_seen_success",  # not told: own successful draws on earlier trials of the stream
+    "cond_seen_fail",  # not told: own busts on earlier trials of the stream
 )
 
 
@@ -64,6 +75,11 @@ class StoppingData:
     cond_n_players: Any
     cond_prize: Any
     cond_keep_bank: Any
+    cond_pool_size: Any = None  # None (bundles built by hand): constant odds, told
+    cond_pool_bad: Any = None
+    cond_odds_known: Any = None
+    cond_seen_success: Any = None
+    cond_seen_fail: Any = None
     covariates: Mapping[str, Any] = field(default_factory=dict)
     horizon: int = 0  # steps 0..horizon-1 exist in every model table; >= max(step) + 1
     subject_labels: Any = None  # numpy array of original subject ids (index -> label)

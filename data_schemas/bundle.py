@@ -2,8 +2,9 @@
 
 Row i of a bundle is row i of the frame. Subjects are numbered 0..n_subjects-1 in sorted
 label order, trials 0..n_trials-1 sorted by (subject, trial id), and each distinct trial
-configuration (p_survive, gain, start, bust_keep, contest, n_players, prize, keep_bank)
-gets one entry of the condition table. Solo trials have n_players 1, prize 0, keep_bank 1.
+configuration (p_survive, gain, start, bust_keep, contest, n_players, prize, keep_bank,
+pool, odds told, and what was seen before an untold trial: data_schemas.streams) gets one
+entry of the condition table; the p_survive of a pool trial is its first draw's chance. Solo trials have n_players 1, prize 0, keep_bank 1.
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ import pandas as pd
 from . import columns as C
 from .arrays import LotteryData, StoppingData
 from .errors import StopwiseInputError
+from .streams import seen_before, trial_outcome_counts
 
 
 def to_stopping_data(
@@ -38,17 +40,20 @@ def to_stopping_data(
             f"must be at least {max_step + 1}"
         )
     contest = _contest_flags(frame)
-    config = _trial_config(frame, contest)
-    cond, table = _condition_table(config, trial)
-    group = _group_index(frame, contest)
     action = frame["action"].to_numpy(dtype=object)
     outcome = frame["outcome"].to_numpy(dtype=object)
+    draw = (action == "draw").astype(np.float64)
+    bust = (outcome == "bust").astype(np.float64)
+    config = _trial_config(frame, contest)
+    config[:, 11:13] = _seen_columns(config, subject, trial, draw, bust)
+    cond, table = _condition_table(config, trial)
+    group = _group_index(frame, contest)
     return StoppingData(
         subject=subject.astype(np.int32),
         trial=trial.astype(np.int32),
         step=step.astype(np.int32),
-        draw=(action == "draw").astype(np.float64),
-        bust=(outcome == "bust").astype(np.float64),
+        draw=draw,
+        bust=bust,
         cond=cond.astype(np.int32),
         group=group.astype(np.int32),
         **{name: table[:, i].copy() for i, name in enumerate(_COND_ORDER)},
@@ -68,7 +73,29 @@ _COND_ORDER = (
     "cond_n_players",
     "cond_prize",
     "cond_keep_bank",
+    "cond_pool_size",
+    "cond_pool_bad",
+    "cond_odds_known",
+    "cond_seen_success",
+    "cond_seen_fail",
 )
+
+
+def _seen_columns(
+    config: np.ndarray, subject: np.ndarray, trial: np.ndarray, draw: np.ndarray, bust: np.ndarray
+) -> np.ndarray:
+    """(n_obs, 2): per row, its trial's seen_success and seen_fail (data_schemas.streams)."""
+    n_trials = int(trial.max()) + 1 if len(trial) else 0
+    if n_trials == 0:
+        return np.zeros((0, 2))
+    first = np.full(n_trials, -1, dtype=np.int64)
+    rows = np.arange(len(trial))[::-1]
+    first[trial[rows]] = rows
+    success, fail = trial_outcome_counts(trial, draw, bust, n_trials)
+    untold = config[first, 10] == 0.0
+    stream = pd.MultiIndex.from_arrays([subject[first], config[first, 0]]).factorize()[0]
+    seen_s, seen_f = seen_before(stream, untold, success, fail)
+    return np.stack([seen_s, seen_f], axis=1)[trial]
 
 
 def to_lottery_data(frame: pd.DataFrame, covariates: Sequence[str] = ()) -> LotteryData:
@@ -176,7 +203,7 @@ def _float_column(frame: pd.DataFrame, name: str, default: float) -> np.ndarray:
 
 
 def _trial_config(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:
-    """(n_obs, 8) per-row configuration in the order of the condition table."""
+    """(n_obs, 13) per-row configuration in the order of the condition table."""
     config = np.empty((len(frame), len(_COND_ORDER)), dtype=np.float64)
     config[:, 0] = frame["p_survive"].to_numpy(dtype=np.float64)
     config[:, 1] = frame["gain"].to_numpy(dtype=np.float64)
@@ -186,6 +213,14 @@ def _trial_config(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:
     config[:, 5] = np.where(contest, _float_column(frame, "n_players", 1.0), 1.0)
     config[:, 6] = np.where(contest, _float_column(frame, "prize", 0.0), 0.0)
     config[:, 7] = np.where(contest, _float_column(frame, "keep_bank", 1.0), 1.0)
+    config[:, 8] = _float_column(frame, "pool_size", 0.0)
+    config[:, 9] = _float_column(frame, "pool_bad", 0.0)
+    config[:, 10] = _float_column(frame, "odds_known", 1.0)
+    pool = config[:, 8] > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        first_chance = (config[:, 8] - config[:, 9]) / config[:, 8]
+    config[:, 0] = np.where(pool, first_chance, config[:, 0])  # the step-0 chance (G / N)
+    config[:, 11:13] = 0.0  # seen counts, filled in by the caller
     return config
 
 

@@ -17,15 +17,22 @@ BANK_ATOL = 1e-9
 
 
 def check_config_changes(
-    ch: Checker, cols: dict[str, Column | None], order: np.ndarray, first: np.ndarray
+    ch: Checker,
+    cols: dict[str, Column | None],
+    order: np.ndarray,
+    first: np.ndarray,
+    varying_p: np.ndarray | None = None,
 ) -> None:
-    """Design columns must keep the value of the trial's first row (in step order)."""
+    """Design columns must keep the value of the trial's first row (in step order);
+    ``varying_p`` marks rows (pool trials) whose p_survive changes with the step."""
     for name in C.TRIAL_CONFIG:
         column = cols.get(name)
         if column is None:
             continue
         values = column.values[order]
         ok = column.ok[order]
+        if name == "p_survive" and varying_p is not None:
+            ok = ok & ~varying_p[order]
         empty = ch.empty_mask(ch.frame[name]).astype(bool)[order]  # empty = the default
         changed = (ok & ok[first] & (values != values[first])) | (empty != empty[first])
         if not changed.any():

@@ -11,6 +11,7 @@ from . import columns as C
 from .checker import Checker, Column, add_sorted, factorize_optional, quoted_labels, sort_rows
 from .checks_contests import check_contest, contest_rows
 from .checks_limits import decision_rows, report_steps_beyond_limit, report_too_many_decisions
+from .checks_pool import check_pool_columns, check_pool_rows, check_variant_contests, pool_rows
 from .checks_sequences import (
     check_bank,
     check_config_changes,
@@ -38,7 +39,8 @@ def check_design_columns(ch: Checker) -> dict[str, Column | None]:
         "p_survive",
         True,
         "a probability strictly between 0 and 1",
-        bounds=(0.0, 1.0, True, True),
+        # 0 is allowed (and checked in checks_pool) only where a pool has no good item left
+        bounds=(0.0, 1.0, not ch.has("pool_size"), True),
         range_kind="p_survive_range",
     )
     cols["gain"] = ch.numeric(
@@ -91,6 +93,8 @@ def check_decisions(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, di
         f"{quoted_labels(C.OUTCOMES)} after a draw, empty after a stop",
     )
     bank = ch.numeric("bank", False, "a number (the bank before the decision)")
+    cols.update(check_pool_columns(ch))
+    check_pool_rows(ch, cols, step, action)
     if step is not None:
         report_steps_beyond_limit(ch.collector, ch.lines, "step", step.values, step.ok)
     draw_code, stop_code = C.ACTIONS.index("draw"), C.ACTIONS.index("stop")
@@ -136,11 +140,13 @@ def check_decisions(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, di
             outcome,
             draw_code,
         )
-        check_config_changes(ch, cols, order, first)
+        check_config_changes(ch, cols, order, first, pool_rows(cols))
         contest = contest_rows(ch, cols)
         check_contest(ch, cols, subject.values, contest)
+        check_variant_contests(ch, cols, contest)
         stats = stopping_stats(ch, cols, subject.values, int(new_trial.sum()))
-    clean = ch.clean_frame(("trial", "step", "n_players", "keep_bank")) if ch.collector.ok else None
+    integers = ("trial", "step", "n_players", "keep_bank", "pool_size", "pool_bad", "odds_known")
+    clean = ch.clean_frame(integers) if ch.collector.ok else None
     return clean, stats
 
 
@@ -174,6 +180,16 @@ def stopping_stats(
 def check_trials(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, dict]:
     ch.require(C.TRIAL_REQUIRED)
     cols = check_design_columns(ch)
+    for name in C.POOL_COLUMNS:
+        if ch.has(name):
+            ch.collector.add(
+                "wrong_format",
+                1,
+                name,
+                name,
+                "decision-level data (one row per decision) for draws from a pool: their "
+                "p_survive is given per draw",
+            )
     draws = ch.numeric(
         "draws",
         True,

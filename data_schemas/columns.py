@@ -29,7 +29,12 @@ TRIAL_CONFIG = (
     "n_players",
     "prize",
     "keep_bank",
+    "pool_size",
+    "pool_bad",
+    "odds_known",
 )
+# Task variants: draws without replacement from a known pool; odds not told.
+POOL_COLUMNS = ("pool_size", "pool_bad")
 OPTIONAL_STOPPING = ("bank", *TRIAL_CONFIG[2:])  # every per-trial column but the required two
 CONTEST_REQUIRED = ("group", "n_players", "prize")
 

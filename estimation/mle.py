@@ -50,6 +50,7 @@ from stopwise.estimation.problem import (
 )
 from stopwise.estimation.results import Fit
 from stopwise.estimation.start_accounting import account_starts
+from stopwise.models.stopping import Conditions, step_chances
 
 SE_METHODS = ("auto", "robust", "hessian", "bootstrap", None)
 BOUND_Z = 12.0  # |z| beyond this counts as "at a bound" (e.g. logit 1 - 6e-6 of the range)
@@ -375,14 +376,15 @@ def _response_probability(model: Any, theta: Mapping[str, Any], data: Any) -> np
 
 
 def stop_step_table(model: Any, theta: Mapping[str, Any], data: StoppingData) -> pd.DataFrame:
-    """Per condition c and step s, with h_s = P(draw | c, s) and p = p_survive(c):
-    reach_s = prod_{j<s} h_j p;  P(stop at s) = reach_s (1 - h_s);
-    P(bust on the draw at s) = reach_s h_s (1 - p)."""
+    """Per condition c and step s, with h_s = P(draw | c, s) and p_s = p_survive(c, s) (the
+    step's chance: constant, or a pool's (G - s)/(N - s)):
+    reach_s = prod_{j<s} h_j p_j;  P(stop at s) = reach_s (1 - h_s);
+    P(bust on the draw at s) = reach_s h_s (1 - p_s)."""
     probe = data.condition_grid()
     horizon, n_cond = probe.horizon, data.n_cond
     cond, step = probe.cond, probe.step
     h = _response_probability(model, theta, probe).reshape(n_cond, horizon)
-    p = np.asarray(data.cond_p_survive)[:, None]
+    p = np.asarray(step_chances(Conditions.from_data(data), horizon))
     log_reach = np.concatenate(
         [np.zeros((n_cond, 1)), np.cumsum(np.log(np.clip(h * p, 1e-300, None)), axis=1)[:, :-1]],
         axis=1,

@@ -32,7 +32,9 @@ from stopwise.models.stopping import (
     Conditions,
     RiskParts,
     policy_tables,
+    step_chances,
     tolerance_steps,
+    with_pool_urn,
 )
 
 SIMULATION_MAX_STEPS = 10_000  # forced stop for p_survive above 1 - 3.5e-3 (see above)
@@ -95,10 +97,28 @@ def stopping_design_arrays(design: pd.DataFrame) -> tuple[Conditions, np.ndarray
     _check_range(
         design["trial"].to_numpy(), "trial", ~duplicated, "a trial id unique within its subject"
     )
-    config = np.stack([p, gain, start, keep], axis=1)
+    size, bad = _pool_columns(design)
+    pool = size > 0
+    p = np.where(pool, (size - bad) / np.where(pool, size, 1.0), p)  # the first draw's chance
+    config = np.stack([p, gain, start, keep, size, bad], axis=1)
     table, cond = np.unique(config, axis=0, return_inverse=True)
     cond = np.asarray(cond).reshape(-1)
-    return Conditions(table[:, 0], table[:, 1], table[:, 2], table[:, 3]), cond
+    conditions = Conditions(table[:, 0], table[:, 1], table[:, 2], table[:, 3])
+    if pool.any():
+        conditions = with_pool_urn(conditions, table[:, 4], table[:, 5])
+    return conditions, cond
+
+
+def _pool_columns(design: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """pool_size and pool_bad per trial (0, 0 without a pool); checked: 1 <= bad < size."""
+    if "pool_size" not in design.columns and "pool_bad" not in design.columns:
+        return np.zeros(len(design)), np.zeros(len(design))
+    size = _numeric_column(design, "pool_size")
+    bad = _numeric_column(design, "pool_bad")
+    whole = (np.floor(size) == size) & (np.floor(bad) == bad)
+    _check_range(size, "pool_size", whole & (size >= 2), "an integer pool size >= 2")
+    _check_range(bad, "pool_bad", whole & (bad >= 1) & (bad < size), "1 <= pool_bad < pool_size")
+    return size, bad
 
 
 def simulation_steps(policy: str, caps: Caps, max_p_survive: float) -> int:
@@ -112,9 +132,13 @@ def simulation_steps(policy: str, caps: Caps, max_p_survive: float) -> int:
 
 
 def end_log_probs(log_draw: np.ndarray, log_stop: np.ndarray, p: np.ndarray) -> np.ndarray:
-    """log P(trial ends as [stop_0, bust_0, ..., stop_{H-1}, bust_{H-1}, forced stop_H])."""
-    log_p = np.log(p)[:, None]
-    log_lose = np.log1p(-p)[:, None]
+    """log P(trial ends as [stop_0, bust_0, ..., stop_{H-1}, bust_{H-1}, forced stop_H]);
+    ``p`` is p_survive per condition (n_cond,) or per condition and step (n_cond, H)."""
+    p = np.asarray(p, dtype=np.float64)
+    p = p if p.ndim == 2 else np.broadcast_to(p[:, None], log_draw.shape)
+    with np.errstate(divide="ignore"):
+        log_p = np.log(p)
+        log_lose = np.log1p(-p)
     step_on = log_draw + log_p
     log_reach = np.concatenate(
         [np.zeros((len(p), 1)), np.cumsum(step_on, axis=1)], axis=1
@@ -159,7 +183,7 @@ def expand_trials(design: pd.DataFrame, end_step: np.ndarray, busted: np.ndarray
             "subject": rows["subject"].to_numpy(),
             "trial": rows["trial"].to_numpy(),
             "step": step.astype(np.int64),
-            "p_survive": _numeric_column(rows, "p_survive"),
+            "p_survive": _row_chances(rows, step),
             "gain": _numeric_column(rows, "gain"),
             "action": action,
             "outcome": outcome,
@@ -170,6 +194,15 @@ def expand_trials(design: pd.DataFrame, end_step: np.ndarray, busted: np.ndarray
     )
     extra = rows.drop(columns=[c for c in front.columns if c in rows.columns])
     return pd.concat([front, extra], axis=1)
+
+
+def _row_chances(rows: pd.DataFrame, step: np.ndarray) -> np.ndarray:
+    """p_survive of each decision row: (G - s) / (N - s) in a pool, else the trial's."""
+    size, bad = _pool_columns(rows)
+    pool = size > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        chance = (size - bad - step) / (size - step)
+    return np.where(pool, chance, _numeric_column(rows, "p_survive"))
 
 
 def simulate_stopping(
@@ -190,8 +223,9 @@ def simulate_stopping(
         log_draw, log_stop = policy_tables(policy, parts, theta, cond_table, n_steps, caps, 0)
     else:
         log_draw, log_stop = tables_fn(theta, cond_table, n_steps, caps)
+    chances = np.asarray(step_chances(cond_table, n_steps))
     end_step, busted = sample_trial_ends(
-        np.asarray(log_draw), np.asarray(log_stop), np.asarray(cond_table.p_survive), cond, key
+        np.asarray(log_draw), np.asarray(log_stop), chances, cond, key
     )
     return expand_trials(design.reset_index(drop=True), end_step, busted)
 

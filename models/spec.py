@@ -41,6 +41,13 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.limits import MAX_TARGET
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.domain import check_outcome_domain
+from stopwise.models.learning import (
+    LEARNING_PARAMS,
+    LEARNING_PART,
+    check_learning_data,
+    learner_conditions,
+)
+from stopwise.models.learning_simulate import simulate_learners
 from stopwise.models.lottery import lottery_loglik, lottery_predict
 from stopwise.models.noise import NOISE
 from stopwise.models.simulate import simulate_lottery, simulate_stopping
@@ -63,6 +70,7 @@ KNOWN_PARTS: dict[str, tuple[str, ...]] = {
     "utility": tuple(UTILITIES),
     "weighting": tuple(WEIGHTINGS),
     "policy": POLICIES,
+    "learning": (LEARNING_PART,),
     "noise": ("logit", "probit", "tremble"),
     "contest": CONTEST_PARTS,
 }
@@ -183,9 +191,11 @@ def _noise_params(noise: str, contextual: bool) -> tuple[ParamSpec, ...]:
     )
 
 
-def canonical_name(utility: str, weighting: str | None, policy: str | None, noise: str) -> str:
-    """utility[+weighting][+policy]+noise, e.g. 'pt+prelec+target+logit'."""
-    return "+".join(p for p in (utility, weighting, policy, noise) if p)
+def canonical_name(
+    utility: str, weighting: str | None, policy: str | None, noise: str, learning: str | None = None
+) -> str:
+    """utility[+weighting][+learn][+policy]+noise, e.g. 'pt+prelec+target+logit'."""
+    return "+".join(p for p in (utility, weighting, learning, policy, noise) if p)
 
 
 def build_model(spec: str, **options: Any) -> Model:
@@ -201,6 +211,11 @@ def build_model(spec: str, **options: Any) -> Model:
     utility = _one(kinds, "utility", spec, required=True)
     weighting = _one(kinds, "weighting", spec, required=False)
     policy = _one(kinds, "policy", spec, required=False)
+    learning = _one(kinds, "learning", spec, required=False)
+    if learning and policy is None:
+        raise StopwiseInputError(
+            f"model spec {spec!r}: 'learn' needs a stopping policy ({', '.join(POLICIES)})"
+        )
     noise = _noise_name(kinds.get("noise", []), spec)
     opts = _check_options(options)
     risk = RiskParts(
@@ -215,12 +230,13 @@ def build_model(spec: str, **options: Any) -> Model:
         risk.utility.params
         + (risk.weighting.params if risk.weighting else ())
         + _noise_params(noise, opts["contextual"])
+        + (LEARNING_PARAMS if learning else ())
     )
-    name = canonical_name(utility, weighting, policy, noise)
+    name = canonical_name(utility, weighting, policy, noise, learning)
     if policy is None:
         return _lottery_model(name, params, risk, opts)
     caps = Caps(opts["max_p_survive"], opts["target_tolerance"], opts["max_target"])
-    return _stopping_model(name, params, risk, policy, caps, opts)
+    return _stopping_model(name, params, risk, policy, caps, opts, learning is not None)
 
 
 def _stopping_model(
@@ -230,6 +246,7 @@ def _stopping_model(
     policy: str,
     caps: Caps,
     opts: dict[str, Any],
+    learning: bool = False,
 ) -> Model:
     seen: dict[str, Caps] = {}
 
@@ -238,6 +255,8 @@ def _stopping_model(
         (the largest survival chance seen so far wins), so traced evaluations do not fall
         back to the generous default bound."""
         check_outcome_domain(name, risk.utility.name, risk.wealth, data)
+        for message in check_learning_data(name, data) if learning else ():
+            warnings.warn(message, stacklevel=2)
         sized = caps.sized_for(data.cond_p_survive)
         n_cond = len(np.asarray(data.cond_p_survive))
         check_table_size(name, policy, risk.noise.base, n_cond, int(data.horizon), sized)
@@ -253,7 +272,10 @@ def _stopping_model(
             sized = seen.get("caps", caps)
         else:
             sized = caps.sized_for(data.cond_p_survive)
-        return policy_tables(policy, risk, theta, Conditions.from_data(data), data.horizon, sized)
+        cond = Conditions.from_data(data)
+        if learning:
+            cond = learner_conditions(cond, data, theta)
+        return policy_tables(policy, risk, theta, cond, data.horizon, sized)
 
     def loglik_obs(theta: Any, data: Any) -> Any:
         """log P(action of each row | condition, step): the policy's table, gathered."""
@@ -274,6 +296,8 @@ def _stopping_model(
 
     def simulate(theta: Any, design: Any, key: Any) -> Any:
         check_design_tables(design)
+        if learning:
+            return simulate_learners(policy, caps, theta, design, key, sim_tables)
         return simulate_stopping(policy, risk, caps, theta, design, key, tables_fn=sim_tables)
 
     def check_design_tables(design: Any) -> None:
@@ -292,7 +316,7 @@ def _stopping_model(
         simulate=simulate,
         data_kind="stopping",
         predict=predict,
-        options={**opts, "policy": policy, "prepare": prepare},
+        options={**opts, "policy": policy, "prepare": prepare, "learning": learning},
         description=f"stopping model {name}",
     )
 

@@ -80,21 +80,69 @@ class RiskParts:
 
 @dataclass(frozen=True)
 class Conditions:
-    """Per-condition arrays (n_cond,): survival chance, gain, start bank, share kept on bust."""
+    """Per-condition arrays (n_cond,): survival chance, gain, start bank, share kept on bust,
+    and optionally an urn that makes the survival chance depend on the step s:
+        p(c, s) = (urn_good + urn_drift s) / (urn_total + urn_drift s)  (0 once <= 0),
+    drift -1 for draws without replacement (good items G of N), +1 for a Beta-posterior
+    learner (models.learning), 0 (or no urn) for a constant p_survive."""
 
     p_survive: Any
     gain: Any
     start: Any
     bust_keep: Any
+    urn_good: Any = None
+    urn_total: Any = None
+    urn_drift: Any = None
 
     @classmethod
     def from_data(cls, data: Any) -> Conditions:
-        return cls(data.cond_p_survive, data.cond_gain, data.cond_start, data.cond_bust_keep)
+        """The data's conditions; pool conditions (cond_pool_size > 0) get their urn."""
+        base = cls(data.cond_p_survive, data.cond_gain, data.cond_start, data.cond_bust_keep)
+        size = getattr(data, "cond_pool_size", None)
+        if size is None:
+            return base
+        return with_pool_urn(base, size, data.cond_pool_bad)
+
+
+def with_pool_urn(cond: Conditions, pool_size: Any, pool_bad: Any) -> Conditions:
+    """Urn (G, N, -1) where pool_size N > 0 (G = N - pool_bad); (p, 1, 0) elsewhere."""
+    size = jnp.asarray(pool_size, jnp.float64)
+    pool = size > 0
+    p = jnp.asarray(cond.p_survive, jnp.float64)
+    return replace(
+        cond,
+        urn_good=jnp.where(pool, size - jnp.asarray(pool_bad, jnp.float64), p),
+        urn_total=jnp.where(pool, size, 1.0),
+        urn_drift=jnp.where(pool, -1.0, 0.0),
+    )
 
 
 jax.tree_util.register_dataclass(
-    Conditions, data_fields=["p_survive", "gain", "start", "bust_keep"], meta_fields=[]
+    Conditions,
+    data_fields=["p_survive", "gain", "start", "bust_keep", "urn_good", "urn_total", "urn_drift"],
+    meta_fields=[],
 )
+
+
+def step_chances(cond: Conditions, n: int) -> Any:
+    """p(c, s) for s = 0..n-1, shape (n_cond, n) (see Conditions); exactly p_survive where
+    there is no urn or its drift is 0."""
+    p = jnp.asarray(cond.p_survive, jnp.float64)[:, None]
+    if cond.urn_drift is None:
+        return jnp.broadcast_to(p, (p.shape[0], n))
+    steps = jnp.arange(n, dtype=jnp.float64)[None, :]
+    drift = jnp.asarray(cond.urn_drift, jnp.float64)[:, None]
+    good = jnp.asarray(cond.urn_good, jnp.float64)[:, None] + drift * steps
+    total = jnp.asarray(cond.urn_total, jnp.float64)[:, None] + drift * steps
+    alive = (good > 0) & (total > 0)
+    chance = jnp.where(alive, good / jnp.where(alive, total, 1.0), 0.0)
+    return jnp.where(drift == 0, p, chance)
+
+
+def force_stop_where_no_chance(log_draw: Any, log_stop: Any, chances: Any) -> tuple[Any, Any]:
+    """Steps with survival chance 0 (a pool without good items) end the trial: P(stop) = 1."""
+    dead = chances <= 0.0
+    return jnp.where(dead, -jnp.inf, log_draw), jnp.where(dead, 0.0, log_stop)
 
 
 FALLBACK_MAX_P_SURVIVE = 0.99
@@ -186,10 +234,13 @@ def myopic_tables(
 ) -> tuple[Any, Any]:
     """(log P(draw), log P(stop)), (n_cond, n_steps): one draw then stop vs stop now."""
     u_bank, u_bust = _bank_utilities(parts, theta, cond, n_steps + 1)
-    p = jnp.asarray(cond.p_survive, jnp.float64)[:, None]
+    p = step_chances(cond, n_steps)
     now, after, bust = u_bank[:, :-1], u_bank[:, 1:], u_bust[:, :-1]
     diff = _gamble_value(parts, theta, after, p, bust) - now
-    return log_p_choose(_scaled_difference(parts, diff, after, bust), theta, parts.noise)
+    log_draw, log_stop = log_p_choose(
+        _scaled_difference(parts, diff, after, bust), theta, parts.noise
+    )
+    return force_stop_where_no_chance(log_draw, log_stop, p)
 
 
 def planner_tables(
@@ -198,18 +249,19 @@ def planner_tables(
     """(log P(draw), log P(stop)), (n_cond, n_steps), by noisy backward induction to ``cap``."""
     cap = max(cap, n_steps)
     u_bank, u_bust = _bank_utilities(parts, theta, cond, cap + 1)
-    p = jnp.asarray(cond.p_survive, jnp.float64)
+    chances = step_chances(cond, cap)
 
-    def step(v_next: Any, xs: tuple[Any, Any, Any]) -> tuple[Any, tuple[Any, Any]]:
-        u_now, u_after, u_lost = xs
+    def step(v_next: Any, xs: tuple[Any, Any, Any, Any]) -> tuple[Any, tuple[Any, Any]]:
+        u_now, u_after, u_lost, p = xs
         q_draw = _gamble_value(parts, theta, v_next, p, u_lost)
         diff = q_draw - u_now
         log_draw, log_stop = log_p_choose(
             _scaled_difference(parts, diff, u_after, u_lost), theta, parts.noise
         )
+        log_draw, log_stop = force_stop_where_no_chance(log_draw, log_stop, p)
         return u_now + jnp.exp(log_draw) * diff, (log_draw, log_stop)
 
-    xs = (u_bank[:, :-1].T, u_bank[:, 1:].T, u_bust[:, :-1].T)
+    xs = (u_bank[:, :-1].T, u_bank[:, 1:].T, u_bust[:, :-1].T, chances.T)
     _, (log_draw, log_stop) = jax.lax.scan(step, u_bank[:, -1], xs, reverse=True)
     return log_draw[:n_steps].T, log_stop[:n_steps].T
 
@@ -217,10 +269,9 @@ def planner_tables(
 def target_values(parts: RiskParts, theta: Theta, cond: Conditions, n_targets: int) -> Any:
     """V_T for T = 0..n_targets-1, shape (n_cond, n_targets) (see the module docstring)."""
     u_bank, u_bust = _bank_utilities(parts, theta, cond, n_targets)
-    targets = jnp.arange(n_targets, dtype=jnp.float64)
-    log_p = jnp.log(jnp.asarray(cond.p_survive, jnp.float64))[:, None]
-    reach = jnp.exp(targets[None, :] * log_p)  # P(X >= b_T) = p^T
-    reach_next = jnp.exp((targets[None, :] + 1.0) * log_p)
+    log_reach = log_reach_probabilities(cond, n_targets + 1)
+    reach = jnp.exp(log_reach[:, :-1])  # P(X >= b_T) = prod_{j<T} p(j)  (p^T)
+    reach_next = jnp.exp(log_reach[:, 1:])
     w_gain, w_loss = weight_functions(parts.weighting, theta)
     bank_weight = w_gain(reach)
     bust_weight = w_gain(reach) - w_gain(reach_next)
@@ -233,12 +284,31 @@ def target_values(parts: RiskParts, theta: Theta, cond: Conditions, n_targets: i
     return bank_weight * u_bank + before
 
 
+def log_reach_probabilities(cond: Conditions, n: int) -> Any:
+    """log P(the first t draws all succeed) = sum_{j<t} log p(c, j), t = 0..n-1, (n_cond, n);
+    t log p_survive exactly where the chance is constant (no urn or drift 0)."""
+    steps = jnp.arange(n, dtype=jnp.float64)[None, :]
+    log_p = jnp.log(jnp.asarray(cond.p_survive, jnp.float64))[:, None]
+    constant = steps * log_p
+    if cond.urn_drift is None:
+        return constant
+    log_chances = jnp.log(step_chances(cond, n - 1))
+    zero = jnp.zeros((log_p.shape[0], 1))
+    varying = jnp.concatenate([zero, jnp.cumsum(log_chances, axis=1)], axis=1)
+    return jnp.where(jnp.asarray(cond.urn_drift)[:, None] == 0, constant, varying)
+
+
 def target_caps(cond: Conditions, observed: int, n_targets: int, caps: Caps) -> Any:
-    """cap_c per condition (n_cond,), at least ``observed`` (see the module docstring)."""
+    """cap_c per condition (n_cond,), at least ``observed`` (see the module docstring); with a
+    step-dependent chance, the first target whose chance of success falls to the tolerance."""
     if caps.max_target is not None:
         return jnp.full(jnp.shape(cond.p_survive), n_targets - 1)
     log_p = jnp.log(jnp.asarray(cond.p_survive, jnp.float64))
     by_tolerance = jnp.ceil(math.log(caps.target_tolerance) / log_p)
+    if cond.urn_drift is not None:
+        log_reach = log_reach_probabilities(cond, n_targets)[:, 1:]
+        above = jnp.sum(log_reach > math.log(caps.target_tolerance), axis=1) + 1.0
+        by_tolerance = jnp.where(jnp.asarray(cond.urn_drift) == 0, by_tolerance, above)
     return jnp.clip(jnp.maximum(by_tolerance, observed), 1, n_targets - 1)
 
 
@@ -289,7 +359,7 @@ def target_tables(
     log_at_least = reverse_cumulative_logsumexp(log_target)  # log P(T >= t)
     log_draw = log_at_least[:, 1 : n_steps + 1] - log_at_least[:, :n_steps]
     log_stop = log_target[:, :n_steps] - log_at_least[:, :n_steps]
-    return log_draw, log_stop
+    return force_stop_where_no_chance(log_draw, log_stop, step_chances(cond, n_steps))
 
 
 def policy_tables(

@@ -20,6 +20,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned
+from stopwise.estimation.learning_check import learning_warnings
 from stopwise.fit_checks import certify_fixed_points
 from stopwise.fit_record import fit_record
 from stopwise.models.base import Model
@@ -240,6 +241,8 @@ def fit(
         cap_in_use = (the_model.options or {}).get("cap_in_use")
         if callable(cap_in_use):
             result.extras["max_target"] = cap_in_use()  # the contest cap travels with the fit
+    if (the_model.options or {}).get("learning") and method == "mle":
+        warned += learning_warnings(result)
     return _attach(result, notes, warned)
 
 

@@ -4,7 +4,10 @@ Stopping data, per condition (p_survive, gain, task, prize, keep_bank, and start
 when present): subjects, trials, draws attempted (mean and quartiles), final bank (mean and
 quartiles), bust rate, mean stop step, and the risk-neutral benchmark beside them: the
 optimal target n* (draw while bank < p g / ((1 - p)(1 - k)); p g / (1 - p) with start 0)
-and its expected bank E[bank | n*]. For contests that benchmark is the solo one.
+and its expected bank E[bank | n*]. For contests that benchmark is the solo one. Draws from
+a pool (pool_size, pool_bad) are conditions of their own, shown with the first draw's
+p_survive, and their benchmark is the pool's optimal stopping step found by backward
+induction (models.pool_normative).
 Lottery data: per item the share choosing B with both expected values, and per subject the
 number of switches between A and B along each list (items in sorted order).
 """
@@ -21,9 +24,10 @@ import pandas as pd
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.load import Dataset, load
 from stopwise.models.normative import risk_neutral_benchmark
+from stopwise.models.pool_normative import pool_risk_neutral_benchmark
 
 CONDITION_KEYS = ("p_survive", "gain", "task", "prize", "keep_bank")
-OPTIONAL_KEYS = ("start", "bust_keep")
+OPTIONAL_KEYS = ("start", "bust_keep", "pool_size", "pool_bad")
 CONTEST_ONLY_KEYS = ("prize", "keep_bank")  # not applicable to solo rows: shown empty
 
 
@@ -170,15 +174,21 @@ def _condition_frame(frame: pd.DataFrame) -> pd.DataFrame:
         values = frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
         return np.where(np.isnan(values), default, values)
 
+    pool_size, pool_bad = column("pool_size", 0.0), column("pool_bad", 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        first_chance = (pool_size - pool_bad) / pool_size
+    p_survive = frame["p_survive"].to_numpy(dtype=np.float64)
     return pd.DataFrame(
         {
-            "p_survive": frame["p_survive"].to_numpy(dtype=np.float64),
+            "p_survive": np.where(pool_size > 0, first_chance, p_survive),
             "gain": frame["gain"].to_numpy(dtype=np.float64),
             "task": task,
             "prize": np.where(solo, 0.0, column("prize", 0.0)),
             "keep_bank": np.where(solo, 1, column("keep_bank", 1.0)).astype(np.int64),
             "start": column("start", 0.0),
             "bust_keep": column("bust_keep", 0.0),
+            "pool_size": pool_size.astype(np.int64),
+            "pool_bad": pool_bad.astype(np.int64),
         }
     )
 
@@ -220,12 +230,7 @@ def _describe_stopping(dataset: Dataset, by: str | None = None) -> Description:
     stopped = trials[trials["stopped"]]
     mean_stop = stopped.groupby(keys, sort=True)["successes"].mean().rename("stop_step_mean")
     table = table.drop(columns="stop_step_mean").merge(mean_stop.reset_index(), on=keys, how="left")
-    benchmark = [
-        risk_neutral_benchmark(
-            row.p_survive, row.gain, getattr(row, "start", 0.0), getattr(row, "bust_keep", 0.0)
-        )
-        for row in table.itertuples(index=False)
-    ]
+    benchmark = [_benchmark(row) for row in table.itertuples(index=False)]
     table["rn_target"] = [b[0] for b in benchmark]
     table["rn_bank"] = [b[1] for b in benchmark]
     stop_steps = (
@@ -247,6 +252,14 @@ def _describe_stopping(dataset: Dataset, by: str | None = None) -> Description:
             "for contest rows rn_target/rn_bank are the solo benchmark, not a contest equilibrium."
         )
     return Description("stopping", dataset.source, table, stop_steps, None, tuple(notes), by)
+
+
+def _benchmark(row: Any) -> tuple[float, float]:
+    """(rn_target, rn_bank) of a condition: the pool's backward induction or the threshold."""
+    start, keep = getattr(row, "start", 0.0), getattr(row, "bust_keep", 0.0)
+    if getattr(row, "pool_size", 0) > 0:
+        return pool_risk_neutral_benchmark(row.pool_size, row.pool_bad, row.gain, start, keep)
+    return risk_neutral_benchmark(row.p_survive, row.gain, start, keep)
 
 
 def _stop_step_lines(stop_steps: pd.DataFrame) -> str:

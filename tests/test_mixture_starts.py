@@ -53,7 +53,9 @@ def test_mixture_note_and_summary_count_every_start(two_types) -> None:
     fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=2, se="hessian")
     outcomes = fit.optimizer["start_outcomes"]
     assert fit.optimizer["starts"] == 8 and len(outcomes) == 8
-    assert "not converged" in outcomes  # 2 iterations (and a 3-step Newton polish) are too few for some starts
+    assert (
+        "not converged" in outcomes
+    )  # 2 iterations (and a 3-step Newton polish) are too few for some starts
     note = next(n for n in fit.notes if n.startswith("of 8 starts"))
     numbers = [int(x) for x in re.findall(r"(\d+) (?:converged|did not)", note)]
     assert numbers == [

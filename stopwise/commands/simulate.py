@@ -93,6 +93,19 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "--bust-keep", type=float, default=0.0, help="share of the bank kept on a bust"
     )
     parser.add_argument(
+        "--pool",
+        default=None,
+        metavar="N:B",
+        help="solo models: draw without replacement from N items of which B are bad "
+        "(replaces --p-survive)",
+    )
+    parser.add_argument(
+        "--odds-unknown",
+        action="store_true",
+        help="solo models: odds_known = 0 on every trial (the participant is not told "
+        "--p-survive; simulate learners with a 'learn' model)",
+    )
+    parser.add_argument(
         "--players", type=int, default=2, metavar="N", help="contest models: group size (default 2)"
     )
     parser.add_argument(
@@ -244,6 +257,26 @@ def subject_ids(args: argparse.Namespace, per_subject: pd.DataFrame | None) -> l
     return ids
 
 
+def with_task_variant(design: pd.DataFrame, pool: str | None, unknown: bool) -> pd.DataFrame:
+    """Add pool_size/pool_bad (``--pool N:B``) and odds_known = 0 (``--odds-unknown``)."""
+    design = design.copy()
+    if pool is not None:
+        size, _, bad = pool.partition(":")
+        try:
+            n_items, n_bad = int(size), int(bad)
+        except ValueError:
+            n_items = n_bad = 0
+        if not 1 <= n_bad < n_items:
+            raise StopwiseInputError(
+                f"--pool: expected N:B with whole numbers 1 <= B < N (e.g. 20:3), got {pool!r}"
+            )
+        design["pool_size"], design["pool_bad"] = n_items, n_bad
+        design["p_survive"] = (n_items - n_bad) / n_items
+    if unknown:
+        design["odds_known"] = 0
+    return design
+
+
 def make_design(model: Any, args: argparse.Namespace, subjects: list[Any]) -> pd.DataFrame:
     """The per-trial (per-item) design for the model's kind of data."""
     if model.data_kind == "lottery":
@@ -260,7 +293,9 @@ def make_design(model: Any, args: argparse.Namespace, subjects: list[Any]) -> pd
         args.bust_keep,
     )
     if model.data_kind != "contest":
-        return design
+        return with_task_variant(design, args.pool, args.odds_unknown)
+    if args.pool is not None or args.odds_unknown:
+        raise StopwiseInputError("--pool and --odds-unknown are for solo models only")
     if args.players < 2 or not math.isfinite(args.prize) or args.prize <= 0:
         raise StopwiseInputError("contests need --players of at least 2 and a positive --prize")
     return contest_design(design, args.players, args.prize, args.keep_bank)
