@@ -37,7 +37,10 @@ def largest_table_values(
     if policy == "planner":
         return n_cond * (caps.planner_cap(n_steps) + 1)
     n_targets = caps.n_targets(n_steps)
-    return n_cond * n_targets * (n_targets if noise_base == "probit" else 1)
+    pairs = n_targets * (n_targets if noise_base == "probit" else 1)
+    # the survival chance of every step 0..n_targets (stopping.step_chances) is one longer
+    # than a logit target table
+    return n_cond * max(pairs, n_targets + 1)
 
 
 def estimated_bytes(policy: str, noise_base: str, n_cond: int, n_steps: int, caps: Caps) -> int:
