@@ -1,0 +1,187 @@
+"""Sequential contests for researchers: the certified normative solution and its comparison
+with simultaneous play (``stopwise equilibrium --sequential``).
+
+    sequential_equilibrium(p_survive, players, prize, ...) -> dict
+
+Risk-neutral players move in order 1..N; each later mover sees the best bank already banked
+(and how many share it) before running their own stopping task. The solver is backward
+induction (stopwise.models.contest.sequential); the certificate is the largest regret of any
+mover in any state: max over targets of the target's exact expected payoff minus the
+solver's value, as a share of the payoff range (0 at the solution up to rounding).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from stopwise.contest_solve import (
+    EFFICIENCY_LOSS_DEFINITION,
+    _check_setup,
+    equilibrium,
+)
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.certify import (
+    DEFAULT_TOLERANCE,
+    Certificate,
+    UncertifiedAnswer,
+    nash_certificate,
+)
+from stopwise.models.contest.sequential import (
+    NONE,
+    SequentialSolution,
+    make_sequential_game,
+    mover_summaries,
+    outcome_matrix,
+    solve_sequential,
+    state_distributions,
+    target_values,
+)
+
+MAX_SEQUENTIAL_PLAYERS = 6
+
+
+def max_regret(solution: SequentialSolution) -> tuple[float, float]:
+    """(largest regret over movers and states, largest |Q[t*] . pay - V|): the first is
+    max_t U_t(state) - V(state), the second checks the DP value against its own target."""
+    game = solution.game
+    q = outcome_matrix(game)
+    regret = mismatch = 0.0
+    for j in range(game.players):
+        for b_plus, c in zip(*np.nonzero(solution.targets[j] >= 0)):
+            b = int(b_plus) - 1
+            values = target_values(game, solution, j, b, int(c), q)
+            value = float(solution.values[j][b_plus, c])
+            regret = max(regret, float(values.max()) - value)
+            mismatch = max(mismatch, abs(float(values[solution.targets[j][b_plus, c]]) - value))
+    return max(regret, 0.0), mismatch
+
+
+def response_table(solution: SequentialSolution) -> list[dict[str, Any]]:
+    """Later movers' rule in every reachable state: mover (1-based), what they saw (best bank
+    banked before them, how many share it), the chance of seeing it, and the target."""
+    game = solution.game
+    states = state_distributions(solution)
+    rows = []
+    for j in range(1, game.players):
+        for (b, c), prob in sorted(states[j].items()):
+            if prob <= 0 or b == NONE:
+                continue
+            rows.append(
+                {
+                    "mover": j + 1,
+                    "rival_bank": float(game.score_values[b]),
+                    "tied_at_best": int(c),
+                    "prob_seen": float(prob),
+                    "target": int(solution.targets[j][b + 1, c]),
+                }
+            )
+    return rows
+
+
+def _simultaneous(
+    p_survive: float, players: int, prize: float, keep_bank: bool, gain: float, cap: int, **kw: Any
+) -> dict[str, Any]:
+    """The certified symmetric Nash equilibrium of the simultaneous contest (contest_solve)."""
+    result = equilibrium(
+        p_survive, players, prize, keep_bank=keep_bank, gain=gain, max_target=cap, **kw
+    )
+    return {
+        key: result[key]
+        for key in ("expected_bank", "win_prob", "efficiency_loss", "bust_rate", "certified")
+    } | {"max_regret_share": result["max_regret_share"]}
+
+
+def sequential_equilibrium(
+    p_survive: float,
+    players: int,
+    prize: float,
+    keep_bank: bool = False,
+    gain: float = 1.0,
+    max_target: int | None = None,
+    start: float = 0.0,
+    bust_keep: float = 0.0,
+    tolerance: float = DEFAULT_TOLERANCE,
+    allow_approximate: bool = False,
+    compare: bool = True,
+) -> dict[str, Any]:
+    """The subgame-perfect solution of the sequential contest, certified, and (compare) the
+    simultaneous Nash equilibrium of the same setting.
+
+    Keys: first_mover (targets, probs: the first mover's target distribution, degenerate at
+    the optimum; values: expected payoff of each target), responses (response_table), movers
+    (per mover expected_bank, win_prob, bust_rate), efficiency_loss
+    (EFFICIENCY_LOSS_DEFINITION with the N movers' total bank), max_regret_share,
+    certificate, certified, simultaneous (expected_bank, win_prob, efficiency_loss, ...).
+    """
+    cap = _check_setup(p_survive, players, prize, gain, max_target, bust_keep, start)
+    if players > MAX_SEQUENTIAL_PLAYERS:
+        raise StopwiseInputError(
+            f"players must be at most {MAX_SEQUENTIAL_PLAYERS} for sequential contests, "
+            f"got {players}"
+        )
+    game = make_sequential_game(p_survive, players, prize, keep_bank, cap, gain, start, bust_keep)
+    solution = solve_sequential(game)
+    movers = mover_summaries(solution)
+    regret, mismatch = max_regret(solution)
+    payoff_range = prize + (float(game.score_values.max()) if keep_bank else 0.0)
+    certificate = _certificate(regret, mismatch, payoff_range, tolerance)
+    solo = float(np.max(outcome_matrix(game) @ game.score_values))
+    total = sum(m["expected_bank"] for m in movers)
+    first_target = int(solution.targets[0][0, 0])
+    notes = [
+        "risk-neutral players; a mover indifferent between stopping and drawing stops",
+        f"win probabilities sum to {sum(m['win_prob'] for m in movers):.12f}",
+    ]
+    if not certificate.certified:
+        message = f"the sequential solver failed its certificate: {certificate.statement}"
+        if not allow_approximate:
+            raise UncertifiedAnswer(message)
+        notes.insert(0, f"APPROXIMATE, NOT CERTIFIED: {message}")
+    result: dict[str, Any] = {
+        "concept": "sequential",
+        "players": int(players),
+        "prize": float(prize),
+        "keep_bank": bool(keep_bank),
+        "p_survive": float(p_survive),
+        "gain": float(gain),
+        "cap": cap,
+        "first_mover": {
+            "targets": list(range(cap + 1)),
+            "probs": [1.0 if t == first_target else 0.0 for t in range(cap + 1)],
+            "target": first_target,
+            "values": target_values(game, solution, 0, NONE, 0).tolist(),
+        },
+        "responses": response_table(solution),
+        "movers": movers,
+        "efficiency_loss": 1.0 - total / (players * solo),
+        "efficiency_loss_definition": EFFICIENCY_LOSS_DEFINITION,
+        "max_regret_share": certificate.value,
+        "certificate": certificate.as_dict(),
+        "certified": certificate.certified,
+        "method": "backward induction over exact outcome distributions (stopping recursion "
+        "per mover and state); certified by every target's exact value in every state",
+        "notes": notes,
+    }
+    if compare:
+        result["simultaneous"] = _simultaneous(
+            p_survive, players, prize, keep_bank, gain, cap, start=start, bust_keep=bust_keep
+        )
+    return result
+
+
+def _certificate(
+    regret: float, mismatch: float, payoff_range: float, tolerance: float
+) -> Certificate:
+    """Nash-style certificate on the largest regret; the DP/target mismatch must also be
+    within tolerance of the payoff range."""
+    base = nash_certificate(regret, payoff_range, 0.0, tolerance)
+    share = mismatch / payoff_range
+    ok = base.certified and share <= tolerance
+    statement = (
+        f"largest regret of any mover in any state {regret:.3g} = {base.value:.3g} of the "
+        f"payoff range; solver value vs its target's exact value differ by {share:.3g} "
+        f"({'<=' if ok else '>'} tolerance {tolerance:g})"
+    )
+    return Certificate(base.kind, base.value, tolerance, ok, statement)
