@@ -185,3 +185,45 @@ def _certificate(
         f"({'<=' if ok else '>'} tolerance {tolerance:g})"
     )
     return Certificate(base.kind, base.value, tolerance, ok, statement)
+
+
+def format_sequential(result: dict[str, Any]) -> str:
+    """A readable table of a ``sequential_equilibrium`` result: the first mover's target,
+    the later movers' response rule (what they saw -> how far they go), per-mover banks and
+    the simultaneous comparison."""
+    scheme = " + own bank" if result["keep_bank"] else " (winner takes the prize only)"
+    lines = [
+        f"sequential play, {result['players']} players, prize {result['prize']:g}{scheme}, "
+        f"p_survive {result['p_survive']:g}, targets 0..{result['cap']}",
+        f"method: {result['method']}",
+        f"check: {result['certificate']['statement']} -> "
+        + ("CERTIFIED" if result["certified"] else "NOT CERTIFIED (approximate answer)"),
+        "",
+        f"first mover: target {result['first_mover']['target']} with probability 1",
+        "",
+        "later movers' response rule (rows seen with probability >= 1e-6):",
+        f"{'mover':>5}  {'rival_bank':>10}  {'tied':>4}  {'P(seen)':>8}  {'target':>6}",
+    ]
+    for row in result["responses"]:
+        if row["prob_seen"] >= 1e-6:
+            lines.append(
+                f"{row['mover']:>5}  {row['rival_bank']:>10g}  {row['tied_at_best']:>4}  "
+                f"{row['prob_seen']:>8.4f}  {row['target']:>6}"
+            )
+    lines += ["", f"{'':<22}{'expected bank':>14}  {'win prob':>8}  {'bust rate':>9}"]
+    for j, mover in enumerate(result["movers"], start=1):
+        lines.append(
+            f"{'mover ' + str(j):<22}{mover['expected_bank']:>14.4f}  "
+            f"{mover['win_prob']:>8.4f}  {mover['bust_rate']:>9.4f}"
+        )
+    simultaneous = result.get("simultaneous")
+    if simultaneous:
+        lines.append(
+            f"{'simultaneous (Nash)':<22}{simultaneous['expected_bank']:>14.4f}  "
+            f"{simultaneous['win_prob']:>8.4f}  {simultaneous['bust_rate']:>9.4f}"
+        )
+    lines += ["", f"efficiency loss  sequential {result['efficiency_loss']:.4f}"]
+    if simultaneous:
+        lines[-1] += f", simultaneous {simultaneous['efficiency_loss']:.4f}"
+    lines += [f"note: {n}" for n in result["notes"]]
+    return "\n".join(lines)

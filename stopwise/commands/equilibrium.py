@@ -111,6 +111,14 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="hide targets with probability below Q in the printed table (default 1e-4; "
         "the table says how many it hid; --json keeps them all)",
     )
+    parser.add_argument(
+        "--sequential",
+        action="store_true",
+        help="players move one after another, each seeing the best bank already banked: "
+        "prints the first mover's target, the later movers' response rule (what they saw -> "
+        "target), per-mover banks and the simultaneous Nash comparison (risk-neutral; "
+        "concept nash only; players 2..6)",
+    )
     _args.add_json_file(parser)
     parser.set_defaults(func=run)
     return parser
@@ -122,6 +130,8 @@ def run(args: argparse.Namespace) -> int:
 
     if not (0 < args.tolerance < 1):
         raise StopwiseInputError(f"--tolerance must lie in (0, 1), got {args.tolerance}")
+    if args.sequential:
+        return _run_sequential(args)
     try:
         result = _solve(args, equilibrium)
     except UncertifiedAnswer as exc:
@@ -152,3 +162,38 @@ def _solve(args: argparse.Namespace, equilibrium: Any) -> dict[str, Any]:
         tolerance=args.tolerance,
         allow_approximate=args.allow_approximate,
     )
+
+
+def _run_sequential(args: argparse.Namespace) -> int:
+    """``--sequential``: the certified sequential solution (stopwise.contest_sequential)."""
+    from stopwise.contest_sequential import format_sequential, sequential_equilibrium
+    from stopwise.contest_solve import UncertifiedAnswer
+
+    for name in ("precision", "tau", "level", "r"):
+        if getattr(args, name) is not None:
+            raise StopwiseInputError(
+                f"--{name} is not used with --sequential (risk-neutral subgame-perfect play)"
+            )
+    if args.concept != "nash":
+        raise StopwiseInputError("--sequential solves Nash (subgame-perfect) play only")
+    try:
+        result = sequential_equilibrium(
+            p_survive=args.p_survive,
+            players=args.players,
+            prize=args.prize,
+            keep_bank=args.keep_bank,
+            gain=args.gain,
+            max_target=args.max_target,
+            tolerance=args.tolerance,
+            allow_approximate=args.allow_approximate,
+        )
+    except UncertifiedAnswer as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    if args.json == "-":
+        write_json("-", result)
+        return 0
+    print(format_sequential(result))
+    if args.json:
+        write_json(args.json, result)
+    return 0
