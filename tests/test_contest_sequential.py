@@ -21,8 +21,12 @@ from stopwise.models.contest.certify import UncertifiedAnswer
 from stopwise.models.contest.sequential import (
     NONE,
     make_sequential_game,
+    mover_summaries,
+    outcome_matrix,
     solve_sequential,
+    target_values,
 )
+from stopwise.models.contest.sequential_qre import logit_mover_summaries, solve_sequential_logit
 
 # --- brute force, independent of the solver: lists of (score, probability) per target ---
 
@@ -212,3 +216,85 @@ def test_cli_sequential_refuses_unused_options(tmp_path, extra):
     players = [] if "--players" in extra else ["--players", "2"]
     assert cli.main([*base, *players, *extra, "--json", str(out)]) == 2
     assert not out.exists()
+
+
+# --- agent logit QRE at every node ---
+
+
+@pytest.mark.parametrize("keep", [False, True])
+def test_logit_play_at_high_precision_is_the_exact_solution(keep):
+    """In every state where the best target is unique by a margin (so every node on its path
+    is strict), logit play at lambda = 1e5 plays it; two-player summaries agree. (p = 0.85:
+    at p = 0.9 the solo targets 9 and 10 tie exactly, 9 p^9 = 10 p^10.)"""
+    game = make_sequential_game(0.85, 3, 10.0, keep, 40)
+    exact = solve_sequential(game)
+    logit = solve_sequential_logit(game, 1e5)
+    q = outcome_matrix(game)
+    checked = skipped = 0
+    for j in range(3):
+        for b_plus, c in zip(*np.nonzero(exact.targets[j] >= 0)):
+            values = np.sort(target_values(game, exact, j, int(b_plus) - 1, int(c), q))
+            if values[-1] - values[-2] < 1e-3:
+                skipped += 1
+                continue
+            dist = logit.outcomes[j][b_plus, c]
+            assert np.abs(dist - q[exact.targets[j][b_plus, c]]).max() < 1e-6
+            checked += 1
+    assert checked >= 9 * skipped
+    two = make_sequential_game(0.85, 2, 10.0, keep, 40)
+    pairs = zip(
+        logit_mover_summaries(solve_sequential_logit(two, 1e5)),
+        mover_summaries(solve_sequential(two)),
+    )
+    for a, b in pairs:
+        assert a["expected_bank"] == pytest.approx(b["expected_bank"], abs=1e-6)
+        assert a["win_prob"] == pytest.approx(b["win_prob"], abs=1e-6)
+
+
+def test_logit_play_at_zero_precision_is_uniform():
+    """lambda = 0 stops with probability 1/2 at every node: P(bank k) = (p/2)^k / 2 below the
+    cap (geometric law, common practice, no source), whatever the mover saw."""
+    p, cap = 0.8, 25
+    game = make_sequential_game(p, 2, 10.0, False, cap)
+    logit = solve_sequential_logit(game, 0.0)
+    expected_bust = sum((p / 2) ** k * 0.5 * (1 - p) for k in range(cap))
+    for j, b_plus, c in [(0, 0, 0), (1, 3, 1), (1, 10, 1)]:
+        stops = logit.stop_probs[j][b_plus, c]
+        assert np.allclose(stops[:cap], 0.5) and stops[cap] == 1.0
+        assert logit.bust[j][b_plus, c] == pytest.approx(expected_bust, abs=1e-12)
+        dist = logit.outcomes[j][b_plus, c]
+        for k in range(1, 5):  # bank k > 0 is reached only by stopping there
+            assert dist[game.reach_index[k]] == pytest.approx((p / 2) ** k / 2, abs=1e-12)
+
+
+def test_logit_play_matches_monte_carlo():
+    """numpy Monte Carlo of 10^6 two-player contests with logit stopping at every node."""
+    p, cap, n = 0.9, 30, 1_000_000
+    game = make_sequential_game(p, 2, 10.0, False, cap)
+    logit = solve_sequential_logit(game, 0.7)
+    rng = np.random.default_rng(7)
+    banks = np.zeros((n, 2))
+    best = np.full(n, NONE)
+    for j in range(2):
+        stops = logit.stop_probs[j][best + 1, np.where(best == NONE, 0, 1)]
+        alive = np.ones(n, dtype=bool)
+        level = np.zeros(n, dtype=int)
+        bust = np.zeros(n, dtype=bool)
+        for k in range(cap + 1):
+            stopping = alive & (rng.random(n) < stops[:, k])
+            alive &= ~stopping
+            drawing = alive.copy()
+            survive = rng.random(n) < p
+            bust |= drawing & ~survive
+            alive &= survive
+            level = np.where(alive, k + 1, level)
+            level = np.where(stopping, k, level)
+        banks[:, j] = np.where(bust, 0.0, level)
+        best = np.searchsorted(game.score_values, banks[:, 0] - 1e-9)
+    top = banks == banks.max(axis=1, keepdims=True)
+    winner = np.argmax(top * rng.random(banks.shape), axis=1)
+    for j, mover in enumerate(logit_mover_summaries(logit)):
+        se = banks[:, j].std() / np.sqrt(n)
+        assert abs(banks[:, j].mean() - mover["expected_bank"]) <= 4 * se
+        w = mover["win_prob"]
+        assert abs((winner == j).mean() - w) <= 4 * np.sqrt(w * (1 - w) / n)
