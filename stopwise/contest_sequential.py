@@ -1,7 +1,8 @@
 """Sequential contests for researchers: the certified normative solution and its comparison
-with simultaneous play (``stopwise equilibrium --sequential``).
+with simultaneous play (``stopwise equilibrium --sequential``), and agent logit play.
 
     sequential_equilibrium(p_survive, players, prize, ...) -> dict
+    sequential_logit(p_survive, players, prize, precision, ...) -> dict
 
 Risk-neutral players move in order 1..N; each later mover sees the best bank already banked
 (and how many share it) before running their own stopping task. The solver is backward
@@ -24,6 +25,7 @@ from stopwise.contest_solve import (
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.certify import (
     DEFAULT_TOLERANCE,
+    EXACT,
     Certificate,
     UncertifiedAnswer,
     nash_certificate,
@@ -38,6 +40,7 @@ from stopwise.models.contest.sequential import (
     state_distributions,
     target_values,
 )
+from stopwise.models.contest.sequential_qre import logit_mover_summaries, solve_sequential_logit
 
 MAX_SEQUENTIAL_PLAYERS = 6
 
@@ -226,4 +229,102 @@ def format_sequential(result: dict[str, Any]) -> str:
     if simultaneous:
         lines[-1] += f", simultaneous {simultaneous['efficiency_loss']:.4f}"
     lines += [f"note: {n}" for n in result["notes"]]
+    return "\n".join(lines)
+
+
+def sequential_logit(
+    p_survive: float,
+    players: int,
+    prize: float,
+    precision: float,
+    keep_bank: bool = False,
+    gain: float = 1.0,
+    max_target: int | None = None,
+    tolerance: float = DEFAULT_TOLERANCE,
+) -> dict[str, Any]:
+    """Agent logit QRE of the sequential contest (models.contest.sequential_qre): per-mover
+    expected bank, win probability, bust rate, and each later mover's expected bank and bust
+    rate by what they saw. Exact by construction (a finite backward recursion); the check is
+    that every state's outcome distribution sums to 1 within tolerance."""
+    cap = _check_setup(p_survive, players, prize, gain, max_target, 0.0, 0.0)
+    if players > MAX_SEQUENTIAL_PLAYERS:
+        raise StopwiseInputError(
+            f"players must be at most {MAX_SEQUENTIAL_PLAYERS} for sequential contests, "
+            f"got {players}"
+        )
+    if not (np.isfinite(precision) and precision >= 0):
+        raise StopwiseInputError(f"precision must be finite and >= 0, got {precision}")
+    game = make_sequential_game(p_survive, players, prize, keep_bank, cap, gain)
+    solution = solve_sequential_logit(game, precision)
+    gap = 0.0
+    for j in range(players):
+        sums = solution.outcomes[j].sum(axis=2)
+        used = sums > 0
+        gap = max(gap, float(np.abs(sums[used] - 1.0).max()))
+    certificate = Certificate(
+        EXACT,
+        gap,
+        tolerance,
+        bool(np.isfinite(gap) and gap <= tolerance),
+        "exact by construction (a finite backward recursion, no equation solved); every "
+        f"state's outcome probabilities sum to 1 within {gap:.3g}",
+    )
+    if not certificate.certified:
+        raise UncertifiedAnswer(f"sequential logit play failed its check: {certificate.statement}")
+    movers = logit_mover_summaries(solution)
+    solo = float(np.max(outcome_matrix(game) @ game.score_values))
+    total = sum(m["expected_bank"] for m in movers)
+    responses = [
+        {
+            "mover": 2,
+            "rival_bank": float(value),
+            "expected_bank": float(solution.outcomes[1][b + 1, 1] @ game.score_values),
+            "bust_rate": float(solution.bust[1][b + 1, 1]),
+        }
+        for b, value in enumerate(game.score_values)
+    ]
+    return {
+        "concept": "sequential-aqre",
+        "precision": float(precision),
+        "players": int(players),
+        "prize": float(prize),
+        "keep_bank": bool(keep_bank),
+        "p_survive": float(p_survive),
+        "cap": cap,
+        "first_mover_stop_probs": solution.stop_probs[0][0, 0].tolist(),
+        "second_mover_responses": responses,
+        "movers": movers,
+        "efficiency_loss": 1.0 - total / (players * solo),
+        "efficiency_loss_definition": EFFICIENCY_LOSS_DEFINITION,
+        "certificate": certificate.as_dict(),
+        "certified": certificate.certified,
+        "method": "agent logit QRE by backward recursion over movers and bank levels",
+    }
+
+
+def format_sequential_logit(result: dict[str, Any]) -> str:
+    """Readable text of a ``sequential_logit`` result: per-mover banks and the second
+    mover's expected bank and bust rate by the rival bank they saw (the 12 lowest)."""
+    scheme = " + own bank" if result["keep_bank"] else " (winner takes the prize only)"
+    lines = [
+        f"sequential agent logit play, precision {result['precision']:g}, "
+        f"{result['players']} players, prize {result['prize']:g}{scheme}, "
+        f"p_survive {result['p_survive']:g}, targets 0..{result['cap']}",
+        f"check: {result['certificate']['statement']} -> "
+        + ("CERTIFIED" if result["certified"] else "NOT CERTIFIED"),
+        "",
+        f"{'':<10}{'expected bank':>14}  {'win prob':>8}  {'bust rate':>9}",
+    ]
+    for j, mover in enumerate(result["movers"], start=1):
+        lines.append(
+            f"{'mover ' + str(j):<10}{mover['expected_bank']:>14.4f}  "
+            f"{mover['win_prob']:>8.4f}  {mover['bust_rate']:>9.4f}"
+        )
+    lines += ["", "second mover by the rival bank seen (the 12 lowest; --json has all):"]
+    lines.append(f"{'rival_bank':>10}  {'expected bank':>13}  {'bust rate':>9}")
+    for row in result["second_mover_responses"][:12]:
+        lines.append(
+            f"{row['rival_bank']:>10g}  {row['expected_bank']:>13.4f}  {row['bust_rate']:>9.4f}"
+        )
+    lines.append(f"\nefficiency loss  {result['efficiency_loss']:.4f}")
     return "\n".join(lines)

@@ -298,3 +298,17 @@ def test_logit_play_matches_monte_carlo():
         assert abs(banks[:, j].mean() - mover["expected_bank"]) <= 4 * se
         w = mover["win_prob"]
         assert abs((winner == j).mean() - w) <= 4 * np.sqrt(w * (1 - w) / n)
+
+
+def test_cli_sequential_logit(tmp_path, capsys):
+    out = tmp_path / "aqre.json"
+    args = ["equilibrium", "--p-survive", "0.9", "--players", "2", "--prize", "10"]
+    extra = ["--sequential", "--concept", "aqre", "--precision", "2", "--max-target", "40"]
+    assert cli.main([*args, *extra, "--json", str(out)]) == 0
+    assert "sequential agent logit play" in capsys.readouterr().out
+    saved = json.loads(out.read_text())
+    assert saved["certified"]
+    game = make_sequential_game(0.9, 2, 10.0, False, 40)
+    direct = logit_mover_summaries(solve_sequential_logit(game, 2.0))
+    assert saved["movers"][1]["win_prob"] == pytest.approx(direct[1]["win_prob"], abs=1e-12)
+    assert cli.main([*args, "--sequential", "--concept", "aqre", "--json", str(out)]) == 2

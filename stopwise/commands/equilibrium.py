@@ -117,7 +117,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="players move one after another, each seeing the best bank already banked: "
         "prints the first mover's target, the later movers' response rule (what they saw -> "
         "target), per-mover banks and the simultaneous Nash comparison (risk-neutral; "
-        "concept nash only; players 2..6)",
+        "players 2..6); with --concept aqre --precision L, logit choice at every node",
     )
     _args.add_json_file(parser)
     parser.set_defaults(func=run)
@@ -165,35 +165,43 @@ def _solve(args: argparse.Namespace, equilibrium: Any) -> dict[str, Any]:
 
 
 def _run_sequential(args: argparse.Namespace) -> int:
-    """``--sequential``: the certified sequential solution (stopwise.contest_sequential)."""
-    from stopwise.contest_sequential import format_sequential, sequential_equilibrium
+    """``--sequential``: the certified sequential solution, or with ``--concept aqre`` agent
+    logit play at every node (stopwise.contest_sequential)."""
+    from stopwise import contest_sequential as seq
     from stopwise.contest_solve import UncertifiedAnswer
 
-    for name in ("precision", "tau", "level", "r"):
+    logit = args.concept == "aqre"
+    unused = ("tau", "level", "r") if logit else ("precision", "tau", "level", "r")
+    for name in unused:
         if getattr(args, name) is not None:
-            raise StopwiseInputError(
-                f"--{name} is not used with --sequential (risk-neutral subgame-perfect play)"
-            )
-    if args.concept != "nash":
-        raise StopwiseInputError("--sequential solves Nash (subgame-perfect) play only")
-    try:
-        result = sequential_equilibrium(
-            p_survive=args.p_survive,
-            players=args.players,
-            prize=args.prize,
-            keep_bank=args.keep_bank,
-            gain=args.gain,
-            max_target=args.max_target,
-            tolerance=args.tolerance,
-            allow_approximate=args.allow_approximate,
+            raise StopwiseInputError(f"--{name} is not used with --sequential")
+    if args.concept not in ("nash", "aqre"):
+        raise StopwiseInputError(
+            "--sequential solves nash (subgame-perfect) or aqre (logit at every node) play"
         )
+    if logit and args.precision is None:
+        raise StopwiseInputError("--sequential --concept aqre needs --precision")
+    setting = {
+        "p_survive": args.p_survive,
+        "players": args.players,
+        "prize": args.prize,
+        "keep_bank": args.keep_bank,
+        "gain": args.gain,
+        "max_target": args.max_target,
+        "tolerance": args.tolerance,
+    }
+    try:
+        if logit:
+            result = seq.sequential_logit(precision=args.precision, **setting)
+        else:
+            result = seq.sequential_equilibrium(allow_approximate=args.allow_approximate, **setting)
     except UncertifiedAnswer as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 1
     if args.json == "-":
         write_json("-", result)
         return 0
-    print(format_sequential(result))
+    print(seq.format_sequential_logit(result) if logit else seq.format_sequential(result))
     if args.json:
         write_json(args.json, result)
     return 0
