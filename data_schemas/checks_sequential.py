@@ -4,8 +4,9 @@
 n_players, one value per trial, and within one contest (group x trial) either every player
 has an order or none, and the orders are 1..k without gaps or repeats. ``rival_bank`` (the
 best bank banked before a later mover; empty if every earlier mover busted) is a number >= 0,
-one value per trial, needs an ``order`` column, is empty for first movers, and a file whose
-contests have later movers must carry it (what the later mover saw).
+one value per trial, needs an ``order`` column, is empty for first movers, a file whose
+contests have later movers must carry it (what the later mover saw), and it must equal the
+best final bank of the earlier movers of the contest that did not bust.
 """
 
 from __future__ import annotations
@@ -92,6 +93,7 @@ def check_sequential(
     group = cols.get("group")
     if group is not None:
         _check_group_orders(ch, order, group, subject, trial, contest & valid & group.ok)
+    check_rival_banks(ch)
 
 
 def _report(ch: Checker, rows: np.ndarray, name: str, values: np.ndarray, expected: str) -> None:
@@ -161,3 +163,76 @@ def _check_group_orders(
         else:
             continue
         ch.collector.add("sequential_order", line, "order", f"<orders {shown}>", expected)
+
+
+def final_banks(frame: pd.DataFrame) -> pd.DataFrame:
+    """One row per (subject, trial) of the raw frame: the final bank and whether it busted.
+    Trial level: start + draws*gain (bust: bust_keep times that); decision level: the
+    trial's last row, start + step*gain, busted when its outcome is 'bust'."""
+
+    def number(name: str, default: float) -> pd.Series:
+        if name not in frame.columns:
+            return pd.Series(default, index=frame.index, dtype=float)
+        return pd.to_numeric(frame[name], errors="coerce").fillna(default)
+
+    start, gain, keep = number("start", 0.0), number("gain", np.nan), number("bust_keep", 0.0)
+    if "draws" in frame.columns:
+        level = number("draws", np.nan)
+        busted = number("busted", np.nan) == 1
+        rows = pd.DataFrame({"subject": frame["subject"], "trial": frame["trial"]})
+    else:
+        step = number("step", np.nan)
+        last = step.groupby([frame["subject"], frame["trial"]], sort=False).transform("max")
+        keep_rows = step == last
+        level = step[keep_rows]
+        busted = frame.loc[keep_rows, "outcome"].astype(str) == "bust"
+        rows = frame.loc[keep_rows, ["subject", "trial"]]
+        start, gain, keep = start[keep_rows], gain[keep_rows], keep[keep_rows]
+    bank = start + level * gain
+    out = rows.assign(final=np.where(busted, keep * bank, bank), busted=busted.to_numpy())
+    return out.drop_duplicates(["subject", "trial"])
+
+
+def check_rival_banks(ch: Checker) -> None:
+    """Each later mover's rival_bank equals the best bank of the earlier movers of the same
+    contest (group x trial) that did not bust (empty when all of them busted); run only on a
+    file without other problems."""
+    needed = {"group", "order", "rival_bank", "subject", "trial"}
+    if not needed <= set(ch.frame.columns) or not ch.collector.ok:
+        return
+    frame = ch.frame
+    finals = final_banks(frame)
+    per_trial = frame.drop_duplicates(["subject", "trial"])[
+        ["subject", "trial", "group", "order", "rival_bank"]
+    ].merge(finals, on=["subject", "trial"])
+    per_trial = per_trial[per_trial["order"].notna()]
+    line_of = pd.Series(ch.lines, index=frame.index)
+    first_line = (
+        line_of.groupby([frame["subject"], frame["trial"]], sort=False).min().rename("line")
+    )
+    per_trial = per_trial.merge(first_line, left_on=["subject", "trial"], right_index=True)
+    for _, contest in per_trial.groupby(["group", "trial"], sort=False):
+        for _, mover in contest.iterrows():
+            earlier = contest[(contest["order"] < mover["order"]) & ~contest["busted"]]
+            if mover["order"] < 2:
+                continue
+            seen = pd.to_numeric(pd.Series([mover["rival_bank"]]), errors="coerce").iloc[0]
+            expected = earlier["final"].max() if len(earlier) else np.nan
+            same = (np.isnan(seen) and np.isnan(expected)) or (
+                not np.isnan(seen)
+                and not np.isnan(expected)
+                and abs(seen - expected) <= 1e-9 * max(1.0, abs(expected))
+            )
+            if not same:
+                want = (
+                    "empty (every earlier mover busted)"
+                    if np.isnan(expected)
+                    else (f"{expected:g}")
+                )
+                ch.collector.add(
+                    "rival_bank_mismatch",
+                    int(mover["line"]),
+                    "rival_bank",
+                    mover["rival_bank"],
+                    f"the best bank of the earlier movers in this contest: {want}",
+                )

@@ -91,3 +91,34 @@ def test_validate_command_exits_2_and_leaves_the_file(tmp_path, sequential_trial
     assert path.read_bytes() == before
     sequential_trials.to_csv(path, index=False)
     assert main(["validate", str(path)]) == 0
+
+
+def test_rival_bank_must_match_the_earlier_movers_bank(sequential_trials) -> None:
+    frame = sequential_trials.copy()
+    frame.loc[1, "rival_bank"] = 5.0  # the first mover banked 6
+    report = validate(frame)
+    assert report.counts == {"rival_bank_mismatch": 1}
+    assert "6" in report.format()
+    frame = sequential_trials.copy()
+    frame.loc[3, "rival_bank"] = 3.0  # the first mover busted on trial 2
+    report = validate(frame)
+    assert report.counts == {"rival_bank_mismatch": 1}
+    assert "every earlier mover busted" in report.format()
+
+
+def test_rival_bank_checked_at_decision_level(tmp_path) -> None:
+    rows = [
+        "subject,trial,step,p_survive,gain,action,outcome,task,group,n_players,prize,order,rival_bank",
+        "a,1,0,0.9,1,draw,success,contest,g1,2,10,1,",
+        "a,1,1,0.9,1,stop,,contest,g1,2,10,1,",
+        "b,1,0,0.9,1,draw,success,contest,g1,2,10,2,{seen}",
+        "b,1,1,0.9,1,draw,success,contest,g1,2,10,2,{seen}",
+        "b,1,2,0.9,1,stop,,contest,g1,2,10,2,{seen}",
+    ]
+    path = tmp_path / "d.csv"
+    path.write_text("\n".join(rows).format(seen=1) + "\n", encoding="utf-8")
+    assert validate(path).ok
+    path.write_text("\n".join(rows).format(seen=2) + "\n", encoding="utf-8")
+    report = validate(path)
+    assert report.counts == {"rival_bank_mismatch": 1}
+    assert ":4:" in report.format()  # the second mover's first line
