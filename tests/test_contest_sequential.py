@@ -17,7 +17,10 @@ import pytest
 
 from stopwise import cli
 from stopwise.contest_sequential import max_regret, sequential_equilibrium
+from stopwise.contest_sequential_sim import simulate_sequential
+from stopwise.data_schemas.validate import validate
 from stopwise.models.contest.certify import UncertifiedAnswer
+from stopwise.models.contest.game import default_max_target
 from stopwise.models.contest.sequential import (
     NONE,
     make_sequential_game,
@@ -312,3 +315,26 @@ def test_cli_sequential_logit(tmp_path, capsys):
     direct = logit_mover_summaries(solve_sequential_logit(game, 2.0))
     assert saved["movers"][1]["win_prob"] == pytest.approx(direct[1]["win_prob"], abs=1e-12)
     assert cli.main([*args, "--sequential", "--concept", "aqre", "--json", str(out)]) == 2
+
+
+# --- invented sequential data ---
+
+
+@pytest.mark.parametrize("precision", [None, 0.5])
+def test_simulated_sequential_data_validate_and_match_the_solution(precision):
+    frame = simulate_sequential(0.85, 2, 5.0, groups=20, trials=5, precision=precision, seed=3)
+    report = validate(frame)
+    assert report.ok, report.format()
+    big = simulate_sequential(0.85, 2, 5.0, groups=1000, trials=200, precision=precision, seed=4)
+    game = make_sequential_game(0.85, 2, 5.0, False, default_max_target(0.85))
+    solved = (
+        mover_summaries(solve_sequential(game))
+        if precision is None
+        else logit_mover_summaries(solve_sequential_logit(game, precision))
+    )
+    for j, mover in enumerate(solved):
+        rows = big[big["order"] == j + 1]
+        bank = np.where(rows["busted"] == 1, 0.0, rows["draws"])
+        assert abs(bank.mean() - mover["expected_bank"]) <= 4 * bank.std() / np.sqrt(len(bank))
+        b = mover["bust_rate"]
+        assert abs(rows["busted"].mean() - b) <= 4 * np.sqrt(b * (1 - b) / len(rows))
