@@ -12,7 +12,10 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from stopwise.contest_sequential import max_regret
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.certify import DEFAULT_TOLERANCE as CERTIFICATE_TOLERANCE
+from stopwise.models.contest.certify import UncertifiedAnswer
 from stopwise.models.contest.game import default_max_target
 from stopwise.models.contest.sequential import (
     NONE,
@@ -63,7 +66,8 @@ def simulate_sequential(
 ) -> pd.DataFrame:
     """Trial-level rows (subject, trial, p_survive, gain, draws, busted, task, group,
     n_players, prize, keep_bank, order, rival_bank) of groups x trials sequential contests;
-    exact play without ``precision``, agent logit play with it."""
+    exact play without ``precision`` (refused unless it passes the solution's regret check),
+    agent logit play with it."""
     if groups < 1 or trials < 1 or groups * trials > MAX_SIMULATED_CONTESTS:
         raise StopwiseInputError(
             f"groups and trials must be >= 1 with groups x trials <= {MAX_SIMULATED_CONTESTS}"
@@ -72,6 +76,13 @@ def simulate_sequential(
     game = make_sequential_game(p_survive, players, prize, keep_bank, cap)
     if precision is None:
         solution = solve_sequential(game)
+        regret, mismatch = max_regret(solution)
+        scale = prize + (cap if keep_bank else 0.0)
+        if max(regret, mismatch) > CERTIFICATE_TOLERANCE * scale:
+            raise UncertifiedAnswer(
+                f"the sequential solution failed its check (regret {regret:.3g}, value "
+                f"mismatch {mismatch:.3g}); nothing simulated"
+            )
         stop_tables = [exact_stop_probs(t, cap) for t in solution.targets]
     else:
         stop_tables = solve_sequential_logit(game, precision).stop_probs

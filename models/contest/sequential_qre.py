@@ -39,7 +39,9 @@ class LogitSolution:
     win_continuation: list[np.ndarray]
 
 
-def logit_node_play(game: SequentialGame, pay: np.ndarray, precision: float):
+def logit_node_play(
+    game: SequentialGame, pay: np.ndarray, precision: float
+) -> tuple[np.ndarray, np.ndarray, float, float]:
     """Backward logit recursion over bank levels (module docstring); returns (P(stop at k)
     for k = 0..cap, outcome distribution over score indices, P(bust), V(0))."""
     p, cap = game.p_survive, game.cap
