@@ -20,6 +20,7 @@ from .checks_sequences import (
     terminal_rows,
     trial_starts,
 )
+from .checks_sequential import SEQUENTIAL_COLUMNS, check_sequential
 
 EXACT_ID = 2.0**53  # integer ids are compared as float64, exact below this magnitude
 
@@ -144,10 +145,19 @@ def check_decisions(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, di
         contest = contest_rows(ch, cols)
         check_contest(ch, cols, subject.values, contest)
         check_variant_contests(ch, cols, contest)
+        check_sequential(ch, cols, *_trial_keys(subject, trial), contest)
         stats = stopping_stats(ch, cols, subject.values, int(new_trial.sum()))
     integers = ("trial", "step", "n_players", "keep_bank", "pool_size", "pool_bad", "odds_known")
     clean = ch.clean_frame(integers) if ch.collector.ok else None
     return clean, stats
+
+
+def _trial_keys(subject: Column, trial: Column) -> tuple[np.ndarray, np.ndarray]:
+    """Subject and trial codes with -1 where the cell is invalid."""
+    return (
+        np.where(subject.ok, subject.values, -1),
+        np.where(trial.ok, trial.values, -1),
+    )
 
 
 def distinct_values(values: np.ndarray, limit: int = 12) -> list[float]:
@@ -169,7 +179,11 @@ def stopping_stats(
         counts = np.bincount(task.values[task.ok], minlength=len(C.TASKS))
         stats["rows_by_task"] = {name: int(c) for name, c in zip(C.TASKS, counts)}
     known = (
-        set(C.DECISION_REQUIRED) | set(C.TRIAL_REQUIRED) | set(C.OPTIONAL_STOPPING) | {C.CENSORED}
+        set(C.DECISION_REQUIRED)
+        | set(C.TRIAL_REQUIRED)
+        | set(C.OPTIONAL_STOPPING)
+        | set(SEQUENTIAL_COLUMNS)
+        | {C.CENSORED}
     )
     extra = [str(c) for c in ch.frame.columns if c not in known]
     if extra:
@@ -268,6 +282,7 @@ def check_trials(ch: Checker, allow_censored: bool) -> tuple[pd.DataFrame, dict]
         )
         contest = contest_rows(ch, cols)
         check_contest(ch, cols, subject.values, contest)
+        check_sequential(ch, cols, *_trial_keys(subject, trial), contest)
         stats = stopping_stats(ch, cols, subject.values, len(order))
     integers = ("trial", "draws", "busted", "n_players", "keep_bank", C.CENSORED)
     clean = ch.clean_frame(integers) if ch.collector.ok else None

@@ -111,6 +111,14 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         help="hide targets with probability below Q in the printed table (default 1e-4; "
         "the table says how many it hid; --json keeps them all)",
     )
+    parser.add_argument(
+        "--sequential",
+        action="store_true",
+        help="players move one after another, each seeing the best bank already banked: "
+        "prints the first mover's target, the later movers' response rule (what they saw -> "
+        "target), per-mover banks and the simultaneous Nash comparison (risk-neutral; "
+        "players 2..6); with --concept aqre --precision L, logit choice at every node",
+    )
     _args.add_json_file(parser)
     parser.set_defaults(func=run)
     return parser
@@ -122,6 +130,8 @@ def run(args: argparse.Namespace) -> int:
 
     if not (0 < args.tolerance < 1):
         raise StopwiseInputError(f"--tolerance must lie in (0, 1), got {args.tolerance}")
+    if args.sequential:
+        return _run_sequential(args)
     try:
         result = _solve(args, equilibrium)
     except UncertifiedAnswer as exc:
@@ -152,3 +162,46 @@ def _solve(args: argparse.Namespace, equilibrium: Any) -> dict[str, Any]:
         tolerance=args.tolerance,
         allow_approximate=args.allow_approximate,
     )
+
+
+def _run_sequential(args: argparse.Namespace) -> int:
+    """``--sequential``: the certified sequential solution, or with ``--concept aqre`` agent
+    logit play at every node (stopwise.contest_sequential)."""
+    from stopwise import contest_sequential as seq
+    from stopwise.contest_solve import UncertifiedAnswer
+
+    logit = args.concept == "aqre"
+    unused = ("tau", "level", "r") if logit else ("precision", "tau", "level", "r")
+    for name in unused:
+        if getattr(args, name) is not None:
+            raise StopwiseInputError(f"--{name} is not used with --sequential")
+    if args.concept not in ("nash", "aqre"):
+        raise StopwiseInputError(
+            "--sequential solves nash (subgame-perfect) or aqre (logit at every node) play"
+        )
+    if logit and args.precision is None:
+        raise StopwiseInputError("--sequential --concept aqre needs --precision")
+    setting = {
+        "p_survive": args.p_survive,
+        "players": args.players,
+        "prize": args.prize,
+        "keep_bank": args.keep_bank,
+        "gain": args.gain,
+        "max_target": args.max_target,
+        "tolerance": args.tolerance,
+    }
+    try:
+        if logit:
+            result = seq.sequential_logit(precision=args.precision, **setting)
+        else:
+            result = seq.sequential_equilibrium(allow_approximate=args.allow_approximate, **setting)
+    except UncertifiedAnswer as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    if args.json == "-":
+        write_json("-", result)
+        return 0
+    print(seq.format_sequential_logit(result) if logit else seq.format_sequential(result))
+    if args.json:
+        write_json(args.json, result)
+    return 0
