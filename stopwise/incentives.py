@@ -347,7 +347,8 @@ def bootstrap(
             continue
         values.append(goal_value(problem.goal, row, problem.target_risk))
     band = [float(np.percentile(values, q)) for q in (2.5, 97.5)] if values else [None, None]
-    return {"draws": draws, "used": len(values), "refused": refused, "band_95": band}
+    sd = float(np.std(values, ddof=1)) if len(values) > 1 else None
+    return {"draws": draws, "used": len(values), "refused": refused, "band_95": band, "sd": sd}
 
 
 def design_incentives(
