@@ -297,28 +297,47 @@ def perturbed(base: Mapping[str, Any], name: str, value: float) -> dict[str, Any
     return {**base, "params": {**base["params"], name: value}}
 
 
+QUANTITIES = ("goal_value", "bust_rate", "total_bank", "mean_target")
+
+
+def predicted_quantities(problem: DesignProblem, row: Mapping[str, Any]) -> dict[str, float]:
+    """Goal value, bust rate, expected total bank N E[bank] and mean target of one row."""
+    return {
+        "goal_value": goal_value(problem.goal, row, problem.target_risk),
+        "bust_rate": float(row["bust_rate"]),
+        "total_bank": float(row["players"] * row["expected_bank"]),
+        "mean_target": float(row["mean_target"]),
+    }
+
+
 def delta_method(
     problem: DesignProblem, base: Mapping[str, Any], se: Mapping[str, float], design: tuple
 ) -> dict[str, Any]:
-    """Standard error of the goal at ``design`` by the delta method,
-    se(g)^2 = sum_k (dg/dtheta_k)^2 se_k^2, dg/dtheta_k by central differences with step
-    h_k = 1e-4 max(1, |theta_k|); a step whose prediction is uncertified gives NaN."""
-    players, scheme, prize, p = design
-    squared, gradient = 0.0, {}
-    for name, s in se.items():
+    """Standard errors at ``design`` by the delta method for each of QUANTITIES q:
+    se(q)^2 = sum_k (dq/dtheta_k)^2 se_k^2, dq/dtheta_k by central differences with step
+    h_k = 1e-4 max(1, |theta_k|); a step whose prediction is uncertified gives NaN.
+    Top-level "se" and "gradient" are those of the goal."""
+    gradients: dict[str, dict[str, float]] = {q: {} for q in QUANTITIES}
+    for name in se:
         theta_k = float(base["params"][name])
         h = 1e-4 * max(1.0, abs(theta_k))
         sides = []
         for value in (theta_k + h, theta_k - h):
-            row = counterfactual_evaluator(perturbed(base, name, value))(players, scheme, prize, p)[
-                "model"
-            ]
-            sides.append(
-                goal_value(problem.goal, row, problem.target_risk) if row["certified"] else math.nan
-            )
-        gradient[name] = (sides[0] - sides[1]) / (2 * h)
-        squared += gradient[name] ** 2 * s**2
-    return {"se": math.sqrt(squared), "gradient": gradient}
+            row = counterfactual_evaluator(perturbed(base, name, value))(*design)["model"]
+            nan = dict.fromkeys(QUANTITIES, math.nan)
+            sides.append(predicted_quantities(problem, row) if row["certified"] else nan)
+        for q in QUANTITIES:
+            gradients[q][name] = (sides[0][q] - sides[1][q]) / (2 * h)
+    ses = {
+        q: math.sqrt(sum(gradients[q][k] ** 2 * s**2 for k, s in se.items())) for q in QUANTITIES
+    }
+    return {"se": ses["goal_value"], "gradient": gradients["goal_value"], "se_by_quantity": ses}
+
+
+def limits_hold(problem: DesignProblem, row: Mapping[str, Any]) -> bool:
+    """Whether a prediction meets the bust and budget limits."""
+    bust_ok = problem.max_bust is None or row["bust_rate"] <= problem.max_bust
+    return bust_ok and (problem.budget is None or row["prize_outlay"] <= problem.budget)
 
 
 def bootstrap(
@@ -329,11 +348,13 @@ def bootstrap(
     draws: int,
     seed: int,
 ) -> dict[str, Any]:
-    """Parametric bootstrap of the goal at ``design``: theta* ~ N(theta_hat, diag(se^2));
-    draws the model refuses (outside its parameter range) or whose prediction is
-    uncertified are counted and left out; the band is the 2.5 and 97.5 percentiles."""
+    """Parametric bootstrap at ``design``: theta* ~ N(theta_hat, diag(se^2)); draws the model
+    refuses (outside its parameter range) or whose prediction is uncertified are counted and
+    left out. Per quantity: 2.5 and 97.5 percentiles and sd; ``limits_hold_share``: the
+    share of used draws whose prediction meets the limits. Top-level band and sd: the goal."""
     rng = np.random.default_rng(seed)
-    values, refused = [], 0
+    values: dict[str, list[float]] = {q: [] for q in QUANTITIES}
+    refused, held = 0, 0
     for _ in range(draws):
         params = dict(base["params"])
         params.update({k: float(params[k] + s * rng.standard_normal()) for k, s in se.items()})
@@ -345,10 +366,25 @@ def bootstrap(
         if not row["certified"] or not math.isfinite(row["expected_bank"]):
             refused += 1
             continue
-        values.append(goal_value(problem.goal, row, problem.target_risk))
+        held += limits_hold(problem, row)
+        for q, v in predicted_quantities(problem, row).items():
+            values[q].append(v)
+    summary = {q: _band(v) for q, v in values.items()}
+    used = len(values["goal_value"])
+    return {
+        "draws": draws,
+        "used": used,
+        "refused": refused,
+        "band_95": summary["goal_value"]["band_95"],
+        "sd": summary["goal_value"]["sd"],
+        "by_quantity": summary,
+        "limits_hold_share": held / used if used else None,
+    }
+
+
+def _band(values: Sequence[float]) -> dict[str, Any]:
     band = [float(np.percentile(values, q)) for q in (2.5, 97.5)] if values else [None, None]
-    sd = float(np.std(values, ddof=1)) if len(values) > 1 else None
-    return {"draws": draws, "used": len(values), "refused": refused, "band_95": band, "sd": sd}
+    return {"band_95": band, "sd": float(np.std(values, ddof=1)) if len(values) > 1 else None}
 
 
 def design_incentives(

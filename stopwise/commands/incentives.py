@@ -190,15 +190,31 @@ def format_design(record: dict[str, Any]) -> str:
     lines = [f"goal: {record['goal']}  (fitted play | Nash play)", head]
     lines.append(_design_line("chosen", record["choice"]))
     lines += [_design_line("runner-up", d) for d in record["runners_up"]]
-    delta = record["choice"].get("delta_method")
-    if delta:
-        lines.append(f"goal standard error (delta method): {delta['se']:.4g}")
-    boot = record["choice"].get("bootstrap")
-    if boot:
-        lines.append(
-            f"bootstrap 95% band: {boot['band_95']} ({boot['used']} of {boot['draws']} draws "
-            "certified and used)"
-        )
+    lines += uncertainty_lines(record["choice"])
     lines.append(f"search: {record['method']}")
     lines += [f"note: {n}" for n in record["notes"]]
     return "\n".join(lines)
+
+
+def uncertainty_lines(choice: dict[str, Any]) -> list[str]:
+    """Delta-method standard errors and bootstrap bands of the chosen design."""
+    lines = []
+    delta = choice.get("delta_method")
+    if delta:
+        ses = ", ".join(f"{q} {v:.3g}" for q, v in delta["se_by_quantity"].items())
+        lines.append(f"standard errors (delta method): {ses}")
+    boot = choice.get("bootstrap")
+    if boot:
+        bands = ", ".join(
+            f"{q} [{b['band_95'][0]:.4g}, {b['band_95'][1]:.4g}]"
+            for q, b in boot["by_quantity"].items()
+            if b["band_95"][0] is not None
+        )
+        lines.append(f"bootstrap 95% bands: {bands}")
+        lines.append(
+            f"bootstrap: {boot['used']} of {boot['draws']} draws certified and used; "
+            f"limits hold in {boot['limits_hold_share']:.0%} of them"
+            if boot["used"]
+            else "bootstrap: no draw was certified"
+        )
+    return lines
