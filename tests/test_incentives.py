@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import stopwise  # noqa: F401  (enables float64 JAX)
+import stopwise  # (also enables float64 JAX)
 from stopwise import cli
 from stopwise.contest import counterfactual, design_incentives, equilibrium
 from stopwise.incentives import (
@@ -281,3 +281,56 @@ def test_command_writes_json_and_a_png_figure(tmp_path, capsys):
             if c["prediction"] == "model" and c["admissible"]
         ]
     )
+
+
+@pytest.mark.slow
+def test_bootstrap_bands_cover_the_true_predictions_in_a_simulation(tmp_path):
+    # known truth (invented parameters): simulate a pilot, fit it, design, then compare the
+    # bands at the chosen design with the true parameters' predictions there
+    truth = {"r": 0.25, "precision": 2.5}
+    n, rounds = 16, 10
+    design = pd.DataFrame(
+        {
+            "subject": np.repeat([f"s{i + 1:02d}" for i in range(n)], rounds),
+            "trial": np.tile(np.arange(1, rounds + 1), n),
+            "p_survive": 0.85,
+            "gain": 1.0,
+            "n_players": 2,
+            "prize": 6.0,
+            "keep_bank": np.tile(np.arange(rounds) % 2, n),
+        }
+    )
+    data = stopwise.simulate(stopwise.model("crra+qre", max_target=12), truth, design, seed=7)
+    data.to_csv(tmp_path / "pilot.csv", index=False)
+    fit_json = tmp_path / "fit.json"
+    argv = ["fit", str(tmp_path / "pilot.csv"), "--model", "crra+qre", "--max-target", "12"]
+    assert cli.main([*argv, "--json", str(fit_json)]) == 0
+    result = design_incentives(
+        stopwise.load_result(fit_json),
+        "efficiency",
+        (1.0, 10.0),
+        players=(2,),
+        schemes=("winner", "keep"),
+        p_survive=(0.85,),
+        grid_points=4,
+        refine_steps=3,
+        bootstrap_draws=60,
+        seed=1,
+    )
+    choice = result.choice
+    true_row = counterfactual(
+        {"model": "crra+qre", "params": truth, "max_target": 12},
+        [
+            {
+                "players": 2,
+                "prize": choice["prize"],
+                "keep_bank": choice["scheme"] == "keep",
+                "p_survive": 0.85,
+            }
+        ],
+    ).table.iloc[1]
+    bands = choice["bootstrap"]["by_quantity"]
+    low, high = bands["bust_rate"]["band_95"]
+    assert low <= true_row["bust_rate"] <= high
+    low, high = bands["total_bank"]["band_95"]
+    assert low <= 2 * true_row["expected_bank"] <= high
