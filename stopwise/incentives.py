@@ -13,7 +13,9 @@ and Nash play, each with its certificate. Goals, on the model's prediction:
 Limits: P(bust | sigma_d) <= max_bust, outlay <= budget (expected prize outlay per group).
 Search: discrete settings (players, scheme, p_survive) by enumeration; the prize by a grid of
 ``grid_points`` over [lo, hi], then a golden-section search (a bracketing 1-D search on
-certified evaluations; no gradients) inside the two grid cells around the best grid point.
+certified evaluations; gradients do not steer it) inside the two grid cells around the best
+grid point; at the choice, d goal / d prize by automatic differentiation through the fitted
+play (stopwise.incentives_gradient), checked against central differences.
 An uncertified or infeasible evaluation scores -inf and is never chosen. Uncertainty of the
 chosen design's goal: delta method Var g = sum_k (dg/dtheta_k)^2 se_k^2 (central differences)
 and a parametric bootstrap theta* ~ N(theta_hat, diag(se^2)); the result JSON stores standard
@@ -34,6 +36,7 @@ import pandas as pd
 
 from stopwise.contest_counterfactual import _model_and_theta, counterfactual
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.incentives_gradient import prize_derivative
 
 GOALS = ("efficiency", "bust", "risk", "outlay")
 SCHEMES = {"winner": False, "keep": True}
@@ -241,6 +244,7 @@ def candidate_frame(
                     "scheme": scheme,
                     "prize": prize,
                     "p_survive": p,
+                    "cap": int(row["cap"]),
                     "prediction": label,
                     "goal_value": goal_value(problem.goal, row, problem.target_risk),
                     "bust_rate": row["bust_rate"],
@@ -434,6 +438,15 @@ def design_incentives(
     choice["delta_method"] = delta_method(problem, base, se, design) if se else None
     if bootstrap_draws:
         choice["bootstrap"] = bootstrap(problem, base, se, design, bootstrap_draws, seed)
+    cap = int(best.iloc[0]["cap"])
+    choice["prize_derivative"] = prize_derivative(
+        base["model"],
+        base["params"],
+        goal,
+        (design[0], SCHEMES[design[1]], design[3], cap),
+        design[2],
+        target_risk,
+    )
     runners_up = [describe_design(candidates, row) for _, row in best.iloc[1:].iterrows()]
     notes = [COVARIANCE_NOTE] if se else ["the fit carries no standard errors: no uncertainty"]
     if uncertified:

@@ -27,6 +27,8 @@ from stopwise.incentives import (
     golden_section,
     search,
 )
+from stopwise.incentives_gradient import goal_of_prize, prize_derivative
+from stopwise.models.spec import build_model
 
 FIT = {
     "model": "crra+qre",
@@ -272,6 +274,7 @@ def test_command_writes_json_and_a_png_figure(tmp_path, capsys):
     assert record["choice"]["model"]["prize_outlay"] <= 9.0
     assert {"nash", "model"} <= set(record["choice"]) and record["runners_up"]
     assert math.isfinite(record["choice"]["delta_method"]["se"])
+    assert record["choice"]["prize_derivative"]["relative_gap"] <= 1e-6
     assert "chosen" in printed and "runner-up" in printed
     assert fig.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert np.all(
@@ -334,3 +337,33 @@ def test_bootstrap_bands_cover_the_true_predictions_in_a_simulation(tmp_path):
     assert low <= true_row["bust_rate"] <= high
     low, high = bands["total_bank"]["band_95"]
     assert low <= 2 * true_row["expected_bank"] <= high
+
+
+@pytest.mark.parametrize(
+    ("spec", "theta"),
+    [
+        ("crra+qre", {"r": 0.3, "precision": 2.0}),
+        ("crra+levelk", {"r": 0.5, "precision": 2.0, "level": 0.5}),
+        ("crra+ch", {"r": 0.5, "precision": 2.0, "tau": 1.5}),
+    ],
+)
+@pytest.mark.parametrize("goal", ["efficiency", "bust", "risk"])
+@pytest.mark.parametrize("keep", [False, True])
+def test_prize_derivative_matches_central_differences(spec, theta, goal, keep):
+    # the bar: 1e-6 relative; the JAX goal must also equal counterfactual's value
+    model = build_model(spec, max_target=8)
+    design = (2, keep, 0.8, 8)
+    slope = prize_derivative(model, theta, goal, design, 5.0, target_risk=3.0)
+    assert slope["relative_gap"] <= 1e-6
+    assert abs(slope["derivative"]) > 1e-5  # not a flat spot where any answer would pass
+    row = counterfactual(
+        {"model": model, "params": theta, "max_target": 8},
+        [{"players": 2, "prize": 5.0, "keep_bank": keep, "p_survive": 0.8}],
+    ).table.iloc[1]
+    value = float(goal_of_prize(model, theta, goal, design, 3.0)(5.0))
+    expected = {
+        "efficiency": 2 * row["expected_bank"],
+        "bust": row["bust_rate"],
+        "risk": (row["mean_target"] - 3.0) ** 2,
+    }[goal]
+    assert value == pytest.approx(expected, rel=1e-9)

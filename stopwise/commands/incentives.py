@@ -199,6 +199,13 @@ def format_design(record: dict[str, Any]) -> str:
 def uncertainty_lines(choice: dict[str, Any]) -> list[str]:
     """Delta-method standard errors and bootstrap bands of the chosen design."""
     lines = []
+    slope = choice.get("prize_derivative")
+    if slope:
+        lines.append(
+            f"d goal / d prize at the choice: {slope['derivative']:.4g} (automatic "
+            f"differentiation through the fitted play; central differences agree to "
+            f"{slope['relative_gap']:.1e} relative)"
+        )
     delta = choice.get("delta_method")
     if delta:
         ses = ", ".join(f"{q} {v:.3g}" for q, v in delta["se_by_quantity"].items())
