@@ -43,7 +43,8 @@ SCHEMES = {"winner": False, "keep": True}
 GOLDEN = (math.sqrt(5.0) - 1.0) / 2.0
 SEARCH_METHOD = (
     "enumeration over players x scheme x p_survive; prize: grid, then golden-section search "
-    "on certified evaluations inside the bracket around the best grid point (no gradients)"
+    "on certified evaluations inside the bracket around the best grid point; d/d prize at the "
+    "choice by automatic differentiation"
 )
 COVARIANCE_NOTE = (
     "uncertainty from the fit's standard errors with estimates taken as uncorrelated (the "
@@ -447,6 +448,14 @@ def design_incentives(
         design[2],
         target_risk,
     )
+    if max_bust is not None:  # how fast the limited quantity moves with the prize
+        choice["bust_rate_derivative"] = prize_derivative(
+            base["model"],
+            base["params"],
+            "bust",
+            (design[0], SCHEMES[design[1]], design[3], cap),
+            design[2],
+        )
     runners_up = [describe_design(candidates, row) for _, row in best.iloc[1:].iterrows()]
     notes = [COVARIANCE_NOTE] if se else ["the fit carries no standard errors: no uncertainty"]
     if uncertified:

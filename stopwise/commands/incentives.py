@@ -206,6 +206,12 @@ def uncertainty_lines(choice: dict[str, Any]) -> list[str]:
             f"differentiation through the fitted play; central differences agree to "
             f"{slope['relative_gap']:.1e} relative)"
         )
+    bust_slope = choice.get("bust_rate_derivative")
+    if bust_slope:
+        lines.append(
+            f"d bust rate / d prize at the choice: {bust_slope['derivative']:.4g} (central "
+            f"differences agree to {bust_slope['relative_gap']:.1e} relative)"
+        )
     delta = choice.get("delta_method")
     if delta:
         ses = ", ".join(f"{q} {v:.3g}" for q, v in delta["se_by_quantity"].items())
