@@ -367,3 +367,26 @@ def test_prize_derivative_matches_central_differences(spec, theta, goal, keep):
         "risk": (row["mean_target"] - 3.0) ** 2,
     }[goal]
     assert value == pytest.approx(expected, rel=1e-9)
+
+
+def test_limits_no_design_meets_exit_1_and_write_nothing(tmp_path, capsys):
+    fit = _fit_file(tmp_path)
+    argv = [
+        "incentives",
+        str(fit),
+        "--goal",
+        "outlay",
+        "--max-bust",
+        "0.05",
+        "--prize",
+        "1:5",
+        "--grid",
+        "2",
+        "--refine",
+        "0",
+        "--json",
+        str(tmp_path / "out.json"),
+    ]
+    assert cli.main(argv) == 1
+    assert "no candidate design" in capsys.readouterr().err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["fit.json"]
