@@ -39,6 +39,7 @@ COMMANDS = (
     "design",
     "demo",
     "report",
+    "incentives",
 )
 DEFAULT_CHAINS = 4  # the --chains default of fit and compare
 DEVICE_FLAG = "--xla_force_host_platform_device_count"

@@ -32,6 +32,7 @@ from stopwise.contest_solve import (
     efficiency_loss,
     equilibrium,
 )
+from stopwise.incentives import design_incentives  # noqa: F401  (issue 21)
 from stopwise.models.contest.certify import DEFAULT_TOLERANCE, UncertifiedAnswer
 from stopwise.models.contest.dominance import Elimination, contest_elimination
 from stopwise.models.contest.game import (
