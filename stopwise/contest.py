@@ -32,7 +32,7 @@ from stopwise.contest_solve import (
     efficiency_loss,
     equilibrium,
 )
-from stopwise.incentives import design_incentives  # noqa: F401  (issue 21)
+from stopwise.incentives import design_incentives
 from stopwise.models.contest.certify import DEFAULT_TOLERANCE, UncertifiedAnswer
 from stopwise.models.contest.dominance import Elimination, contest_elimination
 from stopwise.models.contest.game import (
@@ -57,6 +57,7 @@ __all__ = [
     "contest_elimination",
     "counterfactual",
     "default_max_target",
+    "design_incentives",
     "efficiency_loss",
     "equilibrium",
     "format_equilibrium",
