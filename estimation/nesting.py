@@ -32,6 +32,8 @@ from typing import Any
 import jax
 import numpy as np
 
+from stopwise.models.spec import KNOWN_PARTS
+
 REDUCTIONS_UTILITY: dict[str, tuple[tuple[str, dict[str, float]], ...]] = {
     "crra": (("linear", {"r": 0.0}),),
     "cara": (("linear", {"a": 0.0}),),
@@ -84,8 +86,6 @@ class Relation:
 def parse_parts(model: Any) -> SpecParts | None:
     """SpecParts from a spec-built solo/lottery model's name; None for contest models and
     models of one's own (their name is not a spec)."""
-    from stopwise.models.spec import KNOWN_PARTS
-
     if getattr(model, "data_kind", None) not in ("stopping", "lottery"):
         return None
     found: dict[str, list[str]] = {}
