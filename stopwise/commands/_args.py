@@ -188,3 +188,17 @@ def check_output_options(args: argparse.Namespace) -> None:
         seen[target] = option
     for option, path in _named_paths(args, folders):
         check_output_folder(path, option)
+
+
+def add_model_and_values(parser: argparse.ArgumentParser, set_help: str) -> None:
+    """``--model SPEC`` (required) and repeatable ``--set NAME=VALUE`` (``args.assignments``),
+    as simulate, recover and design take them."""
+    parser.add_argument("--model", required=True, metavar="SPEC", help="e.g. crra+planner+logit")
+    parser.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        dest="assignments",
+        help=set_help,
+    )

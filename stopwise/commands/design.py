@@ -33,14 +33,8 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "a planned study, exact over the model's decision paths, with optional parameter "
         "ranges, a rival model and a search over survival chances.",
     )
-    parser.add_argument("--model", required=True, metavar="SPEC", help="e.g. crra+planner+logit")
-    parser.add_argument(
-        "--set",
-        action="append",
-        default=[],
-        metavar="NAME=VALUE",
-        dest="assignments",
-        help="an assumed parameter value (repeatable; others: start values)",
+    _args.add_model_and_values(
+        parser, "an assumed parameter value (repeatable; others: start values)"
     )
     _options.add_option(parser)
     parser.add_argument(

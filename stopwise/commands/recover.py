@@ -36,14 +36,8 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "bias, RMSE, 95% interval coverage, the correlation of the estimates and any "
         "parameter this design identifies poorly.",
     )
-    parser.add_argument("--model", required=True, metavar="SPEC", help="e.g. crra+planner+logit")
-    parser.add_argument(
-        "--set",
-        action="append",
-        default=[],
-        metavar="NAME=VALUE",
-        dest="assignments",
-        help="a true parameter value, e.g. --set r=0.4 (repeatable; others: start values)",
+    _args.add_model_and_values(
+        parser, "a true parameter value, e.g. --set r=0.4 (repeatable; others: start values)"
     )
     _options.add_option(parser)
     parser.add_argument(

@@ -40,15 +40,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "--params, --covariate and --effect); parameters not set take the model's start "
         "values. Output: CSV or Parquet (by the file ending).",
     )
-    parser.add_argument("--model", required=True, metavar="SPEC", help="e.g. crra+planner+logit")
-    parser.add_argument(
-        "--set",
-        action="append",
-        default=[],
-        metavar="NAME=VALUE",
-        dest="assignments",
-        help="a parameter value, e.g. --set r=0.4 (repeatable)",
-    )
+    _args.add_model_and_values(parser, "a parameter value, e.g. --set r=0.4 (repeatable)")
     parser.add_argument(
         "--params",
         default=None,
