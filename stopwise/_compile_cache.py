@@ -34,7 +34,10 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-MIN_COMPILE_SECONDS = 0.1
+# 0.5 s, not lower: with 0.1 s a test session read back a small cached program (a Newton
+# solve with a least-squares step) and crashed inside JAX with a segmentation fault (not
+# reproduced alone; under investigation, see the closing note of the fourth session)
+MIN_COMPILE_SECONDS = 0.5
 MAX_CACHE_BYTES = 1 << 30  # 1 GiB
 OFF_VALUES = ("", "0", "off", "none", "false", "no")
 
