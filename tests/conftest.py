@@ -67,3 +67,14 @@ def small_demo() -> dict[str, pd.DataFrame]:
     from stopwise.demo import demo_data
 
     return demo_data(n_subjects=12)
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _release_compiled_programs():
+    """After each test module, drop JAX's compiled programs: the suite compiles thousands,
+    and the kept executables' memory mappings ran into Linux's per-process limit late in a
+    clean-clone run (a segmentation fault inside XLA's compiler in test_report.py)."""
+    yield
+    import jax
+
+    jax.clear_caches()
