@@ -99,11 +99,13 @@ def test_myopic_pool_table_equals_constant_tables_at_each_steps_chance():
     np.testing.assert_allclose(np.asarray(pool_draw)[0], np.diag(np.asarray(const_draw)))
 
 
-@pytest.mark.parametrize(("size", "bad"), POOLS)
+@pytest.mark.parametrize(
+    ("size", "bad"),
+    # pools without a tie (at a tie the sharp planner is indifferent)
+    [pool for pool in POOLS if len(pool_dynamic_programme(*pool, 1.0).targets) == 1],
+)
 def test_sharp_risk_neutral_planner_draws_exactly_before_the_pool_optimum(size, bad):
     programme = pool_dynamic_programme(size, bad, 1.0)
-    if len(programme.targets) > 1:
-        pytest.skip("a tie: the sharp planner is indifferent there")
     good = size - bad
     theta = {"r": 0.0, "precision": 200.0}
     log_draw, log_stop = planner_tables(
