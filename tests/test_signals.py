@@ -114,6 +114,29 @@ def test_sigint_to_the_console_command_gives_130_and_one_line(tmp_path, data) ->
     assert not out.exists() and hidden_files(tmp_path) == []
 
 
+@pytest.mark.parametrize(("signame", "code"), [("SIGINT", 130), ("SIGTERM", 143)])
+def test_python_dash_m_goes_through_the_launcher(tmp_path, signame, code) -> None:
+    """`python -m stopwise` (not the console script) is quiet at start-up too: the signal
+    arrives when the command line's import reaches numpy."""
+    done = run_script(
+        f"""
+        import os, runpy, signal, sys
+        class SignalAtNumpy:
+            def find_spec(self, name, path=None, target=None):
+                if name == "numpy":
+                    os.kill(os.getpid(), signal.{signame})
+                return None
+        sys.meta_path.insert(0, SignalAtNumpy())
+        sys.argv = ["stopwise", "--version"]
+        runpy.run_module("stopwise", run_name="__main__", alter_sys=True)
+        """,
+        tmp_path,
+    )
+    assert done.returncode == code, done.stderr
+    assert "Traceback" not in done.stderr
+    assert done.stderr.strip() in {"interrupted", "terminated"}
+
+
 def test_sigterm_during_a_write_leaves_no_temporary_file(tmp_path, data) -> None:
     """SIGTERM arrives between writing the temporary file and renaming it into place:
     exit 143, the old output untouched, no hidden file."""
