@@ -66,8 +66,8 @@ def demo_solo_bundle() -> object:
 
 def gradient_seconds(model: object, data: object) -> float:
     """One hierarchical gradient at the cap the fit samples with (the automatic cap)."""
-    from stopwise.estimation import bayes
-    from stopwise.estimation.truncation import auto_capped
+    from stopwise.estimation.bayes import fit as bayes
+    from stopwise.estimation.bayes.truncation import auto_capped
 
     model = auto_capped(model, data) or model
     setup, args, *_ = bayes.prepare(
@@ -81,8 +81,8 @@ def gradient_seconds(model: object, data: object) -> float:
 
 
 def main() -> str:
-    from stopwise.estimation.bayes import fit_bayes
-    from stopwise.estimation.mle import fit_mle
+    from stopwise.estimation.bayes.fit import fit_bayes
+    from stopwise.estimation.ml.mle import fit_mle
     from stopwise.models.spec import build_model
 
     data = demo_solo_bundle()

@@ -34,10 +34,10 @@ from numpyro.infer import MCMC, NUTS
 import stopwise  # noqa: F401  (float64 before any JAX use)
 from benchmarks.bench_bayes import demo_solo_bundle
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS
-from stopwise.estimation import bayes
-from stopwise.estimation.loo_subject import without_subjects
-from stopwise.estimation.priors import resolve_priors
-from stopwise.estimation.truncation import auto_capped
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes.loo_subject import without_subjects
+from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.bayes.truncation import auto_capped
 from stopwise.models.spec import build_model
 
 SPEC = "crra+planner+logit"

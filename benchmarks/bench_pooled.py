@@ -19,8 +19,8 @@ from typing import Any
 
 import stopwise
 from stopwise.commands.simulate import price_list_design
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.simulate import simulate
 
 CHAINS, DRAWS, WARMUP, SEED = 2, 500, 500, 1

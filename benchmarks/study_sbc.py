@@ -34,9 +34,9 @@ from scipy import stats
 import stopwise
 from benchmarks._common import write_section
 from stopwise.commands.simulate import contest_design, price_list_design
-from stopwise.estimation import bayes
-from stopwise.estimation.priors import resolve_priors
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 CHAINS, WARMUP, DRAWS, THIN = 2, 250, 500, 10  # 2 x 50 thinned draws, first 99 kept

@@ -11,7 +11,7 @@ import pandas as pd
 from _setup import arguments, hive_design
 
 import stopwise
-from stopwise.estimation.ppc import shrinkage_table
+from stopwise.estimation.bayes.ppc import shrinkage_table
 from stopwise.figures.palette import save_figure
 from stopwise.figures.subjects import shrinkage_figure
 

@@ -14,8 +14,8 @@ from scipy import special, stats
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.arrays import StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes import compare_bayes, fit_bayes
-from stopwise.estimation.priors import parse_prior, resolve_priors
+from stopwise.estimation.bayes.fit import compare_bayes, fit_bayes
+from stopwise.estimation.bayes.priors import parse_prior, resolve_priors
 from stopwise.models.base import Model, ParamSpec
 
 PRIOR_A, PRIOR_B = 2.0, 3.0
@@ -256,7 +256,7 @@ def test_bad_options_are_input_errors(bernoulli_data):
 def test_every_sampler_problem_gives_a_named_warning():
     import pandas as pd
 
-    from stopwise.estimation.posterior import sampler_warnings
+    from stopwise.estimation.bayes.posterior import sampler_warnings
 
     diag = pd.DataFrame(
         {"r_hat": [1.002, 1.05], "ess_bulk": [900.0, 150.0], "ess_tail": [800.0, 120.0]},

@@ -12,8 +12,8 @@ from scipy import special
 from test_bayes_engine import CONSTANT, bernoulli_bundle
 
 import stopwise  # noqa: F401  (float64 before jax is used)
-from stopwise.estimation import loo_subject
-from stopwise.estimation.bayes import compare_bayes, fit_bayes
+from stopwise.estimation.bayes import loo_subject
+from stopwise.estimation.bayes.fit import compare_bayes, fit_bayes
 
 A, B = 2.0, 3.0  # Beta prior of the draw probability
 SETTINGS = dict(chains=2, draws=500, warmup=300, progress=False)

@@ -11,8 +11,8 @@ import statsmodels.api as sm
 
 import stopwise
 from stopwise.data_schemas.arrays import StoppingData
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.bayes_pooled import (
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
     laplace_covariance,
     population_permutation,
@@ -20,7 +20,7 @@ from stopwise.estimation.bayes_pooled import (
     start_inverse_mass,
     start_sites,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.simulate import simulate
 

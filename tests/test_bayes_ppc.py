@@ -9,15 +9,15 @@ import pytest
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.ppc import (
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.bayes.ppc import (
     end_distribution,
     observed_trial_ends,
     ppc_figure,
     shrinkage_table,
     stop_step_frame,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 

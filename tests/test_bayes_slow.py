@@ -9,9 +9,9 @@ import pytest
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 

@@ -12,8 +12,8 @@ from scipy import stats
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation import bayes
-from stopwise.estimation.bayes_start import (
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes.subject_start import (
     CENTRED_MIN_ROWS,
     SD_FLOOR,
     SubjectStart,
@@ -24,7 +24,7 @@ from stopwise.estimation.bayes_start import (
     start_variances,
     summarise_subject_fits,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 
@@ -246,7 +246,7 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     # (16 demo subjects: not done in 10 minutes), so contest models skip those fits.
     import pandas as pd
 
-    from stopwise.estimation.mle import fit_mle
+    from stopwise.estimation.ml.mle import fit_mle
     from stopwise.models.contest.build import build_contest_model
 
     n, trials = 8, 10

@@ -15,9 +15,9 @@ import pytest
 
 import stopwise
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation import counts as K
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml import counts as K
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
 
 

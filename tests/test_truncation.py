@@ -10,9 +10,9 @@ import pytest
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation import bayes, truncation
-from stopwise.estimation.recovery import stopping_design
-from stopwise.estimation.truncation import (
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes import truncation
+from stopwise.estimation.bayes.truncation import (
     AUTO_EXTRA_STEPS,
     auto_capped,
     default_cap_reference,
@@ -20,6 +20,7 @@ from stopwise.estimation.truncation import (
     truncation_check,
     truncation_warnings,
 )
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 

@@ -179,8 +179,8 @@ def describe_parametrisation(names: tuple[str, ...], centred: tuple[bool, ...]) 
 def per_subject_estimates(model: Any, data: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-subject ML: unconstrained estimates (n, K), standard errors (n, K) and an
     identified flag (n,), in subject-index order (estimation/by_subject.py)."""
-    from stopwise.estimation.by_subject import fit_by_subject
-    from stopwise.estimation.problem import subject_labels
+    from stopwise.estimation.ml.by_subject import fit_by_subject
+    from stopwise.estimation.ml.problem import subject_labels
 
     fits = fit_by_subject(model, data, se="hessian")
     labels = list(subject_labels(data))

@@ -13,9 +13,9 @@ import numpy as np
 from scipy import optimize as sopt
 from scipy import stats
 
-from stopwise.estimation.optimize import minimize_one
-from stopwise.estimation.problem import Problem, report_values
-from stopwise.estimation.results import Fit
+from stopwise.estimation.ml.optimize import minimize_one
+from stopwise.estimation.ml.problem import Problem, report_values
+from stopwise.estimation.ml.results import Fit
 
 
 def profile_loglik(problem: Problem, z_hat: np.ndarray, j: int, t: float) -> float:

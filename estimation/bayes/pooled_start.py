@@ -30,7 +30,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.mle import fit_mle
+from stopwise.estimation.ml.mle import fit_mle
 
 
 @dataclass(frozen=True)

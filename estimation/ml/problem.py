@@ -27,7 +27,7 @@ import numpy as np
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.optimize import value_grad_hess_forward
+from stopwise.estimation.ml.optimize import value_grad_hess_forward
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------

@@ -23,15 +23,15 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
-from stopwise.estimation.covariance import covariance_for, wald_rows
 from stopwise.estimation.formulas import build_designs, cells_from_designs
-from stopwise.estimation.optimize import (
+from stopwise.estimation.ml.covariance import covariance_for, wald_rows
+from stopwise.estimation.ml.optimize import (
     OptimumRecord,
     multistart,
     optimizer_message,
     start_design,
 )
-from stopwise.estimation.problem import (
+from stopwise.estimation.ml.problem import (
     CellRows,
     Layout,
     PooledRows,
@@ -48,8 +48,8 @@ from stopwise.estimation.problem import (
     theta_scalars,
     unconstrained_np,
 )
-from stopwise.estimation.results import Fit
-from stopwise.estimation.start_accounting import account_starts
+from stopwise.estimation.ml.results import Fit
+from stopwise.estimation.ml.start_accounting import account_starts
 from stopwise.models.stopping import Conditions, step_chances
 
 SE_METHODS = ("auto", "robust", "hessian", "bootstrap", None)
@@ -236,7 +236,7 @@ def run_fit(
     extras: dict[str, Any] = {"problem": problem}
     se_label = se
     if se == "bootstrap":
-        from stopwise.estimation.bootstrap import bootstrap_table
+        from stopwise.estimation.ml.bootstrap import bootstrap_table
 
         table, info, boot_warn = bootstrap_table(problem, z, bootstrap_reps, seed, progress)
         warnings += boot_warn

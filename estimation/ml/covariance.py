@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from stopwise.estimation.problem import Problem, Reported, report_derivatives, report_values
+from stopwise.estimation.ml.problem import Problem, Reported, report_derivatives, report_values
 
 NORMAL_95 = float(special.ndtri(0.975))  # the normal quantile (scipy.stats loads slowly)
 

@@ -36,10 +36,10 @@ from scipy.optimize import linear_sum_assignment
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.limits import MAX_TYPES
-from stopwise.estimation.covariance import RowTable
-from stopwise.estimation.mle import _strip, run_fit
-from stopwise.estimation.optimize import start_design
-from stopwise.estimation.problem import (
+from stopwise.estimation.ml.covariance import RowTable
+from stopwise.estimation.ml.mle import _strip, run_fit
+from stopwise.estimation.ml.optimize import start_design
+from stopwise.estimation.ml.problem import (
     Layout,
     Problem,
     check_kind,
@@ -54,7 +54,7 @@ from stopwise.estimation.problem import (
     subject_labels,
     theta_scalars,
 )
-from stopwise.estimation.results import Fit
+from stopwise.estimation.ml.results import Fit
 
 
 @dataclass(frozen=True)
@@ -313,7 +313,7 @@ def _bootstrap_with_shares(
 ) -> None:
     """Subject-level bootstrap of every reported row and every share, replications relabelled
     to the full-sample types first (module docstring); percentile intervals."""
-    from stopwise.estimation.bootstrap import bootstrap_table, percentile_table
+    from stopwise.estimation.ml.bootstrap import bootstrap_table, percentile_table
 
     _, info, warnings = bootstrap_table(problem, fit.z, reps, fit.seed, progress)
     orders = [match_types(z, fit.z, rows) for z in info["z"]]

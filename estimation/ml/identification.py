@@ -32,10 +32,10 @@ import numpy as np
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.covariance import RowTable, wald_rows
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.natural_profiles import attach_profiles
-from stopwise.estimation.results import Fit
+from stopwise.estimation.ml.covariance import RowTable, wald_rows
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.natural_profiles import attach_profiles
+from stopwise.estimation.ml.results import Fit
 
 FLAT_DERIVATIVE = 1e-12
 NULL_EIGEN = 1e-9

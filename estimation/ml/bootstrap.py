@@ -18,9 +18,9 @@ from typing import Any
 import jax.numpy as jnp
 import numpy as np
 
-from stopwise.estimation.covariance import RowTable
-from stopwise.estimation.optimize import batched_newton
-from stopwise.estimation.problem import Problem, _negll, report_values
+from stopwise.estimation.ml.covariance import RowTable
+from stopwise.estimation.ml.optimize import batched_newton
+from stopwise.estimation.ml.problem import Problem, _negll, report_values
 
 
 @dataclass(frozen=True)

@@ -36,11 +36,11 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation import bayes_labels
-from stopwise.estimation.draws import flatten_chains
-from stopwise.estimation.priors import hyperprior_text
-from stopwise.estimation.subject_estimates import subject_lines, subject_records
-from stopwise.estimation.truncation import truncation_warnings
+from stopwise.estimation.bayes import labels as bayes_labels
+from stopwise.estimation.bayes.draws import flatten_chains
+from stopwise.estimation.bayes.priors import hyperprior_text
+from stopwise.estimation.bayes.subject_estimates import subject_lines, subject_records
+from stopwise.estimation.bayes.truncation import truncation_warnings
 
 RHAT_MAX = 1.01  # Vehtari et al. 2021 recommend R-hat < 1.01
 ESS_MIN = 400  # Vehtari et al. 2021: bulk and tail ESS > 400 (100 per chain with 4 chains)
@@ -105,7 +105,7 @@ def derived_draws(
 def _derived_draws(
     setup: Any, samples: Mapping[str, Any], args: Any, first: tuple[int, ...] | None
 ) -> dict[str, Any]:
-    from stopwise.estimation.bayes import cell_z
+    from stopwise.estimation.bayes.fit import cell_z
 
     out: dict[str, Any] = {}
     for k, spec in enumerate(setup.specs):
@@ -451,7 +451,7 @@ class Posterior:
 
     def cell_theta_draws(self, n_draws: int | None = 200) -> dict[str, np.ndarray]:
         """Natural-scale parameters per cell for evenly spaced draws: name -> (n, n_cells)."""
-        from stopwise.estimation.bayes import cell_z
+        from stopwise.estimation.bayes.fit import cell_z
 
         samples = self._samples
         total = next(iter(samples.values())).shape[0]
@@ -694,7 +694,7 @@ def subject_table(
 
 def loglik_at_posterior_mean(setup: Any, samples: Mapping[str, Any], args: Any) -> float:
     """sum_c sum_i weight * loglik_obs(mean over draws of theta_c, data_c)[i]."""
-    from stopwise.estimation.bayes import cell_z
+    from stopwise.estimation.bayes.fit import cell_z
 
     flat = {k: jnp.reshape(jnp.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
 

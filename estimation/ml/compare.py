@@ -20,8 +20,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from stopwise.estimation.identification import fit_identified
-from stopwise.estimation.mle import _strip, build_problem, optimise, start_design
+from stopwise.estimation.ml.identification import fit_identified
+from stopwise.estimation.ml.mle import _strip, build_problem, optimise, start_design
+from stopwise.estimation.ml.results import DISCLAIMER, Fit
 from stopwise.estimation.nesting import Relation, classify, verify_nesting
 from stopwise.estimation.pair_tests import (
     LEVEL,
@@ -30,7 +31,6 @@ from stopwise.estimation.pair_tests import (
     likelihood_ratio,
     vuong_test,
 )
-from stopwise.estimation.results import DISCLAIMER, Fit
 
 
 @dataclass

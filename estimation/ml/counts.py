@@ -27,8 +27,8 @@ import pandas as pd
 
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.partitioned import PartCheck, check_part
-from stopwise.estimation.mle import build_problem, run_fit, starts_from
-from stopwise.estimation.results import Fit
+from stopwise.estimation.ml.mle import build_problem, run_fit, starts_from
+from stopwise.estimation.ml.results import Fit
 
 KEY_COLUMNS = ("subject", "p_survive", "gain", "start", "bust_keep", "step", "action", "outcome")
 COUNT_COLUMN = "n"

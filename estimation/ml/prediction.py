@@ -36,7 +36,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.formulas import ParamFormula, cells_from_designs, design_for_new_rows
-from stopwise.estimation.problem import Layout, check_kind, subject_index, theta_per_cell
+from stopwise.estimation.ml.problem import Layout, check_kind, subject_index, theta_per_cell
 
 
 def resolve_new_data(
@@ -153,7 +153,7 @@ def predict_formula_fit(
     covariates: pd.DataFrame | None = None,
 ) -> dict[str, pd.DataFrame]:
     """Predictions of a formula fit on new rows (module docstring for the frames)."""
-    from stopwise.estimation.mle import _response_probability, _strip, stop_step_table
+    from stopwise.estimation.ml.mle import _response_probability, _strip, stop_step_table
 
     bundle, frame = resolve_new_data(data, covariates)
     check_rows_explained(model, bundle)

@@ -23,7 +23,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy import optimize as sopt
 
-from stopwise.estimation.sobol import scrambled_sobol
+from stopwise.estimation.ml.sobol import scrambled_sobol
 
 GRAD_TOL = 1e-4  # max |d negll / dz| accepted as a stationary point
 Z_LIMIT = 30.0  # unconstrained values are kept within +-Z_LIMIT

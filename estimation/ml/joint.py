@@ -18,8 +18,8 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.mle import _strip, run_fit, start_design
-from stopwise.estimation.problem import (
+from stopwise.estimation.ml.mle import _strip, run_fit, start_design
+from stopwise.estimation.ml.problem import (
     Layout,
     Problem,
     Reported,
@@ -31,7 +31,7 @@ from stopwise.estimation.problem import (
     subject_labels,
     theta_scalars,
 )
-from stopwise.estimation.results import Fit
+from stopwise.estimation.ml.results import Fit
 
 
 @dataclass(frozen=True)

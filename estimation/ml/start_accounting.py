@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from stopwise.estimation.optimize import OptimumRecord
+from stopwise.estimation.ml.optimize import OptimumRecord
 
 SAME_OPTIMUM = 1e-3  # log-likelihood units
 

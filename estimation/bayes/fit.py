@@ -73,15 +73,23 @@ from numpyro.infer import MCMC, NUTS
 
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS, LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation import loo_subject
-from stopwise.estimation.bayes_pooled import (
+from stopwise.estimation.bayes import loo_subject
+from stopwise.estimation.bayes.draws import flatten_chains, map_draws
+from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
     ml_start,
     prior_precision,
     start_inverse_mass,
     start_sites,
 )
-from stopwise.estimation.bayes_start import (
+from stopwise.estimation.bayes.priors import (
+    COEF_SD,
+    HYPER_SD_SCALE,
+    LKJ_CONCENTRATION,
+    Prior,
+    resolve_priors,
+)
+from stopwise.estimation.bayes.subject_start import (
     PARAMETRISATIONS,
     SubjectStart,
     choose_parametrisation,
@@ -91,21 +99,13 @@ from stopwise.estimation.bayes_start import (
     start_variances,
     summarise_subject_fits,
 )
-from stopwise.estimation.cells import Cells, split_into_cells
-from stopwise.estimation.draws import flatten_chains, map_draws
-from stopwise.estimation.priors import (
-    COEF_SD,
-    HYPER_SD_SCALE,
-    LKJ_CONCENTRATION,
-    Prior,
-    resolve_priors,
-)
-from stopwise.estimation.truncation import (
+from stopwise.estimation.bayes.truncation import (
     PLANNER_CAPS,
     auto_capped,
     check_passed,
     truncation_check,
 )
+from stopwise.estimation.cells import Cells, split_into_cells
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------
@@ -742,7 +742,7 @@ def population_sites(setup: Setup) -> tuple[str, ...]:
 def mle_estimates(model: Model, data: Any, formulas: Any, notes: list[str]) -> dict[str, float]:
     """Natural-scale ML estimates of the parameters (intercepts), or {} with a note."""
     try:
-        from stopwise.estimation.mle import fit_mle
+        from stopwise.estimation.ml.mle import fit_mle
     except ImportError:
         notes.append(
             "init='mle': the ML engine is not available; started at the model's start values"
@@ -925,7 +925,7 @@ def fit_bayes(
     cap (estimation/truncation.py). Returns a
     :class:`stopwise.estimation.posterior.Posterior`.
     """
-    from stopwise.estimation.posterior import build_posterior
+    from stopwise.estimation.bayes.posterior import build_posterior
 
     arguments = {k: v for k, v in locals().items() if k not in ("ignored", "build_posterior")}
 
@@ -1163,7 +1163,7 @@ def compare_bayes(
     """Rank models by PSIS-LOO expected log predictive density (ArviZ), see
     :func:`stopwise.estimation.posterior.loo_compare`. ``models`` may hold fitted
     Posterior objects or models/specs, which are fitted here with ``fit_bayes(**kw)``."""
-    from stopwise.estimation.posterior import Posterior, loo_compare
+    from stopwise.estimation.bayes.posterior import Posterior, loo_compare
 
     fits = []
     for m in models:

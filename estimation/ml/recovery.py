@@ -27,8 +27,8 @@ import numpy as np
 import pandas as pd
 
 from stopwise.estimation.distributed import StudyRun, run_tasks
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.results import DISCLAIMER
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.results import DISCLAIMER
 
 
 def stopping_design(

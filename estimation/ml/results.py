@@ -23,7 +23,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import tables
-from stopwise.estimation.covariance import RowTable
+from stopwise.estimation.ml.covariance import RowTable
 
 DISCLAIMER = (
     "Research estimates, not a basis for individual financial, clinical or hiring decisions."
@@ -223,14 +223,14 @@ class Fit:
         designs = self.extras.get("designs")
         if not designs:
             if data is not None:
-                from stopwise.estimation.prediction import check_rows_explained, resolve_new_data
+                from stopwise.estimation.ml.prediction import check_rows_explained, resolve_new_data
 
                 if not _is_bundle(data):
                     data, _ = resolve_new_data(data, covariates)
                 if "layout" in self.extras:
                     check_rows_explained(self.extras["layout"].model, data)
             return self.predictor(data)
-        from stopwise.estimation import prediction
+        from stopwise.estimation.ml import prediction
 
         layout = self.extras["layout"]
         if data is None:
@@ -243,7 +243,7 @@ class Fit:
 
     def profile(self, name: str, level: float = 0.95) -> tuple[float, float]:
         """Profile-likelihood interval of parameter ``name`` (estimation/profile.py)."""
-        from stopwise.estimation.profile import profile_interval
+        from stopwise.estimation.ml.profile import profile_interval
 
         return profile_interval(self, name, level)
 

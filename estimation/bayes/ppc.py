@@ -30,7 +30,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes_labels import population_median
+from stopwise.estimation.bayes.labels import population_median
 
 
 def subject_theta_draws(posterior: Any, n_draws: int) -> dict[str, np.ndarray]:
@@ -80,7 +80,7 @@ def stop_step_frame(posterior: Any, n_draws: int = 200, interval: float = 0.9) -
         raise StopwiseInputError(
             "stop-step checks need stopping data; use choice_frame for lottery data"
         )
-    from stopwise.estimation.posterior import response_probability
+    from stopwise.estimation.bayes.posterior import response_probability
 
     theta = subject_theta_draws(posterior, n_draws)
     grid = jax.tree_util.tree_map(jnp.asarray, data.condition_grid())
@@ -216,7 +216,7 @@ def choice_frame(posterior: Any, n_draws: int = 200, interval: float = 0.9) -> p
 
 def row_probability_draws(posterior: Any, n_draws: int) -> np.ndarray:
     """P(modelled response) per data row for each of ``n_draws`` draws: (n_draws, n_obs)."""
-    from stopwise.estimation.posterior import response_probability
+    from stopwise.estimation.bayes.posterior import response_probability
 
     theta = posterior.cell_theta_draws(n_draws)
     args = posterior.args
@@ -293,7 +293,7 @@ def shrinkage_table(posterior: Any, ml: Any = None) -> pd.DataFrame:
             "a shrinkage table needs a hierarchical fit (fit_bayes(..., hierarchical=True))"
         )
     if ml is None:
-        from stopwise.estimation.by_subject import fit_by_subject
+        from stopwise.estimation.ml.by_subject import fit_by_subject
 
         ml = fit_by_subject(posterior.model, posterior.data, se="hessian")
     ml_frame = ml.params.reset_index() if "subject" not in ml.params.columns else ml.params

@@ -21,10 +21,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from stopwise.estimation.covariance import NORMAL_95
 from stopwise.estimation.formulas import ParamFormula, cells_from_designs
-from stopwise.estimation.prediction import profile_blocks
-from stopwise.estimation.problem import Layout, natural_derivative_np, natural_np
+from stopwise.estimation.ml.covariance import NORMAL_95
+from stopwise.estimation.ml.prediction import profile_blocks
+from stopwise.estimation.ml.problem import Layout, natural_derivative_np, natural_np
 from stopwise.models.base import ParamSpec
 
 
