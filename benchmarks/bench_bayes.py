@@ -66,16 +66,17 @@ def demo_solo_bundle() -> object:
 
 def gradient_seconds(model: object, data: object) -> float:
     """One hierarchical gradient at the cap the fit samples with (the automatic cap)."""
-    from stopwise.estimation.bayes import fit as bayes
+    from stopwise.estimation.bayes import density
+    from stopwise.estimation.bayes import prepare as preparation
     from stopwise.estimation.bayes.truncation import auto_capped
 
     model = auto_capped(model, data) or model
-    setup, args, *_ = bayes.prepare(
+    setup, args, *_ = preparation.prepare(
         model, data, hierarchical=True, formulas=None, priors=None, pointwise="trial"
     )
     sites = {f"z_{s.name}": jnp.asarray(float(s.to_unconstrained(s.start))) for s in setup.specs}
-    sites.update(bayes.zero_offset_sites(setup, sites))
-    grad = jax.jit(jax.grad(lambda s: bayes.total_loglik(setup, s, args)))
+    sites.update(density.zero_offset_sites(setup, sites))
+    grad = jax.jit(jax.grad(lambda s: density.total_loglik(setup, s, args)))
     jax.block_until_ready(grad(sites))
     return best_time(lambda: jax.block_until_ready(grad(sites)), repeat=5, number=5)
 

@@ -12,7 +12,10 @@ from scipy import stats
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.bayes import density as bayes_density
 from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes import initial
+from stopwise.estimation.bayes import prepare as preparation
 from stopwise.estimation.bayes.subject_start import (
     CENTRED_MIN_ROWS,
     SD_FLOOR,
@@ -134,16 +137,16 @@ def test_centred_and_noncentred_sites_give_the_same_offsets_and_density(small_st
     )
     values = []
     for centred in ((False, False), (True, True), (True, False), (False, True)):
-        setup, args, *_ = bayes.prepare(model, data, centred=centred, **kw)
+        setup, args, *_ = preparation.prepare(model, data, centred=centred, **kw)
         sites = dict(common)
         for k, name in enumerate(("r", "precision")):
             if centred[k]:
                 sites[f"z_subject_{name}"] = mu[k] + u[:, k]
             else:
                 sites[f"eta_{name}"] = eta[:, k]
-        np.testing.assert_allclose(bayes.subject_offsets(setup, sites), u, atol=1e-12)
-        values.append(float(bayes.total_loglik(setup, sites, args)))
-        density = float(bayes.hierarchical_log_density(setup, sites))
+        np.testing.assert_allclose(bayes_density.subject_offsets(setup, sites), u, atol=1e-12)
+        values.append(float(bayes_density.total_loglik(setup, sites, args)))
+        density = float(bayes_density.hierarchical_log_density(setup, sites))
         # MVN(u) = prod_k N(eta_k) / c_k: the all-centred form equals the MVN density
         c = np.diag(np.asarray(sd[:, None] * chol))
         log_c = float(np.sum(np.log(c)[~np.asarray(centred)]))
@@ -209,9 +212,9 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
 
     model, data = small_stopping
     notes: list[str] = []
-    start = bayes.hierarchical_start(model, data, None, notes)
+    start = initial.hierarchical_start(model, data, None, notes)
     for centred in ((True, False), (False, True)):
-        setup, args, *_ = bayes.prepare(
+        setup, args, *_ = preparation.prepare(
             model,
             data,
             hierarchical=True,
@@ -220,9 +223,9 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
             pointwise="trial",
             centred=centred,
         )
-        blocks = bayes.initial_inverse_mass(setup, start, args, dense)
+        blocks = initial.initial_inverse_mass(setup, start, args, dense)
         info = initialize_model(
-            jax.random.PRNGKey(0), partial(bayes.numpyro_model, setup), model_args=(args,)
+            jax.random.PRNGKey(0), partial(bayes_density.numpyro_model, setup), model_args=(args,)
         )
         unconstrained = info.param_info.z
         covered = sorted(site for key in blocks for site in key)
@@ -233,7 +236,7 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
             assert block.shape == ((size, size) if block.ndim == 2 else (size,))
             diagonal = np.diag(block) if block.ndim == 2 else block
             assert np.all(np.isfinite(diagonal)) and np.all(diagonal > 0)
-        assert (bayes.population_sites(setup) in blocks) is dense
+        assert (bayes_density.population_sites(setup) in blocks) is dense
         subject_site = "z_subject_r" if centred[0] else "eta_r"
         expected = start_variances(start).subject[:, 0]
         if not centred[0]:
@@ -267,9 +270,9 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     def refuse(*_args, **_kw):
         raise AssertionError("per-subject fits were run for a contest model")
 
-    monkeypatch.setattr(bayes, "per_subject_estimates", refuse)
+    monkeypatch.setattr(initial, "per_subject_estimates", refuse)
     notes: list[str] = []
-    start = bayes.hierarchical_start(model, data, None, notes)
+    start = initial.hierarchical_start(model, data, None, notes)
     pooled = fit_mle(model, data, se=None, progress=False)
     expected = float(model.spec("precision").to_unconstrained(pooled.estimates()["precision"]))
     assert start.mu[0] == pytest.approx(expected, rel=1e-6)

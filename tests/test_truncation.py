@@ -11,6 +11,7 @@ import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes import prepare as preparation
 from stopwise.estimation.bayes import truncation
 from stopwise.estimation.bayes.truncation import (
     AUTO_EXTRA_STEPS,
@@ -66,7 +67,7 @@ def pooled_samples(r_values, precision=2.0):
 
 def check_for(data, cap, r_values):
     model = build_model("crra+planner+logit", max_target=cap)
-    setup, args, *_ = bayes.prepare(
+    setup, args, *_ = preparation.prepare(
         model, data, hierarchical=False, formulas=None, priors=None, pointwise="trial"
     )
     return truncation_check(setup, args, data, pooled_samples(r_values))

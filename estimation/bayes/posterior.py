@@ -105,7 +105,7 @@ def derived_draws(
 def _derived_draws(
     setup: Any, samples: Mapping[str, Any], args: Any, first: tuple[int, ...] | None
 ) -> dict[str, Any]:
-    from stopwise.estimation.bayes.fit import cell_z
+    from stopwise.estimation.bayes.density import cell_z
 
     out: dict[str, Any] = {}
     for k, spec in enumerate(setup.specs):
@@ -451,7 +451,7 @@ class Posterior:
 
     def cell_theta_draws(self, n_draws: int | None = 200) -> dict[str, np.ndarray]:
         """Natural-scale parameters per cell for evenly spaced draws: name -> (n, n_cells)."""
-        from stopwise.estimation.bayes.fit import cell_z
+        from stopwise.estimation.bayes.density import cell_z
 
         samples = self._samples
         total = next(iter(samples.values())).shape[0]
@@ -694,7 +694,7 @@ def subject_table(
 
 def loglik_at_posterior_mean(setup: Any, samples: Mapping[str, Any], args: Any) -> float:
     """sum_c sum_i weight * loglik_obs(mean over draws of theta_c, data_c)[i]."""
-    from stopwise.estimation.bayes.fit import cell_z
+    from stopwise.estimation.bayes.density import cell_z
 
     flat = {k: jnp.reshape(jnp.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
 

@@ -91,7 +91,7 @@ def truncation_check(
 ) -> dict[str, Any] | None:
     """max over thinned posterior draws of delta (module docstring), or None when the
     model is not a truncated planner. ``setup``/``args`` as in estimation/bayes.py."""
-    from stopwise.estimation.bayes.fit import total_loglik
+    from stopwise.estimation.bayes.density import total_loglik
 
     reference = default_cap_reference(setup.model)
     if reference is None:
