@@ -256,7 +256,7 @@ def test_bad_options_are_input_errors(bernoulli_data):
 def test_every_sampler_problem_gives_a_named_warning():
     import pandas as pd
 
-    from stopwise.estimation.bayes.posterior import sampler_warnings
+    from stopwise.estimation.bayes.diagnostics import sampler_warnings
 
     diag = pd.DataFrame(
         {"r_hat": [1.002, 1.05], "ess_bulk": [900.0, 150.0], "ess_tail": [800.0, 120.0]},

@@ -116,7 +116,7 @@ def fit_bayes(
     cap (estimation/truncation.py). Returns a
     :class:`stopwise.estimation.posterior.Posterior`.
     """
-    from stopwise.estimation.bayes.posterior import build_posterior
+    from stopwise.estimation.bayes.assemble import build_posterior
 
     arguments = {k: v for k, v in locals().items() if k not in ("ignored", "build_posterior")}
 
@@ -354,7 +354,8 @@ def compare_bayes(
     """Rank models by PSIS-LOO expected log predictive density (ArviZ), see
     :func:`stopwise.estimation.posterior.loo_compare`. ``models`` may hold fitted
     Posterior objects or models/specs, which are fitted here with ``fit_bayes(**kw)``."""
-    from stopwise.estimation.bayes.posterior import Posterior, loo_compare
+    from stopwise.estimation.bayes.loo_compare import loo_compare
+    from stopwise.estimation.bayes.posterior import Posterior
 
     fits = []
     for m in models:
