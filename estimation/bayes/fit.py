@@ -31,10 +31,12 @@ from stopwise.estimation.bayes.fit_steps import (
 from stopwise.estimation.bayes.initial import (
     initial_natural,
 )
+from stopwise.estimation.bayes.loo_compare import loo_compare
 from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
     ml_start,
 )
+from stopwise.estimation.bayes.posterior import Posterior
 from stopwise.estimation.bayes.prepare import (
     as_bundle,
     as_model,
@@ -253,9 +255,6 @@ def compare_bayes(
     """Rank models by PSIS-LOO expected log predictive density (ArviZ), see
     :func:`stopwise.estimation.posterior.loo_compare`. ``models`` may hold fitted
     Posterior objects or models/specs, which are fitted here with ``fit_bayes(**kw)``."""
-    from stopwise.estimation.bayes.loo_compare import loo_compare
-    from stopwise.estimation.bayes.posterior import Posterior
-
     fits = []
     for m in models:
         if isinstance(m, Posterior):

@@ -21,10 +21,12 @@ the "diagnostics" block carries PSIS-LOO (Vehtari, Gelman & Gabry 2017) instead.
 
 from __future__ import annotations
 
+import importlib.metadata as md
 import math
+import platform
 import warnings
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import arviz as az
@@ -34,6 +36,8 @@ import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
+from stopwise.data_schemas.json_text import dumps_json
+from stopwise.estimation.bayes.density import cell_z
 from stopwise.estimation.bayes.diagnostics import ESS_MIN, PARETO_K_MAX, RHAT_MAX
 from stopwise.estimation.bayes.subject_estimates import subject_lines, subject_records
 
@@ -44,9 +48,6 @@ DISCLAIMER = (
 
 def package_versions() -> dict[str, str]:
     """Versions of the packages behind a Bayesian result."""
-    import importlib.metadata as md
-    import platform
-
     out = {"python": platform.python_version()}
     for name in (
         "stopwise",
@@ -181,8 +182,6 @@ class Posterior:
         }
 
     def to_json(self) -> str:
-        from stopwise._io import dumps_json
-
         return dumps_json(self.to_dict())
 
     def summary(self) -> str:
@@ -255,8 +254,6 @@ class Posterior:
 
     def cell_theta_draws(self, n_draws: int | None = 200) -> dict[str, np.ndarray]:
         """Natural-scale parameters per cell for evenly spaced draws: name -> (n, n_cells)."""
-        from stopwise.estimation.bayes.density import cell_z
-
         samples = self._samples
         total = next(iter(samples.values())).shape[0]
         pick = (
@@ -317,8 +314,6 @@ class Posterior:
 def response_probability(model: Any, theta: Mapping[str, Any], data: Any) -> Any:
     """P(modelled response) per row (pure JAX): model.predict, else exp(loglik_obs) with the
     response set to draw without bust (stopping) or to B (lottery)."""
-    from dataclasses import replace
-
     if model.predict is not None:
         return model.predict(theta, data)
     if isinstance(data, StoppingData):

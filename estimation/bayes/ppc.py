@@ -31,6 +31,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.bayes.labels import population_median
+from stopwise.estimation.bayes.posterior import response_probability
 
 
 def subject_theta_draws(posterior: Any, n_draws: int) -> dict[str, np.ndarray]:
@@ -80,8 +81,6 @@ def stop_step_frame(posterior: Any, n_draws: int = 200, interval: float = 0.9) -
         raise StopwiseInputError(
             "stop-step checks need stopping data; use choice_frame for lottery data"
         )
-    from stopwise.estimation.bayes.posterior import response_probability
-
     theta = subject_theta_draws(posterior, n_draws)
     grid = jax.tree_util.tree_map(jnp.asarray, data.condition_grid())
     model = posterior.model
@@ -216,8 +215,6 @@ def choice_frame(posterior: Any, n_draws: int = 200, interval: float = 0.9) -> p
 
 def row_probability_draws(posterior: Any, n_draws: int) -> np.ndarray:
     """P(modelled response) per data row for each of ``n_draws`` draws: (n_draws, n_obs)."""
-    from stopwise.estimation.bayes.posterior import response_probability
-
     theta = posterior.cell_theta_draws(n_draws)
     args = posterior.args
     model = posterior.model

@@ -31,7 +31,9 @@ from stopwise.estimation.bayes.priors import (
     resolve_priors,
 )
 from stopwise.estimation.cells import Cells, split_into_cells
+from stopwise.estimation.formulas import build_designs
 from stopwise.models.base import Model
+from stopwise.models.spec import build_model
 
 # ---------------------------------------------------------------------------------------
 # Data preparation.
@@ -53,8 +55,6 @@ def as_model(model: Model | str) -> Model:
     if isinstance(model, Model):
         return model
     if isinstance(model, str):
-        from stopwise.models.spec import build_model
-
         return build_model(model)
     raise StopwiseInputError(f"expected a Model or a model spec string, got {type(model).__name__}")
 
@@ -121,8 +121,6 @@ def aggregation_is_exact(model: Model, data: Any, args: CellArgs, setup: Setup) 
 
 def build_designs_for(model: Model, data: Any, formulas: Any) -> dict[str, Any]:
     """Per-row design matrices and column names for every parameter (ones without formula)."""
-    from stopwise.estimation.formulas import build_designs
-
     n = data.n_obs
     parsed = build_designs(formulas, model.param_names, dict(data.covariates)) if formulas else {}
     out = {}

@@ -28,6 +28,7 @@ import numpy as np
 
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.estimation.bayes import labels as bayes_labels
+from stopwise.estimation.bayes.density import cell_z
 
 # ---------------------------------------------------------------------------------------
 # Derived draws.
@@ -59,8 +60,6 @@ def derived_draws(
 def _derived_draws(
     setup: Any, samples: Mapping[str, Any], args: Any, first: tuple[int, ...] | None
 ) -> dict[str, Any]:
-    from stopwise.estimation.bayes.density import cell_z
-
     out: dict[str, Any] = {}
     for k, spec in enumerate(setup.specs):
         name = spec.name
@@ -123,8 +122,6 @@ def observed_data(data: Any) -> dict[str, np.ndarray]:
 
 def loglik_at_posterior_mean(setup: Any, samples: Mapping[str, Any], args: Any) -> float:
     """sum_c sum_i weight * loglik_obs(mean over draws of theta_c, data_c)[i]."""
-    from stopwise.estimation.bayes.density import cell_z
-
     flat = {k: jnp.reshape(jnp.asarray(v), (-1, *np.shape(v)[2:])) for k, v in samples.items()}
 
     @jax.jit

@@ -30,8 +30,10 @@ from typing import Any
 
 import numpy as np
 
+from stopwise.estimation.bayes.density import total_loglik
 from stopwise.estimation.bayes.draws import flatten_chains, map_draws
 from stopwise.models.base import Model
+from stopwise.models.spec import DEFAULT_OPTIONS, build_model
 
 PLANNER_CAPS = ("auto", "exact")
 AUTO_EXTRA_STEPS = 30  # automatic cap: steps beyond the longest observed trial
@@ -47,8 +49,6 @@ def is_planner(model: Model) -> bool:
 
 def with_planner_cap(model: Model, max_target: int | None) -> Model:
     """The same spec and options, with ``max_target`` replaced (None: the default cap)."""
-    from stopwise.models.spec import DEFAULT_OPTIONS, build_model
-
     options = dict(model.options or {})
     kept = {k: options[k] for k in DEFAULT_OPTIONS if k in options and k != "max_target"}
     return build_model(model.name, **kept, max_target=max_target)
@@ -91,8 +91,6 @@ def truncation_check(
 ) -> dict[str, Any] | None:
     """max over thinned posterior draws of delta (module docstring), or None when the
     model is not a truncated planner. ``setup``/``args`` as in estimation/bayes.py."""
-    from stopwise.estimation.bayes.density import total_loglik
-
     reference = default_cap_reference(setup.model)
     if reference is None:
         return None

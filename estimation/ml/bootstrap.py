@@ -17,6 +17,7 @@ from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
+from tqdm import tqdm
 
 from stopwise.estimation.ml.covariance import RowTable
 from stopwise.estimation.ml.optimize import batched_newton
@@ -54,8 +55,6 @@ def bootstrap_estimates(
     max_iter: int = 50,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Re-estimated z for every replication (reps x k) and whether each converged."""
-    from tqdm import tqdm
-
     counts = bootstrap_counts(problem.n_clusters, reps, seed)
     fun = WeightedNegll(problem.rows)
     gtol = gradient_tolerance(problem.n_obs)

@@ -25,7 +25,7 @@ from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
 from stopwise.estimation.ml.covariance import hessian_covariance, wald_rows
-from stopwise.estimation.ml.mle import BOUND_Z, _strip
+from stopwise.estimation.ml.mle import BOUND_Z
 from stopwise.estimation.ml.optimize import batched_newton, start_design
 from stopwise.estimation.ml.problem import (
     Layout,
@@ -37,6 +37,7 @@ from stopwise.estimation.ml.problem import (
     subject_labels,
     theta_scalars,
 )
+from stopwise.estimation.ml.response import _strip
 from stopwise.estimation.ml.results import Fit, FitBySubject
 
 SEPARATION = 1e-3  # mean -ll per row below this: every choice predicted with p > 0.999

@@ -21,7 +21,8 @@ import numpy as np
 import pandas as pd
 
 from stopwise.estimation.ml.identification import fit_identified
-from stopwise.estimation.ml.mle import _strip, build_problem, optimise, start_design
+from stopwise.estimation.ml.mle import build_problem, optimise, start_design
+from stopwise.estimation.ml.response import _strip
 from stopwise.estimation.ml.results import DISCLAIMER, Fit
 from stopwise.estimation.nesting import Relation, classify, verify_nesting
 from stopwise.estimation.pair_tests import (

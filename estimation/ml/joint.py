@@ -18,7 +18,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.ml.mle import _strip, run_fit, start_design
+from stopwise.estimation.ml.mle import run_fit, start_design
 from stopwise.estimation.ml.problem import (
     Layout,
     Problem,
@@ -31,6 +31,7 @@ from stopwise.estimation.ml.problem import (
     subject_labels,
     theta_scalars,
 )
+from stopwise.estimation.ml.response import _strip
 from stopwise.estimation.ml.results import Fit
 
 

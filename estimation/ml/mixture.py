@@ -36,8 +36,9 @@ from scipy.optimize import linear_sum_assignment
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.limits import MAX_TYPES
+from stopwise.estimation.ml.bootstrap import bootstrap_table, percentile_table
 from stopwise.estimation.ml.covariance import RowTable
-from stopwise.estimation.ml.mle import _strip, run_fit
+from stopwise.estimation.ml.mle import run_fit
 from stopwise.estimation.ml.optimize import start_design
 from stopwise.estimation.ml.problem import (
     Layout,
@@ -54,6 +55,7 @@ from stopwise.estimation.ml.problem import (
     subject_labels,
     theta_scalars,
 )
+from stopwise.estimation.ml.response import _strip
 from stopwise.estimation.ml.results import Fit
 
 
@@ -313,8 +315,6 @@ def _bootstrap_with_shares(
 ) -> None:
     """Subject-level bootstrap of every reported row and every share, replications relabelled
     to the full-sample types first (module docstring); percentile intervals."""
-    from stopwise.estimation.ml.bootstrap import bootstrap_table, percentile_table
-
     _, info, warnings = bootstrap_table(problem, fit.z, reps, fit.seed, progress)
     orders = [match_types(z, fit.z, rows) for z in info["z"]]
     z_b = np.array([relabel(z, o, rows) for z, o in zip(info["z"], orders)])

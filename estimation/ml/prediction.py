@@ -35,8 +35,10 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.load import Dataset, load
 from stopwise.estimation.formulas import ParamFormula, cells_from_designs, design_for_new_rows
 from stopwise.estimation.ml.problem import Layout, check_kind, subject_index, theta_per_cell
+from stopwise.estimation.ml.response import _response_probability, _strip, stop_step_table
 
 
 def resolve_new_data(
@@ -44,8 +46,6 @@ def resolve_new_data(
 ) -> tuple[StoppingData | LotteryData, pd.DataFrame | None]:
     """(array bundle, row-aligned covariate frame or None) from a file path, a DataFrame, a
     loaded Dataset or a bundle (whose covariates come from ``covariates`` or the bundle)."""
-    from stopwise.data_schemas.load import Dataset, load
-
     if isinstance(data, (str, os.PathLike, pd.DataFrame, Dataset)):
         dataset = load(data)
         bundle, frame = dataset.arrays(), dataset.frame.reset_index(drop=True)
@@ -153,8 +153,6 @@ def predict_formula_fit(
     covariates: pd.DataFrame | None = None,
 ) -> dict[str, pd.DataFrame]:
     """Predictions of a formula fit on new rows (module docstring for the frames)."""
-    from stopwise.estimation.ml.mle import _response_probability, _strip, stop_step_table
-
     bundle, frame = resolve_new_data(data, covariates)
     check_rows_explained(model, bundle)
     if frame is None:

@@ -9,13 +9,16 @@ mapped to the natural scale (the map is monotone, so the interval maps end to en
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 from scipy import optimize as sopt
-from scipy import stats
 
 from stopwise.estimation.ml.optimize import minimize_one
 from stopwise.estimation.ml.problem import Problem, report_values
-from stopwise.estimation.ml.results import Fit
+
+if TYPE_CHECKING:  # annotations only: results imports this module for Fit.profile
+    from stopwise.estimation.ml.results import Fit
 
 
 def profile_loglik(problem: Problem, z_hat: np.ndarray, j: int, t: float) -> float:
@@ -52,6 +55,8 @@ def profile_interval(
     row = rows[0]
     j = row.index
     z_hat = np.asarray(fit.z)
+    from scipy import stats  # 0.7 s more at start-up for every fit: only here
+
     cutoff = float(stats.chi2.ppf(level, 1)) / 2.0
     ll_hat = fit.loglik
 

@@ -10,6 +10,7 @@ of decisions (or choices).
 from __future__ import annotations
 
 import functools
+import importlib.metadata as md
 import json
 import math
 import platform
@@ -22,8 +23,12 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.json_text import dumps_json
 from stopwise.estimation import tables
+from stopwise.estimation.ml import prediction
 from stopwise.estimation.ml.covariance import RowTable
+from stopwise.estimation.ml.prediction import check_rows_explained, resolve_new_data
+from stopwise.estimation.ml.profile import profile_interval
 
 DISCLAIMER = (
     "Research estimates, not a basis for individual financial, clinical or hiring decisions."
@@ -33,8 +38,6 @@ DISCLAIMER = (
 @functools.lru_cache(maxsize=1)
 def package_versions() -> dict[str, str]:
     """Versions of the packages that produced a result."""
-    import importlib.metadata as md
-
     out = {"python": platform.python_version()}
     for name in ("stopwise", "numpy", "scipy", "pandas", "jax", "jaxlib", "statsmodels", "patsy"):
         try:
@@ -194,8 +197,6 @@ class Fit:
         }
 
     def to_json(self) -> str:
-        from stopwise._io import dumps_json
-
         return dumps_json(self.to_dict())
 
     def to_latex(self, interval: str = "se") -> str:
@@ -223,15 +224,11 @@ class Fit:
         designs = self.extras.get("designs")
         if not designs:
             if data is not None:
-                from stopwise.estimation.ml.prediction import check_rows_explained, resolve_new_data
-
                 if not _is_bundle(data):
                     data, _ = resolve_new_data(data, covariates)
                 if "layout" in self.extras:
                     check_rows_explained(self.extras["layout"].model, data)
             return self.predictor(data)
-        from stopwise.estimation.ml import prediction
-
         layout = self.extras["layout"]
         if data is None:
             if covariates is not None:
@@ -243,8 +240,6 @@ class Fit:
 
     def profile(self, name: str, level: float = 0.95) -> tuple[float, float]:
         """Profile-likelihood interval of parameter ``name`` (estimation/profile.py)."""
-        from stopwise.estimation.ml.profile import profile_interval
-
         return profile_interval(self, name, level)
 
     def _scale_lines(self, frame: pd.DataFrame) -> list[str]:
@@ -356,8 +351,6 @@ class FitBySubject:
         }
 
     def to_json(self) -> str:
-        from stopwise._io import dumps_json
-
         return dumps_json(self.to_dict())
 
     def summary(self) -> str:
