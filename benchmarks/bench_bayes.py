@@ -84,6 +84,7 @@ def gradient_seconds(model: object, data: object) -> float:
 def main() -> str:
     from stopwise.estimation.bayes.fit import fit_bayes
     from stopwise.estimation.ml.mle import fit_mle
+    from stopwise.estimation.ml.point_fits import ML_POINT_FITS
     from stopwise.models.spec import build_model
 
     data = demo_solo_bundle()
@@ -105,6 +106,7 @@ def main() -> str:
         seed=0,
         progress=False,
         loo="trial",  # the sampler is measured here, not leave-one-subject-out refits
+        point_fits=ML_POINT_FITS,
     )
     total = time.perf_counter() - t0
     load1 = os.getloadavg()[0]

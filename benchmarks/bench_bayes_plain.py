@@ -39,6 +39,7 @@ from stopwise.estimation.bayes import sampler
 from stopwise.estimation.bayes.loo_subject import without_subjects
 from stopwise.estimation.bayes.priors import resolve_priors
 from stopwise.estimation.bayes.truncation import auto_capped
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.models.spec import build_model
 
 SPEC = "crra+planner+logit"
@@ -99,6 +100,7 @@ def engine_fit(model: Any, data: Any) -> tuple[float, float]:
         seed=0,
         progress=False,
         loo="trial",
+        point_fits=ML_POINT_FITS,
     )
     rows = [
         r

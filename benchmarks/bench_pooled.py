@@ -20,6 +20,7 @@ from typing import Any
 import stopwise
 from stopwise.commands.simulate import price_list_design
 from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.simulate import simulate
 
@@ -54,7 +55,15 @@ def simulated(spec: str, values: dict[str, float]) -> Any:
 def one_fit(spec: str, data: Any, **options: Any) -> dict[str, Any]:
     t0 = time.perf_counter()
     post = fit_bayes(
-        spec, data, chains=CHAINS, draws=DRAWS, warmup=WARMUP, seed=SEED, progress=False, **options
+        spec,
+        data,
+        chains=CHAINS,
+        draws=DRAWS,
+        warmup=WARMUP,
+        seed=SEED,
+        progress=False,
+        **options,
+        point_fits=ML_POINT_FITS,
     )
     d = post.diagnostics
     worst = post.params["ess_bulk"].idxmin()

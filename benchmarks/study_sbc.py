@@ -36,6 +36,7 @@ from benchmarks._common import write_section
 from stopwise.commands.simulate import contest_design, price_list_design
 from stopwise.estimation.bayes import fit as bayes
 from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
@@ -82,6 +83,7 @@ def one_replication(spec: str, model: Any, design: Any, key: Any) -> tuple[dict,
         progress=False,
         loo="trial",
         loo_refits=False,
+        point_fits=ML_POINT_FITS,
     )
     ranks = {}
     for s in model.params:

@@ -259,9 +259,11 @@ def _fit_selected(
 ) -> Any:
     if method == "bayes":
         from stopwise.estimation.bayes.fit import fit_bayes
+        from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 
         if formulas:
             kw["formulas"] = formulas
+        kw.setdefault("point_fits", ML_POINT_FITS)  # the Bayes wing starts from ML fits
         return fit_bayes(the_model, bundle, seed=seed, **kw)
     types = kw.pop("types", None)
     if types is not None:
@@ -352,7 +354,9 @@ def compare(
         prepare_model(m, bundle)
     if method == "bayes":
         from stopwise.estimation.bayes.fit import compare_bayes
+        from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 
+        kw.setdefault("point_fits", ML_POINT_FITS)  # the Bayes wing starts from ML fits
         return compare_bayes(resolved, bundle, seed=seed, **kw)
     from stopwise.estimation.ml.compare import compare_fits
 

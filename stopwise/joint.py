@@ -17,8 +17,8 @@ import numpy as np
 
 from stopwise.api import prepare_model, resolve_data, resolve_model, select_data
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.cells import subject_labels
 from stopwise.estimation.ml.joint import fit_joint as run_joint
-from stopwise.estimation.ml.problem import subject_labels
 from stopwise.estimation.ml.results import Fit
 
 

@@ -27,6 +27,7 @@ from stopwise.estimation.bayes.subject_start import (
     start_variances,
     summarise_subject_fits,
 )
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
@@ -166,6 +167,7 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
             draws=30,
             warmup=30,
             progress=False,
+            point_fits=ML_POINT_FITS,
         )
         expected = "centred" if form == "centred" else "non-centred"
         assert post.run["parametrisation"] == expected and post.run["dense_mass"] is True
@@ -175,7 +177,14 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
         assert any("R-hat cannot be computed" in w for w in post.warnings)  # one chain
         assert post.converged is False
     with pytest.raises(StopwiseInputError, match="parametrisation"):
-        bayes.fit_bayes(model, data, hierarchical=True, parametrisation="both", progress=False)
+        bayes.fit_bayes(
+            model,
+            data,
+            hierarchical=True,
+            parametrisation="both",
+            progress=False,
+            point_fits=ML_POINT_FITS,
+        )
 
 
 def test_start_variances_are_normal_approximations():
@@ -212,7 +221,7 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
 
     model, data = small_stopping
     notes: list[str] = []
-    start = initial.hierarchical_start(model, data, None, notes)
+    start = initial.hierarchical_start(model, data, None, notes, ML_POINT_FITS)
     for centred in ((True, False), (False, True)):
         setup, args, *_ = preparation.prepare(
             model,
@@ -272,14 +281,21 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
 
     monkeypatch.setattr(initial, "per_subject_estimates", refuse)
     notes: list[str] = []
-    start = initial.hierarchical_start(model, data, None, notes)
+    start = initial.hierarchical_start(model, data, None, notes, ML_POINT_FITS)
     pooled = fit_mle(model, data, se=None, progress=False)
     expected = float(model.spec("precision").to_unconstrained(pooled.estimates()["precision"]))
     assert start.mu[0] == pytest.approx(expected, rel=1e-6)
     np.testing.assert_allclose(start.subject_z, expected, rtol=1e-6)
     assert any("contest model" in note for note in notes)
     post = bayes.fit_bayes(
-        model, data, hierarchical=True, chains=1, draws=10, warmup=10, progress=False
+        model,
+        data,
+        hierarchical=True,
+        chains=1,
+        draws=10,
+        warmup=10,
+        progress=False,
+        point_fits=ML_POINT_FITS,
     )
     assert np.all(np.isfinite(post.draws("precision: population median")))
     assert any("contest model" in note for note in post.notes)

@@ -51,6 +51,7 @@ from stopwise.estimation.bayes.subject_start import (
 from stopwise.estimation.bayes.truncation import (
     check_passed,
 )
+from stopwise.estimation.point_fits import PointFits
 from stopwise.models.base import Model
 
 # ---------------------------------------------------------------------------------------
@@ -83,26 +84,31 @@ def fit_bayes(
     planner_cap: str = "auto",
     se: Any = None,
     by: Any = None,
+    point_fits: PointFits | None = None,
     **ignored: Any,
 ) -> Any:
     """Posterior of ``model`` given ``data`` by NUTS (see the module docstring).
 
-    init: None (pooled: the ML estimate and covariance, estimation/bayes_pooled.py;
+    init: None (pooled: the ML estimate and covariance, estimation/bayes/pooled_start.py;
     hierarchical: see below), "start" (model start values), "mle" or a mapping name ->
     natural value; chains start near it with a small jitter.
     Hierarchical fits start every subject near its own ML estimate and the population sd at
     the subjects' spread; with init=None the population location starts at the subjects'
-    median (estimation/bayes_start.py), otherwise at the values ``init`` names.
+    median (estimation/bayes/subject_start.py), otherwise at the values ``init`` names.
+    point_fits: the ML fits those starts come from (estimation/point_fits.py; the Bayes wing
+    never imports the ML wing): stopwise.estimation.ml.point_fits.ML_POINT_FITS, which
+    ``stopwise.fit`` passes; a start that needs them without them is refused.
     parametrisation: hierarchical only; "auto" (the documented rule), "centred" or
     "noncentred". dense_mass: a dense mass matrix for the population sites (default: on for
     hierarchical fits, off for pooled ones).
     loo (alias ``pointwise``): unit of the ArviZ log-likelihood and of LOO: "subject"
     (default with several subjects: leave-one-subject-out, Pareto k > 0.7 repaired by refits
-    when ``loo_refits``, estimation/loo_subject.py), "trial" (stopping) or "row". planner_cap: for a planner model without ``max_target``,
-    "auto" samples with the cap horizon + 30 and checks it at 100 posterior draws against the
-    default cap, refitting at the default cap if the check fails; "exact" uses the default
-    cap (estimation/truncation.py). Returns a
-    :class:`stopwise.estimation.posterior.Posterior`.
+    when ``loo_refits``, estimation/bayes/loo_subject.py), "trial" (stopping) or "row".
+    planner_cap: for a planner model without ``max_target``, "auto" samples with the cap
+    horizon + 30 and checks it at 100 posterior draws against the default cap, refitting at
+    the default cap if the check fails; "exact" uses the default cap
+    (estimation/bayes/truncation.py). Returns a
+    :class:`stopwise.estimation.bayes.posterior.Posterior`.
     """
     arguments = {k: v for k, v in locals().items() if k != "ignored"}
     check_run_options(se, by, ignored, chains, draws, warmup, hdi_prob, planner_cap)
@@ -112,11 +118,15 @@ def fit_bayes(
     model, capped = sampling_model(exact_model, data, planner_cap, notes)
     unit = pointwise_unit(loo if loo is not None else pointwise, data)
     check_parametrisation(parametrisation)
-    pooled = ml_start(model, data, formulas) if pooled_from_ml(hierarchical, init) else None
+    from_ml = pooled_from_ml(hierarchical, init)
+    pooled = ml_start(model, data, formulas, point_fits) if from_ml else None
     notes += pooled.notes if pooled else []
-    natural = initial_natural(model, data, pooled.natural if pooled else init, formulas, notes)
+    start_at = pooled.natural if pooled else init
+    natural = initial_natural(model, data, start_at, formulas, notes, point_fits)
     t_start = time.perf_counter()
-    subjects, form = subject_start(model, data, hierarchical, init, natural, parametrisation, notes)
+    subjects, form = subject_start(
+        model, data, hierarchical, init, natural, parametrisation, notes, point_fits
+    )
     setup, args, cells, unit_labels, unit_name = cells_for_sampling(
         model, data, hierarchical, formulas, priors, unit, aggregate, form, notes
     )
@@ -207,7 +217,7 @@ def finish_subject_loo(post: Any, arguments: Mapping[str, Any]) -> None:
 
 def repair_subject_loo(post: Any, arguments: Mapping[str, Any]) -> None:
     """Leave-one-subject-out terms with Pareto k > 0.7 replaced by refits of the same fit
-    without those subjects (estimation/loo_subject.py); the result is stored on ``post``."""
+    without those subjects (estimation/bayes/loo_subject.py); the result is stored on ``post``."""
     psis = post.loo()
 
     def refit(data: Any, seed: int) -> Any:
@@ -227,7 +237,8 @@ def repair_subject_loo(post: Any, arguments: Mapping[str, Any]) -> None:
 
 
 def pooled_from_ml(hierarchical: bool, init: Any) -> bool:
-    """Pooled fits with init None or "mle" start at the ML estimate (estimation/bayes_pooled.py)."""
+    """Pooled fits with init None or "mle" start at the ML estimate
+    (estimation/bayes/pooled_start.py)."""
     return not hierarchical and (init is None or (isinstance(init, str) and init == "mle"))
 
 
@@ -253,7 +264,7 @@ def compare_bayes(
     models: Sequence[Any], data: Any = None, *, names: Sequence[str] | None = None, **kw: Any
 ) -> Any:
     """Rank models by PSIS-LOO expected log predictive density (ArviZ), see
-    :func:`stopwise.estimation.posterior.loo_compare`. ``models`` may hold fitted
+    :func:`stopwise.estimation.bayes.loo_compare.loo_compare`. ``models`` may hold fitted
     Posterior objects or models/specs, which are fitted here with ``fit_bayes(**kw)``."""
     fits = []
     for m in models:

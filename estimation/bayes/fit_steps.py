@@ -54,6 +54,7 @@ from stopwise.estimation.bayes.truncation import (
     auto_capped,
     truncation_check,
 )
+from stopwise.estimation.point_fits import PointFits
 from stopwise.models.base import Model
 
 
@@ -134,6 +135,7 @@ def subject_start(
     natural: Mapping[str, float],
     parametrisation: str,
     notes: list[str],
+    point_fits: PointFits | None,
 ) -> tuple[SubjectStart | None, tuple[bool, ...]]:
     """Hierarchical fits: the subjects' start (estimation/bayes/initial.py) and the
     centred / non-centred choice per parameter; pooled fits: (None, ())."""
@@ -141,7 +143,8 @@ def subject_start(
         return None, ()
     if model.data_kind == "contest":
         notes.append(CONTEST_HIERARCHY_COST)
-    start = hierarchical_start(model, data, None if init is None else natural, notes)
+    mu = None if init is None else natural
+    start = hierarchical_start(model, data, mu, notes, point_fits)
     form = choose_parametrisation(parametrisation, start, data.n_obs / data.n_subjects)
     return start, form
 

@@ -31,6 +31,7 @@ from stopwise.estimation.bayes.subject_start import (
     start_variances,
     summarise_subject_fits,
 )
+from stopwise.estimation.point_fits import PointFits, require_point_fits
 from stopwise.models.base import Model
 
 # ---------------------------------------------------------------------------------------
@@ -38,7 +39,12 @@ from stopwise.models.base import Model
 
 
 def initial_natural(
-    model: Model, data: Any, init: Any, formulas: Any, notes: list[str]
+    model: Model,
+    data: Any,
+    init: Any,
+    formulas: Any,
+    notes: list[str],
+    point_fits: PointFits | None = None,
 ) -> dict[str, float]:
     """Natural-scale starting values of every parameter: the model's start values, the ML
     estimate (init="mle"), or a user mapping name -> natural value (checked in bounds)."""
@@ -51,7 +57,7 @@ def initial_natural(
             )
         natural.update({k: float(v) for k, v in init.items()})
     elif init == "mle":
-        natural.update(mle_estimates(model, data, formulas, notes))
+        natural.update(mle_estimates(model, data, formulas, notes, point_fits))
     elif init not in (None, "start"):
         raise StopwiseInputError(f"init={init!r}: expected None, 'start', 'mle' or a mapping")
     for spec in model.params:
@@ -81,7 +87,11 @@ CONTEST_HIERARCHY_COST = (
 
 
 def hierarchical_start(
-    model: Model, data: Any, mu_natural: Mapping[str, float] | None, notes: list[str]
+    model: Model,
+    data: Any,
+    mu_natural: Mapping[str, float] | None,
+    notes: list[str],
+    point_fits: PointFits | None,
 ) -> SubjectStart:
     """Population and subject starting values from per-subject ML fits
     (estimation/bayes_start.py); ``mu_natural`` (pooled ML or user values) replaces the
@@ -97,7 +107,8 @@ def hierarchical_start(
         # starting point (16 demo subjects: not done after 10 minutes); start every subject
         # at the pooled ML estimate instead
         if mu is None:
-            pooled = {**model.start_theta(), **mle_estimates(model, data, None, notes)}
+            fits = require_point_fits(point_fits, "a hierarchical contest fit's start")
+            pooled = {**model.start_theta(), **mle_estimates(model, data, None, notes, fits)}
             mu = np.array([float(s.to_unconstrained(pooled[s.name])) for s in model.params])
         start = summarise_subject_fits(
             np.tile(mu, (n, 1)), np.full((n, k), np.nan), np.zeros(n, bool), mu
@@ -107,8 +118,9 @@ def hierarchical_start(
             f"population sd {start.sd[0]:g} on the unconstrained scale (no per-subject fits)"
         )
         return start
+    fits = require_point_fits(point_fits, "a hierarchical fit's start")
     try:
-        z, se, identified = per_subject_estimates(model, data)
+        z, se, identified = per_subject_estimates(model, data, fits.by_subject)
     except StopwiseInputError:
         raise
     except Exception as exc:  # the per-subject fits are only a starting point
@@ -221,17 +233,13 @@ def initial_inverse_mass(
     return blocks
 
 
-def mle_estimates(model: Model, data: Any, formulas: Any, notes: list[str]) -> dict[str, float]:
+def mle_estimates(
+    model: Model, data: Any, formulas: Any, notes: list[str], point_fits: PointFits | None
+) -> dict[str, float]:
     """Natural-scale ML estimates of the parameters (intercepts), or {} with a note."""
+    fit_pooled = require_point_fits(point_fits, "init='mle'").pooled
     try:
-        from stopwise.estimation.ml.mle import fit_mle
-    except ImportError:
-        notes.append(
-            "init='mle': the ML engine is not available; started at the model's start values"
-        )
-        return {}
-    try:
-        fit = fit_mle(model, data, se=None, formulas=formulas)
+        fit = fit_pooled(model, data, se=None, formulas=formulas)
         frame = fit.params
         if "name" in getattr(frame, "columns", ()):
             frame = frame.set_index("name")

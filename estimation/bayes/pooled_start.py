@@ -30,7 +30,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.point_fits import PointFits, require_point_fits
 
 
 @dataclass(frozen=True)
@@ -80,11 +80,12 @@ def population_permutation(
     return np.asarray(order, dtype=np.int64)
 
 
-def ml_start(model: Any, data: Any, formulas: Any) -> PooledStart:
+def ml_start(model: Any, data: Any, formulas: Any, point_fits: PointFits | None) -> PooledStart:
     """The pooled ML fit (Hessian covariance, estimation/mle.py) as a sampler start; a fit
     that fails or whose Hessian is not positive definite gives what it can with a note."""
+    fit_pooled = require_point_fits(point_fits, "a pooled fit's ML start").pooled
     try:
-        fit = fit_mle(model, data, se="hessian", formulas=formulas, progress=False)
+        fit = fit_pooled(model, data, se="hessian", formulas=formulas, progress=False)
     except StopwiseInputError:
         raise
     except Exception as exc:  # the ML fit is only a starting point

@@ -281,18 +281,15 @@ def ppc_figure(frame: pd.DataFrame, level: str = "condition", max_panels: int = 
     return fig
 
 
-def shrinkage_table(posterior: Any, ml: Any = None) -> pd.DataFrame:
-    """Per subject and parameter: ML estimate and SE (``ml``: a per-subject fit, computed
-    with stopwise.estimation.by_subject.fit_by_subject when omitted), hierarchical posterior
-    mean and sd, the population median and the shrinkage (module docstring)."""
+def shrinkage_table(posterior: Any, ml: Any) -> pd.DataFrame:
+    """Per subject and parameter: ML estimate and SE (``ml``: per-subject ML fits of the same
+    model and data, e.g. ``stopwise.fit(model, data, by="subject", se="hessian")``; the Bayes
+    wing does not fit them itself), hierarchical posterior mean and sd, the population median
+    and the shrinkage (module docstring)."""
     if not posterior.hierarchical or posterior.subject_params is None:
         raise StopwiseInputError(
             "a shrinkage table needs a hierarchical fit (fit_bayes(..., hierarchical=True))"
         )
-    if ml is None:
-        from stopwise.estimation.ml.by_subject import fit_by_subject
-
-        ml = fit_by_subject(posterior.model, posterior.data, se="hessian")
     ml_frame = ml.params.reset_index() if "subject" not in ml.params.columns else ml.params
     ml_frame = ml_frame.rename(columns={"name": "param", "estimate": "ml_estimate", "se": "ml_se"})[
         ["subject", "param", "ml_estimate", "ml_se"]

@@ -33,7 +33,7 @@ centred iff the median subject has at least CENTRED_MIN_ROWS decisions (choices)
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from functools import partial
 from typing import Any
@@ -43,6 +43,8 @@ import jax.numpy as jnp
 import numpy as np
 from numpyro.distributions.transforms import biject_to
 from numpyro.infer import init_to_uniform
+
+from stopwise.estimation.cells import subject_labels
 
 SD_FLOOR = 0.05  # smallest starting population sd (unconstrained scale)
 SD_CEILING = 2.0  # largest starting population sd
@@ -176,12 +178,12 @@ def describe_parametrisation(names: tuple[str, ...], centred: tuple[bool, ...]) 
     return f"centred: {yes}; non-centred: {no}"
 
 
-def per_subject_estimates(model: Any, data: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def per_subject_estimates(
+    model: Any, data: Any, fit_by_subject: Callable[..., Any]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-subject ML: unconstrained estimates (n, K), standard errors (n, K) and an
-    identified flag (n,), in subject-index order (estimation/by_subject.py)."""
-    from stopwise.estimation.ml.by_subject import fit_by_subject
-    from stopwise.estimation.ml.problem import subject_labels
-
+    identified flag (n,), in subject-index order, from ``fit_by_subject`` (the caller's
+    PointFits.by_subject, estimation/point_fits.py)."""
     fits = fit_by_subject(model, data, se="hessian")
     labels = list(subject_labels(data))
     n, k = len(labels), len(model.param_names)

@@ -23,7 +23,7 @@ import numpy as np
 
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.cells import split_into_cells
+from stopwise.estimation.cells import split_into_cells, subject_labels
 from stopwise.estimation.ml.covariance import hessian_covariance, wald_rows
 from stopwise.estimation.ml.mle import BOUND_Z
 from stopwise.estimation.ml.optimize import batched_newton, start_design
@@ -34,7 +34,6 @@ from stopwise.estimation.ml.problem import (
     natural_np,
     reported_rows,
     start_vector,
-    subject_labels,
     theta_scalars,
 )
 from stopwise.estimation.ml.response import _strip

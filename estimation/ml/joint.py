@@ -18,6 +18,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.cells import subject_labels
 from stopwise.estimation.ml.mle import run_fit, start_design
 from stopwise.estimation.ml.problem import (
     Layout,
@@ -28,7 +29,6 @@ from stopwise.estimation.ml.problem import (
     pad_rows,
     padded_size,
     subject_index,
-    subject_labels,
     theta_scalars,
 )
 from stopwise.estimation.ml.response import _strip

@@ -36,6 +36,7 @@ from scipy.optimize import linear_sum_assignment
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.limits import MAX_TYPES
+from stopwise.estimation.cells import subject_labels
 from stopwise.estimation.ml.bootstrap import bootstrap_table, percentile_table
 from stopwise.estimation.ml.covariance import RowTable
 from stopwise.estimation.ml.mle import run_fit
@@ -52,7 +53,6 @@ from stopwise.estimation.ml.problem import (
     reported_rows,
     start_vector,
     subject_index,
-    subject_labels,
     theta_scalars,
 )
 from stopwise.estimation.ml.response import _strip

@@ -327,12 +327,6 @@ def subject_index(data: Any) -> np.ndarray:
     return np.asarray(data.subject).astype(np.int64)
 
 
-def subject_labels(data: Any) -> np.ndarray:
-    if data.subject_labels is not None:
-        return np.asarray(data.subject_labels)
-    return np.arange(data.n_subjects)
-
-
 @dataclass
 class Problem:
     """Everything the generic engines need; see the module docstring."""
