@@ -22,7 +22,7 @@ from stopwise.commands.simulate import price_list_design
 from stopwise.estimation.bayes.fit import fit_bayes
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
-from stopwise.models.simulate import simulate
+from stopwise.models.simulation import simulate
 
 CHAINS, DRAWS, WARMUP, SEED = 2, 500, 500, 1
 CASES: tuple[tuple[str, dict[str, float]], ...] = (

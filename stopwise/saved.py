@@ -30,7 +30,7 @@ from stopwise.estimation import tables
 from stopwise.estimation.ml.response import stop_step_table
 from stopwise.fit_record import bundle_fingerprint
 from stopwise.models.base import Model
-from stopwise.models.simulate import simulate
+from stopwise.models.simulation import simulate
 from stopwise.models.spec import build_model
 
 LOGLIK_RTOL = 1e-6

@@ -23,7 +23,7 @@ from stopwise.estimation.bayes.pooled_start import (
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
-from stopwise.models.simulate import simulate
+from stopwise.models.simulation import simulate
 
 TOTAL_DRAWS = 2 * 500
 ESS_GOAL = 0.8 * TOTAL_DRAWS  # issue 16's goal for pooled fits

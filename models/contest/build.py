@@ -57,6 +57,7 @@ from stopwise.models.contest.play import (
     simulate_contest,
 )
 from stopwise.models.contest.qre import fixed_point_residual
+from stopwise.models.utility import UTILITIES
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 QRE_SIMULATION_TOLERANCE = 1e-6  # largest fixed-point residual a simulation accepts
@@ -81,10 +82,6 @@ def utility_params(name: str) -> tuple[ParamSpec, ...]:
         return ()
     if name == "crra":
         return (_CRRA_R,)
-    try:
-        from stopwise.models.utility import UTILITIES
-    except ImportError:
-        UTILITIES = {}
     if name in UTILITIES:
         return tuple(getattr(UTILITIES[name], "params", ()))
     resolve_utility(name)  # raises with the list of known utilities
