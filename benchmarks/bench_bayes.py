@@ -24,7 +24,7 @@ started from the normal-approximation variances of the per-subject ML fits
 645 s to 370 s with that change alone (cap 100).
 
 The model is built with its defaults, so the fit uses the automatic planner cap
-(estimation/truncation.py): the backward induction stops at the data horizon + 30 steps
+(estimation/bayes/truncation.py): the backward induction stops at the data horizon + 30 steps
 instead of the default cap sized so that reaching it has probability below 1e-15 (about
 700 steps at p_survive 0.95). One hierarchical gradient costs about 17 us per cap step (2.2
 ms at cap 100, 1.1 ms at cap 50); the fit checks the truncation at 100 posterior draws

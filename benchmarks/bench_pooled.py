@@ -6,7 +6,7 @@ and crra+logit (the ten-row price list of Holt & Laury 2002, 400 simulated subje
 model is fitted twice in the same run on the same data and seed: "before" starts at the
 model's start values with an identity mass matrix adapted in warm-up (the former default,
 ``init="start", dense_mass=False``), "after" at the ML estimate with the ML covariance as
-the inverse mass matrix (the default now, estimation/bayes_pooled.py). Invented data from
+the inverse mass matrix (the default now, estimation/bayes/pooled_start.py). Invented data from
 stopwise's own simulator; the values below are settings of the simulation, not checks.
 Run ``python -m benchmarks.run bench_pooled``.
 """

@@ -3,7 +3,7 @@ Bayesian fits: two solo models and one contest model.
 
 For each replication: draw the parameters from the default priors (truncated to the bounds),
 simulate a data set, sample the posterior with NUTS at the engine's default start (the ML
-estimate and Laplace covariance, estimation/bayes_pooled.py), thin to L = 99 draws (the first
+estimate and Laplace covariance, estimation/bayes/pooled_start.py), thin to L = 99 draws (the first
 99 of 2 x 50) and record the rank of the true value among them. If the sampler and the
 likelihood are right, ranks are uniform on 0..99. Ranks are binned into 10 bins; each bin
 count is Binomial(N, 1/10) under uniformity, and the 99% simultaneous band is the

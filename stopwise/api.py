@@ -308,7 +308,7 @@ def _fit_types(
     seed: int,
     kw: dict[str, Any],
 ) -> Any:
-    """A finite mixture of ``types`` types of the model (estimation/mixture.py): each
+    """A finite mixture of ``types`` types of the model (estimation/ml/mixture.py): each
     subject belongs to one type; shares and every type's parameters by maximum likelihood."""
     if isinstance(types, bool) or not isinstance(types, (int, np.integer)) or types < 2:
         raise StopwiseInputError(f"types={types!r}: expected a whole number of at least 2")

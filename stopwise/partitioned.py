@@ -3,7 +3,7 @@ part by part (data_schemas/partitioned.py), each part a task of the study runner
 (estimation/distributed.py: in-process, a LocalCluster or an existing Dask cluster).
 
 A pooled maximum-likelihood fit of a solo stopping model without formulas is done on counts
-(estimation/counts.py): each part is validated and reduced to counts n_u on its worker, the
+(estimation/ml/counts.py): each part is validated and reduced to counts n_u on its worker, the
 counts are summed, and the reduction is certified on the first part's rows
 (``reduction_gap`` <= 1e-9 relative) before the fit. Every other fit, and a model that fails
 the certificate, says why and falls back to rows: the clean parts are gathered into one

@@ -1,4 +1,4 @@
-"""Leave-one-subject-out (estimation/loo_subject.py) against the exact answer of a tiny
+"""Leave-one-subject-out (estimation/bayes/loo_subject.py) against the exact answer of a tiny
 conjugate problem: PSIS terms, exact refits and K-fold by subject all reproduce
 log p(y_s | y_-s) computed in closed form."""
 

@@ -1,5 +1,5 @@
 """Pooled Bayesian fits start at the ML estimate with the ML covariance as inverse mass matrix
-(estimation/bayes_pooled.py): the mapping of ML coefficients to sampler sites, and default
+(estimation/bayes/pooled_start.py): the mapping of ML coefficients to sampler sites, and default
 settings that converge (issue 16: bulk ESS >= 0.8 x draws, R-hat <= 1.01 at 2 x 500)."""
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""The count reduction (estimation/counts.py) against the row-level computation.
+"""The count reduction (estimation/ml/counts.py) against the row-level computation.
 
 The reference is the ordinary row-level likelihood and fit of the same rows (a separate code
 path: every row evaluated, no grouping). Identity checked: sum_i ll_i = sum_u n_u ll_u

@@ -1,4 +1,4 @@
-"""The ML engine's compiled programs (estimation/problem.py): the per-step program and the
+"""The ML engine's compiled programs (estimation/ml/problem.py): the per-step program and the
 once-per-fit row scores agree with the previous combined value/gradient/Hessian/row-Jacobian
 function, and refits of one model share their compiled programs."""
 

@@ -1,4 +1,4 @@
-"""The multistart design's own Sobol generator (estimation/sobol.py) against scipy's."""
+"""The multistart design's own Sobol generator (estimation/ml/sobol.py) against scipy's."""
 
 from __future__ import annotations
 

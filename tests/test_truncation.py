@@ -1,4 +1,4 @@
-"""The planner-cap check of Bayesian fits (estimation/truncation.py)."""
+"""The planner-cap check of Bayesian fits (estimation/bayes/truncation.py)."""
 
 from __future__ import annotations
 

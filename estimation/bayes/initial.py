@@ -94,7 +94,7 @@ def hierarchical_start(
     point_fits: PointFits | None,
 ) -> SubjectStart:
     """Population and subject starting values from per-subject ML fits
-    (estimation/bayes_start.py); ``mu_natural`` (pooled ML or user values) replaces the
+    (estimation/bayes/subject_start.py); ``mu_natural`` (pooled ML or user values) replaces the
     median of the subjects as the population location when given. Contest models skip the
     per-subject fits: every subject starts at the pooled ML estimate (or ``mu_natural``)."""
     k = len(model.param_names)

@@ -13,8 +13,8 @@ The chains start at z_hat + U(-1, 1) * sd_j per coefficient (sd_j = sqrt(H^-1_jj
 posterior sd apart, so that R-hat still compares chains that did not start at one point.
 
 The ML coefficients are ordered parameter by parameter in design-column order
-(estimation/mle.py); the sampler's population sites are z_<k> (the intercept) and b_<k>
-(the other columns) in the same parameter order (estimation/bayes.py); ``site_order`` maps
+(estimation/ml/mle.py); the sampler's population sites are z_<k> (the intercept) and b_<k>
+(the other columns) in the same parameter order (estimation/bayes/density.py); ``site_order`` maps
 one to the other by column name.
 """
 
@@ -81,7 +81,7 @@ def population_permutation(
 
 
 def ml_start(model: Any, data: Any, formulas: Any, point_fits: PointFits | None) -> PooledStart:
-    """The pooled ML fit (Hessian covariance, estimation/mle.py) as a sampler start; a fit
+    """The pooled ML fit (Hessian covariance, estimation/ml/mle.py) as a sampler start; a fit
     that fails or whose Hessian is not positive definite gives what it can with a note."""
     fit_pooled = require_point_fits(point_fits, "a pooled fit's ML start").pooled
     try:

@@ -7,7 +7,7 @@ Reported quantities (posterior group of the InferenceData, and rows of ``Posteri
   hierarchical:  "<k>: population median", "<k>: population mean", "<k>: between-subject
                  sd", "<k>: between-subject sd (unconstrained scale)" and "<j>, <k>:
                  between-subject correlation (unconstrained scale)"; see
-                 estimation/bayes_labels.py. The population mean and sd of the natural-scale
+                 estimation/bayes/labels.py. The population mean and sd of the natural-scale
                  parameter are E[to_natural(mu_k + sd_k e)], e ~ Normal(0, 1), and its sd, by
                  40-point Gauss-Hermite quadrature
   <k>_subject    hierarchical: each subject's natural-scale parameter (at the covariates of

@@ -1,6 +1,6 @@
 """Starting values and parametrisation of hierarchical Bayesian fits.
 
-Per-subject maximum likelihood (estimation/by_subject.py, one vmapped Newton run) gives each
+Per-subject maximum likelihood (estimation/ml/by_subject.py, one vmapped Newton run) gives each
 subject s an unconstrained estimate a[s, k] with standard error se[s, k]. Subjects flagged as
 unidentified (never draws, separation, estimate at a bound, indefinite Hessian, no
 convergence) or with a non-finite estimate are left out of the summaries:
@@ -17,7 +17,7 @@ centred form (sample the subject's value z_s directly) suits a parameter whose p
 likelihood is informative relative to the population spread (its posterior is then nearly
 independent of mu and sd); the non-centred form (sample a standard normal eta_s and set
 z_s = mu + sd eta_s) suits a weakly identified one (the funnel between z_s and sd is then
-removed). It is chosen per parameter (estimation/bayes.py, ``subject_offsets``). The rule
+removed). It is chosen per parameter (estimation/bayes/density.py, ``subject_offsets``). The rule
 used for ``parametrisation="auto"``:
 
   ratio_k = median_s se[s, k] / between_k;   parameter k centred  iff  ratio_k < CENTRED_RATIO,

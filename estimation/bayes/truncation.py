@@ -90,7 +90,7 @@ def truncation_check(
     setup: Any, args: Any, data: Any, samples: Mapping[str, Any], n_draws: int = TRUNCATION_DRAWS
 ) -> dict[str, Any] | None:
     """max over thinned posterior draws of delta (module docstring), or None when the
-    model is not a truncated planner. ``setup``/``args`` as in estimation/bayes.py."""
+    model is not a truncated planner. ``setup``/``args`` as in estimation/bayes/prepare.py."""
     reference = default_cap_reference(setup.model)
     if reference is None:
         return None

@@ -3,7 +3,7 @@
 Replication b draws G subjects with replacement; subject g enters with multiplicity m_bg,
 so the replication's objective is  negll_b(z) = -sum_i m_b,g(i) ll_i(z)  on the original
 rows (no data are copied). Replications are solved together by the vmapped damped Newton of
-estimation/optimize.py, started at the full-sample estimate: one compilation for all of them,
+estimation/ml/optimize.py, started at the full-sample estimate: one compilation for all of them,
 and XLA spreads each batch over the machine's cores. Standard error = standard deviation of
 the replicated estimates; interval = their 2.5% and 97.5% percentiles (Efron & Tibshirani
 1993, percentile interval; from memory).

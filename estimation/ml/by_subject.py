@@ -4,7 +4,7 @@ Rows are split into one padded cell per subject (estimation/cells.py) and every 
 
     negll_g(z) = - sum_{i in g} mask_i ll_i(theta(z))
 
-is minimised at once by the vmapped damped Newton method of estimation/optimize.py (one
+is minimised at once by the vmapped damped Newton method of estimation/ml/optimize.py (one
 compilation for all subjects). Standard errors: inverse Hessian per subject (NaN with a flag
 when it is not positive definite). Flags mark subjects whose data cannot identify the model:
 a subject who never draws or never stops (stopping data), who always picks the same option

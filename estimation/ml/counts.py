@@ -152,7 +152,7 @@ def fit_counts(
     fit.extras["layout"] = layout
     fit.notes.append(
         f"fitted on counts: {len(counts)} distinct (subject, condition, step, action, outcome) "
-        f"keys for {problem.n_obs} decisions (estimation/counts.py)"
+        f"keys for {problem.n_obs} decisions (estimation/ml/counts.py)"
     )
     return fit
 

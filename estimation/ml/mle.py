@@ -59,7 +59,7 @@ def build_problem(
     covariate_frame: pd.DataFrame | None = None,
     fixed: Mapping[str, float] | None = None,
 ) -> tuple[Problem, Layout, dict[str, Any]]:
-    """The Problem (estimation/problem.py) for a pooled fit, with covariate formulas if any."""
+    """The Problem (estimation/ml/problem.py) for a pooled fit, with covariate formulas if any."""
     check_kind(model, data)
     bare = _strip(data)
     if not formulas:

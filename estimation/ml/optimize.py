@@ -44,7 +44,7 @@ class OptimumRecord:
 
 def start_design(z0: np.ndarray, n_starts: int, seed: int, spread: float = 1.5) -> np.ndarray:
     """Starts: z0 itself, then z0 + spread * (2u - 1) for a scrambled Sobol sequence u
-    (estimation/sobol.py: scipy's points, without loading scipy.stats)."""
+    (estimation/ml/sobol.py: scipy's points, without loading scipy.stats)."""
     if n_starts <= 1:
         return z0[None, :]
     u = scrambled_sobol(len(z0), int(2 ** np.ceil(np.log2(n_starts - 1))), seed)[: n_starts - 1]

@@ -7,7 +7,7 @@ information, so levels and centring are the fit's) to its parameters
 
 and rows whose design rows agree across every formula share one *covariate profile*. Per
 profile the model gives P(draw | condition, step) (or P(choose B)), and the distribution of
-the step at which a trial ends (estimation/mle.py ``stop_step_table``).
+the step at which a trial ends (estimation/ml/response.py ``stop_step_table``).
 
 The result is a dict of frames:
 

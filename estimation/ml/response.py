@@ -111,7 +111,7 @@ def _make_predictor(
     def predict(data: Any = None) -> dict[str, pd.DataFrame]:
         data = fitted if data is None else data
         if "cells" in extra:
-            if data is not fitted:  # Fit.predict routes new rows to estimation/prediction.py
+            if data is not fitted:  # Fit.predict routes new rows to estimation/ml/prediction.py
                 raise ValueError("the cell predictor of a formula fit serves the fitted rows")
             cells = extra["cells"]
             theta = theta_per_cell(layout, z, tuple(extra["blocks"]))

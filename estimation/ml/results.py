@@ -76,7 +76,7 @@ class Fit:
     cov_z: np.ndarray | None = field(default=None, repr=False)
     predictor: Callable[[Any], dict[str, pd.DataFrame]] | None = field(default=None, repr=False)
     extras: dict[str, Any] = field(default_factory=dict, repr=False)
-    identification: Any = field(default=None, repr=False)  # estimation/identification.py
+    identification: Any = field(default=None, repr=False)  # estimation/ml/identification.py
 
     @property
     def aic(self) -> float:
@@ -106,7 +106,7 @@ class Fit:
     @property
     def profiles(self) -> pd.DataFrame | None:
         """Formula fits: each covariate profile's parameters on their natural scale with
-        delta-method 95% intervals (estimation/natural_profiles.py); None otherwise."""
+        delta-method 95% intervals (estimation/ml/natural_profiles.py); None otherwise."""
         table = self.extras.get("profiles")
         return table if isinstance(table, pd.DataFrame) else None
 
@@ -218,7 +218,7 @@ class Fit:
         Dataset or an array bundle. A fit with covariate formulas builds the new rows'
         designs with the fit's levels and centring, reads the covariate columns from the
         new frame (or from ``covariates``, a frame aligned with a bundle's rows), adds a
-        ``profile`` column and a "profiles" frame (estimation/prediction.py)."""
+        ``profile`` column and a "profiles" frame (estimation/ml/prediction.py)."""
         if self.predictor is None:
             raise ValueError("this fit has no predictor (it was not made from a model)")
         designs = self.extras.get("designs")
@@ -239,7 +239,7 @@ class Fit:
         )
 
     def profile(self, name: str, level: float = 0.95) -> tuple[float, float]:
-        """Profile-likelihood interval of parameter ``name`` (estimation/profile.py)."""
+        """Profile-likelihood interval of parameter ``name`` (estimation/ml/profile.py)."""
         return profile_interval(self, name, level)
 
     def _scale_lines(self, frame: pd.DataFrame) -> list[str]:
