@@ -24,7 +24,7 @@ started from the normal-approximation variances of the per-subject ML fits
 645 s to 370 s with that change alone (cap 100).
 
 The model is built with its defaults, so the fit uses the automatic planner cap
-(estimation/truncation.py): the backward induction stops at the data horizon + 30 steps
+(estimation/bayes/truncation.py): the backward induction stops at the data horizon + 30 steps
 instead of the default cap sized so that reaching it has probability below 1e-15 (about
 700 steps at p_survive 0.95). One hierarchical gradient costs about 17 us per cap step (2.2
 ms at cap 100, 1.1 ms at cap 50); the fit checks the truncation at 100 posterior draws
@@ -66,23 +66,25 @@ def demo_solo_bundle() -> object:
 
 def gradient_seconds(model: object, data: object) -> float:
     """One hierarchical gradient at the cap the fit samples with (the automatic cap)."""
-    from stopwise.estimation import bayes
-    from stopwise.estimation.truncation import auto_capped
+    from stopwise.estimation.bayes import density
+    from stopwise.estimation.bayes import prepare as preparation
+    from stopwise.estimation.bayes.truncation import auto_capped
 
     model = auto_capped(model, data) or model
-    setup, args, *_ = bayes.prepare(
+    setup, args, *_ = preparation.prepare(
         model, data, hierarchical=True, formulas=None, priors=None, pointwise="trial"
     )
     sites = {f"z_{s.name}": jnp.asarray(float(s.to_unconstrained(s.start))) for s in setup.specs}
-    sites.update(bayes.zero_offset_sites(setup, sites))
-    grad = jax.jit(jax.grad(lambda s: bayes.total_loglik(setup, s, args)))
+    sites.update(density.zero_offset_sites(setup, sites))
+    grad = jax.jit(jax.grad(lambda s: density.total_loglik(setup, s, args)))
     jax.block_until_ready(grad(sites))
     return best_time(lambda: jax.block_until_ready(grad(sites)), repeat=5, number=5)
 
 
 def main() -> str:
-    from stopwise.estimation.bayes import fit_bayes
-    from stopwise.estimation.mle import fit_mle
+    from stopwise.estimation.bayes.fit import fit_bayes
+    from stopwise.estimation.ml.mle import fit_mle
+    from stopwise.estimation.ml.point_fits import ML_POINT_FITS
     from stopwise.models.spec import build_model
 
     data = demo_solo_bundle()
@@ -104,6 +106,7 @@ def main() -> str:
         seed=0,
         progress=False,
         loo="trial",  # the sampler is measured here, not leave-one-subject-out refits
+        point_fits=ML_POINT_FITS,
     )
     total = time.perf_counter() - t0
     load1 = os.getloadavg()[0]

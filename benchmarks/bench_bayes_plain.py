@@ -34,10 +34,12 @@ from numpyro.infer import MCMC, NUTS
 import stopwise  # noqa: F401  (float64 before any JAX use)
 from benchmarks.bench_bayes import demo_solo_bundle
 from stopwise.data_schemas.arrays import STOPPING_ROW_FIELDS
-from stopwise.estimation import bayes
-from stopwise.estimation.loo_subject import without_subjects
-from stopwise.estimation.priors import resolve_priors
-from stopwise.estimation.truncation import auto_capped
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes import sampler
+from stopwise.estimation.bayes.loo_subject import without_subjects
+from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.bayes.truncation import auto_capped
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.models.spec import build_model
 
 SPEC = "crra+planner+logit"
@@ -83,7 +85,7 @@ def plain_fit(model: Any, data: Any) -> tuple[float, float]:
     seconds = time.perf_counter() - t0
     keep = {k: np.asarray(v) for k, v in samples.items() if k.startswith(("mu_", "sd_"))}
     ess = az.ess(az.from_dict(posterior=keep), method="bulk")
-    bayes.release_compiled_programs()
+    sampler.release_compiled_programs()
     return float(min(float(ess[k]) for k in keep)), seconds
 
 
@@ -98,6 +100,7 @@ def engine_fit(model: Any, data: Any) -> tuple[float, float]:
         seed=0,
         progress=False,
         loo="trial",
+        point_fits=ML_POINT_FITS,
     )
     rows = [
         r

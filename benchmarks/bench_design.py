@@ -20,8 +20,8 @@ from benchmarks._common import best_time
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import design_search as Q
 from stopwise.estimation import design_study as S
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 
 THETA = {"r": 0.4, "precision": 2.0}
 PLAN = S.Plan(p_survive=(0.6, 0.75, 0.9), trials=60, subjects=100)

@@ -34,16 +34,16 @@ from benchmarks import fit_ratios
 from benchmarks._common import machine
 from benchmarks.bench_loglik import numpy_rows_loglik
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.by_subject import fit_by_subject
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.problem import (
+from stopwise.estimation.ml.by_subject import fit_by_subject
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.problem import (
     PooledRows,
     make_layout,
     natural_np,
     rows_loglik,
     start_vector,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 from stopwise.models.stopping import Caps
 

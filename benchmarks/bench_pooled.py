@@ -6,7 +6,7 @@ and crra+logit (the ten-row price list of Holt & Laury 2002, 400 simulated subje
 model is fitted twice in the same run on the same data and seed: "before" starts at the
 model's start values with an identity mass matrix adapted in warm-up (the former default,
 ``init="start", dense_mass=False``), "after" at the ML estimate with the ML covariance as
-the inverse mass matrix (the default now, estimation/bayes_pooled.py). Invented data from
+the inverse mass matrix (the default now, estimation/bayes/pooled_start.py). Invented data from
 stopwise's own simulator; the values below are settings of the simulation, not checks.
 Run ``python -m benchmarks.run bench_pooled``.
 """
@@ -19,9 +19,10 @@ from typing import Any
 
 import stopwise
 from stopwise.commands.simulate import price_list_design
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.recovery import stopping_design
-from stopwise.models.simulate import simulate
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
+from stopwise.models.simulation import simulate
 
 CHAINS, DRAWS, WARMUP, SEED = 2, 500, 500, 1
 CASES: tuple[tuple[str, dict[str, float]], ...] = (
@@ -54,7 +55,15 @@ def simulated(spec: str, values: dict[str, float]) -> Any:
 def one_fit(spec: str, data: Any, **options: Any) -> dict[str, Any]:
     t0 = time.perf_counter()
     post = fit_bayes(
-        spec, data, chains=CHAINS, draws=DRAWS, warmup=WARMUP, seed=SEED, progress=False, **options
+        spec,
+        data,
+        chains=CHAINS,
+        draws=DRAWS,
+        warmup=WARMUP,
+        seed=SEED,
+        progress=False,
+        **options,
+        point_fits=ML_POINT_FITS,
     )
     d = post.diagnostics
     worst = post.params["ess_bulk"].idxmin()

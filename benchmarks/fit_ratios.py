@@ -37,8 +37,8 @@ from benchmarks._common import best_time, machine
 from benchmarks.bench_loglik import numpy_rows_loglik
 from benchmarks.plain_fit import myopic_rows_loglik
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.problem import make_layout, natural_np, start_vector
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.problem import make_layout, natural_np, start_vector
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 from stopwise.models.stopping import Caps
 

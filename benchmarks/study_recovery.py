@@ -17,7 +17,7 @@ import time
 import stopwise  # noqa: F401  (float64)
 from benchmarks._common import machine, write_section
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.recovery import Recovery, recover, stopping_design
+from stopwise.estimation.ml.recovery import Recovery, recover, stopping_design
 from stopwise.models.spec import build_model
 
 TRUTH = {"r": 0.4, "precision": 2.0}

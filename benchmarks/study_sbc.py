@@ -3,7 +3,7 @@ Bayesian fits: two solo models and one contest model.
 
 For each replication: draw the parameters from the default priors (truncated to the bounds),
 simulate a data set, sample the posterior with NUTS at the engine's default start (the ML
-estimate and Laplace covariance, estimation/bayes_pooled.py), thin to L = 99 draws (the first
+estimate and Laplace covariance, estimation/bayes/pooled_start.py), thin to L = 99 draws (the first
 99 of 2 x 50) and record the rank of the true value among them. If the sampler and the
 likelihood are right, ranks are uniform on 0..99. Ranks are binned into 10 bins; each bin
 count is Binomial(N, 1/10) under uniformity, and the 99% simultaneous band is the
@@ -34,9 +34,10 @@ from scipy import stats
 import stopwise
 from benchmarks._common import write_section
 from stopwise.commands.simulate import contest_design, price_list_design
-from stopwise.estimation import bayes
-from stopwise.estimation.priors import resolve_priors
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 CHAINS, WARMUP, DRAWS, THIN = 2, 250, 500, 10  # 2 x 50 thinned draws, first 99 kept
@@ -82,6 +83,7 @@ def one_replication(spec: str, model: Any, design: Any, key: Any) -> tuple[dict,
         progress=False,
         loo="trial",
         loo_refits=False,
+        point_fits=ML_POINT_FITS,
     )
     ranks = {}
     for s in model.params:

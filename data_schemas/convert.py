@@ -16,6 +16,7 @@ import pandas as pd
 
 from . import columns as C
 from .errors import StopwiseDataError, StopwiseInputError
+from .validate import check_source
 
 _DECISION_CORE = ("subject", "trial", "step", "action", "outcome", "bank")
 _TRIAL_CORE = ("subject", "trial", "draws", "busted", C.CENSORED)
@@ -131,8 +132,6 @@ def _require_constant(
 
 
 def _require_valid(frame: pd.DataFrame, fmt: str) -> None:
-    from .validate import check_source
-
     if not isinstance(frame, pd.DataFrame):
         raise StopwiseInputError(
             f"expected a pandas DataFrame of {fmt}-level data, got {type(frame).__name__}"

@@ -91,3 +91,10 @@ def scatter_rows(values: Any, cells: Cells, n_obs: int) -> np.ndarray:
     keep = cells.rows >= 0
     out[cells.rows[keep]] = values[keep]
     return out
+
+
+def subject_labels(data: Any) -> np.ndarray:
+    """The subjects' labels in subject-index order (0..n-1 when the data carry none)."""
+    if data.subject_labels is not None:
+        return np.asarray(data.subject_labels)
+    return np.arange(data.n_subjects)

@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from tqdm import tqdm
 
 SCHEDULER_ENV = "STOPWISE_SCHEDULER"
 AUTO_MIN_TASKS = 16
@@ -161,8 +162,6 @@ def _run_in_process(
     progress: bool,
     desc: str,
 ) -> StudyRun:
-    from tqdm import tqdm
-
     results: list[Any] = [None] * len(inputs)
     failures = []
     for i in tqdm(range(len(inputs)), desc=desc, file=sys.stderr, disable=not progress):
@@ -187,7 +186,6 @@ def _run_on_client(
     timeout_s: float | None = None,
 ) -> StudyRun:
     from dask.distributed import as_completed
-    from tqdm import tqdm
 
     sent = {k: client.scatter(v, broadcast=True, hash=False) for k, v in shared.items()}
     futures = [

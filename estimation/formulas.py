@@ -14,6 +14,7 @@ scaling (``center(age)`` subtracts the mean of the fitted rows, not of the new o
 
 from __future__ import annotations
 
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -189,8 +190,6 @@ def design_for_new_rows(formula: ParamFormula, frame: pd.DataFrame) -> np.ndarra
 
 def formula_variables(formulas: Sequence[str] | Mapping[str, str] | None) -> list[str]:
     """Bare column names mentioned on the right-hand sides (to pick covariate columns)."""
-    import re
-
     if not formulas:
         return []
     items = (

@@ -11,7 +11,7 @@ import pandas as pd
 from _setup import arguments, hive_design
 
 import stopwise
-from stopwise.estimation.ppc import shrinkage_table
+from stopwise.estimation.bayes.ppc import shrinkage_table
 from stopwise.figures.palette import save_figure
 from stopwise.figures.subjects import shrinkage_figure
 
@@ -45,7 +45,8 @@ print(posterior.summary())
 
 # Shrinkage: each keeper's own maximum-likelihood estimate against the hierarchical
 # posterior mean. Keepers with few or uninformative rounds move most towards the centre.
-table = shrinkage_table(posterior)
+own_fits = stopwise.fit("crra+myopic+logit", data, by="subject", se="hessian")
+table = shrinkage_table(posterior, own_fits)
 print(
     table[["subject", "param", "ml_estimate", "posterior_mean", "shrinkage"]]
     .round(3)

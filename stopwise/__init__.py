@@ -28,7 +28,7 @@ _EXPORTS: dict[str, str] = {
     "describe": "stopwise.describe:describe",
     # models
     "model": "stopwise.models.spec:build_model",
-    "simulate": "stopwise.models.simulate:simulate",
+    "simulate": "stopwise.models.simulation:simulate",
     # estimation
     "fit": "stopwise.api:fit",
     "compare": "stopwise.api:compare",

@@ -23,8 +23,6 @@ limit) removes its temporary file and raises ``OutputWriteError`` naming the fil
 
 from __future__ import annotations
 
-import json
-import math
 import os
 import stat
 import sys
@@ -33,10 +31,10 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.data_schemas.json_text import dumps_json
 
 NEW_FILE_MODE = 0o666
 KINDS = {
@@ -221,30 +219,6 @@ def write_atomic(path: str | os.PathLike[str], data: str | bytes) -> Path:
             Path(tmp).unlink(missing_ok=True)
             _PENDING.discard(tmp)
     return Path(path)
-
-
-def _jsonable(value: Any) -> Any:
-    """Convert numpy/pandas/JAX values to plain JSON types; NaN and inf become null."""
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, (pd.Series, pd.Index)):
-        return [_jsonable(v) for v in value.tolist()]
-    if hasattr(value, "shape") and hasattr(value, "tolist"):  # numpy / JAX arrays
-        return _jsonable(np.asarray(value).tolist())
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        value = float(value)
-        return value if math.isfinite(value) else None
-    return value
-
-
-def dumps_json(obj: Any) -> str:
-    return json.dumps(_jsonable(obj), indent=2, allow_nan=False) + "\n"
 
 
 def write_json(path: str | os.PathLike[str], obj: Any) -> None:

@@ -20,7 +20,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned
-from stopwise.estimation.learning_check import learning_warnings
+from stopwise.estimation.ml.learning_check import learning_warnings
 from stopwise.fit_checks import certify_fixed_points
 from stopwise.fit_record import fit_record
 from stopwise.models.base import Model
@@ -210,7 +210,7 @@ def fit(
 ) -> Any:
     """Fit ``model`` to ``data``. method="mle" (default): a Fit (or FitBySubject with
     by="subject"; a finite mixture with types=K); method="bayes":
-    stopwise.estimation.bayes.fit_bayes(model, data, **kw).
+    stopwise.estimation.bayes.fit.fit_bayes(model, data, **kw).
     ``se``: "auto" (clustered sandwich with several subjects), "robust", "hessian",
     "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]."""
     _check_method(method)
@@ -258,10 +258,12 @@ def _fit_selected(
     kw: dict[str, Any],
 ) -> Any:
     if method == "bayes":
-        from stopwise.estimation.bayes import fit_bayes
+        from stopwise.estimation.bayes.fit import fit_bayes
+        from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 
         if formulas:
             kw["formulas"] = formulas
+        kw.setdefault("point_fits", ML_POINT_FITS)  # the Bayes wing starts from ML fits
         return fit_bayes(the_model, bundle, seed=seed, **kw)
     types = kw.pop("types", None)
     if types is not None:
@@ -275,12 +277,12 @@ def _fit_selected(
                 "per-subject fit already gives every subject its own "
                 "parameters"
             )
-        from stopwise.estimation.by_subject import fit_by_subject
+        from stopwise.estimation.ml.by_subject import fit_by_subject
 
         return fit_by_subject(
             the_model, bundle, se="hessian" if se == "auto" else se, seed=seed, **kw
         )
-    from stopwise.estimation.identification import fit_identified
+    from stopwise.estimation.ml.identification import fit_identified
 
     return fit_identified(
         the_model,
@@ -306,7 +308,7 @@ def _fit_types(
     seed: int,
     kw: dict[str, Any],
 ) -> Any:
-    """A finite mixture of ``types`` types of the model (estimation/mixture.py): each
+    """A finite mixture of ``types`` types of the model (estimation/ml/mixture.py): each
     subject belongs to one type; shares and every type's parameters by maximum likelihood."""
     if isinstance(types, bool) or not isinstance(types, (int, np.integer)) or types < 2:
         raise StopwiseInputError(f"types={types!r}: expected a whole number of at least 2")
@@ -317,7 +319,7 @@ def _fit_types(
     unknown = sorted(k for k, v in kw.items() if k not in MIXTURE_OPTIONS and v is not None)
     if unknown:
         raise StopwiseInputError(f"mixture fit: unknown option(s) {unknown}")
-    from stopwise.estimation.mixture import fit_mixture
+    from stopwise.estimation.ml.mixture import fit_mixture
 
     options = {k: v for k, v in kw.items() if k in MIXTURE_OPTIONS and v is not None}
     return fit_mixture(the_model, bundle, k=int(types), se=se, seed=seed, **options)
@@ -333,7 +335,7 @@ def compare(
     **kw: Any,
 ) -> Any:
     """Compare several models on the same data. method="mle": a Comparison (AIC, BIC, LR,
-    Vuong, Clarke, k-fold CV log score); method="bayes": stopwise.estimation.bayes.
+    Vuong, Clarke, k-fold CV log score); method="bayes": stopwise.estimation.bayes.fit.
     compare_bayes(models, data, **kw)."""
     _check_method(method)
     if len(models) < 2:
@@ -351,10 +353,12 @@ def compare(
     for m in resolved:
         prepare_model(m, bundle)
     if method == "bayes":
-        from stopwise.estimation.bayes import compare_bayes
+        from stopwise.estimation.bayes.fit import compare_bayes
+        from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 
+        kw.setdefault("point_fits", ML_POINT_FITS)  # the Bayes wing starts from ML fits
         return compare_bayes(resolved, bundle, seed=seed, **kw)
-    from stopwise.estimation.compare import compare_fits
+    from stopwise.estimation.ml.compare import compare_fits
 
     formulas = kw.pop("formulas", None)
     result = compare_fits(
@@ -387,11 +391,11 @@ def recover(
     """Parameter recovery: simulate ``n_reps`` data sets from ``truths`` on ``design``
     (default: ``subjects`` x ``trials`` with the given survival probabilities), refit each,
     and report bias, RMSE, 95% coverage, the correlation of estimates and unidentified
-    parameters (stopwise.estimation.recovery). ``rivals=[spec, ...]`` also reports how often
+    parameters (stopwise.estimation.ml.recovery). ``rivals=[spec, ...]`` also reports how often
     AIC prefers the generating model."""
     from stopwise.data_schemas.bundle import to_lottery_data, to_stopping_data
-    from stopwise.estimation.recovery import recover as run_recovery
-    from stopwise.estimation.recovery import stopping_design
+    from stopwise.estimation.ml.recovery import recover as run_recovery
+    from stopwise.estimation.ml.recovery import stopping_design
 
     the_model = resolve_model(model, max_target)
     if design is None:

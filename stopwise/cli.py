@@ -111,7 +111,7 @@ def _version() -> str:
 
 def host_device_flags(current: str | None, chains: int) -> str | None:
     """XLA_FLAGS giving JAX one CPU device per sampling chain (at least DEFAULT_CHAINS), so
-    that NumPyro runs chains in parallel (chain_method "auto", estimation/bayes.py); None
+    that NumPyro runs chains in parallel (chain_method "auto", estimation/bayes/sampler.py); None
     when the user's XLA_FLAGS already choose a device count."""
     if current and DEVICE_FLAG in current:
         return None

@@ -204,7 +204,7 @@ def simulate_stopping(design: pd.DataFrame, population: pd.DataFrame, seed: int)
     """Decision rows: solo trials from crra+planner+logit with each diver's own (r,
     precision); contest trials from the symmetric logit QRE of crra+qre (CONTEST_TRUTH,
     targets capped at CONTEST_MAX_TARGET dives)."""
-    from stopwise.models.simulate import simulate
+    from stopwise.models.simulation import simulate
     from stopwise.models.spec import build_model
 
     solo = design[design["task"] == "solo"]
@@ -222,7 +222,7 @@ def simulate_stopping(design: pd.DataFrame, population: pd.DataFrame, seed: int)
 def simulate_lottery(design: pd.DataFrame, population: pd.DataFrame, seed: int) -> pd.DataFrame:
     """Choices from crra+logit (wealth LOTTERY_WEALTH) with each diver's r and lottery
     precision."""
-    from stopwise.models.simulate import simulate
+    from stopwise.models.simulation import simulate
     from stopwise.models.spec import build_model
 
     params = population[["subject", "r", "lottery_precision"]].rename(

@@ -14,8 +14,8 @@ import jax
 import jax.numpy as jnp
 
 from stopwise.models.base import Model
-from stopwise.models.contest.build import concept_log_probs
 from stopwise.models.contest.game import make_game, resolve_utility, target_distribution_stats
+from stopwise.models.contest.play import concept_log_probs
 
 SMOOTH_GOALS = ("efficiency", "bust", "risk", "outlay")
 

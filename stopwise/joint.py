@@ -3,7 +3,7 @@ stopping task), each with its own model, in one likelihood with parameters share
 
     ln L(z) = sum_d sum_{i in d} ll_d,i(theta_d(z))
 
-(engine: stopwise.estimation.joint.fit_joint). Subjects are matched across data sets by
+(engine: stopwise.estimation.ml.joint.fit_joint). Subjects are matched across data sets by
 their labels; the clustered sandwich treats all of a subject's rows as one cluster.
 """
 
@@ -17,9 +17,9 @@ import numpy as np
 
 from stopwise.api import prepare_model, resolve_data, resolve_model, select_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.joint import fit_joint as run_joint
-from stopwise.estimation.problem import subject_labels
-from stopwise.estimation.results import Fit
+from stopwise.estimation.cells import subject_labels
+from stopwise.estimation.ml.joint import fit_joint as run_joint
+from stopwise.estimation.ml.results import Fit
 
 
 def subject_overlap_note(bundles: Sequence[Any]) -> str:

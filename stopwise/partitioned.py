@@ -3,7 +3,7 @@ part by part (data_schemas/partitioned.py), each part a task of the study runner
 (estimation/distributed.py: in-process, a LocalCluster or an existing Dask cluster).
 
 A pooled maximum-likelihood fit of a solo stopping model without formulas is done on counts
-(estimation/counts.py): each part is validated and reduced to counts n_u on its worker, the
+(estimation/ml/counts.py): each part is validated and reduced to counts n_u on its worker, the
 counts are summed, and the reduction is certified on the first part's rows
 (``reduction_gap`` <= 1e-9 relative) before the fit. Every other fit, and a model that fails
 the certificate, says why and falls back to rows: the clean parts are gathered into one
@@ -25,7 +25,8 @@ from stopwise.data_schemas.errors import StopwiseDataError
 from stopwise.data_schemas.partitioned import check_part, is_partitioned, list_parts, merge_checks
 from stopwise.data_schemas.report import ValidationReport
 from stopwise.data_schemas.validate import validate as validate_source
-from stopwise.estimation.counts import (
+from stopwise.estimation.distributed import run_tasks
+from stopwise.estimation.ml.counts import (
     EXACT_TOLERANCE,
     check_and_count_part,
     counts_frame,
@@ -34,7 +35,6 @@ from stopwise.estimation.counts import (
     merge_counts,
     reduction_gap,
 )
-from stopwise.estimation.distributed import run_tasks
 
 __all__ = ["fit_parts", "is_partitioned", "load_parts", "validate", "validate_parts"]
 CERTIFY_ROWS = 20_000  # rows of the first part used to certify the count reduction

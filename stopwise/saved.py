@@ -2,7 +2,7 @@
 ``contest.counterfactual`` and ``report`` without refitting (``stopwise.load_result``).
 
 A saved pooled fit predicts with its point estimates theta: per condition c and step s the
-draw probability h_s(theta) and the stop-step distribution (estimation.mle.stop_step_table);
+draw probability h_s(theta) and the stop-step distribution (estimation.ml.response.stop_step_table);
 per row P(draw) = h_{step}(theta) of the row's condition. On data whose fingerprint equals
 the fitted data's (``data_sha256``) it certifies itself first: the log-likelihood
 sum_i log P(y_i | theta) recomputed from the rebuilt model must equal the saved one within
@@ -27,10 +27,10 @@ from stopwise.api import prepare_model, resolve_data, select_data
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import tables
-from stopwise.estimation.mle import stop_step_table
+from stopwise.estimation.ml.response import stop_step_table
 from stopwise.fit_record import bundle_fingerprint
 from stopwise.models.base import Model
-from stopwise.models.simulate import simulate
+from stopwise.models.simulation import simulate
 from stopwise.models.spec import build_model
 
 LOGLIK_RTOL = 1e-6

@@ -14,8 +14,9 @@ from scipy import special, stats
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.arrays import StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes import compare_bayes, fit_bayes
-from stopwise.estimation.priors import parse_prior, resolve_priors
+from stopwise.estimation.bayes.fit import compare_bayes, fit_bayes
+from stopwise.estimation.bayes.priors import parse_prior, resolve_priors
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.models.base import Model, ParamSpec
 
 PRIOR_A, PRIOR_B = 2.0, 3.0
@@ -91,6 +92,7 @@ def conjugate_fit(bernoulli_data):
         seed=3,
         progress=False,
         loo="trial",  # one row per trial: the exact leave-one-row-out check below
+        point_fits=ML_POINT_FITS,
     )
 
 
@@ -165,8 +167,26 @@ def test_predict_rows(conjugate_fit, bernoulli_data):
 
 
 def test_same_seed_same_draws(bernoulli_data):
-    a = fit_bayes(CONSTANT, bernoulli_data, chains=2, draws=50, warmup=50, seed=5, progress=False)
-    b = fit_bayes(CONSTANT, bernoulli_data, chains=2, draws=50, warmup=50, seed=5, progress=False)
+    a = fit_bayes(
+        CONSTANT,
+        bernoulli_data,
+        chains=2,
+        draws=50,
+        warmup=50,
+        seed=5,
+        progress=False,
+        point_fits=ML_POINT_FITS,
+    )
+    b = fit_bayes(
+        CONSTANT,
+        bernoulli_data,
+        chains=2,
+        draws=50,
+        warmup=50,
+        seed=5,
+        progress=False,
+        point_fits=ML_POINT_FITS,
+    )
     np.testing.assert_array_equal(a.draws("p"), b.draws("p"))
 
 
@@ -180,6 +200,7 @@ def test_hierarchical_short_run_warns_and_reports_subjects(bernoulli_data):
         warmup=60,
         seed=1,
         progress=False,
+        point_fits=ML_POINT_FITS,
     )
     # every hierarchical row says what it is; the bare name belongs to pooled fits only
     assert set(post.params.index) == {
@@ -206,7 +227,14 @@ def test_hierarchical_short_run_warns_and_reports_subjects(bernoulli_data):
 def test_compare_ranks_by_elpd(conjugate_fit, bernoulli_data):
     # 30% draws: a free p fits better than p near 1/2
     coin = fit_bayes(
-        NEAR_HALF, bernoulli_data, chains=2, draws=200, warmup=100, progress=False, loo="trial"
+        NEAR_HALF,
+        bernoulli_data,
+        chains=2,
+        draws=200,
+        warmup=100,
+        progress=False,
+        loo="trial",
+        point_fits=ML_POINT_FITS,
     )
     result = compare_bayes([coin, conjugate_fit])
     assert result.table.index[0] == "constant-draw"
@@ -242,21 +270,25 @@ def test_default_priors_documented_and_inside_bounds():
 
 def test_bad_options_are_input_errors(bernoulli_data):
     with pytest.raises(StopwiseInputError):
-        fit_bayes(CONSTANT, bernoulli_data, chains=0, progress=False)
+        fit_bayes(CONSTANT, bernoulli_data, chains=0, progress=False, point_fits=ML_POINT_FITS)
     with pytest.raises(StopwiseInputError, match="se"):
-        fit_bayes(CONSTANT, bernoulli_data, se="robust", progress=False)
+        fit_bayes(CONSTANT, bernoulli_data, se="robust", progress=False, point_fits=ML_POINT_FITS)
     with pytest.raises(StopwiseInputError, match="unknown option"):
-        fit_bayes(CONSTANT, bernoulli_data, thin=3, progress=False)
+        fit_bayes(CONSTANT, bernoulli_data, thin=3, progress=False, point_fits=ML_POINT_FITS)
     with pytest.raises(StopwiseInputError, match="outside"):
-        fit_bayes(CONSTANT, bernoulli_data, init={"p": 1.5}, progress=False)
+        fit_bayes(
+            CONSTANT, bernoulli_data, init={"p": 1.5}, progress=False, point_fits=ML_POINT_FITS
+        )
     with pytest.raises(StopwiseInputError, match="not a parameter"):
-        fit_bayes(CONSTANT, bernoulli_data, formulas=["r ~ 1"], progress=False)
+        fit_bayes(
+            CONSTANT, bernoulli_data, formulas=["r ~ 1"], progress=False, point_fits=ML_POINT_FITS
+        )
 
 
 def test_every_sampler_problem_gives_a_named_warning():
     import pandas as pd
 
-    from stopwise.estimation.posterior import sampler_warnings
+    from stopwise.estimation.bayes.diagnostics import sampler_warnings
 
     diag = pd.DataFrame(
         {"r_hat": [1.002, 1.05], "ess_bulk": [900.0, 150.0], "ess_tail": [800.0, 120.0]},
@@ -297,7 +329,14 @@ def test_repeated_fits_do_not_accumulate_compiled_programs(bernoulli_data):
     counts = []
     for seed in range(3):
         fit_bayes(
-            CONSTANT, bernoulli_data, chains=1, draws=20, warmup=20, seed=seed, progress=False
+            CONSTANT,
+            bernoulli_data,
+            chains=1,
+            draws=20,
+            warmup=20,
+            seed=seed,
+            progress=False,
+            point_fits=ML_POINT_FITS,
         )
         counts.append(mappings())
     assert counts[2] - counts[0] < 200, counts

@@ -1,4 +1,4 @@
-"""Leave-one-subject-out (estimation/loo_subject.py) against the exact answer of a tiny
+"""Leave-one-subject-out (estimation/bayes/loo_subject.py) against the exact answer of a tiny
 conjugate problem: PSIS terms, exact refits and K-fold by subject all reproduce
 log p(y_s | y_-s) computed in closed form."""
 
@@ -12,8 +12,9 @@ from scipy import special
 from test_bayes_engine import CONSTANT, bernoulli_bundle
 
 import stopwise  # noqa: F401  (float64 before jax is used)
-from stopwise.estimation import loo_subject
-from stopwise.estimation.bayes import compare_bayes, fit_bayes
+from stopwise.estimation.bayes import loo_subject
+from stopwise.estimation.bayes.fit import compare_bayes, fit_bayes
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 
 A, B = 2.0, 3.0  # Beta prior of the draw probability
 SETTINGS = dict(chains=2, draws=500, warmup=300, progress=False)
@@ -66,7 +67,14 @@ def tiny():
 @pytest.fixture(scope="module")
 def tiny_fit(tiny):
     data, _, _ = tiny
-    return fit_bayes(CONSTANT, data, priors={"p": f"beta({A}, {B})"}, seed=7, **SETTINGS)
+    return fit_bayes(
+        CONSTANT,
+        data,
+        priors={"p": f"beta({A}, {B})"},
+        seed=7,
+        **SETTINGS,
+        point_fits=ML_POINT_FITS,
+    )
 
 
 def test_default_unit_is_the_subject_and_matches_the_exact_answer(tiny, tiny_fit):
@@ -89,7 +97,9 @@ def test_default_unit_is_the_subject_and_matches_the_exact_answer(tiny, tiny_fit
 
 def refit_for(data_kw):
     def refit(data, seed):
-        return fit_bayes(CONSTANT, data, seed=seed, loo_refits=False, **data_kw)
+        return fit_bayes(
+            CONSTANT, data, seed=seed, loo_refits=False, **data_kw, point_fits=ML_POINT_FITS
+        )
 
     return refit
 
@@ -147,7 +157,9 @@ def test_without_subjects_renumbers_codes_and_labels(tiny):
 
 def test_compare_says_its_unit(tiny, tiny_fit):
     data, _, _ = tiny
-    other = fit_bayes(CONSTANT, data, seed=8, **SETTINGS)  # default prior: another model
+    other = fit_bayes(
+        CONSTANT, data, seed=8, **SETTINGS, point_fits=ML_POINT_FITS
+    )  # default prior: another model
     table = compare_bayes([tiny_fit, other], names=["beta prior", "default prior"])
     assert any("leave-one-subject-out" in n for n in table.notes)
     assert table.to_dict()["unit"] == "subject"

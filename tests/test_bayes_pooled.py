@@ -1,5 +1,5 @@
 """Pooled Bayesian fits start at the ML estimate with the ML covariance as inverse mass matrix
-(estimation/bayes_pooled.py): the mapping of ML coefficients to sampler sites, and default
+(estimation/bayes/pooled_start.py): the mapping of ML coefficients to sampler sites, and default
 settings that converge (issue 16: bulk ESS >= 0.8 x draws, R-hat <= 1.01 at 2 x 500)."""
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ import statsmodels.api as sm
 
 import stopwise
 from stopwise.data_schemas.arrays import StoppingData
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.bayes_pooled import (
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
     laplace_covariance,
     population_permutation,
@@ -20,9 +20,10 @@ from stopwise.estimation.bayes_pooled import (
     start_inverse_mass,
     start_sites,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
-from stopwise.models.simulate import simulate
+from stopwise.models.simulation import simulate
 
 TOTAL_DRAWS = 2 * 500
 ESS_GOAL = 0.8 * TOTAL_DRAWS  # issue 16's goal for pooled fits
@@ -94,7 +95,16 @@ def test_ml_coefficients_reach_the_right_sites_when_the_intercept_is_not_first()
 @pytest.fixture(scope="module")
 def logistic_fit():
     data = logistic_bundle(3000, seed=5)
-    post = fit_bayes(STEP_LOGISTIC, data, chains=2, draws=500, warmup=500, seed=2, progress=False)
+    post = fit_bayes(
+        STEP_LOGISTIC,
+        data,
+        chains=2,
+        draws=500,
+        warmup=500,
+        seed=2,
+        progress=False,
+        point_fits=ML_POINT_FITS,
+    )
     return data, post
 
 
@@ -126,6 +136,7 @@ def test_user_start_values_keep_the_former_start():
         seed=1,
         progress=False,
         init={"b0": 0.5, "b1": 0.0},
+        point_fits=ML_POINT_FITS,
     )
     assert post.run["init"] == "user values" and post.run["dense_mass"] is False
 
@@ -144,6 +155,7 @@ def test_crra_myopic_default_meets_the_pooled_goal(seed):
         warmup=500,
         seed=seed,
         progress=False,
+        point_fits=ML_POINT_FITS,
     )
     d = post.diagnostics
     # issue 16's goal (0.8 x draws) is met at some seeds only (measured min bulk ESS 725 to

@@ -9,15 +9,17 @@ import pytest
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.ppc import (
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.bayes.ppc import (
     end_distribution,
     observed_trial_ends,
     ppc_figure,
     shrinkage_table,
     stop_step_frame,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.by_subject import fit_by_subject
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 
@@ -55,6 +57,7 @@ def hierarchical_case():
         seed=2,
         progress=False,
         init="mle",
+        point_fits=ML_POINT_FITS,
     )
     return model, data, post
 
@@ -85,7 +88,7 @@ def test_ppc_figure_draws_panels(hierarchical_case, tmp_path):
 
 def test_shrinkage_pulls_subjects_towards_the_population(hierarchical_case):
     _, data, post = hierarchical_case
-    table = shrinkage_table(post)
+    table = shrinkage_table(post, fit_by_subject(post.model, post.data, se="hessian"))
     assert len(table) == 2 * data.n_subjects
     r = table[table["param"] == "r"].dropna(subset=["ml_estimate"])
     # partial pooling moves subject estimates towards the population (Gelman et al. 2013,
@@ -98,8 +101,10 @@ def test_shrinkage_pulls_subjects_towards_the_population(hierarchical_case):
 
 def test_shrinkage_needs_a_hierarchical_fit(hierarchical_case):
     model, data, _ = hierarchical_case
-    pooled = fit_bayes(model, data, chains=1, draws=20, warmup=20, progress=False)
+    pooled = fit_bayes(
+        model, data, chains=1, draws=20, warmup=20, progress=False, point_fits=ML_POINT_FITS
+    )
     with pytest.raises(StopwiseInputError, match="hierarchical"):
-        shrinkage_table(pooled)
+        shrinkage_table(pooled, None)
     frame = stop_step_frame(pooled, n_draws=10)
     assert frame[frame["level"] == "subject"]["subject"].nunique() == data.n_subjects

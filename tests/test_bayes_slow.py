@@ -9,9 +9,10 @@ import pytest
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.bayes import fit_bayes
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.bayes.fit import fit_bayes
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 
@@ -33,6 +34,7 @@ def test_flat_prior_posterior_matches_maximum_likelihood():
         warmup=500,
         seed=1,
         progress=False,
+        point_fits=ML_POINT_FITS,
     )
     assert post.converged, post.warnings
     for name in ("r", "precision"):
@@ -73,6 +75,7 @@ def test_hierarchical_recovers_population_mean_and_sd_of_r():
         seed=3,
         init="mle",
         progress=False,
+        point_fits=ML_POINT_FITS,
     )
     # population mean and sd of r on its natural scale, from the generating distribution
     draws = np.asarray(spec_r.to_natural(mu_z + sd_z * np.random.default_rng(0).normal(size=10**6)))

@@ -12,8 +12,11 @@ from scipy import stats
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation import bayes
-from stopwise.estimation.bayes_start import (
+from stopwise.estimation.bayes import density as bayes_density
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes import initial
+from stopwise.estimation.bayes import prepare as preparation
+from stopwise.estimation.bayes.subject_start import (
     CENTRED_MIN_ROWS,
     SD_FLOOR,
     SubjectStart,
@@ -24,7 +27,8 @@ from stopwise.estimation.bayes_start import (
     start_variances,
     summarise_subject_fits,
 )
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 
@@ -134,16 +138,16 @@ def test_centred_and_noncentred_sites_give_the_same_offsets_and_density(small_st
     )
     values = []
     for centred in ((False, False), (True, True), (True, False), (False, True)):
-        setup, args, *_ = bayes.prepare(model, data, centred=centred, **kw)
+        setup, args, *_ = preparation.prepare(model, data, centred=centred, **kw)
         sites = dict(common)
         for k, name in enumerate(("r", "precision")):
             if centred[k]:
                 sites[f"z_subject_{name}"] = mu[k] + u[:, k]
             else:
                 sites[f"eta_{name}"] = eta[:, k]
-        np.testing.assert_allclose(bayes.subject_offsets(setup, sites), u, atol=1e-12)
-        values.append(float(bayes.total_loglik(setup, sites, args)))
-        density = float(bayes.hierarchical_log_density(setup, sites))
+        np.testing.assert_allclose(bayes_density.subject_offsets(setup, sites), u, atol=1e-12)
+        values.append(float(bayes_density.total_loglik(setup, sites, args)))
+        density = float(bayes_density.hierarchical_log_density(setup, sites))
         # MVN(u) = prod_k N(eta_k) / c_k: the all-centred form equals the MVN density
         c = np.diag(np.asarray(sd[:, None] * chol))
         log_c = float(np.sum(np.log(c)[~np.asarray(centred)]))
@@ -163,6 +167,7 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
             draws=30,
             warmup=30,
             progress=False,
+            point_fits=ML_POINT_FITS,
         )
         expected = "centred" if form == "centred" else "non-centred"
         assert post.run["parametrisation"] == expected and post.run["dense_mass"] is True
@@ -172,7 +177,14 @@ def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
         assert any("R-hat cannot be computed" in w for w in post.warnings)  # one chain
         assert post.converged is False
     with pytest.raises(StopwiseInputError, match="parametrisation"):
-        bayes.fit_bayes(model, data, hierarchical=True, parametrisation="both", progress=False)
+        bayes.fit_bayes(
+            model,
+            data,
+            hierarchical=True,
+            parametrisation="both",
+            progress=False,
+            point_fits=ML_POINT_FITS,
+        )
 
 
 def test_start_variances_are_normal_approximations():
@@ -209,9 +221,9 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
 
     model, data = small_stopping
     notes: list[str] = []
-    start = bayes.hierarchical_start(model, data, None, notes)
+    start = initial.hierarchical_start(model, data, None, notes, ML_POINT_FITS)
     for centred in ((True, False), (False, True)):
-        setup, args, *_ = bayes.prepare(
+        setup, args, *_ = preparation.prepare(
             model,
             data,
             hierarchical=True,
@@ -220,9 +232,9 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
             pointwise="trial",
             centred=centred,
         )
-        blocks = bayes.initial_inverse_mass(setup, start, args, dense)
+        blocks = initial.initial_inverse_mass(setup, start, args, dense)
         info = initialize_model(
-            jax.random.PRNGKey(0), partial(bayes.numpyro_model, setup), model_args=(args,)
+            jax.random.PRNGKey(0), partial(bayes_density.numpyro_model, setup), model_args=(args,)
         )
         unconstrained = info.param_info.z
         covered = sorted(site for key in blocks for site in key)
@@ -233,7 +245,7 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
             assert block.shape == ((size, size) if block.ndim == 2 else (size,))
             diagonal = np.diag(block) if block.ndim == 2 else block
             assert np.all(np.isfinite(diagonal)) and np.all(diagonal > 0)
-        assert (bayes.population_sites(setup) in blocks) is dense
+        assert (bayes_density.population_sites(setup) in blocks) is dense
         subject_site = "z_subject_r" if centred[0] else "eta_r"
         expected = start_variances(start).subject[:, 0]
         if not centred[0]:
@@ -246,7 +258,7 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     # (16 demo subjects: not done in 10 minutes), so contest models skip those fits.
     import pandas as pd
 
-    from stopwise.estimation.mle import fit_mle
+    from stopwise.estimation.ml.mle import fit_mle
     from stopwise.models.contest.build import build_contest_model
 
     n, trials = 8, 10
@@ -267,16 +279,23 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     def refuse(*_args, **_kw):
         raise AssertionError("per-subject fits were run for a contest model")
 
-    monkeypatch.setattr(bayes, "per_subject_estimates", refuse)
+    monkeypatch.setattr(initial, "per_subject_estimates", refuse)
     notes: list[str] = []
-    start = bayes.hierarchical_start(model, data, None, notes)
+    start = initial.hierarchical_start(model, data, None, notes, ML_POINT_FITS)
     pooled = fit_mle(model, data, se=None, progress=False)
     expected = float(model.spec("precision").to_unconstrained(pooled.estimates()["precision"]))
     assert start.mu[0] == pytest.approx(expected, rel=1e-6)
     np.testing.assert_allclose(start.subject_z, expected, rtol=1e-6)
     assert any("contest model" in note for note in notes)
     post = bayes.fit_bayes(
-        model, data, hierarchical=True, chains=1, draws=10, warmup=10, progress=False
+        model,
+        data,
+        hierarchical=True,
+        chains=1,
+        draws=10,
+        warmup=10,
+        progress=False,
+        point_fits=ML_POINT_FITS,
     )
     assert np.all(np.isfinite(post.draws("precision: population median")))
     assert any("contest model" in note for note in post.notes)

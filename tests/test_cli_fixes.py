@@ -16,10 +16,10 @@ import pytest
 import stopwise
 from stopwise import cli
 from stopwise.data_schemas.convert import decisions_to_trials, trials_to_decisions
-from stopwise.estimation.covariance import covariance_for
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.optimize import GRAD_TOL, OptimumRecord, optimizer_message
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.covariance import covariance_for
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.optimize import GRAD_TOL, OptimumRecord, optimizer_message
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 SNAKE_CASE = re.compile(r"^[a-z][a-z0-9_.]*$")

@@ -14,9 +14,10 @@ from scipy import stats
 
 import stopwise  # noqa: F401  (float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation import compare as compare_module
-from stopwise.estimation.compare import compare_fits
-from stopwise.estimation.mle import _strip
+from stopwise.estimation.ml import compare as compare_module
+from stopwise.estimation.ml.compare import compare_fits
+from stopwise.estimation.ml.recovery import stopping_design
+from stopwise.estimation.ml.response import _strip
 from stopwise.estimation.nesting import classify, verify_nesting
 from stopwise.estimation.pair_tests import (
     chi_bar_square_sf,
@@ -24,7 +25,6 @@ from stopwise.estimation.pair_tests import (
     likelihood_ratio,
     vuong_test,
 )
-from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 LOGIT = "linear+myopic+logit"

@@ -1,4 +1,4 @@
-"""The count reduction (estimation/counts.py) against the row-level computation.
+"""The count reduction (estimation/ml/counts.py) against the row-level computation.
 
 The reference is the ordinary row-level likelihood and fit of the same rows (a separate code
 path: every row evaluated, no grouping). Identity checked: sum_i ll_i = sum_u n_u ll_u
@@ -15,9 +15,9 @@ import pytest
 
 import stopwise
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation import counts as K
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml import counts as K
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
 
 

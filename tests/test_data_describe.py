@@ -7,8 +7,8 @@ import json
 import pandas as pd
 import pytest
 
-from stopwise._io import dumps_json
 from stopwise.cli import main
+from stopwise.data_schemas.json_text import dumps_json
 from stopwise.data_schemas.load import load
 from stopwise.describe import describe
 from stopwise.models.normative import expected_bank

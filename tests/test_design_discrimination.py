@@ -14,8 +14,8 @@ from stopwise.data_schemas.bundle import to_lottery_data, to_stopping_data
 from stopwise.estimation import design_discrimination as X
 from stopwise.estimation import design_info as D
 from stopwise.estimation import design_study as S
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 from tests.test_design_simulation import price_list
 
 TRUTH = {"r": 0.4, "precision": 2.0}

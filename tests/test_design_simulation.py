@@ -13,8 +13,8 @@ from scipy import stats
 import stopwise
 from stopwise.data_schemas.bundle import to_lottery_data, to_stopping_data
 from stopwise.estimation import design_study as S
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 from tests.designs import holt_laury_columns
 
 FAST_REPS = 60

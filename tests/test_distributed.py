@@ -23,7 +23,7 @@ import stopwise
 from stopwise import cli
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import distributed as D
-from stopwise.estimation.recovery import recover, stopping_design
+from stopwise.estimation.ml.recovery import recover, stopping_design
 
 CLUSTER_START_S = 120
 STUDY_TIMEOUT_S = 300

@@ -1,4 +1,4 @@
-"""The ML engine's compiled programs (estimation/problem.py): the per-step program and the
+"""The ML engine's compiled programs (estimation/ml/problem.py): the per-step program and the
 once-per-fit row scores agree with the previous combined value/gradient/Hessian/row-Jacobian
 function, and refits of one model share their compiled programs."""
 
@@ -15,11 +15,11 @@ import pytest
 
 import stopwise
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation import problem as engine
-from stopwise.estimation.compare import cv_log_score
-from stopwise.estimation.mle import build_problem, fit_mle
-from stopwise.estimation.optimize import newton_polish
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml import problem as engine
+from stopwise.estimation.ml.compare import cv_log_score
+from stopwise.estimation.ml.mle import build_problem, fit_mle
+from stopwise.estimation.ml.optimize import newton_polish
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 from stopwise.models.stopping import computed_once, gather_rows
 

@@ -12,7 +12,7 @@ from contract import DESIGN_KEYS
 import stopwise
 from stopwise import cli
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 
@@ -246,7 +246,7 @@ def test_fit_types_is_the_mixture_engine_with_subject_type_probabilities(
 ) -> None:
     import numpy as np
 
-    from stopwise.estimation.mixture import fit_mixture
+    from stopwise.estimation.ml.mixture import fit_mixture
 
     out = tmp_path / "types.json"
     argv = ["fit", str(two_type_file), "--model", "linear+myopic+logit", "--types", "2"]

@@ -13,12 +13,12 @@ from scipy.special import logsumexp
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.by_subject import fit_by_subject
-from stopwise.estimation.compare import compare_fits
-from stopwise.estimation.joint import fit_joint
-from stopwise.estimation.mixture import fit_mixture
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import recover, stopping_design
+from stopwise.estimation.ml.by_subject import fit_by_subject
+from stopwise.estimation.ml.compare import compare_fits
+from stopwise.estimation.ml.joint import fit_joint
+from stopwise.estimation.ml.mixture import fit_mixture
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import recover, stopping_design
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.spec import build_model
 

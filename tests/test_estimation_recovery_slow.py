@@ -8,7 +8,7 @@ import pytest
 
 import stopwise  # noqa: F401  (float64)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.recovery import recover, stopping_design
+from stopwise.estimation.ml.recovery import recover, stopping_design
 from stopwise.models.spec import build_model
 
 P_SURVIVE = (0.6, 0.75, 0.9)

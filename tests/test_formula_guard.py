@@ -20,7 +20,7 @@ from stopwise.cli import main
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.formula_guard import check_formula_rhs, safe_namespace
 from stopwise.estimation.formulas import design_for_new_rows
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 CORPUS = Path(__file__).parent / "adversarial" / "formulas.tsv"

@@ -178,7 +178,7 @@ def test_well_identified_fit_says_so() -> None:
 
 
 def test_hessian_directions_flat_and_downward() -> None:
-    from stopwise.estimation.identification import direction_reason, null_directions
+    from stopwise.estimation.ml.identification import direction_reason, null_directions
 
     # diag(4, 0, -2): eigenvalues relative to the largest |.| are 1, 0 and -0.5 (arithmetic).
     smallest, found = null_directions(np.diag([4.0, 0.0, -2.0]))

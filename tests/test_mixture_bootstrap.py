@@ -11,7 +11,7 @@ import pytest
 
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.mixture import (
+from stopwise.estimation.ml.mixture import (
     MixtureRows,
     coinciding_types,
     fit_mixture,
@@ -19,8 +19,8 @@ from stopwise.estimation.mixture import (
     relabel,
     shares_of,
 )
-from stopwise.estimation.problem import make_layout
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.problem import make_layout
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 LOGIT = "linear+myopic+logit"

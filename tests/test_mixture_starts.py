@@ -13,10 +13,10 @@ import pytest
 
 import stopwise  # noqa: F401  (float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.estimation.mixture import fit_mixture
-from stopwise.estimation.optimize import OptimumRecord
-from stopwise.estimation.recovery import stopping_design
-from stopwise.estimation.start_accounting import account_starts
+from stopwise.estimation.ml.mixture import fit_mixture
+from stopwise.estimation.ml.optimize import OptimumRecord
+from stopwise.estimation.ml.recovery import stopping_design
+from stopwise.estimation.ml.start_accounting import account_starts
 from stopwise.models.spec import build_model
 
 LOGIT = "linear+myopic+logit"
@@ -69,7 +69,7 @@ def test_mixture_note_and_summary_count_every_start(two_types) -> None:
 
 
 def test_reordering_the_types_keeps_the_record_of_every_start(two_types) -> None:
-    from stopwise.estimation.mixture import _order_types, relabel
+    from stopwise.estimation.ml.mixture import _order_types, relabel
 
     fit = fit_mixture(build_model(LOGIT), two_types, k=2, starts=8, max_iter=2, se="hessian")
     problem = fit.extras["problem"]

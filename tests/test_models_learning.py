@@ -17,7 +17,7 @@ from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.load import load
 from stopwise.data_schemas.validate import validate
-from stopwise.estimation.learning_check import learning_warnings
+from stopwise.estimation.ml.learning_check import learning_warnings
 from stopwise.models.learning import check_learning_data, learner_conditions, predictive_chance
 from stopwise.models.spec import build_model
 from stopwise.models.stopping import Conditions, log_reach_probabilities, step_chances

@@ -15,7 +15,7 @@ from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.load import load
 from stopwise.data_schemas.validate import validate
 from stopwise.describe import describe
-from stopwise.estimation.mle import stop_step_table
+from stopwise.estimation.ml.response import stop_step_table
 from stopwise.models.noise import NOISE
 from stopwise.models.pool_normative import pool_chances, pool_dynamic_programme
 from stopwise.models.spec import build_model

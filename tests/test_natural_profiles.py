@@ -14,9 +14,9 @@ import pytest
 import stopwise
 from stopwise import cli
 from stopwise.api import resolve_data
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.natural_profiles import natural_profile_rows
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.natural_profiles import natural_profile_rows
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 LOGIT = "linear+myopic+logit"

@@ -16,7 +16,7 @@ import stopwise
 from stopwise import cli
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned, list_parts
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.partitioned import validate_parts
 
 # Cut points fall inside trials, so trials span the seams between parts.

@@ -12,8 +12,9 @@ from designs import holt_laury_columns
 import stopwise  # enables float64 before jax is used
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.mle import fit_mle, stop_step_table
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
+from stopwise.estimation.ml.response import stop_step_table
 from stopwise.models.spec import build_model
 
 LOGIT = "linear+myopic+logit"

@@ -1,4 +1,4 @@
-"""The multistart design's own Sobol generator (estimation/sobol.py) against scipy's."""
+"""The multistart design's own Sobol generator (estimation/ml/sobol.py) against scipy's."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from scipy.stats import qmc
 
-from stopwise.estimation.optimize import start_design
-from stopwise.estimation.sobol import MAX_DIM, direction_numbers, scrambled_sobol
+from stopwise.estimation.ml.optimize import start_design
+from stopwise.estimation.ml.sobol import MAX_DIM, direction_numbers, scrambled_sobol
 
 
 @pytest.mark.parametrize("d", [1, 2, 3, 6, 13, 27, MAX_DIM])
@@ -48,7 +48,7 @@ def test_start_design_keeps_its_starts_and_does_not_load_scipy_stats() -> None:
     assert np.array_equal(start_design(z0, 4, 11), expected)
     code = (
         "import sys, numpy as np\n"
-        "from stopwise.estimation.optimize import start_design\n"
+        "from stopwise.estimation.ml.optimize import start_design\n"
         "start_design(np.zeros(2), 3, 0)\n"
         "print('scipy.stats' in sys.modules)\n"
     )

@@ -1,4 +1,4 @@
-"""The planner-cap check of Bayesian fits (estimation/truncation.py)."""
+"""The planner-cap check of Bayesian fits (estimation/bayes/truncation.py)."""
 
 from __future__ import annotations
 
@@ -10,9 +10,10 @@ import pytest
 import stopwise  # noqa: F401  (enables float64 before jax is used)
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation import bayes, truncation
-from stopwise.estimation.recovery import stopping_design
-from stopwise.estimation.truncation import (
+from stopwise.estimation.bayes import fit as bayes
+from stopwise.estimation.bayes import prepare as preparation
+from stopwise.estimation.bayes import truncation
+from stopwise.estimation.bayes.truncation import (
     AUTO_EXTRA_STEPS,
     auto_capped,
     default_cap_reference,
@@ -20,6 +21,8 @@ from stopwise.estimation.truncation import (
     truncation_check,
     truncation_warnings,
 )
+from stopwise.estimation.ml.point_fits import ML_POINT_FITS
+from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
 
@@ -65,7 +68,7 @@ def pooled_samples(r_values, precision=2.0):
 
 def check_for(data, cap, r_values):
     model = build_model("crra+planner+logit", max_target=cap)
-    setup, args, *_ = bayes.prepare(
+    setup, args, *_ = preparation.prepare(
         model, data, hierarchical=False, formulas=None, priors=None, pointwise="trial"
     )
     return truncation_check(setup, args, data, pooled_samples(r_values))
@@ -98,6 +101,7 @@ def test_fit_bayes_reports_the_check(planner_data):
         draws=20,
         warmup=20,
         progress=False,
+        point_fits=ML_POINT_FITS,
     )
     check = post.run["truncation_check"]
     assert check["max_target"] == cap and check["draws_checked"] == 20
@@ -105,7 +109,13 @@ def test_fit_bayes_reports_the_check(planner_data):
     assert f"planner cap max_target={cap}" in post.summary()
     assert post.to_dict()["sampler"]["truncation_check"] == check
     untruncated = bayes.fit_bayes(
-        "crra+myopic+logit", planner_data, chains=1, draws=10, warmup=10, progress=False
+        "crra+myopic+logit",
+        planner_data,
+        chains=1,
+        draws=10,
+        warmup=10,
+        progress=False,
+        point_fits=ML_POINT_FITS,
     )
     assert untruncated.run["truncation_check"] is None
 
@@ -121,7 +131,13 @@ def test_automatic_cap_is_only_for_planners_without_a_cap(planner_data):
 
 def test_fit_bayes_uses_the_checked_automatic_cap(planner_data):
     post = bayes.fit_bayes(
-        "crra+planner+logit", planner_data, chains=1, draws=20, warmup=20, progress=False
+        "crra+planner+logit",
+        planner_data,
+        chains=1,
+        draws=20,
+        warmup=20,
+        progress=False,
+        point_fits=ML_POINT_FITS,
     )
     assert post.run["planner_cap"] == "auto"
     check = post.run["truncation_check"]
@@ -129,7 +145,9 @@ def test_fit_bayes_uses_the_checked_automatic_cap(planner_data):
     assert check["max_abs_loglik_difference"] < check["tolerance"]
     assert any("planner cap: max_target=" in note for note in post.notes)
     with pytest.raises(StopwiseInputError, match="planner_cap"):
-        bayes.fit_bayes("crra+planner+logit", planner_data, planner_cap="short")
+        bayes.fit_bayes(
+            "crra+planner+logit", planner_data, planner_cap="short", point_fits=ML_POINT_FITS
+        )
 
 
 def test_a_failed_automatic_cap_refits_at_the_default_cap(monkeypatch):
@@ -144,7 +162,9 @@ def test_a_failed_automatic_cap_refits_at_the_default_cap(monkeypatch):
     ]
     data = to_stopping_data(pd.concat(frames, ignore_index=True))
     monkeypatch.setattr(truncation, "AUTO_EXTRA_STEPS", 0)
-    post = bayes.fit_bayes(model, data, chains=1, draws=15, warmup=15, progress=False)
+    post = bayes.fit_bayes(
+        model, data, chains=1, draws=15, warmup=15, progress=False, point_fits=ML_POINT_FITS
+    )
     assert post.run["planner_cap"] == "exact" and post.run["truncation_check"] is None
     assert "refitted at the default cap" in post.notes[0]
     assert post.model.options["max_target"] is None

@@ -46,6 +46,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.utility import UTILITIES
 
 CAP_TOLERANCE = 1e-12
 CAP_LIMIT = 1000
@@ -100,12 +101,8 @@ _BUILTIN_UTILITIES: dict[str, Utility] = {"linear": _linear, "crra": _crra}
 def resolve_utility(name: str) -> Utility:
     """The utility function ``u(x, theta)`` of the risk-model family ``name``.
 
-    Uses stopwise.models.utility.UTILITIES when present, else the built-in linear/CRRA.
+    The families of stopwise.models.utility.UTILITIES, else the built-in linear/CRRA.
     """
-    try:
-        from stopwise.models.utility import UTILITIES  # written by the models engineer
-    except ImportError:
-        UTILITIES = {}
     if name in UTILITIES:
         return UTILITIES[name].fn
     if name in _BUILTIN_UTILITIES:

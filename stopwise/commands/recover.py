@@ -5,7 +5,7 @@ x ``--trials`` trials cycling through ``--p-survive`` in a shuffled order per su
 models: the ten-row price list of ``stopwise simulate``), refit each and report per parameter
 bias = mean(estimate) - truth, RMSE, the share of 95% intervals that cover the truth, the
 correlation of estimates across replications and the parameters this design identifies
-poorly (stopwise.estimation.recovery). ``--rival SPEC`` also reports how often AIC prefers
+poorly (stopwise.estimation.ml.recovery). ``--rival SPEC`` also reports how often AIC prefers
 the generating model.
 """
 

@@ -320,7 +320,7 @@ def population(
 
 
 def run(args: argparse.Namespace) -> int:
-    from stopwise.models.simulate import check_simulation_size, simulate
+    from stopwise.models.simulation import check_simulation_size, simulate
 
     check_output_path(args.out)
     check_simulation_size(

@@ -2,7 +2,7 @@
 
 Shrinkage of a subject's estimate towards the population centre m is drawn as an arrow from
 the per-subject ML estimate to the hierarchical posterior mean; the share shrunk is
-1 - (posterior mean - m) / (ML estimate - m) (stopwise.estimation.ppc.shrinkage_table).
+1 - (posterior mean - m) / (ML estimate - m) (stopwise.estimation.bayes.ppc.shrinkage_table).
 """
 
 from __future__ import annotations
@@ -55,7 +55,7 @@ def subject_estimates_figure(params: pd.DataFrame, max_se: float | None = None) 
 def shrinkage_figure(table: pd.DataFrame) -> Figure:
     """Per parameter, one row per subject (sorted by ML estimate): an arrow from the
     per-subject ML estimate to the hierarchical posterior mean, the population median as a
-    dashed line. ``table``: stopwise.estimation.ppc.shrinkage_table (columns subject, param,
+    dashed line. ``table``: stopwise.estimation.bayes.ppc.shrinkage_table (columns subject, param,
     ml_estimate, posterior_mean, population_median)."""
     names = list(dict.fromkeys(table["param"]))
     fig = new_figure(4.2 * len(names), max(3.5, 0.18 * table["subject"].nunique() + 1.5))

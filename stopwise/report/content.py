@@ -17,7 +17,7 @@ import pandas as pd
 
 from stopwise.data_schemas.load import load
 from stopwise.describe import describe
-from stopwise.estimation.results import DISCLAIMER
+from stopwise.estimation.ml.results import DISCLAIMER
 from stopwise.estimation.tables import side_by_side
 from stopwise.figures.comparison import comparison_figure
 from stopwise.report.blocks import Block, Inputs, Section, figure_block

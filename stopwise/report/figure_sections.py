@@ -10,7 +10,7 @@ import pandas as pd
 
 from stopwise.contest import counterfactual
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.posterior import Posterior
+from stopwise.estimation.bayes.posterior import Posterior
 from stopwise.figures.bayes import posterior_figure
 from stopwise.figures.contest import (
     CONTEST_CONDITION,

@@ -1,0 +1,366 @@
+"""Model comparison on one data set.
+
+* Information criteria: AIC = 2k - 2 ln L (Akaike 1974), BIC = k ln n - 2 ln L (Schwarz 1978).
+* Every pair is first classified as nested (restriction named), overlapping or non-nested
+  (estimation/nesting.py); nested pairs get a likelihood-ratio test with the chi2 or
+  chi-bar-square reference, the others Vuong's and Clarke's tests, and pairs whose
+  per-subject log-likelihoods coincide read "indistinguishable" (estimation/pair_tests.py).
+* Subject-level k-fold cross-validation: subjects are split into k folds; each fold's
+  held-out log-likelihood is computed at the estimate from the other folds; the log score
+  is the sum over folds (higher is better). Folds use the full fit's multistart design; a
+  fold whose fit does not converge makes the score NaN, with a warning.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from stopwise.estimation.ml.identification import fit_identified
+from stopwise.estimation.ml.mle import build_problem, optimise, start_design
+from stopwise.estimation.ml.response import _strip
+from stopwise.estimation.ml.results import DISCLAIMER, Fit
+from stopwise.estimation.nesting import Relation, classify, verify_nesting
+from stopwise.estimation.pair_tests import (
+    LEVEL,
+    clarke_test,
+    indistinguishable,
+    likelihood_ratio,
+    vuong_test,
+)
+
+
+@dataclass
+class Comparison:
+    """Table of fits (one row per model) and pairwise tests."""
+
+    table: pd.DataFrame
+    tests: pd.DataFrame
+    fits: list[Fit]
+    notes: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "models": self.table.reset_index().to_dict(orient="records"),
+            "tests": self.tests.to_dict(orient="records"),
+            "fits": [f.to_dict() for f in self.fits],
+            "notes": list(self.notes),
+            "warnings": list(self.warnings),
+        }
+
+    def summary(self) -> str:
+        lines = [
+            "Model comparison (best AIC first)",
+            self.table.to_string(float_format=lambda v: f"{v:.3f}"),
+        ]
+        if len(self.tests):
+            lines += [
+                "",
+                "Pairwise tests",
+                self.tests.to_string(index=False, float_format=lambda v: f"{v:.4g}"),
+            ]
+        lines += [f"Note: {n}" for n in self.notes]
+        lines += [f"Warning: {w}" for w in self.warnings]
+        for f in self.fits:
+            lines += [f"Warning ({f.model}): {w}" for w in f.warnings]
+        lines.append(DISCLAIMER)
+        return "\n".join(lines)
+
+    def __str__(self) -> str:
+        return self.summary()
+
+
+def subject_logliks(fit: Fit) -> np.ndarray:
+    """ln L_g at the estimate for every subject g."""
+    problem = fit.extras["problem"]
+    return problem.cluster_loglik(fit.z)
+
+
+@dataclass
+class CrossValidation:
+    """Subject-level k-fold log score: the sum over folds, NaN when a fold's fit did not
+    converge (a score from a non-converged optimiser would come from start values)."""
+
+    score: float
+    fold_logliks: list[float]
+    fold_converged: list[bool]
+    warnings: list[str]
+
+
+def cv_log_score(
+    model: Any,
+    data: Any,
+    folds: int,
+    seed: int,
+    starts: int = 3,
+    formulas: Any = None,
+    covariate_frame: Any = None,
+    max_iter: int = 200,
+) -> CrossValidation:
+    """Sum over folds of the held-out subjects' log-likelihood at the estimate from the
+    other folds (module docstring); every fold uses the full fit's multistart design."""
+    problem, _layout, _ = build_problem(
+        model, data, formulas=formulas, covariate_frame=covariate_frame
+    )
+    g = problem.n_clusters
+    rng = np.random.default_rng(seed)
+    fold_of = rng.permutation(np.arange(g) % folds)
+    starts_m = start_design(problem.z0, max(int(starts), 1), seed)
+    held_out, converged, warnings = [], [], []
+    for f in range(folds):
+        train = problem.cluster_weights((fold_of != f).astype(float))
+        best, _ = optimise(problem, starts_m, max_iter, weights=train)
+        converged.append(bool(best.converged))
+        held_out.append(float(problem.cluster_loglik(best.z)[fold_of == f].sum()))
+        if not best.converged:
+            warnings.append(
+                f"{model.name}: cross-validation fold {f + 1} of {folds} did not converge "
+                f"from {len(starts_m)} starts (max |gradient| {best.grad_norm:.3g}); its "
+                "log score is not reported (NaN)"
+            )
+    score = float(np.sum(held_out)) if all(converged) else float("nan")
+    return CrossValidation(score, held_out, converged, warnings)
+
+
+PAIR_COLUMNS = [
+    "model_a",
+    "model_b",
+    "relation",
+    "restriction",
+    "test",
+    "statistic",
+    "df",
+    "p_value",
+    "favours",
+]
+
+
+def pairwise_tests(
+    fits: Sequence[Fit], models: Sequence[Any], data: Any = None, verify: bool = True
+) -> tuple[pd.DataFrame, list[str]]:
+    """Every pair classified (estimation/nesting.py), then tested (estimation/pair_tests.py):
+    a likelihood-ratio test for verified nested pairs, Vuong and Clarke otherwise, and
+    "indistinguishable" when the per-subject differences vanish."""
+    notes: list[str] = []
+    rows: list[dict[str, Any]] = []
+    per_subject = [subject_logliks(f) for f in fits]
+    for i in range(len(fits)):
+        for j in range(i + 1, len(fits)):
+            relation = classify(models[i], models[j])
+            unconverged = [f.model for f in (fits[i], fits[j]) if not f.converged]
+            if unconverged:
+                rows.append(_refused_row(relation, fits[i], fits[j], unconverged))
+                continue
+            if relation.kind == "nested":
+                pair = (i, j)
+                small, big = pair[relation.small], pair[relation.big]
+                lr_rows, lr_notes, ok = _nested_rows(
+                    relation, fits[small], fits[big], models[big], data, verify
+                )
+                notes += lr_notes
+                if ok:
+                    rows += lr_rows
+                    continue
+                relation = classify_fallback(relation)
+            rows += _non_nested_rows(relation, fits[i], fits[j], per_subject[i], per_subject[j])
+            if relation.kind == "overlapping":
+                notes.append(
+                    f"{fits[i].model} and {fits[j].model} overlap: {relation.reason}; Vuong's "
+                    "test applies once the two differ on these data (Vuong 1989, from memory)"
+                )
+    return pd.DataFrame(rows, columns=PAIR_COLUMNS), notes
+
+
+def _refused_row(relation: Relation, a: Fit, b: Fit, unconverged: list[str]) -> dict[str, Any]:
+    """No test between fits whose optimiser did not converge: their log-likelihoods are not
+    maxima, so any statistic would compare wherever the optimisers stopped."""
+    return {
+        "model_a": a.model,
+        "model_b": b.model,
+        "relation": relation.kind,
+        "restriction": relation.restriction_text(),
+        "test": "none",
+        "statistic": np.nan,
+        "df": np.nan,
+        "p_value": np.nan,
+        "favours": f"refused: {' and '.join(unconverged)} did not converge",
+    }
+
+
+def classify_fallback(relation: Relation) -> Relation:
+    """A nesting claim that failed its check is tested as non-nested."""
+    return Relation("non-nested", reason="claimed nesting not confirmed on the data")
+
+
+def _nested_rows(
+    relation: Relation, small: Fit, big: Fit, big_model: Any, data: Any, verify: bool
+) -> tuple[list[dict[str, Any]], list[str], bool]:
+    """The likelihood-ratio row of a nested pair, after two checks: the restriction
+    reproduces the small model's log-likelihood (when the fits have no formulas), and the
+    big fit is not below the small one."""
+    notes = []
+    text = relation.restriction_text()
+    if verify and data is not None and not small.extras.get("designs"):
+        small_theta = {**dict(small.extras["layout"].fixed), **small.estimates()}
+        agree, gap = verify_nesting(
+            big_model, small_theta, relation.restriction, _strip(data), small.loglik
+        )
+        if not agree:
+            notes.append(
+                f"{small.model} is not {big.model} at {text} on these data (log-likelihoods "
+                f"differ by {gap:.3g}): tested as non-nested"
+            )
+            return [], notes, False
+        verified = "verified on the data"
+    else:
+        verified = "by structure (formula fits are not re-evaluated)"
+    base = {
+        "model_a": small.model,
+        "model_b": big.model,
+        "relation": "nested",
+        "restriction": text,
+    }
+    tolerance = 1e-6 * (1.0 + abs(small.loglik))
+    if big.loglik < small.loglik - tolerance:
+        notes.append(
+            f"{big.model} fits worse than its restriction {small.model} "
+            f"({big.loglik:.6g} < {small.loglik:.6g}): its optimiser stopped short; the "
+            "likelihood-ratio test is refused (refit with more starts)"
+        )
+        row = {**base, "test": "likelihood ratio", "statistic": np.nan, "df": np.nan}
+        return [{**row, "p_value": np.nan, "favours": "refused"}], notes, True
+    free_in_big = set(big.extras["layout"].free) if "layout" in big.extras else None
+    restricted = [p for p in relation.restriction if free_in_big is None or p in free_in_big]
+    df = len(restricted)
+    if df == 0:
+        notes.append(
+            f"every parameter that links {small.model} to {big.model} is held fixed in the "
+            "bigger fit (not identified): the two are compared as non-nested"
+        )
+        return [], notes, False
+    boundary = [p for p in relation.boundary if p in restricted]
+    lr = likelihood_ratio(small.loglik, big.loglik, df, len(boundary))
+    favours = big.model if float(lr["p_value"]) < LEVEL else small.model
+    notes.append(
+        f"{small.model} is nested in {big.model} at {text} ({verified}); reference "
+        f"distribution {lr['reference']}"
+    )
+    row = {**base, "test": "likelihood ratio", "statistic": lr["statistic"], "df": df}
+    return [{**row, "p_value": lr["p_value"], "favours": favours}], notes, True
+
+
+def _non_nested_rows(
+    relation: Relation, a: Fit, b: Fit, ll_a: np.ndarray, ll_b: np.ndarray
+) -> list[dict[str, Any]]:
+    """Vuong and Clarke rows, or one "indistinguishable" row when the differences vanish."""
+    base = {
+        "model_a": a.model,
+        "model_b": b.model,
+        "relation": relation.kind,
+        "restriction": relation.common and f"both reduce to {relation.common}",
+    }
+    if indistinguishable(ll_a, ll_b):
+        max_gap = float(np.max(np.abs(np.asarray(ll_a) - np.asarray(ll_b)), initial=0.0))
+        return [
+            {
+                **base,
+                "test": "per-subject differences",
+                "statistic": max_gap,
+                "df": np.nan,
+                "p_value": np.nan,
+                "favours": "indistinguishable",
+            }
+        ]
+    out = []
+    g = len(ll_a)
+    for name, (stat, p) in (
+        ("Vuong (Schwarz-corrected)", vuong_test(ll_a, ll_b, a.k, b.k)),
+        ("Clarke sign (Schwarz-corrected)", clarke_test(ll_a, ll_b, a.k, b.k)),
+    ):
+        favours = "neither"
+        if np.isfinite(p) and p < LEVEL:
+            better = stat > 0 if name.startswith("Vuong") else stat > g / 2
+            favours = a.model if better else b.model
+        out.append(
+            {
+                **base,
+                "test": name,
+                "statistic": stat,
+                "df": np.nan,
+                "p_value": p,
+                "favours": favours,
+            }
+        )
+    return out
+
+
+def compare_fits(
+    models: Sequence[Any],
+    data: Any,
+    *,
+    se: str | None = "auto",
+    cv_folds: int = 5,
+    seed: int = 0,
+    starts: int = 3,
+    formulas: Any = None,
+    covariate_frame: Any = None,
+    progress: bool = False,
+    max_iter: int = 200,
+) -> Comparison:
+    """Fit every model to the same data and compare (module docstring)."""
+    fits = [
+        fit_identified(
+            m,
+            data,
+            se=se,
+            seed=seed,
+            starts=starts,
+            formulas=formulas,
+            covariate_frame=covariate_frame,
+            progress=progress,
+            max_iter=max_iter,
+        )
+        for m in models
+    ]
+    rows: list[dict[str, Any]] = []
+    cv_warnings: list[str] = []
+    for m, f in zip(models, fits):
+        row = {
+            "model": f.model,
+            "loglik": f.loglik,
+            "k": f.k,
+            "aic": f.aic,
+            "bic": f.bic,
+            "converged": f.converged,
+        }
+        if cv_folds and cv_folds > 1 and data.n_subjects >= cv_folds:
+            cv = cv_log_score(
+                m,
+                data,
+                cv_folds,
+                seed,
+                starts=starts,
+                formulas=formulas,
+                covariate_frame=covariate_frame,
+                max_iter=max_iter,
+            )
+            row[f"cv_log_score_{cv_folds}fold"] = cv.score
+            cv_warnings += cv.warnings
+        rows.append(row)
+    table = pd.DataFrame(rows).set_index("model")
+    table["delta_aic"] = table["aic"] - table["aic"].min()
+    weights = np.exp(-0.5 * table["delta_aic"].to_numpy())
+    table["aic_weight"] = weights / weights.sum()
+    table = table.sort_values("aic")
+    tests, notes = pairwise_tests(fits, models, data)
+    if cv_folds and data.n_subjects < cv_folds:
+        notes.append(
+            f"cross-validation skipped: fewer subjects ({data.n_subjects}) than folds ({cv_folds})"
+        )
+    notes.append("AIC weights: exp(-dAIC/2) normalised (Burnham & Anderson 2002, from memory)")
+    return Comparison(table=table, tests=tests, fits=fits, notes=notes, warnings=cv_warnings)

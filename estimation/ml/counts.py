@@ -1,0 +1,173 @@
+"""The count reduction for pooled fits of solo stopping models without per-row covariates.
+
+Such a model's log-likelihood of decision row i depends on the row only through its key
+u_i = (subject, p_survive, gain, start, bust_keep, step, action, outcome): every stopping
+model tabulates log P(draw | condition, step) and log P(stop | ...) per condition and gathers
+by (condition, step) (DEVELOPERS.md). Hence, with n_u the number of rows with key u,
+
+    sum_i ll(theta; row_i) = sum_u n_u ll(theta; u),
+
+and the score and Hessian follow the same weighted sum, so estimates, Hessian and
+subject-clustered standard errors (the subject is part of the key) are those of the
+row-level fit. Data of any size reduce to at most subjects x conditions x steps x 3 rows.
+
+``reduction_gap`` certifies the identity for a given model on given rows (the row-level and
+the count log-likelihood at several parameter values); a model whose rows carry more than
+the key (per-trial effects, learning, contest play) fails it and must be fitted on rows.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import replace
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from stopwise.data_schemas.bundle import to_stopping_data
+from stopwise.data_schemas.partitioned import PartCheck, check_part
+from stopwise.estimation.ml.mle import build_problem, run_fit, starts_from
+from stopwise.estimation.ml.results import Fit
+
+KEY_COLUMNS = ("subject", "p_survive", "gain", "start", "bust_keep", "step", "action", "outcome")
+COUNT_COLUMN = "n"
+EXACT_TOLERANCE = 1e-9  # on |ll_rows - ll_counts| / max(1, |ll_rows|)
+# Columns whose presence means rows carry more than the key (contest play, pools, odds,
+# sequential moves): such data are fitted on rows.
+ROW_ONLY_COLUMNS = ("group", "pool_size", "pool_bad", "odds_known", "order", "rival_bank")
+DEFAULTS = {"start": 0.0, "bust_keep": 0.0}
+
+
+def counts_refusal(model: Any, frame_columns: Iterable[str], formulas: Any = None) -> str | None:
+    """Why the count reduction cannot serve this model and data (None when it can)."""
+    if getattr(model, "data_kind", None) != "stopping":
+        return f"{model.name} is not a solo stopping model"
+    if formulas:
+        return "formulas give each row its own parameters"
+    present = sorted(set(frame_columns) & set(ROW_ONLY_COLUMNS))
+    if present:
+        return f"the data have column(s) {', '.join(present)} that the count key does not carry"
+    return None
+
+
+def _key_codes(frame: pd.DataFrame, column: str) -> tuple[np.ndarray, np.ndarray]:
+    """(integer code per row, label per code) of one key column; a missing optional column
+    takes its default, an empty outcome the label ""."""
+    if column not in frame.columns:
+        return np.zeros(len(frame), dtype=np.int64), np.asarray([DEFAULTS[column]])
+    codes, labels = pd.factorize(frame[column], use_na_sentinel=False)
+    labels = np.asarray(labels, dtype=object if column in ("action", "outcome") else None)
+    if column in ("action", "outcome"):
+        labels = np.asarray(["" if pd.isna(v) else str(v) for v in labels], dtype=object)
+    return np.asarray(codes, dtype=np.int64), labels
+
+
+def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
+    """n_u per key u (module docstring) for one partition of decision rows: each key column
+    is factorised to integer codes, the codes combined into one int64 per row
+    (``np.ravel_multi_index``) and the distinct combinations counted (``np.unique``)."""
+    codes, labels = zip(*(_key_codes(frame, c) for c in KEY_COLUMNS))
+    dims = tuple(max(len(u), 1) for u in labels)
+    if float(np.prod(np.asarray(dims, dtype=float))) >= 2.0**62:
+        raise ValueError(f"too many distinct keys to combine in one int64: {dims}")
+    combined = np.ravel_multi_index(codes, dims)
+    distinct, n = np.unique(combined, return_counts=True)
+    columns = np.unravel_index(distinct, dims)
+    out = {c: u[idx] for c, u, idx in zip(KEY_COLUMNS, labels, columns)}
+    return pd.DataFrame({**out, COUNT_COLUMN: n})
+
+
+def merge_counts(parts: Iterable[pd.DataFrame]) -> pd.DataFrame:
+    """Sum the counts of several partitions (n_u adds over partitions)."""
+    stacked = pd.concat(list(parts), ignore_index=True)
+    merged = stacked.groupby(list(KEY_COLUMNS), sort=True, observed=True)[COUNT_COLUMN].sum()
+    return merged.reset_index()
+
+
+def counts_frame(counts: pd.DataFrame) -> pd.DataFrame:
+    """One decision row per key (each its own one-row trial), for the array bundle."""
+    frame = counts[list(KEY_COLUMNS)].copy()
+    frame["outcome"] = frame["outcome"].replace("", None)
+    frame["trial"] = np.arange(len(frame))
+    return frame
+
+
+def counts_problem(model: Any, counts: pd.DataFrame) -> tuple[Any, Any, Any]:
+    """(Problem weighted by n_u, layout, bundle of the distinct keys)."""
+    bundle = to_stopping_data(counts_frame(counts))
+    problem, layout, _ = build_problem(model, bundle)
+    weights = problem.weights.copy()
+    weights[: bundle.n_obs] = counts[COUNT_COLUMN].to_numpy(dtype=np.float64)
+    problem = replace(problem, weights=weights, n_obs=int(counts[COUNT_COLUMN].sum()))
+    return problem, layout, bundle
+
+
+def row_problem(model: Any, frame: pd.DataFrame) -> Any:
+    """The ordinary row-level Problem of the same data (the reference for the check)."""
+    problem, _, _ = build_problem(model, to_stopping_data(frame))
+    return problem
+
+
+def reduction_gap(model: Any, frame: pd.DataFrame, n_points: int = 3, seed: int = 0) -> float:
+    """max over parameter points z of |ll_rows(z) - ll_counts(z)| / max(1, |ll_rows(z)|), with
+    z the model's start and ``n_points - 1`` points drawn around it (normal, sd 0.5, on the
+    unconstrained scale)."""
+    rows = row_problem(model, frame)
+    counts, _, _ = counts_problem(model, count_rows(frame))
+    rng = np.random.default_rng(seed)
+    points = [rows.z0] + [rows.z0 + rng.normal(0.0, 0.5, rows.k) for _ in range(n_points - 1)]
+    gaps = []
+    for z in points:
+        ll_rows = -rows.value(z)
+        ll_counts = -counts.value(z)
+        gaps.append(abs(ll_rows - ll_counts) / max(1.0, abs(ll_rows)))
+    return float(max(gaps))
+
+
+def fit_counts(
+    model: Any,
+    counts: pd.DataFrame,
+    *,
+    se: str | None = "auto",
+    starts: Any = 3,
+    seed: int = 0,
+    max_iter: int = 200,
+    bootstrap_reps: int = 200,
+    progress: bool = False,
+) -> Fit:
+    """Pooled maximum-likelihood fit on the counts n_u (module docstring)."""
+    problem, layout, bundle = counts_problem(model, counts)
+    fit = run_fit(
+        problem,
+        model.name,
+        bundle.n_subjects,
+        se=se,
+        starts=starts_from(problem, layout, starts, seed),
+        seed=seed,
+        max_iter=max_iter,
+        bootstrap_reps=bootstrap_reps,
+        progress=progress,
+    )
+    fit.extras["layout"] = layout
+    fit.notes.append(
+        f"fitted on counts: {len(counts)} distinct (subject, condition, step, action, outcome) "
+        f"keys for {problem.n_obs} decisions (estimation/ml/counts.py)"
+    )
+    return fit
+
+
+def check_and_count_part(
+    parts: Sequence[str],
+    index: int,
+    kind: str | None = None,
+    allow_censored: bool = False,
+    max_per_kind: int = 20,
+    count: bool = False,
+) -> tuple[PartCheck, pd.DataFrame | None]:
+    """One task of an out-of-core pass: validate part ``index`` (with its seams,
+    data_schemas/partitioned.py) and, if clean and ``count``, reduce it to counts n_u."""
+    check, clean = check_part(parts, index, kind, allow_censored, max_per_kind)
+    if not count or clean is None or check.data_format != "decisions":
+        return check, None
+    return check, count_rows(clean)
