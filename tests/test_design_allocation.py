@@ -61,31 +61,42 @@ def enumerated_payout(model, p: float, gain: float) -> float:
     return float(np.sum(np.exp(per_path) * p ** (banks / gain) * banks))
 
 
-def brute_force_best(model, budget: float | None) -> tuple[str, str, str, float]:
+@pytest.fixture(scope="module")
+def every_plan() -> list[tuple[str, str, str, float, float]]:
     """Every (pair of conditions, split of 12 trials in steps of 3) as its own Plan through
-    design_study.expected_precision (its own path tables, its own counts), payouts by path
-    enumeration; the plan with the smallest pooled SE of r within the budget."""
+    design_study.expected_precision (its own path tables, its own counts), with its payout
+    by path enumeration: rows (chances, gains, split, pooled SE of r, payout)."""
+    model = stopwise.model(SPEC)
     conditions = [(p, g) for g in GAIN_GRID for p in P_GRID]
     payout = {c: enumerated_payout(model, *c) for c in conditions}
-    best = None
+    rows = []
     for pair in itertools.combinations(conditions, 2):
         for first in (3, 6, 9):
             split = (first, 12 - first)
             plan = S.Plan(
                 tuple(c[0] for c in pair), 12, 40, gains=tuple(c[1] for c in pair), allocation=split
             )
-            cost = sum(n * payout[c] for n, c in zip(split, pair))
-            if budget is not None and cost > budget:
-                continue
             se_r = float(S.expected_precision(model, THETA, plan).se_table().iloc[0, 1])
-            if best is None or se_r < best[3]:
-                row = " ".join(f"{c[0]:g}" for c in pair), " ".join(f"{c[1]:g}" for c in pair)
-                best = (*row, " ".join(map(str, split)), se_r)
-    return best
+            rows.append(
+                (
+                    " ".join(f"{c[0]:g}" for c in pair),
+                    " ".join(f"{c[1]:g}" for c in pair),
+                    " ".join(map(str, split)),
+                    se_r,
+                    sum(n * payout[c] for n, c in zip(split, pair)),
+                )
+            )
+    return rows
+
+
+def brute_force_best(rows, budget: float | None) -> tuple[str, str, str, float, float]:
+    """The plan with the smallest pooled SE of r within the budget."""
+    allowed = [row for row in rows if budget is None or row[4] <= budget]
+    return min(allowed, key=lambda row: row[3])
 
 
 @pytest.mark.parametrize("budget", [None, 9.0])
-def test_search_pick_equals_brute_force_over_every_plan(budget: float | None) -> None:
+def test_search_pick_equals_brute_force_over_every_plan(every_plan, budget: float | None) -> None:
     """Guards the shortcut I(design) = sum_j n_j I_(c_j), the payout sum and the budget:
     the search's best design equals the best of every plan computed separately; the budget
     binds (the pick with it differs from the pick without, checked below)."""
@@ -94,7 +105,7 @@ def test_search_pick_equals_brute_force_over_every_plan(budget: float | None) ->
         model, THETA, BASELINE, P_GRID, GAIN_GRID, 2, 3, "se:r", max_payout=budget
     )
     top = found.table.iloc[0]
-    expected = brute_force_best(model, budget)
+    expected = brute_force_best(every_plan, budget)
     assert (top["p_survive"], top["gain"], top["trials"]) == expected[:3]
     assert top["criterion"] == pytest.approx(expected[3], rel=1e-9)
     assert found.n_designs == math.comb(6, 2) * 3
