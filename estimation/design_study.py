@@ -229,7 +229,7 @@ class DesignResult:
             f"(limit {MAX_TRUNCATED_MASS:g}); information per participant condition number "
             f"{checks['condition_number']:.3g}; certified: {self.certified}",
         ]
-        for key in ("optimisation", "discrimination"):
+        for key in ("optimisation", "discrimination", "lr_test"):
             if key in self.extras:
                 lines += ["", self.extras[f"{key}_text"]]
         lines += [f"Note: {n}" for n in self.notes]

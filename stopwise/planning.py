@@ -18,8 +18,10 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.design_allocation import search_allocations
 from stopwise.estimation.design_contest import ContestScheme
 from stopwise.estimation.design_discrimination import both_directions, discrimination_text
+from stopwise.estimation.design_power import lr_test_plan, lr_test_text
 from stopwise.estimation.design_search import search_designs
 from stopwise.estimation.design_study import DesignResult, Plan, expected_precision
+from stopwise.estimation.nesting import classify
 from stopwise.models.base import Model
 from stopwise.models.spec import build_model
 
@@ -175,6 +177,7 @@ def design(
         rows = both_directions(the_model, theta, rival, plan)
         result.extras["discrimination"] = rows
         result.extras["discrimination_text"] = discrimination_text(rows, plan.subjects)
+        add_lr_test(result, the_model, theta, rival, plan)
     return result
 
 
@@ -191,3 +194,23 @@ def candidate_grid(text: str) -> list[float]:
         raise StopwiseInputError(f"--candidates {text!r}: expected 0 < LO < HI < 1 and STEP > 0")
     count = int(np.floor((hi - lo) / step + 1e-9)) + 1
     return [round(lo + i * step, 10) for i in range(count)]
+
+
+def add_lr_test(
+    result: DesignResult, model: Model, theta: Mapping[str, float], rival: Model, plan: Plan
+) -> None:
+    """When the rival is nested in the model (true at ``theta``): the LR test's power and
+    the participants for 80% / 95% power (design_power); a note when the nesting runs the
+    other way (the power of rejecting a true small model is its size)."""
+    relation = classify(model, rival)
+    if relation.kind != "nested":
+        return
+    if (model, rival)[relation.big] is not model:
+        result.notes.append(
+            f"{model.name} is nested in {rival.name}: give the bigger model as --model for "
+            "the sample size of the likelihood-ratio test"
+        )
+        return
+    row = lr_test_plan(model, theta, rival, plan)
+    result.extras["lr_test"] = row
+    result.extras["lr_test_text"] = lr_test_text(row, plan.subjects)
