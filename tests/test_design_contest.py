@@ -87,38 +87,66 @@ def brute_force_information(model, theta, p: float, scheme: ContestScheme, cap: 
     return np.einsum("n,ni,nj->ij", prob, score, score), prob.sum()
 
 
+@pytest.fixture(scope="module")
+def tiny_models() -> dict[str, object]:
+    """One model object per tiny case, so compiled programs are shared between tests."""
+    return {case: stopwise.model(TINY[case][0], max_target=TINY[case][1]) for case in TINY}
+
+
+@pytest.fixture(scope="module")
+def enumerated(tiny_models) -> dict[str, tuple[np.ndarray, float]]:
+    """Brute-force information and total path probability per tiny case."""
+    return {
+        case: brute_force_information(tiny_models[case], theta, p, scheme, cap)
+        for case, (_, cap, theta, scheme, p) in TINY.items()
+    }
+
+
 @pytest.mark.parametrize("case", sorted(TINY))
-def test_contest_information_equals_expected_outer_product_of_path_scores(case: str) -> None:
+def test_contest_information_equals_expected_outer_product_of_path_scores(
+    case: str, tiny_models, enumerated
+) -> None:
     """Guards the contest probe (targets 0..M, horizon M, step M a certain stop) against
     E[score score'] over every path of the same game (the information identity, common
     practice, no source); the paths' probabilities sum to one (nothing left out)."""
-    spec, cap, theta, scheme, p = TINY[case]
-    model = stopwise.model(spec, max_target=cap)
-    tables, _ = contest_path_tables(model, [theta], (p,), 1.0, 0.0, scheme)
+    _, _, theta, scheme, p = TINY[case]
+    tables, _ = contest_path_tables(tiny_models[case], [theta], (p,), 1.0, 0.0, scheme)
     info = D.condition_information(tables)[0, 0]
-    expected, total = brute_force_information(model, theta, p, scheme, cap)
+    expected, total = enumerated[case]
     assert total == pytest.approx(1.0, abs=1e-12)
     assert np.all(tables.truncated_mass == 0.0)
     np.testing.assert_allclose(info, expected, rtol=1e-9, atol=1e-14)
 
 
-def test_a_probe_longer_than_the_cap_solves_another_game() -> None:
+def test_a_probe_longer_than_the_cap_solves_another_game(tiny_models, enumerated) -> None:
     """The cause of the earlier disagreement: the contest likelihood takes its target set
     from max(M, horizon - 1), so the solo probe (horizon from p^H <= 1e-10) enlarged a
     capped game and the logit response spread mass over the extra targets. On the tiny
     case that probe misses the enumerated information by more than 10% (so the test above
     would catch a regression), while the contest probe matches it."""
-    spec, cap, theta, scheme, p = TINY["crra+qre keep bank"]
-    model = stopwise.model(spec, max_target=cap)
-    expected, _ = brute_force_information(model, theta, p, scheme, cap)
+    case = "crra+qre keep bank"
+    _, cap, theta, scheme, p = TINY[case]
+    expected, _ = enumerated[case]
     n_steps = D.cap_steps((p,))
     assert n_steps > cap + 1
     solo_rule = contest_probe((p,), 1.0, 0.0, scheme, n_steps)
     solo_rule = dataclasses.replace(solo_rule, horizon=n_steps + 1)
-    long_tables = D.probe_tables(model, [theta], (p,), solo_rule, n_steps)
+    long_tables = D.probe_tables(tiny_models[case], [theta], (p,), solo_rule, n_steps)
     long_info = D.condition_information(long_tables)[0, 0]
     gap = np.max(np.abs(long_info - expected)) / np.max(np.abs(expected))
     assert gap > 0.10
+
+
+def test_uncertified_equilibrium_is_refused() -> None:
+    """A design whose QRE fixed point is not solved (residual above the limit) is not
+    certified and says so."""
+    plan = S.Plan(p_survive=(0.5,), trials=10, subjects=10, contest=ContestScheme(2, 5.0, True))
+    precision = D.precision_from_information(("r",), np.eye(1))
+    result = S.DesignResult("crra+qre", ("r",), plan, [{"r": 0.3}], [precision], 0.0)
+    assert result.certified
+    result.qre_residual = 1e-3
+    assert not result.certified
+    assert any("REFUSED" in note for note in S.design_notes(result))
 
 
 # The simulation check: a logit-QRE contest where players keep their banks (so r is
