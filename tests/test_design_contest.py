@@ -118,6 +118,7 @@ def test_contest_information_equals_expected_outer_product_of_path_scores(
     np.testing.assert_allclose(info, expected, rtol=1e-9, atol=1e-14)
 
 
+@pytest.mark.slow  # compiles a 35-target QRE game: ~45 s on 2 cores
 def test_a_probe_longer_than_the_cap_solves_another_game(tiny_models, enumerated) -> None:
     """The cause of the earlier disagreement: the contest likelihood takes its target set
     from max(M, horizon - 1), so the solo probe (horizon from p^H <= 1e-10) enlarged a
@@ -147,6 +148,18 @@ def test_uncertified_equilibrium_is_refused() -> None:
     result.qre_residual = 1e-3
     assert not result.certified
     assert any("REFUSED" in note for note in S.design_notes(result))
+
+
+def test_winner_take_all_leaves_curvature_unidentified_and_is_refused(tiny_models) -> None:
+    """With money 0 or the prize any utility is affine on {0, prize}, so r cannot move the
+    likelihood (a fact of expected utility, common practice, no source): the information is
+    singular, the SEs are withheld and the design is not certified, with the model's note."""
+    model = tiny_models["crra+qre keep bank"]
+    plan = S.Plan(p_survive=(0.5,), trials=20, subjects=40, contest=ContestScheme(2, 5.0, False))
+    result = S.expected_precision(model, {"r": 0.3, "precision": 2.0}, plan)
+    assert not result.certified and not result.precisions[0].identified
+    assert np.all(np.isnan(result.precisions[0].se_one))
+    assert any("not identified" in note for note in result.notes)
 
 
 # The simulation check: a logit-QRE contest where players keep their banks (so r is
