@@ -17,6 +17,7 @@ from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import design_power as W
 from stopwise.estimation import design_study as S
+from stopwise.estimation.design_discrimination import discrimination
 from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.recovery import stopping_design
 
@@ -58,6 +59,24 @@ def test_lr_plan_is_certified_and_refuses_non_nested_pairs() -> None:
     assert row["participants_needed"]["power_80"] < row["participants_needed"]["power_95"]
     with pytest.raises(StopwiseInputError, match="nested"):
         W.lr_test_plan(stopwise.model(BIG), THETA, stopwise.model("crra+myopic+probit"), PLAN)
+
+
+def test_gains_and_splits_reach_the_discrimination() -> None:
+    """A plan written with per-chance gains and a trial split gives the same expected
+    log-likelihood ratio as the same study written as plain chances: 5 trials at 0.6 and 15
+    at 0.8 equal round robin over (0.6, 0.8, 0.8, 0.8); gains (2, 2) equal gain 2."""
+    big, small = stopwise.model(BIG), stopwise.model(SMALL)
+
+    def mu(plan: S.Plan) -> float:
+        return discrimination(big, THETA, small, plan)["llr_mean_per_subject"]
+
+    split = S.Plan(p_survive=(0.6, 0.8), trials=20, subjects=12, allocation=(5, 15))
+    spelled = S.Plan(p_survive=(0.6, 0.8, 0.8, 0.8), trials=20, subjects=12)
+    assert mu(split) == pytest.approx(mu(spelled), rel=1e-6)
+    gains = S.Plan(p_survive=(0.6, 0.8), trials=20, subjects=12, gains=(2.0, 2.0))
+    scalar = S.Plan(p_survive=(0.6, 0.8), trials=20, subjects=12, gain=2.0)
+    assert mu(gains) == pytest.approx(mu(scalar), rel=1e-6)
+    assert abs(mu(scalar) - mu(PLAN)) > 1e-3  # the gain changes the answer
 
 
 def test_command_reports_the_lr_test(tmp_path: Path) -> None:
