@@ -2,9 +2,13 @@
 
 Prints the expected standard errors (pooled over ``--subjects`` participants and for one
 participant), their correlation and the checks; ``--range`` averages over a parameter's
-range, ``--versus`` adds the discrimination of a rival model, ``--optimise p_survive`` the
-best sets of ``--choose`` survival chances among ``--candidates``. ``--json`` writes the
-result, ``--figure`` a PNG of expected SE against participants (stopwise.planning).
+range, ``--versus`` adds the discrimination of a rival model (and, for a nested rival, the
+LR test's sample size), ``--optimise p_survive`` the best sets of ``--choose`` survival
+chances among ``--candidates``, ``--optimise conditions`` chances, gains
+(``--gain-candidates``) and trial splits (``--allocation-step``) together. ``--gain`` and
+``--allocation`` give one gain and one trial count per chance; contest models play
+``--players``/``--prize``/``--keep-bank``. ``--json`` writes the result, ``--figure`` a PNG
+of expected SE against participants (stopwise.planning).
 """
 
 from __future__ import annotations
