@@ -34,13 +34,20 @@ from __future__ import annotations
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
+from typing import Any
 
+import jax
+import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.arrays import StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import design_info as D
 from stopwise.models.base import Model
+from stopwise.models.contest.build import concept_log_probs
+from stopwise.models.contest.game import make_game, resolve_utility
+from stopwise.models.contest.qre import fixed_point_residual
 
 MAX_QRE_RESIDUAL = 1e-6
 
@@ -138,6 +145,29 @@ def contest_path_tables(
     return exact, notes
 
 
+@partial(jax.jit, static_argnames=("cap", "utility_name"))
+def _condition_residuals(
+    theta: Mapping[str, Any],
+    p_survive: Any,
+    gains: Any,
+    start: Any,
+    scheme: tuple[Any, Any, Any],
+    cap: int,
+    utility_name: str,
+) -> Any:
+    """Per condition, max_t |log sigma_t - log_softmax(lambda U(sigma))_t| of the logit QRE
+    the likelihood solves (the same make_game and concept_log_probs, compiled once)."""
+    players, prize, keep_bank = scheme
+    utility = resolve_utility(utility_name)
+
+    def one(p: Any, gain: Any) -> Any:
+        game = make_game(p, players, prize, keep_bank, cap, gain, start, 0.0, utility, theta)
+        log_sigma = concept_log_probs("qre", theta, game, {})
+        return fixed_point_residual(log_sigma, theta["precision"], game)
+
+    return jax.vmap(one)(p_survive, gains)
+
+
 def qre_residuals(
     model: Model,
     thetas: Sequence[Mapping[str, float]],
@@ -146,20 +176,21 @@ def qre_residuals(
     start: float,
     scheme: ContestScheme,
 ) -> np.ndarray:
-    """Largest fixed-point residual per parameter point (m,), NaN for concepts without a
-    fixed point (module docstring)."""
-    cap, _ = model_cap(model, p_survive, gain, start, scheme)
-    probe = contest_probe(p_survive, gain, start, scheme, cap)
+    """Largest fixed-point residual over the conditions per parameter point (m,), NaN for
+    concepts without a fixed point, inf where it is not finite (module docstring). The
+    tremble is left out: the fixed point is the QRE before the tremble is mixed in."""
     if model.options.get("concept") != "qre":
         return np.full(len(thetas), np.nan)
-    residual = model.options["fixed_point_residual"]
+    cap, _ = model_cap(model, p_survive, gain, start, scheme)
+    ps = jnp.asarray(p_survive, dtype=jnp.float64)
+    gains = jnp.broadcast_to(jnp.asarray(gain, dtype=jnp.float64), ps.shape)
+    setting = (float(scheme.players), float(scheme.prize), float(bool(scheme.keep_bank)))
     out = []
     for theta in thetas:
-        pure = {k: float(v) for k, v in theta.items()}
-        if "tremble" in pure:  # the fixed point is the QRE before the tremble is mixed in
-            pure["tremble"] = 0.0
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)
-            values = np.asarray(residual(pure, probe))
-        out.append(float(np.max(values)) if np.all(np.isfinite(values)) else np.inf)
+        pure = {k: jnp.float64(v) for k, v in theta.items() if k != "tremble"}
+        residual = _condition_residuals(
+            pure, ps, gains, float(start), setting, cap, str(model.options["utility"])
+        )
+        worst = float(jnp.max(residual))
+        out.append(worst if np.isfinite(worst) else np.inf)
     return np.array(out)

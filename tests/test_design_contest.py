@@ -18,7 +18,12 @@ from stopwise.commands.simulate import contest_design
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import design_info as D
 from stopwise.estimation import design_study as S
-from stopwise.estimation.design_contest import ContestScheme, contest_path_tables, contest_probe
+from stopwise.estimation.design_contest import (
+    ContestScheme,
+    contest_path_tables,
+    contest_probe,
+    qre_residuals,
+)
 from stopwise.estimation.mle import fit_mle
 from stopwise.estimation.recovery import stopping_design
 from tests.test_design_simulation import sd_ratio_bounds
@@ -138,16 +143,25 @@ def test_a_probe_longer_than_the_cap_solves_another_game(tiny_models, enumerated
     assert gap > 0.10
 
 
-def test_uncertified_equilibrium_is_refused() -> None:
-    """A design whose QRE fixed point is not solved (residual above the limit) is not
-    certified and says so."""
-    plan = S.Plan(p_survive=(0.5,), trials=10, subjects=10, contest=ContestScheme(2, 5.0, True))
-    precision = D.precision_from_information(("r",), np.eye(1))
-    result = S.DesignResult("crra+qre", ("r",), plan, [{"r": 0.3}], [precision], 0.0)
-    assert result.certified
-    result.qre_residual = 1e-3
-    assert not result.certified
-    assert any("REFUSED" in note for note in S.design_notes(result))
+@pytest.mark.parametrize("precision", [2.0, 100.0])
+def test_unsolved_equilibrium_is_refused(tiny_models, precision: float) -> None:
+    """The residual certificate equals the model's own fixed-point residual of its QRE
+    (McKelvey & Palfrey 1995: a QRE is the fixed point; residual 0 there); at precision 100
+    the likelihood's continuation does not reach the fixed point on the tiny game, and the
+    design is refused rather than printed as certified."""
+    case = "crra+qre keep bank"
+    _, cap, theta, scheme, p = TINY[case]
+    model = tiny_models[case]
+    theta = {**theta, "precision": precision}
+    own = model.options["fixed_point_residual"](theta, contest_probe((p,), 1.0, 0.0, scheme, cap))
+    ours = qre_residuals(model, [theta], (p,), 1.0, 0.0, scheme)
+    np.testing.assert_allclose(ours, [np.max(own)], atol=1e-9, rtol=1e-9)
+    plan = S.Plan(p_survive=(p,), trials=20, subjects=40, contest=scheme)
+    result = S.expected_precision(model, theta, plan)
+    solved = precision == 2.0
+    assert result.certified is solved
+    assert (result.qre_residual <= 1e-8) is solved
+    assert any("REFUSED: the logit QRE" in note for note in result.notes) is not solved
 
 
 def test_winner_take_all_leaves_curvature_unidentified_and_is_refused(tiny_models) -> None:
