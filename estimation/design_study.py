@@ -78,7 +78,8 @@ class Plan:
         out: dict[str, Any] = {"trials": self.trials, "subjects": self.subjects}
         if self.items is None:
             out.update(p_survive=list(self.p_survive), gain=self.gain, start=self.start)
-        if self.gains:
+        if self.gains:  # one gain per chance replaces the single gain
+            out.pop("gain", None)
             out["gains"] = list(self.gains)
         if self.allocation:
             out["allocation"] = list(self.allocation)
