@@ -75,7 +75,7 @@ def decision_tables(model: Model, plan: Plan, n_steps: int) -> DecisionTables:
 
         n_items = len(plan.items)
         return DecisionTables(lottery_probs, np.zeros(n_items), np.ones(n_items))
-    probe = D.condition_probe(plan.p_survive, plan.gain, plan.start, n_steps)
+    probe = D.condition_probe(plan.p_survive, plan.condition_gains(), plan.start, n_steps)
     if prepare is not None:
         prepare(probe)
     shape = (2, len(plan.p_survive), n_steps)
@@ -84,7 +84,7 @@ def decision_tables(model: Model, plan: Plan, n_steps: int) -> DecisionTables:
         values = model.loglik_obs(_natural(model, z), probe).reshape(shape)
         return values[0], values[1]
 
-    counts = D.trial_counts(len(plan.p_survive), plan.trials)
+    counts = plan.condition_counts()
     return DecisionTables(stopping_probs, np.asarray(plan.p_survive, float), counts)
 
 

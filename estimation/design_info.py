@@ -63,11 +63,12 @@ def cap_steps(p_survive: Sequence[float], tolerance: float = DEFAULT_TOLERANCE) 
 
 def condition_probe(
     p_survive: Sequence[float],
-    gain: float,
+    gain: float | Sequence[float],
     start: float,
     n_steps: int,
 ) -> StoppingData:
-    """Rows (action, condition, step < n_steps): first every draw row, then every stop row."""
+    """Rows (action, condition, step < n_steps): first every draw row, then every stop row.
+    ``gain`` is one gain for every condition or one per condition."""
     ps = np.asarray(p_survive, dtype=np.float64)
     n_cond = len(ps)
     n = n_cond * n_steps
@@ -80,7 +81,7 @@ def condition_probe(
         cond=np.tile(np.repeat(np.arange(n_cond), n_steps), 2).astype(np.int32),
         group=np.full(2 * n, -1, np.int32),
         cond_p_survive=ps,
-        cond_gain=np.full(n_cond, float(gain)),
+        cond_gain=np.broadcast_to(np.asarray(gain, dtype=np.float64), (n_cond,)).copy(),
         cond_start=np.full(n_cond, float(start)),
         cond_bust_keep=np.zeros(n_cond),
         cond_contest=np.zeros(n_cond),
@@ -127,16 +128,28 @@ def path_tables(
     model: Model,
     thetas: Sequence[Mapping[str, float]],
     p_survive: Sequence[float],
-    gain: float = 1.0,
+    gain: float | Sequence[float] = 1.0,
     start: float = 0.0,
     tolerance: float = DEFAULT_TOLERANCE,
 ) -> PathTables:
     """Decision probabilities, their exact gradients and reach probabilities (module doc),
     each with a leading axis over the parameter points ``thetas``."""
     n_steps = cap_steps(p_survive, tolerance)
+    probe = condition_probe(p_survive, gain, start, n_steps)
+    return probe_tables(model, thetas, p_survive, probe, n_steps)
+
+
+def probe_tables(
+    model: Model,
+    thetas: Sequence[Mapping[str, float]],
+    p_survive: Sequence[float],
+    probe: StoppingData,
+    n_steps: int,
+) -> PathTables:
+    """PathTables from a probe laid out as ``condition_probe`` lays it out (draw rows, then
+    stop rows, per condition steps 0..n_steps-1); R_(s+1) = R_s d_s p (module doc)."""
     n_points = len(thetas)
     shape = (n_points, 2, len(p_survive), n_steps)
-    probe = condition_probe(p_survive, gain, start, n_steps)
     values, grads = values_and_gradients(model, theta_matrix(model, thetas), probe)
     values = values.reshape(shape)
     grads = grads.reshape((*shape, len(model.param_names)))

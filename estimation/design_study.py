@@ -1,7 +1,9 @@
 """Expected precision of a planned study: a plan, parameter points, and certified SEs.
 
 A plan gives survival chances, trials per participant and participants (stopping models) or
-a lottery list answered once per participant (lottery models). The information per
+a lottery list answered once per participant (lottery models); optionally a gain per
+condition, an allocation of the trials over the conditions, and a contest scheme played in
+every trial (contest models; stopwise.estimation.design_contest). The information per
 participant I_1(theta) comes from stopwise.estimation.design_info (exact over decision paths).
 
 Parameter uncertainty (pseudo-Bayesian design): ``ranges`` {name: (lo, hi)} replace a value
@@ -10,7 +12,9 @@ the product over ranged parameters giving the points theta_1..theta_M. Reported 
 expected SEs at the given values, their mean over the points and the worst point.
 
 Every answer carries its checks: the path mass left beyond the cap (refused above
-MAX_TRUNCATED_MASS) and whether I_1 is positive definite (design_info.precision_from_information).
+MAX_TRUNCATED_MASS) and whether I_1 is positive definite (design_info.precision_from_information);
+for a logit-QRE contest also the fixed-point residual of the equilibrium (refused above
+design_contest.MAX_QRE_RESIDUAL).
 """
 
 from __future__ import annotations
@@ -26,6 +30,14 @@ import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import design_info as D
+from stopwise.estimation.design_contest import (
+    MAX_QRE_RESIDUAL,
+    ContestScheme,
+    check_scheme,
+    contest_path_tables,
+    model_cap,
+    qre_residuals,
+)
 from stopwise.models.base import Model
 
 MAX_TRUNCATED_MASS = 1e-8
@@ -36,7 +48,9 @@ MAX_POINTS = 125
 @dataclass(frozen=True)
 class Plan:
     """What the researcher chooses: survival chances (stopping) or the lottery ``items``,
-    trials per participant, participants, gain and start bank per trial."""
+    trials per participant, participants, gain and start bank per trial. ``gains``: one
+    gain per condition (else ``gain`` everywhere); ``allocation``: trials per condition
+    (else trial t uses condition t mod k); ``contest``: the scheme of every trial."""
 
     p_survive: tuple[float, ...] = ()
     trials: int = 60
@@ -44,11 +58,33 @@ class Plan:
     gain: float = 1.0
     start: float = 0.0
     items: pd.DataFrame | None = None
+    gains: tuple[float, ...] = ()
+    allocation: tuple[int, ...] = ()
+    contest: ContestScheme | None = None
+
+    def condition_gains(self) -> np.ndarray:
+        """Gain per condition (n_cond,)."""
+        if self.gains:
+            return np.asarray(self.gains, dtype=np.float64)
+        return np.full(len(self.p_survive), float(self.gain))
+
+    def condition_counts(self) -> np.ndarray:
+        """Trials per condition n_c (n_cond,): the allocation, else round robin."""
+        if self.allocation:
+            return np.asarray(self.allocation, dtype=np.float64)
+        return D.trial_counts(len(self.p_survive), self.trials)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"trials": self.trials, "subjects": self.subjects}
         if self.items is None:
             out.update(p_survive=list(self.p_survive), gain=self.gain, start=self.start)
+        if self.gains:  # one gain per chance replaces the single gain
+            out.pop("gain", None)
+            out["gains"] = list(self.gains)
+        if self.allocation:
+            out["allocation"] = list(self.allocation)
+        if self.contest is not None:
+            out["contest"] = self.contest.to_dict()
         return out
 
 
@@ -82,14 +118,18 @@ def per_trial_information(
             raise StopwiseInputError(f"model {model.name} answers a lottery list: give items")
         info = D.lottery_information(model, points, plan.items)
         return info, np.ones(info.shape[1]), np.zeros(info.shape[:2])
-    if model.data_kind != "stopping":
-        raise StopwiseInputError(
-            f"model {model.name} ({model.data_kind}): design takes solo stopping and lottery "
-            "models; contest designs are not supported yet"
+    gains = plan.condition_gains()
+    if model.data_kind == "contest":
+        tables, _ = contest_path_tables(
+            model, points, plan.p_survive, gains, plan.start, plan.contest
         )
-    tables = D.path_tables(model, points, plan.p_survive, plan.gain, plan.start)
-    counts = D.trial_counts(len(plan.p_survive), plan.trials)
-    return D.condition_information(tables), counts, tables.truncated_mass
+    elif model.data_kind == "stopping":
+        if plan.contest is not None:
+            raise StopwiseInputError(f"model {model.name} is a solo model: drop the contest")
+        tables = D.path_tables(model, points, plan.p_survive, gains, plan.start)
+    else:
+        raise StopwiseInputError(f"model {model.name} ({model.data_kind}): no design engine")
+    return D.condition_information(tables), plan.condition_counts(), tables.truncated_mass
 
 
 def participant_information(per_trial: np.ndarray, counts: np.ndarray) -> np.ndarray:
@@ -109,12 +149,17 @@ class DesignResult:
     truncated_mass: float
     extras: dict[str, Any] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    qre_residual: float = math.nan  # worst fixed-point residual (logit-QRE contests only)
 
     @property
     def certified(self) -> bool:
-        """Every point identified and the path mass beyond the cap negligible."""
-        return self.truncated_mass <= MAX_TRUNCATED_MASS and all(
-            p.identified for p in self.precisions
+        """Every point identified, the path mass beyond the cap negligible and (logit QRE)
+        the equilibrium solved."""
+        solved = math.isnan(self.qre_residual) or self.qre_residual <= MAX_QRE_RESIDUAL
+        return (
+            solved
+            and self.truncated_mass <= MAX_TRUNCATED_MASS
+            and all(p.identified for p in self.precisions)
         )
 
     def se_table(self) -> pd.DataFrame:
@@ -160,7 +205,11 @@ class DesignResult:
     def checks(self) -> dict[str, Any]:
         """The certificate: truncated path mass, smallest eigenvalue and condition number of
         the information per participant (worst over the points)."""
+        qre = (
+            {} if math.isnan(self.qre_residual) else {"qre_fixed_point_residual": self.qre_residual}
+        )
         return {
+            **qre,
             "truncated_mass": self.truncated_mass,
             "max_truncated_mass": MAX_TRUNCATED_MASS,
             "identified_at_every_point": all(p.identified for p in self.precisions),
@@ -181,7 +230,7 @@ class DesignResult:
             f"(limit {MAX_TRUNCATED_MASS:g}); information per participant condition number "
             f"{checks['condition_number']:.3g}; certified: {self.certified}",
         ]
-        for key in ("optimisation", "discrimination"):
+        for key in ("optimisation", "discrimination", "lr_test"):
             if key in self.extras:
                 lines += ["", self.extras[f"{key}_text"]]
         lines += [f"Note: {n}" for n in self.notes]
@@ -205,8 +254,29 @@ def expected_precision(
     result = DesignResult(
         model.name, model.param_names, plan, points, precisions, float(np.max(truncated))
     )
+    if model.data_kind == "contest":
+        result.qre_residual = contest_residual(model, points, plan)
+        result.notes += contest_notes(model, plan)
     result.notes += design_notes(result)
     return result
+
+
+def contest_residual(model: Model, points: Sequence[Mapping[str, float]], plan: Plan) -> float:
+    """Worst QRE fixed-point residual over the points (NaN for other concepts)."""
+    gains = plan.condition_gains()
+    residuals = qre_residuals(model, points, plan.p_survive, gains, plan.start, plan.contest)
+    return float(np.max(residuals)) if not np.all(np.isnan(residuals)) else math.nan
+
+
+def contest_notes(model: Model, plan: Plan) -> list[str]:
+    """The model's identification warnings on the planned contests and what was assumed."""
+    gains = plan.condition_gains()
+    _, warned = model_cap(model, plan.p_survive, gains, plan.start, check_scheme(plan.contest))
+    return [
+        "contest play: every participant's targets are independent draws from the concept's "
+        "symmetric target distribution (the likelihood the fit uses); groups add nothing else",
+        *warned,
+    ]
 
 
 def design_notes(result: DesignResult) -> list[str]:
@@ -215,6 +285,11 @@ def design_notes(result: DesignResult) -> list[str]:
         "expected SEs are asymptotic (inverse expected Fisher information, exact over the "
         "model's decision paths); per-subject SEs with few trials are optimistic"
     ]
+    if result.qre_residual > MAX_QRE_RESIDUAL:
+        notes.append(
+            f"REFUSED: the logit QRE is not solved (fixed-point residual "
+            f"{result.qre_residual:.2g} > {MAX_QRE_RESIDUAL:g}); lower the precision"
+        )
     if result.truncated_mass > MAX_TRUNCATED_MASS:
         notes.append(
             f"REFUSED: the paths beyond the cap carry mass {result.truncated_mass:.2g}; "

@@ -15,9 +15,13 @@ import numpy as np
 import pandas as pd
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.design_allocation import search_allocations
+from stopwise.estimation.design_contest import ContestScheme
 from stopwise.estimation.design_discrimination import both_directions, discrimination_text
+from stopwise.estimation.design_power import lr_test_plan, lr_test_text
 from stopwise.estimation.design_search import search_designs
 from stopwise.estimation.design_study import DesignResult, Plan, expected_precision
+from stopwise.estimation.nesting import classify
 from stopwise.models.base import Model
 from stopwise.models.spec import build_model
 
@@ -54,12 +58,28 @@ def _spec(model: Model, name: str) -> Any:
 
 
 def check_plan(plan: Plan) -> None:
-    """Survival chances in (0, 1), at least one trial and participant, gain > 0."""
+    """Survival chances in (0, 1), at least one trial and participant, gains > 0, one gain
+    and one positive whole trial count per condition with the counts summing to the trials."""
     if plan.items is None:
         if not plan.p_survive or not all(0 < p < 1 for p in plan.p_survive):
             raise StopwiseInputError("p_survive: expected values strictly between 0 and 1")
-        if not plan.gain > 0:
-            raise StopwiseInputError(f"gain {plan.gain}: expected a number > 0")
+        if not plan.gain > 0 or not all(g > 0 for g in plan.gains):
+            raise StopwiseInputError("gain: expected numbers > 0")
+        n_cond = len(plan.p_survive)
+        if plan.gains and len(plan.gains) != n_cond:
+            raise StopwiseInputError(
+                f"gain: {len(plan.gains)} gains for {n_cond} survival chances; give one "
+                "gain or one per chance"
+            )
+        if plan.allocation and (
+            len(plan.allocation) != n_cond
+            or any(n < 1 for n in plan.allocation)
+            or sum(plan.allocation) != plan.trials
+        ):
+            raise StopwiseInputError(
+                f"allocation {list(plan.allocation)}: expected {n_cond} whole numbers >= 1 "
+                f"summing to the {plan.trials} trials"
+            )
     if plan.trials < 1 or plan.subjects < 1:
         raise StopwiseInputError("trials and subjects: expected whole numbers >= 1")
 
@@ -71,9 +91,11 @@ def design(
     p_survive: Sequence[float] = (0.6, 0.75, 0.9),
     trials: int = 60,
     subjects: int = 100,
-    gain: float = 1.0,
+    gain: float | Sequence[float] = 1.0,
     start: float = 0.0,
     items: pd.DataFrame | None = None,
+    allocation: Sequence[int] = (),
+    contest: ContestScheme | Mapping[str, Any] | None = None,
     ranges: Mapping[str, tuple[float, float]] | None = None,
     versus: str | Model | None = None,
     candidates: Sequence[float] | None = None,
@@ -81,29 +103,68 @@ def design(
     criterion: str = "d",
     best: int = 5,
     max_payout: float | None = None,
+    gain_candidates: Sequence[float] | None = None,
+    allocation_step: int | None = None,
     options: Mapping[str, Any] | None = None,
 ) -> DesignResult:
     """Expected SEs, correlations and checks of a plan (``subjects`` x ``trials`` over
     ``p_survive``, or the lottery ``items`` once each) at ``params``, averaged over
     ``ranges``; with ``candidates`` the best sets of ``choose`` survival chances by
-    ``criterion`` ("d" or "se:NAME"); with ``versus`` the discrimination of that rival."""
+    ``criterion`` ("d" or "se:NAME"); with ``gain_candidates`` or ``allocation_step`` the
+    chances, gains per draw and split of the trials together (design_allocation); with
+    ``versus`` the discrimination of that rival. ``gain``: one gain or one per chance;
+    ``allocation``: trials per chance; ``contest``: the scheme of a contest model's trials
+    (a ContestScheme or a mapping with players, prize and keep_bank)."""
     the_model = resolve(model, options)
     ranges = dict(ranges or {})
     check_values(the_model, params, ranges)
     theta = {**the_model.start_theta(), **{k: float(v) for k, v in params.items()}}
-    plan = Plan(tuple(float(p) for p in p_survive), trials, subjects, gain, start, items)
+    if contest is not None and not isinstance(contest, ContestScheme):
+        contest = ContestScheme(**dict(contest))
+    gains = (float(gain),) if np.ndim(gain) == 0 else tuple(float(g) for g in gain)
+    plan = Plan(
+        tuple(float(p) for p in p_survive),
+        trials,
+        subjects,
+        gains[0] if len(gains) == 1 else 1.0,
+        start,
+        items,
+        gains if len(gains) > 1 else (),
+        tuple(int(n) for n in allocation),
+        contest,
+    )
     if the_model.data_kind == "lottery":
         if items is None:
             raise StopwiseInputError(f"model {the_model.name} answers a lottery list: give items")
         plan = Plan((), len(items), subjects, gain, start, items)
     check_plan(plan)
+    if the_model.data_kind == "contest" and (candidates is not None or versus is not None):
+        raise StopwiseInputError(
+            "contest designs: expected precision only (no search over chances, no rival)"
+        )
     result = expected_precision(the_model, theta, plan, ranges)
     if candidates is not None:
         if the_model.data_kind != "stopping":
             raise StopwiseInputError("optimising survival chances needs a stopping model")
-        found = search_designs(
-            the_model, theta, plan, candidates, choose, criterion, ranges, best, max_payout
-        )
+        joint = gain_candidates is not None or allocation_step is not None
+        if joint or plan.gains or plan.allocation:
+            found: Any = search_allocations(
+                the_model,
+                theta,
+                plan,
+                candidates,
+                gain_candidates or plan.condition_gains()[:1].tolist(),
+                choose,
+                allocation_step,
+                criterion,
+                ranges,
+                best,
+                max_payout,
+            )
+        else:
+            found = search_designs(
+                the_model, theta, plan, candidates, choose, criterion, ranges, best, max_payout
+            )
         result.extras["optimisation"] = found.to_dict()
         result.extras["optimisation_text"] = found.summary()
     if versus is not None:
@@ -116,6 +177,7 @@ def design(
         rows = both_directions(the_model, theta, rival, plan)
         result.extras["discrimination"] = rows
         result.extras["discrimination_text"] = discrimination_text(rows, plan.subjects)
+        add_lr_test(result, the_model, theta, rival, plan)
     return result
 
 
@@ -132,3 +194,23 @@ def candidate_grid(text: str) -> list[float]:
         raise StopwiseInputError(f"--candidates {text!r}: expected 0 < LO < HI < 1 and STEP > 0")
     count = int(np.floor((hi - lo) / step + 1e-9)) + 1
     return [round(lo + i * step, 10) for i in range(count)]
+
+
+def add_lr_test(
+    result: DesignResult, model: Model, theta: Mapping[str, float], rival: Model, plan: Plan
+) -> None:
+    """When the rival is nested in the model (true at ``theta``): the LR test's power and
+    the participants for 80% / 95% power (design_power); a note when the nesting runs the
+    other way (the power of rejecting a true small model is its size)."""
+    relation = classify(model, rival)
+    if relation.kind != "nested":
+        return
+    if (model, rival)[relation.big] is not model:
+        result.notes.append(
+            f"{model.name} is nested in {rival.name}: give the bigger model as --model for "
+            "the sample size of the likelihood-ratio test"
+        )
+        return
+    row = lr_test_plan(model, theta, rival, plan)
+    result.extras["lr_test"] = row
+    result.extras["lr_test_text"] = lr_test_text(row, plan.subjects)

@@ -2,9 +2,13 @@
 
 Prints the expected standard errors (pooled over ``--subjects`` participants and for one
 participant), their correlation and the checks; ``--range`` averages over a parameter's
-range, ``--versus`` adds the discrimination of a rival model, ``--optimise p_survive`` the
-best sets of ``--choose`` survival chances among ``--candidates``. ``--json`` writes the
-result, ``--figure`` a PNG of expected SE against participants (stopwise.planning).
+range, ``--versus`` adds the discrimination of a rival model (and, for a nested rival, the
+LR test's sample size), ``--optimise p_survive`` the best sets of ``--choose`` survival
+chances among ``--candidates``, ``--optimise conditions`` chances, gains
+(``--gain-candidates``) and trial splits (``--allocation-step``) together. ``--gain`` and
+``--allocation`` give one gain and one trial count per chance; contest models play
+``--players``/``--prize``/``--keep-bank``. ``--json`` writes the result, ``--figure`` a PNG
+of expected SE against participants (stopwise.planning).
 """
 
 from __future__ import annotations
@@ -49,7 +53,17 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         f"{PRICE_LIST_ROWS} price-list rows)",
     )
     parser.add_argument("--subjects", type=_args.positive_int, default=100, metavar="N")
-    parser.add_argument("--gain", type=float, default=1.0, metavar="G", help="default 1")
+    parser.add_argument(
+        "--gain", default="1", metavar="G[,G...]", help="one gain or one per chance (default 1)"
+    )
+    parser.add_argument(
+        "--allocation", metavar="N[,N...]", help="trials per chance (default: round robin)"
+    )
+    parser.add_argument("--players", type=int, default=2, metavar="N", help="contests: group size")
+    parser.add_argument("--prize", type=float, default=10.0, metavar="X", help="contests: prize")
+    parser.add_argument(
+        "--keep-bank", action="store_true", help="contests: players keep their own bank"
+    )
     parser.add_argument(
         "--range",
         action="append",
@@ -60,7 +74,14 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     )
     parser.add_argument("--versus", metavar="SPEC", help="a rival model to tell apart")
     parser.add_argument(
-        "--optimise", choices=("p_survive",), help="search survival chances among --candidates"
+        "--optimise",
+        choices=("p_survive", "conditions"),
+        help="search survival chances among --candidates; 'conditions': chances, gains "
+        "(--gain-candidates) and the split of trials (--allocation-step) together",
+    )
+    parser.add_argument("--gain-candidates", metavar="G[,G...]", help="gains to search")
+    parser.add_argument(
+        "--allocation-step", type=_args.positive_int, metavar="S", help="trial split granularity"
     )
     parser.add_argument("--candidates", default="0.5:0.97:0.01", metavar="LO:HI:STEP")
     parser.add_argument("--choose", type=_args.positive_int, default=3, metavar="K")
@@ -91,6 +112,19 @@ def parse_ranges(items: list[str]) -> dict[str, tuple[float, float]]:
     return ranges
 
 
+def parse_counts(text: str) -> list[int]:
+    """'20,30,10' -> [20, 30, 10] (whole numbers >= 1)."""
+    try:
+        counts = [int(part) for part in text.split(",")]
+    except ValueError:
+        counts = []
+    if not counts or any(n < 1 for n in counts):
+        raise StopwiseInputError(
+            f"--allocation {text!r}: expected whole numbers >= 1, e.g. 20,30,10"
+        )
+    return counts
+
+
 def run(args: argparse.Namespace) -> int:
     from stopwise.figures.design import precision_figure
     from stopwise.planning import candidate_grid, design
@@ -98,13 +132,17 @@ def run(args: argparse.Namespace) -> int:
     model = _options.cli_model(args.model, args.max_target, args.options)
     given = parse_assignments(args.assignments)
     check_parameters(model, given)
-    items = None
+    items, contest = None, None
     if model.data_kind == "lottery":
         items = price_list_design([1], args.trials).drop(columns="subject")
-    elif model.data_kind != "stopping":
-        raise StopwiseInputError(
-            f"model {model.name}: design takes solo stopping and lottery models"
-        )
+    elif model.data_kind == "contest":
+        contest = {"players": args.players, "prize": args.prize, "keep_bank": args.keep_bank}
+    gains = parse_list(args.gain, "--gain")
+    allocation = [] if args.allocation is None else parse_counts(args.allocation)
+    joint = args.optimise == "conditions"
+    gain_candidates = parse_list(args.gain_candidates, "--gain-candidates") if joint else None
+    if joint and args.gain_candidates is None:
+        gain_candidates = gains
     if args.figure and not args.figure.lower().endswith(".png"):
         raise StopwiseInputError(f"--figure {args.figure}: expected a .png file")
     candidates = candidate_grid(args.candidates) if args.optimise else None
@@ -115,8 +153,10 @@ def run(args: argparse.Namespace) -> int:
         p_survive=parse_list(args.p_survive, "--p-survive"),
         trials=args.trials,
         subjects=args.subjects,
-        gain=args.gain,
+        gain=gains,
         items=items,
+        allocation=allocation,
+        contest=contest,
         ranges=parse_ranges(args.ranges),
         versus=versus,
         candidates=candidates,
@@ -124,6 +164,8 @@ def run(args: argparse.Namespace) -> int:
         criterion=args.criterion,
         best=args.best,
         max_payout=args.max_payout,
+        gain_candidates=gain_candidates,
+        allocation_step=args.allocation_step if joint else None,
     )
     picture = precision_figure(result) if args.figure else None
     emit(result, args.json)
