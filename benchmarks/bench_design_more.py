@@ -20,7 +20,7 @@ from stopwise.estimation import design_allocation as A
 from stopwise.estimation import design_study as S
 from stopwise.estimation.design_contest import ContestScheme
 from stopwise.estimation.design_power import lr_test_plan
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.recovery import stopping_design
 
 SOLO_THETA = {"r": 0.4, "precision": 2.0}
 SOLO_PLAN = S.Plan(p_survive=(0.6, 0.75, 0.9), trials=60, subjects=100)

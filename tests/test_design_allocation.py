@@ -21,7 +21,7 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import design_allocation as A
 from stopwise.estimation import design_info as D
 from stopwise.estimation import design_study as S
-from stopwise.estimation.mle import fit_mle
+from stopwise.estimation.ml.mle import fit_mle
 from tests.test_design_info import PATH_DEPTH, enumerate_paths
 
 SPEC = "crra+myopic+logit"

@@ -24,8 +24,8 @@ from stopwise.estimation.design_contest import (
     contest_probe,
     qre_residuals,
 )
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 from tests.test_design_simulation import sd_ratio_bounds
 
 # (spec, max_target, theta, scheme, p): the smallest contests where both sides are cheap

@@ -18,8 +18,8 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import design_power as W
 from stopwise.estimation import design_study as S
 from stopwise.estimation.design_discrimination import discrimination
-from stopwise.estimation.mle import fit_mle
-from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.ml.mle import fit_mle
+from stopwise.estimation.ml.recovery import stopping_design
 
 BIG, SMALL = "crra+myopic+logit", "linear+myopic+logit"
 THETA = {"r": 0.15, "precision": 2.0}

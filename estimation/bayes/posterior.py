@@ -96,7 +96,7 @@ class Posterior:
     cells: Any = field(default=None, repr=False)
     data: Any = field(default=None, repr=False)
     _loo: Any = field(default=None, repr=False)
-    loo_repair: Any = field(default=None, repr=False)  # estimation/loo_subject.SubjectLoo
+    loo_repair: Any = field(default=None, repr=False)  # estimation/bayes/loo_subject.SubjectLoo
 
     @property
     def converged(self) -> bool:
