@@ -60,6 +60,8 @@ from stopwise.models.contest.levelk import (
 )
 from stopwise.models.contest.nash import _support_equations, contest_nash
 from stopwise.models.contest.qre import _continuation, fixed_point_residual, symmetric_residual
+from stopwise.models.contest.sequential_certify import sequential_check
+from stopwise.models.contest.sequential_likelihood import SequentialPart, sequential_conditions
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 CH_DEPTH = 15
@@ -216,6 +218,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
     if tremble:
         params.append(_TREMBLE)
     cap_memory: dict[str, int] = {}
+    sequential = SequentialPart(concept, tremble, utility)  # rows of sequential contests
     if options.get("max_target") is not None:
         cap_memory["cap"] = int(options["max_target"])
         if cap_memory["cap"] < 1:
@@ -259,6 +262,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
                         f"at least {needed} are needed; max_target is {cap}"
                     )
             _warn_identification(utility_name, data)
+            sequential.prepare(data, max(int(cap), int(data.horizon) - 1))
         return max(int(cap), int(data.horizon) - 1)
 
     def condition_log_probs(theta: Mapping[str, Any], data: Any, cap: int) -> Any:
@@ -296,13 +300,15 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         cap = resolve_cap(data)
         log_sigma = condition_log_probs(theta, data, cap)
         ll = jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, data.draw)
-        return jnp.where(data.cond_contest[data.cond] > 0.5, ll, 0.0)
+        ll = jnp.where(data.cond_contest[data.cond] > 0.5, ll, 0.0)
+        return sequential.loglik(theta, data, cap, ll)
 
     def predict(theta: Mapping[str, Any], data: Any) -> Any:
         cap = resolve_cap(data)
         log_sigma = condition_log_probs(theta, data, cap)
         ones = jnp.ones_like(data.draw)
-        return jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
+        draw = jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
+        return sequential.draw_probability(theta, data, cap, draw)
 
     @partial(jax.jit, static_argnums=(5,))
     def _distribution(
@@ -355,11 +361,12 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             return np.full(np.asarray(data.cond_contest).shape, np.nan)
         cap = resolve_cap(data)
         log_sigma = condition_log_probs(theta, data, cap)
-        return np.asarray(
+        residuals = np.asarray(
             jax.vmap(lambda ls, g: fixed_point_residual(ls, theta["precision"], g))(
                 log_sigma, _condition_games(theta, data, cap)
             )
         )
+        return np.where(sequential_conditions(data), np.nan, residuals)  # no fixed point there
 
     def _condition_games(theta: Mapping[str, Any], data: Any, cap: int) -> ContestGame:
         contest = data.cond_contest > 0.5
@@ -430,6 +437,9 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             "notes": (LEVEL_NOTE,) if concept == "levelk" and level is None else (),
             "cap_in_use": lambda: cap_memory.get("cap"),
             "fixed_point_residual": fixed_point_residuals,
+            "sequential_check": lambda theta, data: sequential_check(
+                theta, data, resolve_cap(data), sequential.games_for(data), utility
+            ),
         },
         description=f"contest play: {concept} with {utility_name} utility"
         + (" and trembles" if tremble else ""),
