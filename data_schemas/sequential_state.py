@@ -16,6 +16,8 @@ a simultaneous row, -1 for an unknown state).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pandas as pd
 
@@ -98,3 +100,25 @@ def _number(table: pd.DataFrame, name: str, default: float) -> pd.Series:
         return pd.Series(default, index=table.index, dtype=float)
     values = pd.to_numeric(table[name], errors="coerce").astype(float)
     return values if np.isnan(default) else values.fillna(default)
+
+
+SEQUENTIAL_KEY_FIELDS = (
+    "cond_gain",
+    "cond_start",
+    "cond_bust_keep",
+    "cond_n_players",
+    "cond_prize",
+    "cond_keep_bank",
+)
+
+
+def sequential_game_key(bundle: Any) -> np.ndarray:
+    """(7, n_cond): per condition, whether it is sequential and its game fields beyond the
+    survival chance (zeros for other conditions): what sizes a sequential contest model."""
+    order = np.asarray(bundle.cond_order, float)
+    sequential = (order > 0.5) & (np.asarray(bundle.cond_contest, float) > 0.5)
+    rows = [
+        np.where(sequential, np.asarray(getattr(bundle, f), float), 0.0)
+        for f in SEQUENTIAL_KEY_FIELDS
+    ]
+    return np.stack([sequential.astype(float), *rows])

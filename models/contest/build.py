@@ -298,6 +298,8 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
 
     def loglik_obs(theta: Mapping[str, Any], data: Any) -> Any:
         cap = resolve_cap(data)
+        if sequential.only_sequential and sequential.games_for(data):  # no simultaneous play
+            return sequential.loglik(theta, data, cap, jnp.zeros_like(data.draw))
         log_sigma = condition_log_probs(theta, data, cap)
         ll = jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, data.draw)
         ll = jnp.where(data.cond_contest[data.cond] > 0.5, ll, 0.0)

@@ -138,9 +138,7 @@ def outcome_matrix(game: SequentialGame) -> np.ndarray:
     return q
 
 
-def win_chances(
-    game: SequentialGame, next_continuation: np.ndarray, b: int, c: int
-) -> np.ndarray:
+def win_chances(game: SequentialGame, next_continuation: np.ndarray, b: int, c: int) -> np.ndarray:
     """win_j(x) over score indices x in state (b, c), given G_{j+1} (module docstring)."""
     n_scores = game.score_values.size
     x = np.arange(n_scores)

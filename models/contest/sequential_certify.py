@@ -8,7 +8,7 @@ takes the mover of that condition in the state it saw and compares P(stop at k),
 
     check = max over conditions and k of |P_likelihood(stop at k) - P_solver(stop at k)|.
 
-A fit whose check exceeds SEQUENTIAL_CHECK_TOLERANCE is not certified (stopwise/fit_checks).
+A fit whose check exceeds stopwise.fit_checks.SEQUENTIAL_CHECK_TOLERANCE is not certified.
 """
 
 from __future__ import annotations
@@ -27,8 +27,6 @@ from stopwise.models.contest.sequential_likelihood import (
 )
 from stopwise.models.contest.sequential_qre import LogitSolution, solve_sequential_logit
 
-SEQUENTIAL_CHECK_TOLERANCE = 1e-8
-
 
 def reference_solution(
     game_row: tuple[float, ...], cap: int, theta: Mapping[str, float], utility: Utility
@@ -38,7 +36,7 @@ def reference_solution(
     p, gain, start, keep, players, prize, keep_bank = game_row
     game = make_sequential_game(
         p,
-        int(round(players)),
+        round(players),
         prize,
         keep_bank > 0.5,
         cap,
@@ -50,7 +48,9 @@ def reference_solution(
     return solve_sequential_logit(game, float(theta["precision"]))
 
 
-def reference_stop_probabilities(solution: LogitSolution, order: int, best: float, tied: int) -> np.ndarray:
+def reference_stop_probabilities(
+    solution: LogitSolution, order: int, best: float, tied: int
+) -> np.ndarray:
     """P(stop at k) of mover ``order`` (1-based) who saw best earlier bank ``best`` held by
     ``tied`` movers (ignored for the first mover)."""
     if order <= 1:
@@ -83,9 +83,9 @@ def sequential_check(
             solutions[row] = reference_solution(row, cap, natural, utility)
         reference = reference_stop_probabilities(
             solutions[row],
-            int(round(float(np.asarray(data.cond_order)[i]))),
+            round(float(np.asarray(data.cond_order)[i])),
             float(np.asarray(data.cond_seen_best)[i]),
-            int(round(float(np.asarray(data.cond_seen_tied)[i]))),
+            round(float(np.asarray(data.cond_seen_tied)[i])),
         )
         worst = max(worst, float(np.max(np.abs(likelihood[i] - reference))))
     return worst

@@ -91,9 +91,10 @@ def later_mover_tables(
         win = game.below[b] * following[:, 1] + game.equal[b] * following[b, c + 1]
         log_stop, log_draw = logit_stopping(game.u0 + pay_scale * win, p, precision, cap)
         dist = slot_distribution_of_play(log_stop, log_draw, p, cap)
-        g = dist @ game.below[:, b] * following[b, c] + dist @ game.equal[:, b] * following[
-            b, c + 1
-        ]
+        g = (
+            dist @ game.below[:, b] * following[b, c]
+            + dist @ game.equal[:, b] * following[b, c + 1]
+        )
         return log_stop, log_draw, g
 
     slots = jnp.arange(game.u0.shape[0])
@@ -157,12 +158,12 @@ def condition_tables(
 ) -> tuple[Any, Any]:
     """Per condition (log P(stop at k), log P(draw at k)), shape (n_cond, cap+1): the
     condition's mover in the state it saw, in its game (zeros for simultaneous ones)."""
-    n_max = max(int(round(g[4])) for g in games)
+    n_max = max(round(g[4]) for g in games)
     per_game = []
     for p, gain, start, keep, players, prize, keep_bank in games:
         game = make_game(p, players, prize, keep_bank, cap, gain, start, keep, utility, theta)
         per_game.append(
-            solve_game_tables(game, float(p), theta["precision"], cap, int(round(players)), n_max)
+            solve_game_tables(game, float(p), theta["precision"], cap, round(players), n_max)
         )
     first_stop, first_draw, later_stop, later_draw = (
         jnp.stack([t[i] for t in per_game]) for i in range(4)
@@ -283,19 +284,22 @@ class SequentialPart:
     def __init__(self, concept: str, tremble: bool, utility: Utility) -> None:
         self.concept, self.tremble, self.utility = concept, tremble, utility
         self.games: tuple[tuple[float, ...], ...] | None = None
+        self.only_sequential = False  # every contest condition read so far is sequential
 
     def prepare(self, data: Any, cap: int) -> None:
         """Read (and check) the sequential games of concrete data; a model keeps the games
-        it first read, so other data must bring no new game."""
+        (and whether it met simultaneous contests) it first read, so other data must bring
+        no new game and, after only sequential contests, no simultaneous one."""
         games = read_games(data, self.concept, self.tremble)
         check_seen_on_grid(data, cap)
+        only = bool(games) and not _simultaneous_conditions(data).any()
         if self.games is None:
-            self.games = games
-        elif not set(games) <= set(self.games):
+            self.games, self.only_sequential = games, only
+        elif not set(games) <= set(self.games) or (self.only_sequential and not only):
             raise StopwiseInputError(
                 "this contest model was prepared for other sequential contests (survival "
-                "chance, gain, start, bust_keep, players, prize, keep_bank); build a new model "
-                "for these data"
+                "chance, gain, start, bust_keep, players, prize, keep_bank, or contests that "
+                "were all sequential); build a new model for these data"
             )
 
     def games_for(self, data: Any) -> tuple[tuple[float, ...], ...]:
@@ -336,3 +340,11 @@ def sequential_conditions(data: Any) -> np.ndarray:
     if getattr(data, "cond_order", None) is None:
         return np.zeros(contest.shape, dtype=bool)
     return contest & (np.asarray(data.cond_order) > 0.5)
+
+
+def _simultaneous_conditions(data: Any) -> np.ndarray:
+    """Per condition of concrete data: True for simultaneous contest conditions in use."""
+    used = np.zeros(np.shape(data.cond_contest), dtype=bool)
+    used[np.unique(np.asarray(data.cond))] = True
+    contest = (np.asarray(data.cond_contest) > 0.5) & used
+    return contest & ~sequential_conditions(data)
