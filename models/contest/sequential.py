@@ -155,6 +155,14 @@ def payoff_of_win(game: SequentialGame, win: np.ndarray) -> np.ndarray:
     return game.lose_utility + win * (game.win_utility - game.lose_utility)
 
 
+def payoff_range(game: SequentialGame) -> float:
+    """max - min of any mover's possible payoff: u(kb max + prize) - u(0), the unit of
+    regret shares (prize + kb * max score without a utility)."""
+    if game.lose_utility is None or game.win_utility is None:
+        return game.prize + game.keep_bank * float(game.score_values.max())
+    return float(np.max(game.win_utility) - np.min(game.lose_utility))
+
+
 def mover_payoffs(
     game: SequentialGame, next_continuation: np.ndarray, b: int, c: int
 ) -> np.ndarray:
