@@ -9,8 +9,6 @@ stop probability per bank level given the state (best bank so far, number tied a
 
 from __future__ import annotations
 
-from collections.abc import Callable
-
 import numpy as np
 import pandas as pd
 
@@ -18,10 +16,11 @@ from stopwise.contest_sequential import max_regret
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.certify import DEFAULT_TOLERANCE as CERTIFICATE_TOLERANCE
 from stopwise.models.contest.certify import UncertifiedAnswer
-from stopwise.models.contest.game import default_max_target, resolve_utility
+from stopwise.models.contest.game import default_max_target
 from stopwise.models.contest.sequential import (
     NONE,
     SequentialGame,
+    crra,
     make_sequential_game,
     payoff_range,
     solve_sequential,
@@ -29,16 +28,6 @@ from stopwise.models.contest.sequential import (
 from stopwise.models.contest.sequential_qre import solve_sequential_logit
 
 MAX_SIMULATED_CONTESTS = 10_000_000
-
-
-def crra(r: float | None) -> Callable[[np.ndarray], np.ndarray] | None:
-    """Money -> CRRA utility with curvature r (None: risk neutral, no utility)."""
-    if r is None:
-        return None
-    if not (np.isfinite(r) and r < 1.0):
-        raise StopwiseInputError(f"r must be a finite number below 1 in contests, got {r}")
-    utility = resolve_utility("crra")
-    return lambda x: np.asarray(utility(np.asarray(x, float), {"r": float(r)}), dtype=float)
 
 
 def exact_stop_probs(targets: np.ndarray, cap: int) -> np.ndarray:

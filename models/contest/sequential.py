@@ -42,6 +42,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.game import resolve_utility
+
 NONE = -1
 TIE_RELATIVE = 1e-9
 INDIFFERENCE_RELATIVE = 1e-12
@@ -77,6 +80,16 @@ class SequentialSolution:
     targets: list[np.ndarray]
     values: list[np.ndarray]
     win_continuation: list[np.ndarray]
+
+
+def crra(r: float | None) -> Callable[[np.ndarray], np.ndarray] | None:
+    """Money -> CRRA utility with curvature r (None: risk neutral, no utility)."""
+    if r is None:
+        return None
+    if not (np.isfinite(r) and r < 1.0):
+        raise StopwiseInputError(f"r must be a finite number below 1 in contests, got {r}")
+    utility = resolve_utility("crra")
+    return lambda x: np.asarray(utility(np.asarray(x, float), {"r": float(r)}), dtype=float)
 
 
 def make_sequential_game(
