@@ -4,7 +4,8 @@ Outside checks: the likelihood of a tiny two-player contest is recomputed by enu
 every path of play (scipy's expit), written here without the package's
 recursions; the agent logit QRE is logit choice at every decision node with beliefs that
 later nodes and movers play the same way (McKelvey & Palfrey 1998, agent QRE; from memory),
-and CRRA u(x) = (x^(1-r) - 1)/(1-r) (common practice, no source).
+level-k with level-0 players choosing at random (Stahl & Wilson 1995, Nagel 1995; from
+memory), and CRRA u(x) = (x^(1-r) - 1)/(1-r) (common practice, no source).
 """
 
 from __future__ import annotations
@@ -22,6 +23,7 @@ from stopwise.api import resolve_model
 from stopwise.contest_sequential_sim import simulate_sequential
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.spec import build_model
 
 P, PRIZE, CAP, R, LAMBDA = 0.7, 5.0, 3, 0.4, 1.3
 
@@ -76,13 +78,17 @@ def second_mover_stop(rival: float) -> list[float]:
     return agent_logit(payoff, P, LAMBDA, CAP)
 
 
-def first_mover_stop() -> list[float]:
-    """The first mover: win chance from every path of the second mover's reply."""
+def first_mover_stop(second_random: bool = False) -> list[float]:
+    """The first mover: win chance from every path of the second mover's reply (the logit
+    reply, or with ``second_random`` a level-0 reply stopping with probability 1/2 at every
+    node below the cap)."""
+    random_reply = [0.5] * CAP + [1.0]
 
     def payoff(kind: str, k: int) -> float:
         x = bank(kind, k)
         win = 0.0
-        for kind2, k2, prob in paths(second_mover_stop(x), P, CAP):
+        reply = random_reply if second_random else second_mover_stop(x)
+        for kind2, k2, prob in paths(reply, P, CAP):
             y = bank(kind2, k2)
             win += prob * (1.0 if x > y else (0.5 if x == y else 0.0))
         return win * crra(x + PRIZE) + (1.0 - win) * crra(x)
@@ -132,8 +138,8 @@ def tiny_frame() -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def enumerated_loglik() -> float:
-    first = first_mover_stop()
+def enumerated_loglik(second_random: bool = False) -> float:
+    first = first_mover_stop(second_random)
     total = 0.0
     for first_actions, second_actions in TINY_CONTESTS:
         first_bank = 0.0 if first_actions.endswith("b") else float(first_actions.count("d"))
@@ -151,6 +157,45 @@ def test_likelihood_matches_enumeration_of_every_path():
     ll = np.asarray(model.loglik_obs({"r": R, "precision": LAMBDA}, data))
     assert ll.shape == (data.n_obs,)
     assert float(ll.sum()) == pytest.approx(enumerated_loglik(), rel=1e-12, abs=1e-12)
+
+
+def test_level_one_first_mover_matches_enumeration_against_a_random_second_mover():
+    # level-k (option level=1): the first mover best-responds (logit) to a level-0 second
+    # mover who stops at random; second movers of level >= 1 answer the state by logit
+    data = stopwise.load(tiny_frame()).arrays()
+    theta = {"r": R, "precision": LAMBDA}
+    one = build_model("crra+levelk", max_target=CAP, level=1)
+    one.options["prepare"](data)
+    ll_one = float(np.asarray(one.loglik_obs(theta, data)).sum())
+    assert ll_one == pytest.approx(enumerated_loglik(second_random=True), rel=1e-12)
+    # where the belief matters: level 1 differs from agent logit play, level 2 reduces to it
+    assert abs(ll_one - enumerated_loglik()) > 1e-3
+    two = build_model("crra+levelk", max_target=CAP, level=2)
+    two.options["prepare"](data)
+    ll_two = float(np.asarray(two.loglik_obs(theta, data)).sum())
+    assert ll_two == pytest.approx(enumerated_loglik(), rel=1e-12)
+
+
+@pytest.mark.parametrize(
+    "spec, extra", [("crra+levelk", {"level": 1.7}), ("crra+ch", {"tau": 1.4})]
+)
+def test_population_beliefs_agree_with_the_numpy_solver_and_differentiate(spec, extra):
+    frame = simulate_sequential(
+        0.75, 3, 4.0, groups=4, trials=3, keep_bank=True, precision=1.5, max_target=6, r=0.2
+    )
+    data = stopwise.load(frame).arrays()
+    model = resolve_model(spec, 6)
+    model.options["prepare"](data)
+    theta = {"r": 0.2, "precision": 1.5, **extra}
+    assert 0.0 <= model.options["sequential_check"](theta, data) <= 1e-10
+    name = next(iter(extra))
+
+    def total(value):
+        return model.loglik_obs({**theta, name: value}, data).sum()
+
+    h = 1e-6
+    numeric = (total(extra[name] + h) - total(extra[name] - h)) / (2 * h)
+    assert float(jax.grad(total)(extra[name])) == pytest.approx(float(numeric), rel=1e-5)
 
 
 def test_states_read_from_the_earlier_movers_rows_count_ties():
@@ -196,7 +241,7 @@ def test_exact_derivatives_match_central_differences():
 
 def test_concepts_without_a_sequential_likelihood_are_refused():
     data = stopwise.load(tiny_frame()).arrays()
-    for spec in ("crra+nash", "linear+levelk", "crra+qre+tremble"):
+    for spec in ("crra+nash", "crra+qre+tremble"):
         model = resolve_model(spec, CAP)
         with pytest.raises(StopwiseInputError, match="sequential contests"):
             model.options["prepare"](data)

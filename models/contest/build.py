@@ -218,7 +218,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
     if tremble:
         params.append(_TREMBLE)
     cap_memory: dict[str, int] = {}
-    sequential = SequentialPart(concept, tremble, utility)  # rows of sequential contests
+    sequential = SequentialPart(concept, tremble, utility, options)  # sequential contests
     if options.get("max_target") is not None:
         cap_memory["cap"] = int(options["max_target"])
         if cap_memory["cap"] < 1:
@@ -440,7 +440,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             "cap_in_use": lambda: cap_memory.get("cap"),
             "fixed_point_residual": fixed_point_residuals,
             "sequential_check": lambda theta, data: sequential_check(
-                theta, data, resolve_cap(data), sequential.games_for(data), utility
+                theta, data, resolve_cap(data), sequential
             ),
         },
         description=f"contest play: {concept} with {utility_name} utility"

@@ -16,7 +16,8 @@ from the last mover j = N-1 back to the first:
     G_j(b, c) = sum_x P_j(x | b, c) (below[x, b] G_{j+1}(b, c) + equal[x, b] G_{j+1}(b, c+1))
 
 (agent logit QRE: every node expects its own later nodes and all later movers to play the
-same noisy way). A row of mover j who saw (b, c) at step s contributes log P(stop at s) or
+same noisy way; the concepts levelk and ch replace the first mover's beliefs about later
+movers by level-k / cognitive-hierarchy ones: sequential_beliefs). A row of mover j who saw (b, c) at step s contributes log P(stop at s) or
 log P(draw at s) = log sigmoid(-z_s): the decisions factorise, and a bust after k successes
 contributes the k + 1 draw decisions only (exact censoring).
 
@@ -37,6 +38,7 @@ import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.game import Utility, make_game, slot_scores
+from stopwise.models.contest.sequential_beliefs import Beliefs, beliefs_for, mixture_hazard
 
 GAME_FIELDS = (
     "cond_p_survive",
@@ -47,7 +49,7 @@ GAME_FIELDS = (
     "cond_prize",
     "cond_keep_bank",
 )
-SEQUENTIAL_CONCEPTS = ("qre", "aqre")
+SEQUENTIAL_CONCEPTS = ("qre", "aqre", "levelk", "ch")
 MATCH_RELATIVE = 1e-9
 
 
@@ -104,13 +106,12 @@ def later_mover_tables(
     return log_stop, log_draw, table
 
 
-def solve_game_tables(
+def later_movers(
     game: Any, p: float, precision: Any, cap: int, players: int, n_max: int
-) -> tuple[Any, Any, Any, Any]:
-    """Backward induction over movers (module docstring). Returns the first mover's
-    (log P(stop), log P(draw)) over k, shape (cap+1,), and the later movers' tables of
-    shape (n_max - 1, L, n_max - 1, cap+1) indexed [j - 1, b, c - 1, k] (zeros for movers
-    and counts beyond this game's players)."""
+) -> tuple[Any, Any, Any]:
+    """Backward induction over the later movers (module docstring): their tables of shape
+    (n_max - 1, L, n_max - 1, cap+1) indexed [j - 1, b, c - 1, k] (zeros for movers and
+    counts beyond this game's players) and G_1, the second mover's continuation table."""
     n_slots = game.u0.shape[0]
     states = max(n_max - 1, 1)
     following = jnp.zeros((n_slots, states + 2))
@@ -124,9 +125,45 @@ def solve_game_tables(
         )
         later_stop = later_stop.at[j - 1].set(log_stop)
         later_draw = later_draw.at[j - 1].set(log_draw)
-    pay = game.u0 + game.du * following[:, 1]
-    first_stop, first_draw = logit_stopping(pay, p, precision, cap)
-    return first_stop, first_draw, later_stop, later_draw
+    return later_stop, later_draw, following
+
+
+def solve_game_tables(
+    game: Any,
+    p: float,
+    precision: Any,
+    cap: int,
+    players: int,
+    n_max: int,
+    beliefs: Beliefs | None = None,
+) -> tuple[Any, Any, Any, Any]:
+    """The first mover's (log P(stop), log P(draw)) over k, shape (cap+1,), and the later
+    movers' tables (``later_movers``): agent logit play, or with ``beliefs`` a population of
+    level-k / cognitive-hierarchy types moving by the mixture's hazard
+    (sequential_beliefs)."""
+    later_stop, later_draw, logit_g = later_movers(game, p, precision, cap, players, n_max)
+    if beliefs is None:
+        first = logit_stopping(game.u0 + game.du * logit_g[:, 1], p, precision, cap)
+        return first[0], first[1], later_stop, later_draw
+    uniform_g = later_movers(game, p, 0.0, cap, players, n_max)[2]
+
+    def first_type(thinks: Any, a: Any) -> tuple[Any, Any]:
+        win = a * uniform_g[:, 1] + (1.0 - a) * logit_g[:, 1]
+        return logit_stopping(game.u0 + game.du * win, p, thinks * precision, cap)
+
+    type_stop, type_draw = jax.vmap(first_type)(beliefs.thinks, beliefs.level0_belief)
+    first_stop, first_draw = mixture_hazard(jnp.log(beliefs.weights), type_stop, type_draw)
+    random_stop = jnp.concatenate([jnp.full(cap, -jnp.log(2.0)), jnp.zeros(1)])
+    random_draw = jnp.concatenate([jnp.full(cap, -jnp.log(2.0)), jnp.full(1, -jnp.inf)])
+    log_w = jnp.log(jnp.stack([beliefs.later_level0, 1.0 - beliefs.later_level0]))
+
+    def later_mix(log_stop: Any, log_draw: Any) -> tuple[Any, Any]:
+        return mixture_hazard(
+            log_w, jnp.stack([random_stop, log_stop]), jnp.stack([random_draw, log_draw])
+        )
+
+    mixed = jax.vmap(jax.vmap(jax.vmap(later_mix)))(later_stop, later_draw)
+    return first_stop, first_draw, mixed[0], mixed[1]
 
 
 def game_index(data: Any, games: tuple[tuple[float, ...], ...]) -> Any:
@@ -155,15 +192,19 @@ def condition_tables(
     cap: int,
     games: tuple[tuple[float, ...], ...],
     utility: Utility,
+    beliefs: Beliefs | None = None,
 ) -> tuple[Any, Any]:
     """Per condition (log P(stop at k), log P(draw at k)), shape (n_cond, cap+1): the
-    condition's mover in the state it saw, in its game (zeros for simultaneous ones)."""
+    condition's mover in the state it saw, in its game (zeros for simultaneous ones);
+    ``beliefs``: level-k / cognitive-hierarchy types (sequential_beliefs)."""
     n_max = max(round(g[4]) for g in games)
     per_game = []
     for p, gain, start, keep, players, prize, keep_bank in games:
         game = make_game(p, players, prize, keep_bank, cap, gain, start, keep, utility, theta)
         per_game.append(
-            solve_game_tables(game, float(p), theta["precision"], cap, round(players), n_max)
+            solve_game_tables(
+                game, float(p), theta["precision"], cap, round(players), n_max, beliefs
+            )
         )
     first_stop, first_draw, later_stop, later_draw = (
         jnp.stack([t[i] for t in per_game]) for i in range(4)
@@ -193,9 +234,11 @@ def sequential_loglik(
     cap: int,
     games: tuple[tuple[float, ...], ...],
     utility: Utility,
+    beliefs: Beliefs | None = None,
 ) -> Any:
-    """log P(decision) of every row under agent logit play (0 on other rows)."""
-    log_stop, log_draw = condition_tables(theta, data, cap, games, utility)
+    """log P(decision) of every row under agent logit play or ``beliefs`` (0 on other
+    rows)."""
+    log_stop, log_draw = condition_tables(theta, data, cap, games, utility, beliefs)
     step = jnp.clip(data.step, 0, cap)
     ll = jnp.where(data.draw > 0.5, log_draw[data.cond, step], log_stop[data.cond, step])
     return jnp.where(sequential_rows(data), ll, 0.0)
@@ -207,16 +250,20 @@ def sequential_stop_probabilities(
     cap: int,
     games: tuple[tuple[float, ...], ...],
     utility: Utility,
+    beliefs: Beliefs | None = None,
 ) -> np.ndarray:
-    """P(stop at k), k = 0..cap, per condition (NaN rows for simultaneous conditions)."""
-    log_stop, _ = condition_tables(theta, data, cap, games, utility)
+    """P(stop at k | reached k), k = 0..cap, per condition (NaN rows for simultaneous
+    conditions)."""
+    log_stop, _ = condition_tables(theta, data, cap, games, utility, beliefs)
     out = np.exp(np.asarray(log_stop))
     seq = np.asarray(data.cond_contest) > 0.5
     seq &= np.asarray(data.cond_order) > 0.5
     return np.where(seq[:, None], out, np.nan)
 
 
-def read_games(data: Any, concept: str, tremble: bool) -> tuple[tuple[float, ...], ...]:
+def read_games(
+    data: Any, concept: str, tremble: bool, level0: str = "uniform"
+) -> tuple[tuple[float, ...], ...]:
     """The distinct games of the sequential conditions of concrete data, after checking
     that the model can score them: a logit concept, no tremble, every later mover's state
     known (data_schemas.sequential_state)."""
@@ -229,12 +276,14 @@ def read_games(data: Any, concept: str, tremble: bool) -> tuple[tuple[float, ...
     seq = contest & (order > 0.5) & used
     if not seq.any():
         return ()
-    if concept not in SEQUENTIAL_CONCEPTS or tremble:
+    if concept not in SEQUENTIAL_CONCEPTS or tremble or level0 != "uniform":
         raise StopwiseInputError(
             "the data hold sequential contests (an 'order' column); stopwise fits them with "
-            "agent logit play at every decision node, concepts "
-            f"{' or '.join(SEQUENTIAL_CONCEPTS)} without tremble (e.g. crra+qre); "
-            f"got the concept {concept}{' with tremble' if tremble else ''}"
+            "logit play at every decision node, concepts "
+            f"{', '.join(SEQUENTIAL_CONCEPTS)} without tremble and with level-0 movers "
+            f"stopping at random (e.g. crra+qre); got the concept {concept}"
+            f"{' with tremble' if tremble else ''}"
+            f"{' with level0=' + level0 if level0 != 'uniform' else ''}"
         )
     unknown = seq & (np.asarray(data.cond_seen_tied) < 0)
     if unknown.any():
@@ -281,8 +330,11 @@ class SequentialPart:
     """The sequential games a contest model has read from concrete data (``prepare``) and
     scores with agent logit play; data without an ``order`` column need none."""
 
-    def __init__(self, concept: str, tremble: bool, utility: Utility) -> None:
+    def __init__(
+        self, concept: str, tremble: bool, utility: Utility, options: Mapping[str, Any]
+    ) -> None:
         self.concept, self.tremble, self.utility = concept, tremble, utility
+        self.options = dict(options)
         self.games: tuple[tuple[float, ...], ...] | None = None
         self.only_sequential = False  # every contest condition read so far is sequential
 
@@ -290,7 +342,7 @@ class SequentialPart:
         """Read (and check) the sequential games of concrete data; a model keeps the games
         (and whether it met simultaneous contests) it first read, so other data must bring
         no new game and, after only sequential contests, no simultaneous one."""
-        games = read_games(data, self.concept, self.tremble)
+        games = read_games(data, self.concept, self.tremble, self.options.get("level0", "uniform"))
         check_seen_on_grid(data, cap)
         only = bool(games) and not _simultaneous_conditions(data).any()
         if self.games is None:
@@ -319,7 +371,8 @@ class SequentialPart:
         games = self.games_for(data)
         if not games:
             return simultaneous
-        seq = sequential_loglik(theta, data, cap, games, self.utility)
+        beliefs = beliefs_for(self.concept, theta, self.options)
+        seq = sequential_loglik(theta, data, cap, games, self.utility, beliefs)
         return jnp.where(sequential_rows(data), seq, simultaneous)
 
     def draw_probability(
@@ -329,7 +382,8 @@ class SequentialPart:
         games = self.games_for(data)
         if not games:
             return simultaneous
-        _, log_draw = condition_tables(theta, data, cap, games, self.utility)
+        beliefs = beliefs_for(self.concept, theta, self.options)
+        _, log_draw = condition_tables(theta, data, cap, games, self.utility, beliefs)
         step = jnp.clip(data.step, 0, cap)
         return jnp.where(sequential_rows(data), jnp.exp(log_draw[data.cond, step]), simultaneous)
 
