@@ -62,6 +62,7 @@ from stopwise.models.contest.nash import _support_equations, contest_nash
 from stopwise.models.contest.qre import _continuation, fixed_point_residual, symmetric_residual
 from stopwise.models.contest.sequential_certify import sequential_check
 from stopwise.models.contest.sequential_likelihood import SequentialPart, sequential_conditions
+from stopwise.models.contest.sequential_simulate import simulate_sequential_design
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 CH_DEPTH = 15
@@ -420,6 +421,8 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         return sigma
 
     def simulate(theta: Mapping[str, Any], design: pd.DataFrame, key: Any) -> pd.DataFrame:
+        if "order" in design:  # sequential contests (models/contest/sequential_simulate.py)
+            return simulate_sequential_design(theta, design, key, concept, utility, options)
         return simulate_contest(certified_distribution, theta, design, key, options)
 
     name = "+".join([utility_name, concept] + (["tremble"] if tremble else []))

@@ -228,6 +228,9 @@ def sequential_rows(data: Any) -> Any:
     )
 
 
+_compiled_tables = jax.jit(condition_tables, static_argnums=(2, 3, 4))
+
+
 def sequential_loglik(
     theta: Mapping[str, Any],
     data: Any,
@@ -254,7 +257,7 @@ def sequential_stop_probabilities(
 ) -> np.ndarray:
     """P(stop at k | reached k), k = 0..cap, per condition (NaN rows for simultaneous
     conditions)."""
-    log_stop, _ = condition_tables(theta, data, cap, games, utility, beliefs)
+    log_stop, _ = _compiled_tables(theta, data, cap, games, utility, beliefs)
     out = np.exp(np.asarray(log_stop))
     seq = np.asarray(data.cond_contest) > 0.5
     seq &= np.asarray(data.cond_order) > 0.5
