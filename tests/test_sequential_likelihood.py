@@ -262,6 +262,8 @@ def test_fit_reports_its_certificate():
     fit = stopwise.fit("linear+qre", tiny_frame(), max_target=CAP, se="hessian")
     assert fit.converged
     assert 0.0 <= fit.extras["sequential_check"] <= 1e-8
+    assert fit.to_dict()["sequential_check"] == fit.extras["sequential_check"]
+    assert "checked by an independent solver" in fit.summary()
 
 
 @pytest.mark.slow
