@@ -149,7 +149,8 @@ class Fit:
                 if "qre_residual" in self.extras
                 else {}
             ),
-            **(  # sequential contests: likelihood vs independent solver (stopwise/fit_checks)
+            # sequential contests: likelihood vs independent solver (stopwise/fit_checks)
+            **(
                 {"sequential_check": self.extras["sequential_check"]}
                 if "sequential_check" in self.extras
                 else {}
