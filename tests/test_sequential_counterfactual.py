@@ -18,7 +18,7 @@ from stopwise.models.contest.sequential import make_sequential_game
 from stopwise.models.contest.sequential_qre import logit_mover_summaries, solve_sequential_logit
 from stopwise.models.spec import build_model
 
-SCHEME = {"p_survive": 0.8, "players": 2, "prize": 10.0, "keep_bank": True, "max_target": 30}
+SCHEME = {"p_survive": 0.8, "players": 2, "prize": 10.0, "keep_bank": True, "max_target": 15}
 
 
 def setting(**extra):
@@ -59,7 +59,7 @@ def test_counterfactual_rows_for_a_sequential_scheme_are_certified():
     seq = table[table["scheme"] == "in turn"]
     assert list(seq["prediction"]) == ["subgame-perfect", "crra+levelk (sequential)"]
     assert seq["certified"].all()
-    exact = sequential_equilibrium(0.8, 2, 10.0, keep_bank=True, max_target=30, r=0.3)
+    exact = sequential_equilibrium(0.8, 2, 10.0, keep_bank=True, max_target=15, r=0.3)
     first = seq.iloc[0]
     assert first["by_mover"][0]["expected_bank"] == pytest.approx(
         exact["movers"][0]["expected_bank"], abs=1e-12

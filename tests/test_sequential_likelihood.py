@@ -11,6 +11,7 @@ memory), and CRRA u(x) = (x^(1-r) - 1)/(1-r) (common practice, no source).
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import jax
 import numpy as np
@@ -23,6 +24,7 @@ from stopwise.api import resolve_model
 from stopwise.contest_sequential_sim import simulate_sequential
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.fit_checks import certify_sequential
 from stopwise.models.spec import build_model
 
 P, PRIZE, CAP, R, LAMBDA = 0.7, 5.0, 3, 0.4, 1.3
@@ -154,7 +156,7 @@ def test_likelihood_matches_enumeration_of_every_path():
     data = stopwise.load(tiny_frame()).arrays()
     model = resolve_model("crra+qre", CAP)
     model.options["prepare"](data)
-    ll = np.asarray(model.loglik_obs({"r": R, "precision": LAMBDA}, data))
+    ll = np.asarray(jax.jit(model.loglik_obs)({"r": R, "precision": LAMBDA}, data))
     assert ll.shape == (data.n_obs,)
     assert float(ll.sum()) == pytest.approx(enumerated_loglik(), rel=1e-12, abs=1e-12)
 
@@ -166,13 +168,13 @@ def test_level_one_first_mover_matches_enumeration_against_a_random_second_mover
     theta = {"r": R, "precision": LAMBDA}
     one = build_model("crra+levelk", max_target=CAP, level=1)
     one.options["prepare"](data)
-    ll_one = float(np.asarray(one.loglik_obs(theta, data)).sum())
+    ll_one = float(np.asarray(jax.jit(one.loglik_obs)(theta, data)).sum())
     assert ll_one == pytest.approx(enumerated_loglik(second_random=True), rel=1e-12)
     # where the belief matters: level 1 differs from agent logit play, level 2 reduces to it
     assert abs(ll_one - enumerated_loglik()) > 1e-3
     two = build_model("crra+levelk", max_target=CAP, level=2)
     two.options["prepare"](data)
-    ll_two = float(np.asarray(two.loglik_obs(theta, data)).sum())
+    ll_two = float(np.asarray(jax.jit(two.loglik_obs)(theta, data)).sum())
     assert ll_two == pytest.approx(enumerated_loglik(), rel=1e-12)
 
 
@@ -193,9 +195,12 @@ def test_population_beliefs_agree_with_the_numpy_solver_and_differentiate(spec, 
     def total(value):
         return model.loglik_obs({**theta, name: value}, data).sum()
 
+    total = jax.jit(total)
+
     h = 1e-6
     numeric = (total(extra[name] + h) - total(extra[name] - h)) / (2 * h)
-    assert float(jax.grad(total)(extra[name])) == pytest.approx(float(numeric), rel=1e-5)
+    exact = float(jax.jit(jax.grad(total))(extra[name]))
+    assert exact == pytest.approx(float(numeric), rel=1e-5)
 
 
 def test_states_read_from_the_earlier_movers_rows_count_ties():
@@ -230,7 +235,9 @@ def test_exact_derivatives_match_central_differences():
     def total(r, lam):
         return model.loglik_obs({"r": r, "precision": lam}, data).sum()
 
-    grad = jax.grad(total, argnums=(0, 1))(R, LAMBDA)
+    total = jax.jit(total)
+
+    grad = jax.jit(jax.grad(total, argnums=(0, 1)))(R, LAMBDA)
     h = 1e-6
     numeric = (
         (total(R + h, LAMBDA) - total(R - h, LAMBDA)) / (2 * h),
@@ -258,6 +265,20 @@ def test_a_later_mover_whose_view_is_unknown_is_refused():
         model.options["prepare"](data)
 
 
+def test_certificate_marks_a_disagreeing_fit_not_converged():
+    # the check's logic on a result whose likelihood disagreed with the solver by 1e-3
+    class Result:
+        converged, warnings, extras = True, [], {}
+
+    model = build_model("linear+qre", max_target=CAP)
+    disagreeing = replace(model, options={**model.options, "sequential_check": lambda t, d: 1e-3})
+    result = Result()
+    certify_sequential(disagreeing, None, result, {"precision": 1.0})
+    assert not result.converged and result.extras["sequential_check"] == 1e-3
+    assert "disagrees with the independent backward-induction solver" in result.warnings[0]
+
+
+@pytest.mark.slow
 def test_fit_reports_its_certificate():
     fit = stopwise.fit("linear+qre", tiny_frame(), max_target=CAP, se="hessian")
     assert fit.converged
