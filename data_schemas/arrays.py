@@ -53,6 +53,9 @@ STOPPING_COND_FIELDS = (
     "cond_odds_known",  # 1.0 told, 0.0 not told (learning)
     "cond_seen_success",  # not told: own successful draws on earlier trials of the stream
     "cond_seen_fail",  # not told: own busts on earlier trials of the stream
+    "cond_order",  # sequential contests: 1 moves first, 2 second, ...; 0 simultaneous
+    "cond_seen_best",  # later movers: best final bank of the earlier movers (-1: none/unknown)
+    "cond_seen_tied",  # later movers: earlier movers at that bank (0 first mover, -1 unknown)
 )
 
 
@@ -80,6 +83,9 @@ class StoppingData:
     cond_odds_known: Any = None
     cond_seen_success: Any = None
     cond_seen_fail: Any = None
+    cond_order: Any = None  # None (bundles built by hand): no sequential contests
+    cond_seen_best: Any = None
+    cond_seen_tied: Any = None
     covariates: Mapping[str, Any] = field(default_factory=dict)
     horizon: int = 0  # steps 0..horizon-1 exist in every model table; >= max(step) + 1
     subject_labels: Any = None  # numpy array of original subject ids (index -> label)

@@ -3,7 +3,8 @@
 Row i of a bundle is row i of the frame. Subjects are numbered 0..n_subjects-1 in sorted
 label order, trials 0..n_trials-1 sorted by (subject, trial id), and each distinct trial
 configuration (p_survive, gain, start, bust_keep, contest, n_players, prize, keep_bank,
-pool, odds told, and what was seen before an untold trial: data_schemas.streams) gets one
+pool, odds told, what was seen before an untold trial: data_schemas.streams, and a sequential
+mover's order and state: data_schemas.sequential_state) gets one
 entry of the condition table; the p_survive of a pool trial is its first draw's chance. Solo trials have n_players 1, prize 0, keep_bank 1.
 """
 
@@ -17,6 +18,7 @@ import pandas as pd
 from . import columns as C
 from .arrays import LotteryData, StoppingData
 from .errors import StopwiseInputError
+from .sequential_state import sequential_states
 from .streams import seen_before, trial_outcome_counts
 
 
@@ -46,6 +48,7 @@ def to_stopping_data(
     bust = (outcome == "bust").astype(np.float64)
     config = _trial_config(frame, contest)
     config[:, 11:13] = _seen_columns(config, subject, trial, draw, bust)
+    config[:, 13:16] = sequential_states(frame, contest)
     cond, table = _condition_table(config, trial)
     group = _group_index(frame, contest)
     return StoppingData(
@@ -56,7 +59,7 @@ def to_stopping_data(
         bust=bust,
         cond=cond.astype(np.int32),
         group=group.astype(np.int32),
-        **{name: table[:, i].copy() for i, name in enumerate(_COND_ORDER)},
+        **_condition_fields(table, sequential="order" in frame.columns),
         covariates=numeric_covariates(frame, covariates),
         horizon=int(horizon),
         subject_labels=subject_labels,
@@ -78,7 +81,19 @@ _COND_ORDER = (
     "cond_odds_known",
     "cond_seen_success",
     "cond_seen_fail",
+    "cond_order",
+    "cond_seen_best",
+    "cond_seen_tied",
 )
+
+
+def _condition_fields(table: np.ndarray, sequential: bool) -> dict[str, np.ndarray | None]:
+    """The condition table's columns by field name; without an ``order`` column the
+    sequential fields are None (no sequential contests in the data)."""
+    fields = {name: table[:, i].copy() for i, name in enumerate(_COND_ORDER)}
+    if not sequential:
+        fields.update(cond_order=None, cond_seen_best=None, cond_seen_tied=None)
+    return fields
 
 
 def _seen_columns(
@@ -203,7 +218,7 @@ def _float_column(frame: pd.DataFrame, name: str, default: float) -> np.ndarray:
 
 
 def _trial_config(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:
-    """(n_obs, 13) per-row configuration in the order of the condition table."""
+    """(n_obs, 16) per-row configuration in the order of the condition table."""
     config = np.empty((len(frame), len(_COND_ORDER)), dtype=np.float64)
     config[:, 0] = frame["p_survive"].to_numpy(dtype=np.float64)
     config[:, 1] = frame["gain"].to_numpy(dtype=np.float64)
@@ -220,7 +235,7 @@ def _trial_config(frame: pd.DataFrame, contest: np.ndarray) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         first_chance = (config[:, 8] - config[:, 9]) / config[:, 8]
     config[:, 0] = np.where(pool, first_chance, config[:, 0])  # the step-0 chance (G / N)
-    config[:, 11:13] = 0.0  # seen counts, filled in by the caller
+    config[:, 11:16] = 0.0  # seen counts and sequential states, filled in by the caller
     return config
 
 

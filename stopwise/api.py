@@ -20,6 +20,7 @@ import pandas as pd
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned
+from stopwise.data_schemas.sequential_state import sequential_game_key
 from stopwise.estimation.ml.learning_check import learning_warnings
 from stopwise.fit_checks import certify_fixed_points
 from stopwise.fit_record import fit_record
@@ -56,6 +57,8 @@ def preparation_key(bundle: Any) -> bytes:
     conditions = np.stack(
         [np.asarray(bundle.cond_p_survive, float), np.asarray(bundle.cond_contest, float)]
     )
+    if bundle.cond_order is not None:  # sequential contests: their games size the model too
+        conditions = np.concatenate([conditions, sequential_game_key(bundle)])
     return np.unique(conditions, axis=1).tobytes()
 
 

@@ -15,6 +15,7 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
+from stopwise.contest_counterfactual_sequential import sequential_rows
 from stopwise.contest_solve import _check_setup, certify, concept_strategy, efficiency_loss
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.base import Model
@@ -103,7 +104,9 @@ def counterfactual(
     """Predicted play under alternative schemes, by Nash and by the behavioural model.
 
     Each scheme is a mapping with p_survive, players, prize and optionally keep_bank, gain,
-    start, bust_keep, max_target and a name. The cap on targets is the scheme's max_target,
+    start, bust_keep, max_target, a name and ``sequential`` (True: players move in turn;
+    rows subgame-perfect and the model's sequential play, stopwise/
+    contest_counterfactual_sequential.py). The cap on targets is the scheme's max_target,
     else the fit's (the cap it was estimated with), else the default rule. Every row is
     certified (Nash: max regret; QRE: fixed-point residual; level-k, CH: exact by
     construction); a row that fails raises UncertifiedAnswer unless ``allow_approximate``.
@@ -113,6 +116,9 @@ def counterfactual(
     rows, plot = [], []
     for i, scheme in enumerate(schemes):
         setting = _scheme_setting(dict(scheme), i, fit_cap)
+        if scheme.get("sequential"):  # movers in turn (stopwise/contest_counterfactual_sequential)
+            rows += _certified(sequential_rows(model, theta, setting, tolerance), allow_approximate)
+            continue
         game = make_numpy_game(
             setting["p_survive"],
             setting["players"],
@@ -139,6 +145,17 @@ def counterfactual(
                 for t, q in enumerate(sigma)
             )
     return Counterfactual(pd.DataFrame(rows), pd.DataFrame(plot))
+
+
+def _certified(rows: list[dict[str, Any]], allow_approximate: bool) -> list[dict[str, Any]]:
+    """The rows, refused (UncertifiedAnswer) if one fails its check, unless approximate."""
+    for row in rows:
+        if not row["certified"] and not allow_approximate:
+            raise UncertifiedAnswer(
+                f"scheme {row['scheme']!r}, {row['prediction']}: failed its check ({row['check']}"
+                "); pass allow_approximate=True to see the approximate row marked uncertified"
+            )
+    return rows
 
 
 def _scheme_setting(s: dict[str, Any], index: int, fit_cap: int | None) -> dict[str, Any]:

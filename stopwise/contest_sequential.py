@@ -4,7 +4,7 @@ with simultaneous play (``stopwise equilibrium --sequential``), and agent logit 
     sequential_equilibrium(p_survive, players, prize, ...) -> dict
     sequential_logit(p_survive, players, prize, precision, ...) -> dict
 
-Risk-neutral players move in order 1..N; each later mover sees the best bank already banked
+Risk-neutral (or CRRA, ``r``) players move in order 1..N; each later mover sees the best bank already banked
 (and how many share it) before running their own stopping task. The solver is backward
 induction (stopwise.models.contest.sequential); the certificate is the largest regret of any
 mover in any state: max over targets of the target's exact expected payoff minus the
@@ -33,9 +33,11 @@ from stopwise.models.contest.certify import (
 from stopwise.models.contest.sequential import (
     NONE,
     SequentialSolution,
+    crra,
     make_sequential_game,
     mover_summaries,
     outcome_matrix,
+    payoff_range,
     solve_sequential,
     state_distributions,
     target_values,
@@ -108,6 +110,7 @@ def sequential_equilibrium(
     tolerance: float = DEFAULT_TOLERANCE,
     allow_approximate: bool = False,
     compare: bool = True,
+    r: float | None = None,
 ) -> dict[str, Any]:
     """The subgame-perfect solution of the sequential contest, certified, and (compare) the
     simultaneous Nash equilibrium of the same setting.
@@ -117,6 +120,7 @@ def sequential_equilibrium(
     (per mover expected_bank, win_prob, bust_rate), efficiency_loss
     (EFFICIENCY_LOSS_DEFINITION with the N movers' total bank), max_regret_share,
     certificate, certified, simultaneous (expected_bank, win_prob, efficiency_loss, ...).
+    ``r``: CRRA curvature of every mover over the contest's money (None: risk neutral).
     """
     cap = _check_setup(p_survive, players, prize, gain, max_target, bust_keep, start)
     if players > MAX_SEQUENTIAL_PLAYERS:
@@ -124,17 +128,19 @@ def sequential_equilibrium(
             f"players must be at most {MAX_SEQUENTIAL_PLAYERS} for sequential contests, "
             f"got {players}"
         )
-    game = make_sequential_game(p_survive, players, prize, keep_bank, cap, gain, start, bust_keep)
+    game = make_sequential_game(
+        p_survive, players, prize, keep_bank, cap, gain, start, bust_keep, utility=crra(r)
+    )
     solution = solve_sequential(game)
     movers = mover_summaries(solution)
     regret, mismatch = max_regret(solution)
-    payoff_range = prize + (float(game.score_values.max()) if keep_bank else 0.0)
-    certificate = _certificate(regret, mismatch, payoff_range, tolerance)
+    certificate = _certificate(regret, mismatch, payoff_range(game), tolerance)
     solo = float(np.max(outcome_matrix(game) @ game.score_values))
     total = sum(m["expected_bank"] for m in movers)
     first_target = int(solution.targets[0][0, 0])
     notes = [
-        "risk-neutral players; a mover indifferent between stopping and drawing stops",
+        ("risk-neutral players" if r is None else f"CRRA players, r = {r:g}")
+        + "; a mover indifferent between stopping and drawing stops",
         f"win probabilities sum to {sum(m['win_prob'] for m in movers):.12f}",
     ]
     if not certificate.certified:
@@ -149,6 +155,7 @@ def sequential_equilibrium(
         "keep_bank": bool(keep_bank),
         "p_survive": float(p_survive),
         "gain": float(gain),
+        "r": r,
         "cap": cap,
         "first_mover": {
             "targets": list(range(cap + 1)),
@@ -169,7 +176,7 @@ def sequential_equilibrium(
     }
     if compare:
         result["simultaneous"] = _simultaneous(
-            p_survive, players, prize, keep_bank, gain, cap, start=start, bust_keep=bust_keep
+            p_survive, players, prize, keep_bank, gain, cap, start=start, bust_keep=bust_keep, r=r
         )
     return result
 
@@ -241,6 +248,7 @@ def sequential_logit(
     gain: float = 1.0,
     max_target: int | None = None,
     tolerance: float = DEFAULT_TOLERANCE,
+    r: float | None = None,
 ) -> dict[str, Any]:
     """Agent logit QRE of the sequential contest (models.contest.sequential_qre): per-mover
     expected bank, win probability, bust rate, and each later mover's expected bank and bust
@@ -254,7 +262,7 @@ def sequential_logit(
         )
     if not (np.isfinite(precision) and precision >= 0):
         raise StopwiseInputError(f"precision must be finite and >= 0, got {precision}")
-    game = make_sequential_game(p_survive, players, prize, keep_bank, cap, gain)
+    game = make_sequential_game(p_survive, players, prize, keep_bank, cap, gain, utility=crra(r))
     solution = solve_sequential_logit(game, precision)
     gap = 0.0
     for j in range(players):
@@ -286,6 +294,7 @@ def sequential_logit(
     return {
         "concept": "sequential-aqre",
         "precision": float(precision),
+        "r": r,
         "players": int(players),
         "prize": float(prize),
         "keep_bank": bool(keep_bank),

@@ -20,7 +20,9 @@ from stopwise.models.contest.game import default_max_target
 from stopwise.models.contest.sequential import (
     NONE,
     SequentialGame,
+    crra,
     make_sequential_game,
+    payoff_range,
     solve_sequential,
 )
 from stopwise.models.contest.sequential_qre import solve_sequential_logit
@@ -63,21 +65,23 @@ def simulate_sequential(
     precision: float | None = None,
     max_target: int | None = None,
     seed: int = 0,
+    r: float | None = None,
 ) -> pd.DataFrame:
     """Trial-level rows (subject, trial, p_survive, gain, draws, busted, task, group,
     n_players, prize, keep_bank, order, rival_bank) of groups x trials sequential contests;
     exact play without ``precision`` (refused unless it passes the solution's regret check),
-    agent logit play with it."""
+    agent logit play with it; risk neutral, or CRRA over the money of the contest with
+    curvature ``r`` (u(x) = (x^(1-r) - 1)/(1-r), r < 1)."""
     if groups < 1 or trials < 1 or groups * trials > MAX_SIMULATED_CONTESTS:
         raise StopwiseInputError(
             f"groups and trials must be >= 1 with groups x trials <= {MAX_SIMULATED_CONTESTS}"
         )
     cap = default_max_target(p_survive) if max_target is None else int(max_target)
-    game = make_sequential_game(p_survive, players, prize, keep_bank, cap)
+    game = make_sequential_game(p_survive, players, prize, keep_bank, cap, utility=crra(r))
     if precision is None:
         solution = solve_sequential(game)
         regret, mismatch = max_regret(solution)
-        scale = prize + (cap if keep_bank else 0.0)
+        scale = payoff_range(game)
         if max(regret, mismatch) > CERTIFICATE_TOLERANCE * scale:
             raise UncertifiedAnswer(
                 f"the sequential solution failed its check (regret {regret:.3g}, value "

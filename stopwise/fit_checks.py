@@ -1,9 +1,11 @@
 """Checks a fitted model must pass before its estimates are presented as valid.
 
-Today one: a logit-QRE contest likelihood solves a fixed point per contest condition,
+A logit-QRE contest likelihood solves a fixed point per contest condition,
 log sigma = log_softmax(lambda U(sigma)) (McKelvey & Palfrey 1995). The likelihood follows a
 fixed continuation schedule that can miss the fixed point at high precision x payoff range;
 the residual max |log sigma - log_softmax(lambda U(sigma))| at the estimate certifies it.
+Sequential contests (agent logit play by backward induction, no fixed point) are certified
+by recomputing the likelihood's stop probabilities with an independent numpy solver.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ import numpy as np
 from stopwise.models.base import Model
 
 QRE_RESIDUAL_TOLERANCE = 1e-6
+SEQUENTIAL_CHECK_TOLERANCE = 1e-8  # stop probabilities: likelihood vs independent solver
 
 
 def qre_residual_warning(residuals: np.ndarray, tolerance: float = QRE_RESIDUAL_TOLERANCE) -> str:
@@ -50,6 +53,36 @@ def certify_fixed_points(model: Model, bundle: Any, result: Any) -> None:
     if finite.size:
         result.extras["qre_residual"] = float(np.max(finite))
     warning = qre_residual_warning(residuals)
+    if warning:
+        result.warnings.append(warning)
+        result.converged = False
+    certify_sequential(model, bundle, result, theta)
+
+
+def sequential_warning(check: float, tolerance: float = SEQUENTIAL_CHECK_TOLERANCE) -> str:
+    """The warning for a sequential-contest certificate above ``tolerance`` ('' if none)."""
+    if not np.isfinite(check) or check <= tolerance:
+        return ""
+    return (
+        "the sequential-contest likelihood disagrees with the independent backward-induction "
+        f"solver at the estimate (max |difference| of stop probabilities {check:.3g} > "
+        f"{tolerance:g}): the estimates are not certified and the fit is marked not converged"
+    )
+
+
+def certify_sequential(model: Model, bundle: Any, result: Any, theta: dict[str, float]) -> None:
+    """For data with sequential contests: recompute the likelihood's stop probabilities at
+    the estimate with the numpy solver (models/contest/sequential_certify.py), record the
+    largest difference in ``result.extras["sequential_check"]`` and, above the tolerance,
+    warn and mark the fit not converged."""
+    check_of = (model.options or {}).get("sequential_check")
+    if not callable(check_of):
+        return
+    check = float(check_of(theta, bundle))
+    if not np.isfinite(check):
+        return
+    result.extras["sequential_check"] = check
+    warning = sequential_warning(check)
     if warning:
         result.warnings.append(warning)
         result.converged = False

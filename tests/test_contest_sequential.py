@@ -211,7 +211,7 @@ def test_cli_sequential_prints_response_table(tmp_path, capsys):
 
 
 @pytest.mark.parametrize(
-    "extra", [["--precision", "1"], ["--concept", "qre"], ["--r", "0.5"], ["--players", "7"]]
+    "extra", [["--precision", "1"], ["--concept", "qre"], ["--tau", "1"], ["--players", "7"]]
 )
 def test_cli_sequential_refuses_unused_options(tmp_path, extra):
     out = tmp_path / "seq.json"

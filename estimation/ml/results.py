@@ -152,6 +152,12 @@ class Fit:
                 if "qre_residual" in self.extras
                 else {}
             ),
+            # sequential contests: likelihood vs independent solver (stopwise/fit_checks)
+            **(
+                {"sequential_check": self.extras["sequential_check"]}
+                if "sequential_check" in self.extras
+                else {}
+            ),
             **self._type_probabilities(),
             **self._formula_keys(),
             **(
@@ -281,6 +287,11 @@ class Fit:
                 else ""
             ),
         ]
+        if "sequential_check" in self.extras:  # sequential contests (stopwise/fit_checks)
+            lines.append(
+                "Sequential play checked by an independent solver: max |difference| of stop "
+                f"probabilities {self.extras['sequential_check']:.2e}"
+            )
         if "starts" in self.optimizer:
             outcomes = list(self.optimizer.get("start_outcomes", []))
             counts = (

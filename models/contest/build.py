@@ -57,6 +57,9 @@ from stopwise.models.contest.play import (
     simulate_contest,
 )
 from stopwise.models.contest.qre import fixed_point_residual
+from stopwise.models.contest.sequential_certify import sequential_check
+from stopwise.models.contest.sequential_likelihood import SequentialPart, sequential_conditions
+from stopwise.models.contest.sequential_simulate import simulate_sequential_design
 from stopwise.models.utility import UTILITIES
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
@@ -126,6 +129,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
     if tremble:
         params.append(_TREMBLE)
     cap_memory: dict[str, int] = {}
+    sequential = SequentialPart(concept, tremble, utility, options)  # sequential contests
     if options.get("max_target") is not None:
         cap_memory["cap"] = int(options["max_target"])
         if cap_memory["cap"] < 1:
@@ -169,6 +173,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
                         f"at least {needed} are needed; max_target is {cap}"
                     )
             _warn_identification(utility_name, data)
+            sequential.prepare(data, max(int(cap), int(data.horizon) - 1))
         return max(int(cap), int(data.horizon) - 1)
 
     def condition_log_probs(theta: Mapping[str, Any], data: Any, cap: int) -> Any:
@@ -204,15 +209,19 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
 
     def loglik_obs(theta: Mapping[str, Any], data: Any) -> Any:
         cap = resolve_cap(data)
+        if sequential.only_sequential and sequential.games_for(data):  # no simultaneous play
+            return sequential.loglik(theta, data, cap, jnp.zeros_like(data.draw))
         log_sigma = condition_log_probs(theta, data, cap)
         ll = jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, data.draw)
-        return jnp.where(data.cond_contest[data.cond] > 0.5, ll, 0.0)
+        ll = jnp.where(data.cond_contest[data.cond] > 0.5, ll, 0.0)
+        return sequential.loglik(theta, data, cap, ll)
 
     def predict(theta: Mapping[str, Any], data: Any) -> Any:
         cap = resolve_cap(data)
         log_sigma = condition_log_probs(theta, data, cap)
         ones = jnp.ones_like(data.draw)
-        return jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
+        draw = jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
+        return sequential.draw_probability(theta, data, cap, draw)
 
     @partial(jax.jit, static_argnums=(5,))
     def _distribution(
@@ -265,11 +274,12 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             return np.full(np.asarray(data.cond_contest).shape, np.nan)
         cap = resolve_cap(data)
         log_sigma = condition_log_probs(theta, data, cap)
-        return np.asarray(
+        residuals = np.asarray(
             jax.vmap(lambda ls, g: fixed_point_residual(ls, theta["precision"], g))(
                 log_sigma, _condition_games(theta, data, cap)
             )
         )
+        return np.where(sequential_conditions(data), np.nan, residuals)  # no fixed point there
 
     def _condition_games(theta: Mapping[str, Any], data: Any, cap: int) -> ContestGame:
         contest = data.cond_contest > 0.5
@@ -321,6 +331,8 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         return sigma
 
     def simulate(theta: Mapping[str, Any], design: pd.DataFrame, key: Any) -> pd.DataFrame:
+        if "order" in design:  # sequential contests (models/contest/sequential_simulate.py)
+            return simulate_sequential_design(theta, design, key, concept, utility, options)
         return simulate_contest(certified_distribution, theta, design, key, options)
 
     name = "+".join([utility_name, concept] + (["tremble"] if tremble else []))
@@ -340,6 +352,9 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             "notes": (LEVEL_NOTE,) if concept == "levelk" and level is None else (),
             "cap_in_use": lambda: cap_memory.get("cap"),
             "fixed_point_residual": fixed_point_residuals,
+            "sequential_check": lambda theta, data: sequential_check(
+                theta, data, resolve_cap(data), sequential
+            ),
         },
         description=f"contest play: {concept} with {utility_name} utility"
         + (" and trembles" if tremble else ""),

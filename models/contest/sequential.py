@@ -3,7 +3,9 @@
 N players move one after another; mover j sees the best final bank B among movers 0..j-1 and
 how many of them share it (c), then runs their own stopping task. The top final bank wins
 the prize, ties split by a fair draw (each of the c tied players wins with probability 1/c);
-with keep_bank everyone also keeps their own bank. Risk-neutral (linear) payoffs.
+with keep_bank everyone also keeps their own bank. Payoffs are expected utilities of the
+money kb*x + prize*1{win}: risk neutral by default, or any utility u (``utility=`` of
+make_sequential_game, e.g. CRRA), the same for every mover.
 
 Scores are final banks: start + k*gain after k successes and a stop, bust_keep*(start +
 k*gain) after a bust on draw k+1. They are mapped to indices of their sorted distinct values
@@ -19,7 +21,8 @@ Win continuation, computed from the last mover backwards (G_N(b, c) = 1/c):
 the chance that the movers at b in state (b, c) win, given movers j..N-1 play their rules.
 Mover j scoring x in state (b, c) is paid
 
-    pay_j(x) = keep * score(x) + prize * ( [x > b] G_{j+1}(x, 1) + [x = b] G_{j+1}(b, c+1) ),
+    win_j(x) = [x > b] G_{j+1}(x, 1) + [x = b] G_{j+1}(b, c+1),
+    pay_j(x) = u(kb * score(x)) + win_j(x) * ( u(kb * score(x) + prize) - u(kb * score(x)) ),
 
 and chooses how far to go by the stopping recursion over their own bank level k:
 
@@ -34,9 +37,13 @@ an independent computation used as the certificate (max over targets minus the D
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+
+from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.game import resolve_utility
 
 NONE = -1
 TIE_RELATIVE = 1e-9
@@ -48,7 +55,8 @@ class SequentialGame:
     """One sequential contest: survival chance, players, prize, scheme and the score grid.
 
     score_values: sorted distinct final banks; reach_index[k] / bust_index[k]: score index of
-    stopping after k successes / busting on draw k+1 (bust_index has cap entries)."""
+    stopping after k successes / busting on draw k+1 (bust_index has cap entries);
+    lose_utility / win_utility: u(kb*score) and u(kb*score + prize) per score (None: u(x)=x)."""
 
     p_survive: float
     players: int
@@ -58,6 +66,8 @@ class SequentialGame:
     score_values: np.ndarray
     reach_index: np.ndarray
     bust_index: np.ndarray
+    lose_utility: np.ndarray | None = None
+    win_utility: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -72,6 +82,16 @@ class SequentialSolution:
     win_continuation: list[np.ndarray]
 
 
+def crra(r: float | None) -> Callable[[np.ndarray], np.ndarray] | None:
+    """Money -> CRRA utility with curvature r (None: risk neutral, no utility)."""
+    if r is None:
+        return None
+    if not (np.isfinite(r) and r < 1.0):
+        raise StopwiseInputError(f"r must be a finite number below 1 in contests, got {r}")
+    utility = resolve_utility("crra")
+    return lambda x: np.asarray(utility(np.asarray(x, float), {"r": float(r)}), dtype=float)
+
+
 def make_sequential_game(
     p_survive: float,
     players: int,
@@ -81,9 +101,11 @@ def make_sequential_game(
     gain: float = 1.0,
     start: float = 0.0,
     bust_keep: float = 0.0,
+    utility: Callable[[np.ndarray], np.ndarray] | None = None,
 ) -> SequentialGame:
     """Score grid of the contest: reach k -> start + k*gain, bust after k -> bust_keep*(start
-    + k*gain), equal scores (relative 1e-9) merged into one index."""
+    + k*gain), equal scores (relative 1e-9) merged into one index; with ``utility`` u (money
+    -> utility, vectorised) the payoffs are expected utilities (module docstring)."""
     k = np.arange(cap + 1, dtype=float)
     reach = start + k * gain
     bust = bust_keep * (start + k[:cap] * gain)
@@ -97,15 +119,21 @@ def make_sequential_game(
         if not values or x - values[-1] > TIE_RELATIVE * scale:
             values.append(float(x))
         index[position] = len(values) - 1
+    scores = np.asarray(values)
+    money = float(bool(keep_bank)) * scores
+    lose = None if utility is None else np.asarray(utility(money), dtype=float)
+    win = None if utility is None else np.asarray(utility(money + float(prize)), dtype=float)
     return SequentialGame(
         float(p_survive),
         int(players),
         float(prize),
         bool(keep_bank),
         int(cap),
-        np.asarray(values),
+        scores,
         index[: cap + 1],
         index[cap + 1 :],
+        lose,
+        win,
     )
 
 
@@ -123,18 +151,36 @@ def outcome_matrix(game: SequentialGame) -> np.ndarray:
     return q
 
 
+def win_chances(game: SequentialGame, next_continuation: np.ndarray, b: int, c: int) -> np.ndarray:
+    """win_j(x) over score indices x in state (b, c), given G_{j+1} (module docstring)."""
+    n_scores = game.score_values.size
+    x = np.arange(n_scores)
+    if b == NONE:
+        return next_continuation[x + 1, 1]
+    win = np.where(x > b, next_continuation[x + 1, 1], 0.0)
+    return np.where(x == b, next_continuation[b + 1, c + 1], win)
+
+
+def payoff_of_win(game: SequentialGame, win: np.ndarray) -> np.ndarray:
+    """pay(x) = u(kb x) + win(x) (u(kb x + prize) - u(kb x)); u(x) = x without a utility."""
+    if game.lose_utility is None or game.win_utility is None:
+        return game.keep_bank * game.score_values + game.prize * win
+    return game.lose_utility + win * (game.win_utility - game.lose_utility)
+
+
+def payoff_range(game: SequentialGame) -> float:
+    """max - min of any mover's possible payoff: u(kb max + prize) - u(0), the unit of
+    regret shares (prize + kb * max score without a utility)."""
+    if game.lose_utility is None or game.win_utility is None:
+        return game.prize + game.keep_bank * float(game.score_values.max())
+    return float(np.max(game.win_utility) - np.min(game.lose_utility))
+
+
 def mover_payoffs(
     game: SequentialGame, next_continuation: np.ndarray, b: int, c: int
 ) -> np.ndarray:
     """pay_j(x) over score indices x in state (b, c), given G_{j+1} (module docstring)."""
-    n_scores = game.score_values.size
-    x = np.arange(n_scores)
-    if b == NONE:
-        win = next_continuation[x + 1, 1]
-    else:
-        win = np.where(x > b, next_continuation[x + 1, 1], 0.0)
-        win = np.where(x == b, next_continuation[b + 1, c + 1], win)
-    return game.keep_bank * game.score_values + game.prize * win
+    return payoff_of_win(game, win_chances(game, next_continuation, b, c))
 
 
 def stopping_rule(game: SequentialGame, pay: np.ndarray) -> tuple[int, float]:
@@ -253,8 +299,7 @@ def mover_summaries(solution: SequentialSolution) -> list[dict[str, float]]:
         for (b, c), prob in states[j].items():
             t = solution.targets[j][b + 1, c]
             dist = q[t]
-            pay = mover_payoffs(game, following, b, c)
-            win_vec = (pay - game.keep_bank * game.score_values) / game.prize
+            win_vec = win_chances(game, following, b, c)
             bank += prob * float(dist @ game.score_values)
             win += prob * float(dist @ win_vec)
             bust += prob * float(1.0 - game.p_survive**t)

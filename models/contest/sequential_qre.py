@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import expit
 
-from stopwise.models.contest.sequential import NONE, SequentialGame, mover_payoffs
+from stopwise.models.contest.sequential import NONE, SequentialGame, mover_payoffs, win_chances
 
 
 @dataclass(frozen=True)
@@ -113,8 +113,7 @@ def logit_mover_summaries(solution: LogitSolution) -> list[dict[str, float]]:
         nxt: dict[tuple[int, int], float] = {}
         for (b, c), prob in states.items():
             dist = solution.outcomes[j][b + 1, c]
-            pay = mover_payoffs(game, following, b, c)
-            win_vec = (pay - game.keep_bank * game.score_values) / game.prize
+            win_vec = win_chances(game, following, b, c)
             bank += prob * float(dist @ game.score_values)
             win += prob * float(dist @ win_vec)
             bust += prob * float(solution.bust[j][b + 1, c])

@@ -171,7 +171,7 @@ def _run_sequential(args: argparse.Namespace) -> int:
     from stopwise.contest_solve import UncertifiedAnswer
 
     logit = args.concept == "aqre"
-    unused = ("tau", "level", "r") if logit else ("precision", "tau", "level", "r")
+    unused = ("tau", "level") if logit else ("precision", "tau", "level")
     for name in unused:
         if getattr(args, name) is not None:
             raise StopwiseInputError(f"--{name} is not used with --sequential")
@@ -189,6 +189,7 @@ def _run_sequential(args: argparse.Namespace) -> int:
         "gain": args.gain,
         "max_target": args.max_target,
         "tolerance": args.tolerance,
+        "r": args.r,
     }
     try:
         if logit:

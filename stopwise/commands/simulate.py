@@ -108,6 +108,12 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         action="store_true",
         help="contest models: players keep their own bank on top of the prize",
     )
+    parser.add_argument(
+        "--sequential",
+        action="store_true",
+        help="contest models: players move one after another (order 1..N in each group), "
+        "each seeing the best bank already banked (columns order, rival_bank)",
+    )
     _args.add_max_target(
         parser, "a task cap on the number of draws (default: none; see the model docs)"
     )
@@ -170,9 +176,12 @@ def stopping_design(
     )
 
 
-def contest_design(base: pd.DataFrame, players: int, prize: float, keep_bank: bool) -> pd.DataFrame:
+def contest_design(
+    base: pd.DataFrame, players: int, prize: float, keep_bank: bool, sequential: bool = False
+) -> pd.DataFrame:
     """The stopping design played as contests: in each trial, subjects 1..n form group 1,
-    n+1..2n group 2, ... (group ids "t<trial>-g<k>"); every row carries the contest fields."""
+    n+1..2n group 2, ... (group ids "t<trial>-g<k>"); every row carries the contest fields;
+    ``sequential``: the group's subjects move in that order (an ``order`` column)."""
     n_subjects = base["subject"].nunique()
     position = base.groupby("trial", sort=False).cumcount().to_numpy()
     design = base.copy()
@@ -181,6 +190,8 @@ def contest_design(base: pd.DataFrame, players: int, prize: float, keep_bank: bo
     design["n_players"] = players
     design["prize"] = prize
     design["keep_bank"] = int(keep_bank)
+    if sequential:
+        design["order"] = position % players + 1
     if n_subjects % players:
         raise StopwiseInputError(
             f"--subjects {n_subjects} cannot be split into groups of --players {players}; "
@@ -285,12 +296,14 @@ def make_design(model: Any, args: argparse.Namespace, subjects: list[Any]) -> pd
         args.bust_keep,
     )
     if model.data_kind != "contest":
+        if args.sequential:
+            raise StopwiseInputError("--sequential is for contest models (e.g. crra+qre)")
         return with_task_variant(design, args.pool, args.odds_unknown)
     if args.pool is not None or args.odds_unknown:
         raise StopwiseInputError("--pool and --odds-unknown are for solo models only")
     if args.players < 2 or not math.isfinite(args.prize) or args.prize <= 0:
         raise StopwiseInputError("contests need --players of at least 2 and a positive --prize")
-    return contest_design(design, args.players, args.prize, args.keep_bank)
+    return contest_design(design, args.players, args.prize, args.keep_bank, args.sequential)
 
 
 def population(
