@@ -10,7 +10,9 @@ Where the tasks run (``plan_for``), first match wins:
 1. ``scheduler="tcp://host:port"``: an existing Dask cluster;
 2. ``workers=0``: in-process, one task after another;
 3. ``workers=N >= 1``: a LocalCluster of N worker processes (one thread each) that listens on
-   127.0.0.1 only and is closed when the study ends;
+   127.0.0.1 only and is closed when the study ends; each worker process runs XLA, OpenMP,
+   MKL and OpenBLAS single-threaded (``worker_environment``), so N workers use N cores and
+   do not fight over them;
 4. the environment variable ``STOPWISE_SCHEDULER``: an existing Dask cluster;
 5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
    core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process.
@@ -37,7 +39,11 @@ SCHEDULER_ENV = "STOPWISE_SCHEDULER"
 AUTO_MIN_TASKS = 16
 LOOPBACK = "127.0.0.1"
 CONNECT_TIMEOUT_S = 30
+CLUSTER_START_S = 120  # a LocalCluster's workers must be up within this many seconds
 RETRIES = 1
+# XLA's CPU flags for one thread per worker: no multithreaded Eigen, one intra-op thread.
+SINGLE_THREAD_XLA_FLAGS = ("--xla_cpu_multi_thread_eigen=false", "intra_op_parallelism_threads=1")
+SINGLE_THREAD_LIBRARIES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
 
 
 @dataclass(frozen=True)
@@ -212,6 +218,19 @@ def _run_on_client(
     return StudyRun(results, failures, where)
 
 
+def worker_environment(parent: Mapping[str, str]) -> dict[str, str]:
+    """Environment variables for a LocalCluster worker process, set by its nanny before the
+    worker (and so JAX) starts: the parent's XLA_FLAGS (e.g. a device count) plus
+    SINGLE_THREAD_XLA_FLAGS, and OMP/MKL/OPENBLAS_NUM_THREADS = 1. A flag the parent already
+    sets is left as the parent set it."""
+    flags = parent.get("XLA_FLAGS", "").split()
+    names = {f.lstrip("-").split("=")[0] for f in flags}
+    flags += [f for f in SINGLE_THREAD_XLA_FLAGS if f.lstrip("-").split("=")[0] not in names]
+    env = {name: "1" for name in SINGLE_THREAD_LIBRARIES}
+    env["XLA_FLAGS"] = " ".join(flags)
+    return env
+
+
 @contextmanager
 def dask_client(plan: Plan) -> Iterator[Any]:
     """A Dask client for ``plan``: a LocalCluster on the loopback interface (closed on exit)
@@ -234,6 +253,8 @@ def dask_client(plan: Plan) -> Iterator[Any]:
             host=LOOPBACK,
             dashboard_address=None,
             silence_logs=40,
+            env=worker_environment(os.environ),
+            timeout=CLUSTER_START_S,
         )
         try:
             with Client(cluster, timeout=CONNECT_TIMEOUT_S) as client:

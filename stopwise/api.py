@@ -234,7 +234,9 @@ def fit(
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
     record = fit_record(the_model, bundle, formulas, kw.get("fixed"))
-    result = _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw)
+    result = _fit_selected(
+        the_model, bundle, frame, method, se, by, formulas, seed, {**kw, **cluster}
+    )
     if isinstance(getattr(result, "extras", None), dict):
         result.extras["record"] = record  # Fit.to_dict writes it; stopwise.load_result reads it
         certify_fixed_points(the_model, bundle, result)
@@ -257,6 +259,7 @@ def _fit_selected(
     seed: int,
     kw: dict[str, Any],
 ) -> Any:
+    cluster = {k: kw.pop(k) for k in ("workers", "scheduler") if k in kw}  # bootstrap refits
     if method == "bayes":
         from stopwise.estimation.bayes import fit_bayes
 
@@ -290,6 +293,7 @@ def _fit_selected(
         covariate_frame=frame if formulas else None,
         seed=seed,
         **kw,
+        **cluster,
     )
 
 
