@@ -24,6 +24,7 @@ import pandas as pd
 import pytest
 
 import stopwise
+from benchmarks import study_sbc
 from stopwise import cli, contest
 from stopwise.estimation import distributed as D
 from stopwise.estimation.recovery import stopping_design
@@ -154,3 +155,25 @@ def test_sweep_command_takes_the_cluster_options(capsys: pytest.CaptureFixture[s
     assert cli.main([*argv, "--workers", "0"]) == 0
     assert cli.main([*argv, "--workers", "-1"]) == 2
     assert "expected a whole number >= 0" in capsys.readouterr().err
+
+
+def test_sbc_keys_follow_the_sequential_chain() -> None:
+    # The keys drawn up front equal those the former in-process loop drew one by one, so
+    # earlier SBC tables stay reproducible.
+    key = jax.random.PRNGKey(study_sbc.SEED)
+    chain = []
+    for _ in range(5):
+        key, k_rep = jax.random.split(key)
+        chain.append(np.asarray(k_rep))
+    np.testing.assert_array_equal(np.stack(study_sbc.replication_keys(5)), np.stack(chain))
+
+
+@pytest.mark.slow
+def test_sbc_replications_on_a_cluster_equal_the_serial_run(address: str, deadline: None) -> None:
+    tiny = study_sbc.Sampling(chains=1, warmup=30, draws=40, thin=2, kept=19)
+    serial = study_sbc.run("crra+logit", 2, workers=0, sampling=tiny)
+    remote = study_sbc.run("crra+logit", 2, scheduler=address, sampling=tiny)
+    assert serial["failed"] == remote["failed"] == 0
+    assert serial["where"] == "in-process" and address in remote["where"]
+    assert remote["ranks"] == serial["ranks"]  # whole numbers: equal, not close
+    assert all(0 <= v <= tiny.kept for values in serial["ranks"].values() for v in values)
