@@ -17,7 +17,9 @@ Where the tasks run (``plan_for``), first match wins:
 5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
    core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process.
 
-A task that raises is run once more (``retries=1``); a task whose worker dies is moved to
+On a cluster the tasks travel in consecutive batches, about ``BATCHES_PER_WORKER`` per
+worker (``batch_bounds``), so short tasks do not pay Dask's per-task overhead one by one.
+A task that raises is run once more (``retries=1``); a batch whose worker dies is moved to
 another worker once (the scheduler's ``allowed-failures`` = 1). A task that still fails is
 reported with its index, inputs and error in ``StudyRun.failures``; no task is dropped
 silently (``StudyRun.summary_line`` says how many ran).
@@ -25,6 +27,7 @@ silently (``StudyRun.summary_line`` says how many ran).
 
 from __future__ import annotations
 
+import math
 import os
 import sys
 import traceback
@@ -41,6 +44,7 @@ LOOPBACK = "127.0.0.1"
 CONNECT_TIMEOUT_S = 30
 CLUSTER_START_S = 120  # a LocalCluster's workers must be up within this many seconds
 RETRIES = 1
+BATCHES_PER_WORKER = 4  # tasks go to a cluster in about this many batches per worker
 # XLA's CPU flags for one thread per worker: no multithreaded Eigen, one intra-op thread.
 SINGLE_THREAD_XLA_FLAGS = ("--xla_cpu_multi_thread_eigen=false", "intra_op_parallelism_threads=1")
 SINGLE_THREAD_LIBRARIES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
@@ -182,6 +186,32 @@ def _run_in_process(
     return StudyRun(results, failures, "in-process")
 
 
+def batch_bounds(n_tasks: int, n_workers: int) -> list[tuple[int, int]]:
+    """Consecutive task ranges [a, b) sent to a worker as one Dask task: about
+    BATCHES_PER_WORKER batches per worker, so a study of many short tasks pays Dask's
+    per-task overhead once per batch, not once per task (and a long study still spreads
+    over every worker)."""
+    size = max(1, math.ceil(n_tasks / (max(1, n_workers) * BATCHES_PER_WORKER)))
+    return [(a, min(a + size, n_tasks)) for a in range(0, n_tasks, size)]
+
+
+def run_batch(
+    func: Callable[..., Any], batch: Sequence[Mapping[str, Any]], shared: Mapping[str, Any]
+) -> list[tuple[bool, Any]]:
+    """Run func(**inputs, **shared) for each task of a batch, each tried once more after an
+    exception: (True, result) or (False, the error's text) per task, in order."""
+    out: list[tuple[bool, Any]] = []
+    for inputs in batch:
+        for attempt in range(RETRIES + 1):
+            try:
+                out.append((True, func(**inputs, **shared)))
+                break
+            except Exception as exc:  # a task's failure is reported, not fatal to the batch
+                if attempt == RETRIES:
+                    out.append((False, _error_text(exc)))
+    return out
+
+
 def _run_on_client(
     client: Any,
     func: Callable[..., Any],
@@ -192,27 +222,41 @@ def _run_on_client(
     where: str,
     timeout_s: float | None = None,
 ) -> StudyRun:
+    """Send the tasks in batches (``batch_bounds``); a batch whose worker dies is moved to
+    another worker once by the scheduler (allowed-failures), then its tasks are reported."""
     from dask.distributed import as_completed
     from tqdm import tqdm
 
-    sent = {k: client.scatter(v, broadcast=True, hash=False) for k, v in shared.items()}
+    sent = client.scatter(dict(shared), broadcast=True, hash=False) if shared else {}
+    bounds = batch_bounds(len(inputs), len(client.scheduler_info()["workers"]))
     futures = [
         client.submit(
-            func, **dict(inp), **sent, retries=RETRIES, pure=False, key=f"{desc}-{i}-{id(inputs)}"
+            run_batch,
+            func,
+            [dict(inp) for inp in inputs[a:b]],
+            sent,
+            retries=RETRIES,
+            pure=False,
+            key=f"{desc}-{a}-{b}-{id(inputs)}",
         )
-        for i, inp in enumerate(inputs)
+        for a, b in bounds
     ]
-    index_of = {f.key: i for i, f in enumerate(futures)}
+    range_of = {f.key: ab for f, ab in zip(futures, bounds)}
     results: list[Any] = [None] * len(inputs)
     failures = []
-    with tqdm(total=len(futures), desc=desc, file=sys.stderr, disable=not progress) as bar:
+    with tqdm(total=len(inputs), desc=desc, file=sys.stderr, disable=not progress) as bar:
         for future in as_completed(futures, timeout=timeout_s):
-            i = index_of[future.key]
+            a, b = range_of[future.key]
             if future.status == "finished":
-                results[i] = future.result()
+                outcomes = future.result()
             else:
-                failures.append(TaskFailure(i, dict(inputs[i]), _error_text(future.exception())))
-            bar.update(1)
+                outcomes = [(False, _error_text(future.exception()))] * (b - a)
+            for i, (ok, value) in zip(range(a, b), outcomes):
+                if ok:
+                    results[i] = value
+                else:
+                    failures.append(TaskFailure(i, dict(inputs[i]), value))
+            bar.update(b - a)
             future.release()
     failures.sort(key=lambda f: f.index)
     return StudyRun(results, failures, where)

@@ -177,3 +177,13 @@ def test_sbc_replications_on_a_cluster_equal_the_serial_run(address: str, deadli
     assert serial["where"] == "in-process" and address in remote["where"]
     assert remote["ranks"] == serial["ranks"]  # whole numbers: equal, not close
     assert all(0 <= v <= tiny.kept for values in serial["ranks"].values() for v in values)
+
+
+@pytest.mark.parametrize("n_tasks, n_workers", [(200, 2), (7, 2), (3, 100), (1, 1), (0, 4)])
+def test_batches_cover_every_task_once_in_order(n_tasks: int, n_workers: int) -> None:
+    bounds = D.batch_bounds(n_tasks, n_workers)
+    covered = [i for a, b in bounds for i in range(a, b)]
+    assert covered == list(range(n_tasks))
+    assert len(bounds) <= max(1, n_workers) * D.BATCHES_PER_WORKER
+    if n_tasks >= n_workers * D.BATCHES_PER_WORKER:  # enough tasks: every worker gets work
+        assert len(bounds) >= n_workers * (D.BATCHES_PER_WORKER - 1)
