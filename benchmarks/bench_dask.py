@@ -59,8 +59,8 @@ def bare_read(folder: Path) -> int:
     return sum(pq.read_table(p, columns=COLUMNS).num_rows for p in list_parts(folder))
 
 
-def validate(folder: Path) -> object:
-    return validate_parts(folder, workers=0)
+def validate(folder: Path, scheduler: str | None = None) -> object:
+    return validate_parts(folder, workers=0 if scheduler is None else None, scheduler=scheduler)
 
 
 def fit_folder(folder: Path) -> object:
@@ -84,12 +84,17 @@ def section_a() -> str:
         n_parts = len(list_parts(folder))
         _, t_bare = timed(bare_read, folder)
         report, t_validate = timed(validate, folder)
+        with dask_client(Plan("local", workers=WORKERS)) as client:
+            validate(folder, client.scheduler.address)  # workers import stopwise once
+            report_2, t_validate_2 = timed(validate, folder, client.scheduler.address)
         fit, t_fit = timed(fit_folder, folder)
         t_ours = t_validate + t_fit
         _, peak_heap = peak_memory_mib(lambda: validate_and_fit(folder))
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    same = report.to_dict() == report_2.to_dict()
     status = (
-        f"validation {'clean' if report.ok else 'FAILED: ' + report.summary()}; "
+        f"validation {'clean' if report.ok else 'FAILED: ' + report.summary()} "
+        f"(in-process and {WORKERS}-worker reports identical: {same}); "
         f"fit {'converged' if fit.converged else 'NOT converged'} "
         f"(max |gradient| {fit.optimizer['grad_norm']:.2g}; the engine accepts < 1e-4)"
     )
@@ -104,6 +109,8 @@ def section_a() -> str:
             f"{rows / t_bare:,.0f} | 1.00 |",
             f"| validate the folder (in-process) | {t_validate:.2f} | "
             f"{rows / t_validate:,.0f} | {t_bare / t_validate:.3f} |",
+            f"| validate the folder on {WORKERS} workers (cluster up) | {t_validate_2:.2f} | "
+            f"{rows / t_validate_2:,.0f} | {t_bare / t_validate_2:.3f} |",
             f"| pooled fit through counts (validates and counts again) | {t_fit:.2f} | "
             f"{rows / t_fit:,.0f} | {t_bare / t_fit:.3f} |",
             f"| validate + pooled fit | {t_ours:.2f} | {rows / t_ours:,.0f} | {ratio:.3f} |",
