@@ -37,10 +37,11 @@ def run(args: argparse.Namespace) -> int:
     from stopwise.data_schemas.load import load
     from stopwise.data_schemas.partitioned import is_partitioned
     from stopwise.describe import describe
-    from stopwise.describe_parts import describe_parts
 
     data = args.data
     if is_partitioned(data):  # a folder or glob of Parquet files, one part at a time
+        from stopwise.describe_parts import describe_parts
+
         description = describe_parts(
             data, args.by, args.allow_censored, **_cluster.cluster_kwargs(args)
         )
