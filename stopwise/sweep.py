@@ -42,9 +42,10 @@ from typing import Any, NamedTuple
 import jax.numpy as jnp
 import numpy as np
 import pandas as pd
+from tqdm import tqdm
 
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.distributed import run_tasks
+from stopwise.estimation.distributed import plan_for, run_tasks
 from stopwise.models.contest.game import (
     ContestGame,
     default_max_target,
@@ -380,15 +381,19 @@ def sweep_contests(
     )
     axis, points = grid_settings(p_values, prizes)
     lines = grid_lines(axis, points)
-    run = run_tasks(
+    show = progress and sys.stderr.isatty()
+    here = plan_for(workers, scheduler, len(lines)).kind == "in-process"
+    bar = tqdm(total=len(points), desc="sweep", file=sys.stderr, disable=not (show and here))
+    run = run_tasks(  # in-process: a bar over points; on a cluster: the runner's over lines
         solve_line,
         [{"line": line} for line in lines],
         workers=workers,
         scheduler=scheduler,
-        progress=progress and sys.stderr.isatty(),
+        progress=show and not here,
         desc="sweep lines",
-        shared={"setting": setting, "cold_solve": cold_solve},
+        shared={"setting": setting, "cold_solve": cold_solve, "tick": bar.update if here else None},
     )
+    bar.close()
     if not run.complete:
         raise RuntimeError("not every line of the sweep was solved: " + run.summary_line("lines"))
     rows = [row for line_rows in run.results for row in line_rows]
@@ -399,11 +404,15 @@ def sweep_contests(
 
 
 def solve_line(
-    line: list[tuple[float, float]], setting: Setting, cold_solve: Callable[..., Any]
+    line: list[tuple[float, float]],
+    setting: Setting,
+    cold_solve: Callable[..., Any],
+    tick: Callable[[], Any] | None = None,
 ) -> list[dict[str, Any]]:
     """The rows of one line of the grid, each point warm-started from the previous certified
     one (the first point, and a point after an uncertified one, start cold); ``tv_prev`` is
-    the total variation distance to that previous point (NaN without one)."""
+    the total variation distance to that previous point (NaN without one). ``tick()`` is
+    called after every point (a progress bar in-process)."""
     rows: list[dict[str, Any]] = []
     previous: np.ndarray | None = None
     for p, x in line:
@@ -412,6 +421,8 @@ def solve_line(
         tv = math.nan if previous is None else total_variation(sigma, previous)
         rows.append({"p_survive": p, "prize": x, **_probs(sigma), **row, "tv_prev": tv})
         previous = sigma if row["certified"] else None
+        if tick is not None:
+            tick()
     return rows
 
 
