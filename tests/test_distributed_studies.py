@@ -26,7 +26,9 @@ import pytest
 import stopwise
 from benchmarks import study_sbc
 from stopwise import cli, contest
+from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import distributed as D
+from stopwise.estimation.compare import cv_log_score
 from stopwise.estimation.recovery import stopping_design
 from stopwise.sweep_grid import grid_lines, grid_settings
 
@@ -187,3 +189,14 @@ def test_batches_cover_every_task_once_in_order(n_tasks: int, n_workers: int) ->
     assert len(bounds) <= max(1, n_workers) * D.BATCHES_PER_WORKER
     if n_tasks >= n_workers * D.BATCHES_PER_WORKER:  # enough tasks: every worker gets work
         assert len(bounds) >= n_workers * (D.BATCHES_PER_WORKER - 1)
+
+
+def test_cv_folds_on_a_cluster_equal_the_serial_run(address: str, deadline: None) -> None:
+    model = stopwise.model("linear+myopic+logit")
+    data = to_stopping_data(_frame())
+    serial = cv_log_score(model, data, folds=3, seed=4, starts=1, workers=0)
+    remote = cv_log_score(model, data, folds=3, seed=4, starts=1, scheduler=address)
+    assert all(serial.fold_converged) and np.isfinite(serial.score)
+    assert remote.fold_converged == serial.fold_converged and remote.warnings == []
+    np.testing.assert_allclose(remote.fold_logliks, serial.fold_logliks, rtol=0, atol=EXACT)
+    assert abs(remote.score - serial.score) <= EXACT
