@@ -282,7 +282,13 @@ def dask_client(plan: Plan) -> Iterator[Any]:
     import dask
     from dask.distributed import Client, LocalCluster
 
-    with dask.config.set({"distributed.scheduler.allowed-failures": RETRIES}):
+    # The workers' statistical profiler (stack samples every 10 ms, for a dashboard we do not
+    # start) cost a LocalCluster's workers about a third of their CPU per recovery
+    # replication (benchmarks/RESULTS.md, Dask section): it is off in the clusters we start.
+    settings = {"distributed.scheduler.allowed-failures": RETRIES}
+    if plan.kind == "local":
+        settings["distributed.worker.profile.enabled"] = False
+    with dask.config.set(settings):
         if plan.kind == "remote":
             client = Client(plan.address, timeout=CONNECT_TIMEOUT_S)
             try:
