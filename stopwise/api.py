@@ -212,7 +212,8 @@ def fit(
     by="subject"; a finite mixture with types=K); method="bayes":
     stopwise.estimation.bayes.fit_bayes(model, data, **kw).
     ``se``: "auto" (clustered sandwich with several subjects), "robust", "hessian",
-    "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]."""
+    "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]. ``workers``/``scheduler``
+    (estimation/distributed.py) say where a Parquet folder's parts and bootstrap chunks run."""
     _check_method(method)
     the_model = resolve_model(model, max_target)
     cluster = {k: kw.pop(k) for k in ("workers", "scheduler") if k in kw}
