@@ -15,16 +15,25 @@ Every replication builds its own sampler and releases the compiled programs afte
 (``bayes.release_compiled_programs``): JAX would otherwise keep one compiled loop per run,
 about 960 memory mappings each, and reach Linux's limit of 65,530 after about 60.
 
-Run ``python -m benchmarks.study_sbc [replications] [model ...]`` (default 1,000 and all
-three); the section goes into benchmarks/RESULTS.md. In-process with a progress line per
-replication (no distributed runner exists in this branch).
+Replication r's key is the r-th key of the chain key, k_r = split(key) from PRNGKey(SEED),
+drawn up front in the parent, so every replication depends only on (SEED, r) and runs as one
+task of the study runner (estimation/distributed.py): in-process, on a LocalCluster
+(``--workers N``) or on an existing cluster (``--scheduler ADDRESS`` or
+$STOPWISE_SCHEDULER), with the same ranks. A replication that fails twice is counted and
+reported with its index, never hidden.
+
+Run ``python -m benchmarks.study_sbc [--workers N | --scheduler ADDRESS] [replications]
+[model ...]`` (default in-process, 1,000 replications and all three models); the section
+goes into benchmarks/RESULTS.md.
 """
 
 from __future__ import annotations
 
+import argparse
 import os
 import sys
 import time
+from dataclasses import dataclass
 from typing import Any
 
 import jax
@@ -33,9 +42,11 @@ from scipy import stats
 
 import stopwise
 from benchmarks._common import write_section
+from stopwise.commands._cluster import add_cluster_options, cluster_kwargs
 from stopwise.commands.simulate import contest_design, price_list_design
 from stopwise.estimation.bayes import fit as bayes
 from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
@@ -68,17 +79,56 @@ def draw_truth(model: Any, priors: Any, key: Any) -> dict[str, float]:
     return {s.name: float(priors[s.name].sample(s, k, 1)[0]) for s, k in zip(model.params, keys)}
 
 
-def one_replication(spec: str, model: Any, design: Any, key: Any) -> tuple[dict, int]:
-    """Ranks of the true values among KEPT thinned draws, and the divergent transitions."""
+@dataclass(frozen=True)
+class Sampling:
+    """NUTS settings of every replication: chains x draws after warm-up, every thin-th draw
+    kept, the first ``kept`` of those ranked (ranks 0..kept)."""
+
+    chains: int = CHAINS
+    warmup: int = WARMUP
+    draws: int = DRAWS
+    thin: int = THIN
+    kept: int = KEPT
+
+
+@dataclass(frozen=True)
+class Study:
+    """What every replication shares: the model, its design and the sampler settings."""
+
+    model: Any
+    design: Any
+    sampling: Sampling = Sampling()
+
+
+def replication_keys(replications: int, seed: int = SEED) -> list[np.ndarray]:
+    """k_r for r = 0..R-1: key, k_r = split(key) from PRNGKey(seed), as raw uint32 pairs."""
+    key = jax.random.PRNGKey(seed)
+    keys = []
+    for _ in range(replications):
+        key, k_rep = jax.random.split(key)
+        keys.append(np.asarray(k_rep))
+    return keys
+
+
+def sbc_task(rep: int, key: np.ndarray, study: Study) -> tuple[dict, int]:
+    """Replication ``rep`` of the study with its key (one task of the runner)."""
+    return one_replication(study.model, study.design, jax.numpy.asarray(key), study.sampling)
+
+
+def one_replication(
+    model: Any, design: Any, key: Any, sampling: Sampling = Sampling()
+) -> tuple[dict, int]:
+    """Ranks of the true values among ``sampling.kept`` thinned draws, and the divergent
+    transitions."""
     k_truth, k_sim, k_run = jax.random.split(key, 3)
     truth = draw_truth(model, resolve_priors(model), k_truth)
     frame = model.simulate(truth, design, k_sim)
     post = bayes.fit_bayes(
         model,
         stopwise.load(frame),
-        chains=CHAINS,
-        draws=DRAWS,
-        warmup=WARMUP,
+        chains=sampling.chains,
+        draws=sampling.draws,
+        warmup=sampling.warmup,
         seed=int(jax.random.randint(k_run, (), 0, 2**30)),
         progress=False,
         loo="trial",
@@ -87,7 +137,8 @@ def one_replication(spec: str, model: Any, design: Any, key: Any) -> tuple[dict,
     )
     ranks = {}
     for s in model.params:
-        x = post.idata.posterior[s.name].values[:, ::THIN].reshape(-1)[:KEPT]
+        x = post.idata.posterior[s.name].values[:, :: sampling.thin].reshape(-1)
+        x = x[: sampling.kept]
         ranks[s.name] = int(np.sum(x < truth[s.name]))
     return ranks, int(post.diagnostics["divergences"])
 
@@ -101,31 +152,43 @@ def band(replications: int) -> tuple[int, int]:
     )
 
 
-def run(spec: str, replications: int) -> dict[str, Any]:
+def run(
+    spec: str,
+    replications: int,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+    sampling: Sampling = Sampling(),
+) -> dict[str, Any]:
+    """The study of one model: every replication a task of the runner (module docstring)."""
     options, make_design = MODELS[spec]
     model = build_model(spec, **options)
-    design = make_design()
-    key = jax.random.PRNGKey(SEED)
-    ranks: dict[str, list[int]] = {s.name: [] for s in model.params}
-    divergent = failed = 0
+    study = Study(model, make_design(), sampling)
+    inputs = [{"rep": r, "key": k} for r, k in enumerate(replication_keys(replications))]
     t0 = time.perf_counter()
-    for rep in range(replications):
-        key, k_rep = jax.random.split(key)
-        try:
-            got, div = one_replication(spec, model, design, k_rep)
-        except Exception as exc:  # counted and reported, never hidden
-            failed += 1
-            print(f"{spec} replication {rep}: failed ({type(exc).__name__}: {exc})", flush=True)
-            continue
+    done = run_tasks(
+        sbc_task,
+        inputs,
+        workers=workers,
+        scheduler=scheduler,
+        desc=f"SBC {spec}",
+        shared={"study": study},
+    )
+    for failure in done.failures:  # counted and reported, never hidden
+        print(f"{spec} replication {failure.index}: failed ({failure.error})", flush=True)
+    ranks: dict[str, list[int]] = {s.name: [] for s in model.params}
+    divergent = 0
+    for got, div in (r for r in done.results if r is not None):
         divergent += div
         for name, value in got.items():
             ranks[name].append(value)
-        print(f"{spec} {rep + 1}/{replications} {time.perf_counter() - t0:.0f} s", flush=True)
+    failed = len(done.failures)
     n = len(next(iter(ranks.values())))
     lo, hi = band(n)
     params = {}
     for name, values in ranks.items():
-        counts = np.bincount(np.asarray(values) * BINS // (KEPT + 1), minlength=BINS)
+        counts = np.bincount(
+            np.asarray(values, dtype=int) * BINS // (sampling.kept + 1), minlength=BINS
+        )
         chi2, p = stats.chisquare(counts)
         inside = bool(np.all((counts >= lo) & (counts <= hi)))
         params[name] = {"counts": counts.tolist(), "chi2": chi2, "p": p, "inside": inside}
@@ -135,6 +198,8 @@ def run(spec: str, replications: int) -> dict[str, Any]:
         "failed": failed,
         "divergent": divergent,
         "seconds": time.perf_counter() - t0,
+        "where": done.where,
+        "ranks": ranks,
         "band": (lo, hi),
         "params": params,
     }
@@ -171,7 +236,7 @@ def section(results: list[dict[str, Any]]) -> str:
         f"Talts et al. (2018) ranks of the true value among {KEPT} thinned posterior draws "
         f"({CHAINS} chains x {DRAWS} draws after {WARMUP} warm-up, every {THIN}th kept), "
         f"parameters from the default priors, invented designs (benchmarks/study_sbc.py), "
-        f"seed {SEED}. {BINS} bins; band: Bonferroni {BAND:.0%} simultaneous binomial band; "
+        f"seed {SEED}, replications run {results[0]['where']}. {BINS} bins; band: Bonferroni {BAND:.0%} simultaneous binomial band; "
         f"Pearson chi-square ({BINS - 1} df) beside it. Figure: "
         f"benchmarks/sbc_ranks_{results[0]['spec'].replace('+', '_')}.png. "
         f"Load average (1 min) at the end: {os.getloadavg()[0]:.1f} (shared machine).",
@@ -199,11 +264,17 @@ def section(results: list[dict[str, Any]]) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    argv = sys.argv[1:] if argv is None else argv
-    replications = int(argv[0]) if argv else 1000
-    specs = argv[1:] or list(MODELS)
-    for spec in specs:  # one section and one figure per model: re-run any one alone
-        results = [run(spec, replications)]
+    parser = argparse.ArgumentParser(prog="python -m benchmarks.study_sbc")
+    parser.add_argument("replications", nargs="?", type=int, default=1000)
+    parser.add_argument("models", nargs="*", default=[], help=", ".join(MODELS))
+    add_cluster_options(parser)
+    parser.set_defaults(workers=0)  # in-process unless asked
+    args = parser.parse_args(sys.argv[1:] if argv is None else argv)
+    unknown = sorted(set(args.models) - set(MODELS))
+    if unknown:
+        parser.error(f"unknown model(s) {', '.join(unknown)}; choose from {', '.join(MODELS)}")
+    for spec in args.models or list(MODELS):  # one section and figure per model
+        results = [run(spec, args.replications, **cluster_kwargs(args))]
         draw_figure(results, FIGURE.format(spec.replace("+", "_")))
         text = section(results)
         write_section(f"study_sbc {spec}", text)

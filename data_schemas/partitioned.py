@@ -28,7 +28,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 
-from .errors import StopwiseInputError
+from .errors import StopwiseDataError, StopwiseInputError
 from .reading import PARQUET_SUFFIXES
 from .report import Problem, ValidationReport
 from .validate import check_source
@@ -225,3 +225,31 @@ def merge_checks(source: str, checks: Sequence[PartCheck], max_per_kind: int) ->
                 stats[f"{column}_values"] = sorted(values)[:12]
     n_rows = sum(c.n_rows for c in checks)
     return ValidationReport(source, fmt, problems, counts, n_rows, max_per_kind, stats)
+
+
+def refuse_invalid(report: ValidationReport) -> None:
+    """StopwiseDataError listing every problem (file and line) unless the report is clean."""
+    if not report.ok:
+        raise StopwiseDataError(
+            f"{report.source}: the data are not valid ({report.n_problems} problem(s))\n"
+            f"{report.format()}",
+            report,
+        )
+
+
+def load_parts(
+    source: str | os.PathLike[str], kind: str | None = None, allow_censored: bool = False
+) -> pd.DataFrame:
+    """All parts as one validated DataFrame in memory (the rows fall-back)."""
+    parts = list_parts(source)
+    results = [check_part(parts, k, kind, allow_censored) for k in range(len(parts))]
+    refuse_invalid(merge_checks(str(source), [c for c, _ in results], 20))
+    return pd.concat([f for _, f in results if f is not None], ignore_index=True)
+
+
+def part_columns(path: str) -> list[str]:
+    """The column names of a Parquet part (none if unreadable: its check reports it)."""
+    try:
+        return [str(c).strip() for c in pq.read_schema(path).names]
+    except Exception:  # pyarrow raises many types for corrupt files
+        return []

@@ -10,12 +10,16 @@ Where the tasks run (``plan_for``), first match wins:
 1. ``scheduler="tcp://host:port"``: an existing Dask cluster;
 2. ``workers=0``: in-process, one task after another;
 3. ``workers=N >= 1``: a LocalCluster of N worker processes (one thread each) that listens on
-   127.0.0.1 only and is closed when the study ends;
+   127.0.0.1 only and is closed when the study ends; each worker process runs XLA, OpenMP,
+   MKL and OpenBLAS single-threaded (``worker_environment``), so N workers use N cores and
+   do not fight over them;
 4. the environment variable ``STOPWISE_SCHEDULER``: an existing Dask cluster;
 5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
    core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process.
 
-A task that raises is run once more (``retries=1``); a task whose worker dies is moved to
+On a cluster the tasks travel in consecutive batches, about ``BATCHES_PER_WORKER`` per
+worker (``batch_bounds``), so short tasks do not pay Dask's per-task overhead one by one.
+A task that raises is run once more (``retries=1``); a batch whose worker dies is moved to
 another worker once (the scheduler's ``allowed-failures`` = 1). A task that still fails is
 reported with its index, inputs and error in ``StudyRun.failures``; no task is dropped
 silently (``StudyRun.summary_line`` says how many ran).
@@ -23,6 +27,7 @@ silently (``StudyRun.summary_line`` says how many ran).
 
 from __future__ import annotations
 
+import math
 import os
 import sys
 import traceback
@@ -38,7 +43,12 @@ SCHEDULER_ENV = "STOPWISE_SCHEDULER"
 AUTO_MIN_TASKS = 16
 LOOPBACK = "127.0.0.1"
 CONNECT_TIMEOUT_S = 30
+CLUSTER_START_S = 120  # a LocalCluster's workers must be up within this many seconds
 RETRIES = 1
+BATCHES_PER_WORKER = 4  # tasks go to a cluster in about this many batches per worker
+# XLA's CPU flags for one thread per worker: no multithreaded Eigen, one intra-op thread.
+SINGLE_THREAD_XLA_FLAGS = ("--xla_cpu_multi_thread_eigen=false", "intra_op_parallelism_threads=1")
+SINGLE_THREAD_LIBRARIES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
 
 
 @dataclass(frozen=True)
@@ -175,6 +185,32 @@ def _run_in_process(
     return StudyRun(results, failures, "in-process")
 
 
+def batch_bounds(n_tasks: int, n_workers: int) -> list[tuple[int, int]]:
+    """Consecutive task ranges [a, b) sent to a worker as one Dask task: about
+    BATCHES_PER_WORKER batches per worker, so a study of many short tasks pays Dask's
+    per-task overhead once per batch, not once per task (and a long study still spreads
+    over every worker)."""
+    size = max(1, math.ceil(n_tasks / (max(1, n_workers) * BATCHES_PER_WORKER)))
+    return [(a, min(a + size, n_tasks)) for a in range(0, n_tasks, size)]
+
+
+def run_batch(
+    func: Callable[..., Any], batch: Sequence[Mapping[str, Any]], shared: Mapping[str, Any]
+) -> list[tuple[bool, Any]]:
+    """Run func(**inputs, **shared) for each task of a batch, each tried once more after an
+    exception: (True, result) or (False, the error's text) per task, in order."""
+    out: list[tuple[bool, Any]] = []
+    for inputs in batch:
+        for attempt in range(RETRIES + 1):
+            try:
+                out.append((True, func(**inputs, **shared)))
+                break
+            except Exception as exc:  # a task's failure is reported, not fatal to the batch
+                if attempt == RETRIES:
+                    out.append((False, _error_text(exc)))
+    return out
+
+
 def _run_on_client(
     client: Any,
     func: Callable[..., Any],
@@ -185,29 +221,56 @@ def _run_on_client(
     where: str,
     timeout_s: float | None = None,
 ) -> StudyRun:
+    """Send the tasks in batches (``batch_bounds``); a batch whose worker dies is moved to
+    another worker once by the scheduler (allowed-failures), then its tasks are reported."""
     from dask.distributed import as_completed
 
-    sent = {k: client.scatter(v, broadcast=True, hash=False) for k, v in shared.items()}
+    sent = client.scatter(dict(shared), broadcast=True, hash=False) if shared else {}
+    bounds = batch_bounds(len(inputs), len(client.scheduler_info()["workers"]))
     futures = [
         client.submit(
-            func, **dict(inp), **sent, retries=RETRIES, pure=False, key=f"{desc}-{i}-{id(inputs)}"
+            run_batch,
+            func,
+            [dict(inp) for inp in inputs[a:b]],
+            sent,
+            retries=RETRIES,
+            pure=False,
+            key=f"{desc}-{a}-{b}-{id(inputs)}",
         )
-        for i, inp in enumerate(inputs)
+        for a, b in bounds
     ]
-    index_of = {f.key: i for i, f in enumerate(futures)}
+    range_of = {f.key: ab for f, ab in zip(futures, bounds)}
     results: list[Any] = [None] * len(inputs)
     failures = []
-    with tqdm(total=len(futures), desc=desc, file=sys.stderr, disable=not progress) as bar:
+    with tqdm(total=len(inputs), desc=desc, file=sys.stderr, disable=not progress) as bar:
         for future in as_completed(futures, timeout=timeout_s):
-            i = index_of[future.key]
+            a, b = range_of[future.key]
             if future.status == "finished":
-                results[i] = future.result()
+                outcomes = future.result()
             else:
-                failures.append(TaskFailure(i, dict(inputs[i]), _error_text(future.exception())))
-            bar.update(1)
+                outcomes = [(False, _error_text(future.exception()))] * (b - a)
+            for i, (ok, value) in zip(range(a, b), outcomes):
+                if ok:
+                    results[i] = value
+                else:
+                    failures.append(TaskFailure(i, dict(inputs[i]), value))
+            bar.update(b - a)
             future.release()
     failures.sort(key=lambda f: f.index)
     return StudyRun(results, failures, where)
+
+
+def worker_environment(parent: Mapping[str, str]) -> dict[str, str]:
+    """Environment variables for a LocalCluster worker process, set by its nanny before the
+    worker (and so JAX) starts: the parent's XLA_FLAGS (e.g. a device count) plus
+    SINGLE_THREAD_XLA_FLAGS, and OMP/MKL/OPENBLAS_NUM_THREADS = 1. A flag the parent already
+    sets is left as the parent set it."""
+    flags = parent.get("XLA_FLAGS", "").split()
+    names = {f.lstrip("-").split("=")[0] for f in flags}
+    flags += [f for f in SINGLE_THREAD_XLA_FLAGS if f.lstrip("-").split("=")[0] not in names]
+    env = {name: "1" for name in SINGLE_THREAD_LIBRARIES}
+    env["XLA_FLAGS"] = " ".join(flags)
+    return env
 
 
 @contextmanager
@@ -217,7 +280,13 @@ def dask_client(plan: Plan) -> Iterator[Any]:
     import dask
     from dask.distributed import Client, LocalCluster
 
-    with dask.config.set({"distributed.scheduler.allowed-failures": RETRIES}):
+    # The workers' statistical profiler (stack samples every 10 ms, for a dashboard we do not
+    # start) cost a LocalCluster's workers about a third of their CPU per recovery
+    # replication (benchmarks/RESULTS.md, Dask section): it is off in the clusters we start.
+    settings = {"distributed.scheduler.allowed-failures": RETRIES}
+    if plan.kind == "local":
+        settings["distributed.worker.profile.enabled"] = False
+    with dask.config.set(settings):
         if plan.kind == "remote":
             client = Client(plan.address, timeout=CONNECT_TIMEOUT_S)
             try:
@@ -232,6 +301,8 @@ def dask_client(plan: Plan) -> Iterator[Any]:
             host=LOOPBACK,
             dashboard_address=None,
             silence_logs=40,
+            env=worker_environment(os.environ),
+            timeout=CLUSTER_START_S,
         )
         try:
             with Client(cluster, timeout=CONNECT_TIMEOUT_S) as client:

@@ -25,7 +25,7 @@ _EXPORTS: dict[str, str] = {
     "validate": "stopwise.partitioned:validate",  # files, DataFrames, Parquet folders
     "trials_to_decisions": "stopwise.data_schemas.convert:trials_to_decisions",
     "decisions_to_trials": "stopwise.data_schemas.convert:decisions_to_trials",
-    "describe": "stopwise.describe:describe",
+    "describe": "stopwise.describe_parts:describe",  # files, DataFrames, Parquet folders
     # models
     "model": "stopwise.models.spec:build_model",
     "simulate": "stopwise.models.simulation:simulate",

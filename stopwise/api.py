@@ -215,7 +215,8 @@ def fit(
     by="subject"; a finite mixture with types=K); method="bayes":
     stopwise.estimation.bayes.fit.fit_bayes(model, data, **kw).
     ``se``: "auto" (clustered sandwich with several subjects), "robust", "hessian",
-    "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]."""
+    "bootstrap" or None. ``formulas``: e.g. ["r ~ 1 + treatment"]. ``workers``/``scheduler``
+    (estimation/distributed.py) say where a Parquet folder's parts and bootstrap chunks run."""
     _check_method(method)
     the_model = resolve_model(model, max_target)
     cluster = {k: kw.pop(k) for k in ("workers", "scheduler") if k in kw}
@@ -237,7 +238,9 @@ def fit(
     notes += list((the_model.options or {}).get("notes", ()))
     warned = prepare_model(the_model, bundle)
     record = fit_record(the_model, bundle, formulas, kw.get("fixed"))
-    result = _fit_selected(the_model, bundle, frame, method, se, by, formulas, seed, kw)
+    result = _fit_selected(
+        the_model, bundle, frame, method, se, by, formulas, seed, {**kw, **cluster}
+    )
     if isinstance(getattr(result, "extras", None), dict):
         result.extras["record"] = record  # Fit.to_dict writes it; stopwise.load_result reads it
         certify_fixed_points(the_model, bundle, result)
@@ -260,6 +263,7 @@ def _fit_selected(
     seed: int,
     kw: dict[str, Any],
 ) -> Any:
+    cluster = {k: kw.pop(k) for k in ("workers", "scheduler") if k in kw}  # bootstrap refits
     if method == "bayes":
         from stopwise.estimation.bayes.fit import fit_bayes
         from stopwise.estimation.ml.point_fits import ML_POINT_FITS
@@ -295,6 +299,7 @@ def _fit_selected(
         covariate_frame=frame if formulas else None,
         seed=seed,
         **kw,
+        **cluster,
     )
 
 

@@ -209,9 +209,17 @@ def _require_constant_in_trials(
 
 def _describe_stopping(dataset: Dataset, by: str | None = None) -> Description:
     frame = dataset.frame
-    trials = trial_summary(frame, by)
+    return describe_trials(trial_summary(frame, by), dataset.source, frame.columns, by)
+
+
+def describe_trials(
+    trials: pd.DataFrame, source: str, columns: Any, by: str | None = None
+) -> Description:
+    """The stopping description from the per-trial summary (``trial_summary``, possibly of
+    several partitions stacked: every statistic is a function of the trials); ``columns``
+    are the data's columns (which optional condition keys exist)."""
     keys = ([by] if by else []) + list(CONDITION_KEYS)
-    keys += [k for k in OPTIONAL_KEYS if k in frame.columns]
+    keys += [k for k in OPTIONAL_KEYS if k in columns]
     grouped = trials.groupby(keys, sort=True)
     table = grouped.agg(
         n_subjects=("subject", "nunique"),
@@ -251,7 +259,7 @@ def _describe_stopping(dataset: Dataset, by: str | None = None) -> Description:
         notes.append(
             "for contest rows rn_target/rn_bank are the solo benchmark, not a contest equilibrium."
         )
-    return Description("stopping", dataset.source, table, stop_steps, None, tuple(notes), by)
+    return Description("stopping", source, table, stop_steps, None, tuple(notes), by)
 
 
 def _benchmark(row: Any) -> tuple[float, float]:

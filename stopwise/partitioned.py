@@ -18,11 +18,17 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import pandas as pd
-import pyarrow.parquet as pq
 
 from stopwise.data_schemas.bundle import to_stopping_data
-from stopwise.data_schemas.errors import StopwiseDataError
-from stopwise.data_schemas.partitioned import check_part, is_partitioned, list_parts, merge_checks
+from stopwise.data_schemas.partitioned import (
+    check_part,
+    is_partitioned,
+    list_parts,
+    load_parts,
+    merge_checks,
+    part_columns,
+    refuse_invalid,
+)
 from stopwise.data_schemas.report import ValidationReport
 from stopwise.data_schemas.validate import validate as validate_source
 from stopwise.estimation.distributed import run_tasks
@@ -113,25 +119,6 @@ def validate(
     return validate_source(source, kind, allow_censored, max_per_kind)
 
 
-def _refuse(report: ValidationReport) -> None:
-    if not report.ok:
-        raise StopwiseDataError(
-            f"{report.source}: the data are not valid ({report.n_problems} problem(s))\n"
-            f"{report.format()}",
-            report,
-        )
-
-
-def load_parts(
-    source: str | os.PathLike[str], kind: str | None = None, allow_censored: bool = False
-) -> pd.DataFrame:
-    """All parts as one validated DataFrame in memory (the rows fall-back)."""
-    parts = list_parts(source)
-    results = [check_part(parts, k, kind, allow_censored) for k in range(len(parts))]
-    _refuse(merge_checks(str(source), [c for c, _ in results], 20))
-    return pd.concat([f for _, f in results if f is not None], ignore_index=True)
-
-
 @dataclass
 class PartsFit:
     """A fit on counts, or (fit None) the rows to fit instead and why."""
@@ -140,14 +127,6 @@ class PartsFit:
     rows: pd.DataFrame | None = None
     notes: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
-
-
-def _columns_of(path: str) -> list[str]:
-    """The column names of a Parquet part (none if unreadable: its check reports it)."""
-    try:
-        return [str(c).strip() for c in pq.read_schema(path).names]
-    except Exception:  # pyarrow raises many types for corrupt files
-        return []
 
 
 def _certify(model: Any, parts: Sequence[str], kind: str | None) -> float:
@@ -178,7 +157,7 @@ def fit_parts(
     """A pooled fit on counts when the model and data allow it (module docstring); else the
     rows in memory with a note saying why."""
     parts = list_parts(source)
-    header = _columns_of(parts[0])
+    header = part_columns(parts[0])
     why = counts_refusal(model, header, formulas)
     if why is None and (method != "mle" or by is not None or kw.get("types") is not None):
         why = "only a pooled maximum-likelihood fit uses counts"
@@ -189,7 +168,7 @@ def fit_parts(
         return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
     progress = bool(kw.get("progress", False))
     report, pieces = _pass(source, None, False, 20, True, workers, scheduler, progress)
-    _refuse(report)
+    refuse_invalid(report)
     gap = _certify(model, parts, None)
     if gap > EXACT_TOLERANCE:
         why = (

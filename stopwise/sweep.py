@@ -45,6 +45,7 @@ import pandas as pd
 from tqdm import tqdm
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.distributed import plan_for, run_tasks
 from stopwise.models.contest.game import (
     ContestGame,
     default_max_target,
@@ -55,7 +56,7 @@ from stopwise.models.contest.game import (
     target_payoffs,
 )
 from stopwise.models.contest.levelk import ch_population, level0_strategy, levelk_strategies
-from stopwise.sweep_grid import check_grid, grid_settings, total_variation
+from stopwise.sweep_grid import check_grid, grid_lines, grid_settings, total_variation
 from stopwise.sweep_solvers import (
     TwoPlayerTables,
     certified_on_support,
@@ -359,8 +360,12 @@ def sweep_contests(
     tolerance: float = 1e-6,
     allow_approximate: bool = False,
     progress: bool = False,
+    workers: int | None = 0,
+    scheduler: str | None = None,
 ) -> pd.DataFrame:
-    """Symmetric play at every (p_survive, prize) of the grid (module docstring)."""
+    """Symmetric play at every (p_survive, prize) of the grid (module docstring). Each line
+    of the grid (``grid_lines``) is one task of the study runner: ``workers``/``scheduler``
+    say where (estimation/distributed.py); the rows do not depend on where a line ran."""
     p_values = [float(v) for v in np.atleast_1d(p_survive)]
     prizes = [float(v) for v in np.atleast_1d(prize)]
     check_grid(p_values, prizes)
@@ -375,29 +380,50 @@ def sweep_contests(
         tolerance,
     )
     axis, points = grid_settings(p_values, prizes)
-    rows: list[dict[str, Any]] = []
-    bar = tqdm(
-        total=len(points),
-        desc="sweep",
-        file=sys.stderr,
-        disable=not progress or not sys.stderr.isatty(),
+    lines = grid_lines(axis, points)
+    show = progress and sys.stderr.isatty()
+    here = plan_for(workers, scheduler, len(lines)).kind == "in-process"
+    bar = tqdm(total=len(points), desc="sweep", file=sys.stderr, disable=not (show and here))
+    run = run_tasks(  # in-process: a bar over points; on a cluster: the runner's over lines
+        solve_line,
+        [{"line": line} for line in lines],
+        workers=workers,
+        scheduler=scheduler,
+        progress=show and not here,
+        desc="sweep lines",
+        shared={"setting": setting, "cold_solve": cold_solve, "tick": bar.update if here else None},
     )
+    bar.close()
+    if not run.complete:
+        raise RuntimeError("not every line of the sweep was solved: " + run.summary_line("lines"))
+    rows = [row for line_rows in run.results for row in line_rows]
+    table = _frame(rows, setting)
+    if not allow_approximate and not table["certified"].all():
+        raise UncertifiedSweepError(_refusal(table, concept), table)
+    return table
+
+
+def solve_line(
+    line: list[tuple[float, float]],
+    setting: Setting,
+    cold_solve: Callable[..., Any],
+    tick: Callable[[], Any] | None = None,
+) -> list[dict[str, Any]]:
+    """The rows of one line of the grid, each point warm-started from the previous certified
+    one (the first point, and a point after an uncertified one, start cold); ``tv_prev`` is
+    the total variation distance to that previous point (NaN without one). ``tick()`` is
+    called after every point (a progress bar in-process)."""
+    rows: list[dict[str, Any]] = []
     previous: np.ndarray | None = None
-    for i, (p, x) in enumerate(points):
-        other = x if axis == "p_survive" else p
-        if i and (points[i - 1][1] if axis == "p_survive" else points[i - 1][0]) != other:
-            previous = None  # a new line of the grid: no neighbour on the swept axis
+    for p, x in line:
         row = solve_point(p, x, setting, previous, cold_solve)
         sigma = row.pop("sigma")
         tv = math.nan if previous is None else total_variation(sigma, previous)
         rows.append({"p_survive": p, "prize": x, **_probs(sigma), **row, "tv_prev": tv})
         previous = sigma if row["certified"] else None
-        bar.update()
-    bar.close()
-    table = _frame(rows, setting)
-    if not allow_approximate and not table["certified"].all():
-        raise UncertifiedSweepError(_refusal(table, concept), table)
-    return table
+        if tick is not None:
+            tick()
+    return rows
 
 
 def make_setting(

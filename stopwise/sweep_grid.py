@@ -67,6 +67,19 @@ def grid_settings(
     return "prize", [(p, x) for p in p_values for x in prizes]
 
 
+def grid_lines(axis: str, points: list[tuple[float, float]]) -> list[list[tuple[float, float]]]:
+    """The grid's lines: consecutive settings that share the value of the axis not swept
+    (each line is warm-started along the swept axis, independently of the others)."""
+    other = 1 if axis == "p_survive" else 0
+    lines: list[list[tuple[float, float]]] = []
+    for point in points:
+        if lines and lines[-1][-1][other] == point[other]:
+            lines[-1].append(point)
+        else:
+            lines.append([point])
+    return lines
+
+
 def total_variation(a: np.ndarray, b: np.ndarray) -> float:
     """(1/2) sum_t |a_t - b_t|."""
     return 0.5 * float(np.abs(a - b).sum())

@@ -45,6 +45,9 @@ def test_count_loglik_equals_row_loglik(spec: str, theta: dict[str, float]) -> N
     reduced, _, _ = K.counts_problem(model, counts)
     z = rows.z0 + 0.2
     assert abs(rows.value(z) - reduced.value(z)) < 1e-9
+    # the certificate's cheap sum of row log-likelihoods equals the optimiser's objective
+    assert abs(K.total_loglik(rows, z) + rows.value(z)) < 1e-9 * max(1.0, abs(rows.value(z)))
+    assert abs(K.total_loglik(reduced, z) + reduced.value(z)) < 1e-9 * abs(rows.value(z))
     np.testing.assert_allclose(reduced.grad(z), rows.grad(z), rtol=1e-10, atol=1e-9)
 
 

@@ -5,6 +5,7 @@ as one file: the single-file validator and the row-level fit (separate code path
 from __future__ import annotations
 
 import itertools
+import json
 from pathlib import Path
 
 import jax
@@ -16,6 +17,9 @@ import stopwise
 from stopwise import cli
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.data_schemas.partitioned import is_partitioned, list_parts
+from stopwise.describe import describe as describe_rows
+from stopwise.describe_parts import describe as describe_any
+from stopwise.describe_parts import describe_parts
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.partitioned import validate_parts
 
@@ -138,3 +142,37 @@ def test_fit_that_needs_rows_says_so_and_falls_back(tmp_path: Path) -> None:
     assert any("fitted on rows, not counts" in n for n in getattr(by_subject, "notes", [])) or (
         any("fitted on rows, not counts" in w for w in by_subject.warnings)
     )
+
+
+@pytest.mark.parametrize("by", [None, "subject"])
+def test_describe_parts_streams_trials_and_equals_one_file(tmp_path: Path, by: str | None) -> None:
+    # The reference is the description of the same rows as one file (the in-memory path:
+    # trial summary of the whole frame); the folder is described part by part, trials that
+    # span the seams included.
+    frame = _rows()
+    _seam_rows(frame)
+    _write_parts(frame, tmp_path / "parts")
+    whole = describe_rows(frame, by=by)
+    parts = describe_parts(tmp_path / "parts", by, workers=0)
+    public = describe_any(tmp_path / "parts", by=by).to_dict()  # NaN == NaN as text
+    assert json.dumps(public, sort_keys=True) == json.dumps(parts.to_dict(), sort_keys=True)
+    assert parts.source == str(tmp_path / "parts")
+    pd.testing.assert_frame_equal(parts.table, whole.table, check_exact=False, rtol=1e-12)
+    pd.testing.assert_frame_equal(parts.stop_steps, whole.stop_steps, check_exact=False, rtol=1e-12)
+    assert parts.table["n_trials"].sum() == 160
+
+
+def test_describe_command_on_a_folder_refuses_a_defect_and_writes_nothing(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    frame = _rows()
+    paths = _write_parts(frame, tmp_path / "parts")
+    third = pd.read_parquet(paths[2])
+    third.loc[4, "action"] = "jump"
+    third.to_parquet(paths[2], index=False)
+    out = tmp_path / "describe.json"
+    code = cli.main(["describe", str(tmp_path / "parts"), "--workers", "0", "--json", str(out)])
+    err = capsys.readouterr().err
+    assert code == 2 and f"{paths[2]}:6: column 'action'" in err and not out.exists()
+    code = cli.main(["describe", str(tmp_path / "parts"), "--by", "treatment", "--workers", "0"])
+    assert code == 2 and "no column 'treatment'" in capsys.readouterr().err

@@ -11,14 +11,13 @@ the replicated estimates; interval = their 2.5% and 97.5% percentiles (Efron & T
 
 from __future__ import annotations
 
-import sys
 from dataclasses import dataclass
 from typing import Any
 
 import jax.numpy as jnp
 import numpy as np
-from tqdm import tqdm
 
+from stopwise.estimation.distributed import StudyRun, run_tasks
 from stopwise.estimation.ml.covariance import RowTable
 from stopwise.estimation.ml.optimize import batched_newton
 from stopwise.estimation.ml.problem import Problem, _negll, report_values
@@ -45,6 +44,32 @@ def gradient_tolerance(n_obs: int) -> float:
     return 1e-7 * max(1.0, float(n_obs))
 
 
+@dataclass(frozen=True)
+class ChunkPayload:
+    """What every chunk of replications shares: the problem, the start and the settings."""
+
+    problem: Problem
+    z_hat: np.ndarray
+    chunk: int
+    max_iter: int
+
+
+def refit_chunk(block: np.ndarray, payload: ChunkPayload) -> tuple[np.ndarray, np.ndarray]:
+    """Re-estimate z for the replications in ``block`` (rows of multiplicities m_bg): the
+    vmapped damped Newton on negll_b(z) = -sum_i w_i m_b,g(i) ll_i(z) from z_hat. A short
+    block is padded with copies of its first row (discarded) to keep one batch shape."""
+    problem = payload.problem
+    n_real, chunk = len(block), payload.chunk
+    if n_real < chunk:
+        block = np.vstack([block, np.repeat(block[:1], chunk - n_real, axis=0)])
+    w = jnp.asarray(problem.weights[None, :] * block[:, problem.cluster])
+    z0 = jnp.tile(jnp.asarray(payload.z_hat), (chunk, 1))
+    fun = WeightedNegll(problem.rows)
+    gtol = gradient_tolerance(problem.n_obs)
+    z, _, _, _, _, ok = batched_newton(fun, z0, w, problem.on_device()[0], payload.max_iter, gtol)
+    return np.asarray(z)[:n_real], np.asarray(ok)[:n_real]
+
+
 def bootstrap_estimates(
     problem: Problem,
     z_hat: np.ndarray,
@@ -53,28 +78,31 @@ def bootstrap_estimates(
     progress: bool = True,
     chunk: int = 16,
     max_iter: int = 50,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Re-estimated z for every replication (reps x k) and whether each converged."""
+    workers: int | None = 0,
+    scheduler: str | None = None,
+) -> tuple[np.ndarray, np.ndarray, StudyRun]:
+    """Re-estimated z for every replication (reps x k; NaN where a chunk failed on every
+    attempt), whether each converged, and the runner's record of the chunks."""
     counts = bootstrap_counts(problem.n_clusters, reps, seed)
-    fun = WeightedNegll(problem.rows)
-    gtol = gradient_tolerance(problem.n_obs)
-    zs, conv = [], []
-    bar = tqdm(
-        total=reps, desc="bootstrap", unit="rep", file=sys.stderr, disable=not progress, leave=False
+    inputs = [{"block": counts[lo : lo + chunk]} for lo in range(0, reps, chunk)]
+    payload = ChunkPayload(problem, np.asarray(z_hat, dtype=np.float64), chunk, max_iter)
+    run = run_tasks(
+        refit_chunk,
+        inputs,
+        workers=workers,
+        scheduler=scheduler,
+        progress=progress,
+        desc="bootstrap chunks",
+        shared={"payload": payload},
     )
-    for lo in range(0, reps, chunk):
-        block = counts[lo : lo + chunk]
-        n_real = len(block)
-        if n_real < chunk:  # keep one batch shape: pad with copies (discarded)
-            block = np.vstack([block, np.repeat(block[:1], chunk - n_real, axis=0)])
-        w = jnp.asarray(problem.weights[None, :] * block[:, problem.cluster])
-        z0 = jnp.tile(jnp.asarray(z_hat), (chunk, 1))
-        z, _, _, _, _, ok = batched_newton(fun, z0, w, problem.on_device()[0], max_iter, gtol)
-        zs.append(np.asarray(z)[:n_real])
-        conv.append(np.asarray(ok)[:n_real])
-        bar.update(n_real)
-    bar.close()
-    return np.vstack(zs), np.concatenate(conv)
+    zs, conv = [], []
+    for task, result in zip(inputs, run.results):
+        n_real = len(task["block"])
+        if result is None:  # failed twice: reported in run.failures, never silently dropped
+            result = (np.full((n_real, len(z_hat)), np.nan), np.zeros(n_real, dtype=bool))
+        zs.append(result[0])
+        conv.append(result[1])
+    return np.vstack(zs), np.concatenate(conv), run
 
 
 def percentile_table(
@@ -96,14 +124,27 @@ def percentile_table(
 
 
 def bootstrap_table(
-    problem: Problem, z_hat: np.ndarray, reps: int, seed: int, progress: bool = True
+    problem: Problem,
+    z_hat: np.ndarray,
+    reps: int,
+    seed: int,
+    progress: bool = True,
+    workers: int | None = 0,
+    scheduler: str | None = None,
 ) -> tuple[RowTable, dict[str, Any], list[str]]:
     """Point estimates from z_hat; se = sd of replicated estimates; percentile intervals.
-    ``info["z"]`` keeps the converged replications' coefficients (reps_ok x k)."""
+    ``info["z"]`` keeps the converged replications' coefficients (reps_ok x k); ``workers``
+    and ``scheduler`` choose where the chunks of replications run."""
     warnings: list[str] = []
     if problem.n_clusters < 2:
         raise ValueError("the subject bootstrap needs at least two subjects")
-    z_b, ok = bootstrap_estimates(problem, z_hat, reps, seed, progress)
+    z_b, ok, run = bootstrap_estimates(
+        problem, z_hat, reps, seed, progress, workers=workers, scheduler=scheduler
+    )
+    if not run.complete:
+        warnings.append(
+            "bootstrap replications lost with their chunk: " + run.summary_line("chunks")
+        )
     values = np.array([report_values(problem.reported, z) for z in z_b[ok]])
     est = report_values(problem.reported, z_hat)
     n_ok = int(ok.sum())
@@ -120,7 +161,7 @@ def bootstrap_table(
         "replications": reps,
         "converged": n_ok,
         "seed": seed,
-        "parallelism": "jax.vmap over replications (XLA multithreaded)",
+        "parallelism": f"jax.vmap over chunks of replications; chunks ran {run.where}",
         "z": z_b[ok],
     }
     return table, info, warnings

@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.identification import fit_identified
 from stopwise.estimation.ml.mle import build_problem, optimise, start_design
 from stopwise.estimation.ml.response import _strip
@@ -92,6 +93,27 @@ class CrossValidation:
     warnings: list[str]
 
 
+@dataclass(frozen=True)
+class FoldPayload:
+    """What every cross-validation fold shares: the problem, the fold of each subject, the
+    multistart design and the iteration cap."""
+
+    problem: Any
+    fold_of: np.ndarray
+    starts: np.ndarray
+    max_iter: int
+
+
+def fit_fold(fold: int, payload: FoldPayload) -> tuple[float, bool, float]:
+    """One fold (a task of the study runner): fit with the fold's subjects weighted 0, then
+    (sum of their log-likelihoods at that estimate, converged, max |gradient|)."""
+    problem = payload.problem
+    train = problem.cluster_weights((payload.fold_of != fold).astype(float))
+    best, _ = optimise(problem, payload.starts, payload.max_iter, weights=train)
+    held_out = float(problem.cluster_loglik(best.z)[payload.fold_of == fold].sum())
+    return held_out, bool(best.converged), float(best.grad_norm)
+
+
 def cv_log_score(
     model: Any,
     data: Any,
@@ -101,9 +123,12 @@ def cv_log_score(
     formulas: Any = None,
     covariate_frame: Any = None,
     max_iter: int = 200,
+    workers: int | None = 0,
+    scheduler: str | None = None,
 ) -> CrossValidation:
     """Sum over folds of the held-out subjects' log-likelihood at the estimate from the
-    other folds (module docstring); every fold uses the full fit's multistart design."""
+    other folds (module docstring); every fold uses the full fit's multistart design and is
+    one task of the study runner (``workers``/``scheduler``: estimation/distributed.py)."""
     problem, _layout, _ = build_problem(
         model, data, formulas=formulas, covariate_frame=covariate_frame
     )
@@ -111,18 +136,27 @@ def cv_log_score(
     rng = np.random.default_rng(seed)
     fold_of = rng.permutation(np.arange(g) % folds)
     starts_m = start_design(problem.z0, max(int(starts), 1), seed)
+    run = run_tasks(
+        fit_fold,
+        [{"fold": f} for f in range(folds)],
+        workers=workers,
+        scheduler=scheduler,
+        progress=False,
+        desc="cv folds",
+        shared={"payload": FoldPayload(problem, fold_of, starts_m, max_iter)},
+    )
     held_out, converged, warnings = [], [], []
-    for f in range(folds):
-        train = problem.cluster_weights((fold_of != f).astype(float))
-        best, _ = optimise(problem, starts_m, max_iter, weights=train)
-        converged.append(bool(best.converged))
-        held_out.append(float(problem.cluster_loglik(best.z)[fold_of == f].sum()))
-        if not best.converged:
+    for f, result in enumerate(run.results):
+        held, ok, grad = result if result is not None else (float("nan"), False, float("nan"))
+        held_out.append(held)
+        converged.append(ok)
+        if not ok:
             warnings.append(
                 f"{model.name}: cross-validation fold {f + 1} of {folds} did not converge "
-                f"from {len(starts_m)} starts (max |gradient| {best.grad_norm:.3g}); its "
+                f"from {len(starts_m)} starts (max |gradient| {grad:.3g}); its "
                 "log score is not reported (NaN)"
             )
+    warnings += [f"{model.name}: {failure.describe()}" for failure in run.failures]
     score = float(np.sum(held_out)) if all(converged) else float("nan")
     return CrossValidation(score, held_out, converged, warnings)
 
@@ -311,8 +345,11 @@ def compare_fits(
     covariate_frame: Any = None,
     progress: bool = False,
     max_iter: int = 200,
+    workers: int | None = 0,
+    scheduler: str | None = None,
 ) -> Comparison:
-    """Fit every model to the same data and compare (module docstring)."""
+    """Fit every model to the same data and compare (module docstring); the
+    cross-validation folds run where ``workers``/``scheduler`` say."""
     fits = [
         fit_identified(
             m,
@@ -348,6 +385,8 @@ def compare_fits(
                 formulas=formulas,
                 covariate_frame=covariate_frame,
                 max_iter=max_iter,
+                workers=workers,
+                scheduler=scheduler,
             )
             row[f"cv_log_score_{cv_folds}fold"] = cv.score
             cv_warnings += cv.warnings

@@ -197,8 +197,11 @@ def run_fit(
     bootstrap_reps: int = 200,
     progress: bool = True,
     method: str = "mle",
+    workers: int | None = 0,
+    scheduler: str | None = None,
 ) -> Fit:
-    """Optimise a Problem and compute standard errors: the engine behind every pooled fit."""
+    """Optimise a Problem and compute standard errors: the engine behind every pooled fit.
+    ``workers``/``scheduler``: where bootstrap refits run (estimation/distributed.py)."""
     if se not in SE_METHODS:
         raise StopwiseInputError(
             f"unknown standard-error method {se!r}; choose one of "
@@ -226,7 +229,9 @@ def run_fit(
     extras: dict[str, Any] = {"problem": problem}
     se_label = se
     if se == "bootstrap":
-        table, info, boot_warn = bootstrap_table(problem, z, bootstrap_reps, seed, progress)
+        table, info, boot_warn = bootstrap_table(
+            problem, z, bootstrap_reps, seed, progress, workers=workers, scheduler=scheduler
+        )
         warnings += boot_warn
         clusters = problem.n_clusters
         cov = None
@@ -296,9 +301,12 @@ def fit_mle(
     bootstrap_reps: int = 200,
     max_iter: int = 200,
     progress: bool = True,
+    workers: int | None = 0,
+    scheduler: str | None = None,
 ) -> Fit:
     """Pooled maximum-likelihood fit (module docstring). ``se``: "auto" (clustered sandwich
-    with more than one subject, else Hessian), "robust", "hessian", "bootstrap" or None.
+    with more than one subject, else Hessian), "robust", "hessian", "bootstrap" or None;
+    ``workers``/``scheduler`` say where bootstrap refits run.
     ``formulas``: e.g. ["r ~ 1 + treatment"]; covariate columns come from ``covariate_frame``
     (rows aligned with the data) or the bundle's covariates."""
     problem, layout, extra = build_problem(
@@ -315,6 +323,8 @@ def fit_mle(
         max_iter=max_iter,
         bootstrap_reps=bootstrap_reps,
         progress=progress,
+        workers=workers,
+        scheduler=scheduler,
     )
     fit.extras.update(extra)
     fit.extras["layout"] = layout

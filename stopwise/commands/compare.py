@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from stopwise.commands import _args, _options, _table
+from stopwise.commands import _args, _cluster, _options, _table
 from stopwise.commands.fit import emit, option_note
 from stopwise.data_schemas.errors import StopwiseInputError
 
@@ -48,6 +48,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     _args.add_seed(parser, "random seed")
     _args.add_json_file(parser, "the comparison")
     _table.add_table_option(parser)
+    _cluster.add_cluster_options(parser)  # the cross-validation folds, one task each
     parser.set_defaults(func=run)
     return parser
 
@@ -90,6 +91,7 @@ def run(args: argparse.Namespace) -> int:
             seed=args.seed,
             se=se,
             cv_folds=args.cv_folds,
+            **_cluster.cluster_kwargs(args),
         )
     if isinstance(getattr(result, "notes", None), list):
         result.notes += option_note(args.options)

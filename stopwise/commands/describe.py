@@ -6,7 +6,7 @@ import argparse
 from typing import Any
 
 from stopwise._io import write_json
-from stopwise.commands import _args
+from stopwise.commands import _args, _cluster
 
 
 def register(subparsers: Any) -> argparse.ArgumentParser:
@@ -28,6 +28,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         metavar="COLUMN",
         help="also split every table by COLUMN: a covariate (e.g. treatment) or subject",
     )
+    _cluster.add_cluster_options(parser)  # the parts of a Parquet folder, one task each
     parser.set_defaults(func=run)
     return parser
 
@@ -38,11 +39,14 @@ def run(args: argparse.Namespace) -> int:
     from stopwise.describe import describe
 
     data = args.data
-    if is_partitioned(data):  # a folder or glob of Parquet files, gathered in memory
-        from stopwise.partitioned import load_parts
+    if is_partitioned(data):  # a folder or glob of Parquet files, one part at a time
+        from stopwise.describe_parts import describe_parts
 
-        data = load_parts(data, allow_censored=args.allow_censored)
-    description = describe(load(data, allow_censored=args.allow_censored), by=args.by)
+        description = describe_parts(
+            data, args.by, args.allow_censored, **_cluster.cluster_kwargs(args)
+        )
+    else:
+        description = describe(load(data, allow_censored=args.allow_censored), by=args.by)
     if args.json == "-":
         write_json("-", description.to_dict())
         return 0

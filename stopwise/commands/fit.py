@@ -106,7 +106,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     _args.add_sampler(parser)
     _args.add_seed(parser, "random seed (starts, bootstrap, sampler)")
     parser.add_argument("--no-progress", action="store_true", help="hide progress bars")
-    _cluster.add_cluster_options(parser)  # parts of a Parquet folder DATA, one task each
+    _cluster.add_cluster_options(parser)  # Parquet parts and bootstrap chunks, one task each
     _args.add_json_file(parser)
     _table.add_table_option(parser)
     parser.set_defaults(func=run)
@@ -226,7 +226,7 @@ def run(args: argparse.Namespace) -> int:
             raise StopwiseInputError(
                 "--hierarchical, --parametrisation, --planner-cap and --loo apply to --method bayes"
             )
-        kw: dict[str, Any] = _cluster.cluster_kwargs(args)  # used when DATA is a Parquet folder
+        kw: dict[str, Any] = _cluster.cluster_kwargs(args)  # Parquet parts, bootstrap chunks
         if args.fix:
             kw["fixed"] = parse_fixed(args.fix)
         if args.types is not None:

@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any
 
 from stopwise._io import write_atomic, write_json, write_table
-from stopwise.commands import _args
+from stopwise.commands import _args, _cluster
 from stopwise.data_schemas.errors import StopwiseInputError
 
 
@@ -74,6 +74,7 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     )
     parser.add_argument("--figure", metavar="FILE", help="write the figure (.png or .svg)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    _cluster.add_cluster_options(parser)  # one task per line of the grid
     parser.set_defaults(func=run)
     return parser
 
@@ -111,6 +112,7 @@ def run(args: argparse.Namespace) -> int:
         tolerance=args.tolerance,
         allow_approximate=args.allow_approximate,
         progress=not args.quiet,
+        **_cluster.cluster_kwargs(args),
     )
     try:
         table = sweep(p_values, prizes, args.players, **options)
