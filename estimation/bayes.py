@@ -91,6 +91,7 @@ from stopwise.estimation.bayes_start import (
     start_variances,
     summarise_subject_fits,
 )
+from stopwise.estimation.bayes_support import sample_below_cliff  # issue 16 item 2
 from stopwise.estimation.cells import Cells, split_into_cells
 from stopwise.estimation.draws import flatten_chains, map_draws
 from stopwise.estimation.priors import (
@@ -960,6 +961,10 @@ def fit_bayes(
     if callable(size_from_data):  # size static parts (caps) from concrete data before tracing
         size_from_data(data)
     check_kind(model, data)
+    model, cliff_note = sample_below_cliff(  # issue 16 item 2: r < 1 where data rule out r >= 1
+        model, data, hierarchical=hierarchical, formulas=formulas, priors=priors
+    )
+    notes += [cliff_note] if cliff_note else []
     pointwise = loo if loo is not None else pointwise
     if pointwise == "trial" and not isinstance(data, StoppingData):
         pointwise = "row"  # a lottery choice is its own trial
