@@ -89,7 +89,13 @@ def main(argv: list[str] | None = None) -> int:
     for rep in range(replications):
         key, k_rep = jax.random.split(key)
         rows.append(one_replication(model, design, k_rep))
-        print(f"{rep + 1}/{replications} {time.perf_counter() - t0:.0f} s", flush=True)
+        row = rows[-1]
+        print(
+            f"{rep + 1}/{replications} {time.perf_counter() - t0:.0f} s: truth {row['truth']}, "
+            f"rule out r >= 1: {row['below']}, divergent {row['before'][0]} -> "
+            f"{row['after'][0]}, r at divergences after {r_range(row['after'][1])}",
+            flush=True,
+        )
     lines = [
         "## Bayes: pooled planner divergences before / after sampling r below the cliff",
         "",
