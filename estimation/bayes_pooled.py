@@ -227,7 +227,7 @@ def start_without_losses(model: Any, data: Any, absent: Sequence[str]) -> Pooled
     note = (
         f"not identified by these data: {', '.join(absent)} (no outcome lies below the "
         "reference point, so they never enter the likelihood); their posterior is their "
-        "prior, reported as such"
+        "prior (their rows in the table show the prior, not evidence)"
     )
     try:
         fit = fit_mle(model, data, se="hessian", fixed=fixed, progress=False)

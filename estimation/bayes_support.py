@@ -140,6 +140,7 @@ def sample_below_cliff(
         "u(0) is -infinity for r >= 1 and these data make the likelihood zero there (largest "
         f"summed log-likelihood at r >= 1 over {len(grid)} points spanning the other "
         f"parameters' prior quantiles 1e-300 to 1 - 1e-300: {worst:.3g}); the posterior is "
-        "unchanged and the sampler no longer crosses the cliff at r = 1"
+        "unchanged (what is left out has likelihood below exp(-1e10) or prior mass below "
+        "1e-300) and the sampler no longer crosses the cliff at r = 1"
     )
     return replace(model, params=params), note
