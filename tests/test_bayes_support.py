@@ -20,6 +20,7 @@ from stopwise.estimation.bayes_support import (
 )
 from stopwise.estimation.priors import resolve_priors
 from stopwise.estimation.recovery import stopping_design
+from stopwise.estimation.truncation import with_planner_cap
 from stopwise.models.spec import build_model
 from stopwise.models.utility import UTILITY_FLOOR, crra_utility
 
@@ -104,3 +105,16 @@ def test_tremble_hierarchy_and_formulas_keep_the_bounds():
     trembling = build_model(SPEC + "+tremble")
     same, note = sample_below_cliff(trembling, data, hierarchical=False, formulas=None, priors=None)
     assert same is trembling and note is None
+
+
+def test_planner_recaps_keep_the_narrowed_bounds():
+    # the truncation check compares the sampled model with its default-cap twin at the same
+    # draws (estimation/truncation.py): both must read z_r on the same bounds
+    model = build_model("crra+planner+logit", max_target=30)
+    _, data = simulated(SPEC, {"r": 0.3, "precision": 2.0})
+    model.options["prepare"](data)
+    narrowed, note = sample_below_cliff(model, data, hierarchical=False, formulas=None, priors=None)
+    assert note is not None
+    for cap in (None, 40):
+        twin = with_planner_cap(narrowed, cap)
+        assert twin.spec("r").upper == 1.0 and twin.options["max_target"] == cap
