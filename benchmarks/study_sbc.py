@@ -195,6 +195,7 @@ def run(
     return {
         "spec": spec,
         "replications": n,
+        "planned": replications,
         "failed": failed,
         "divergent": divergent,
         "seconds": time.perf_counter() - t0,
@@ -253,6 +254,13 @@ def section(results: list[dict[str, Any]]) -> str:
                 f"{'yes' if p['inside'] else 'NO'} | {p['p']:.3f} | {r['divergent']} | "
                 f"{r['failed']} | {r['seconds']:.0f} |"
             )
+    done, planned = results[0]["replications"], results[0]["planned"]
+    if done + results[0]["failed"] < planned:
+        lines += [
+            "",
+            f"Finished {done} of {planned} planned replications (a run stopped early); "
+            "every finished replication is counted.",
+        ]
     lo, hi = results[0]["band"]
     if lo == 0 and hi >= results[0]["replications"]:
         lines += [

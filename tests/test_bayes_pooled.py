@@ -8,22 +8,27 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from scipy import stats
 
 import stopwise
 from stopwise.data_schemas.arrays import StoppingData
 from stopwise.estimation.bayes.fit import fit_bayes
 from stopwise.estimation.bayes.pooled_start import (
+    FLAT_VARIANCE,
     PooledStart,
     laplace_covariance,
+    ml_start,
     population_permutation,
     prior_precision,
     start_inverse_mass,
     start_sites,
 )
+from stopwise.estimation.ml.mle import fit_mle
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.base import Model, ParamSpec
 from stopwise.models.simulation import simulate
+from stopwise.models.spec import build_model
 
 TOTAL_DRAWS = 2 * 500
 ESS_GOAL = 0.8 * TOTAL_DRAWS  # issue 16's goal for pooled fits
@@ -204,3 +209,45 @@ def test_prior_precision_matches_finite_differences():
                 f(x0 + e_i + e_j) - f(x0 + e_i - e_j) - f(x0 - e_i + e_j) + f(x0 - e_i - e_j)
             ) / (4 * h * h)
     np.testing.assert_allclose(got, numeric, atol=1e-6)
+
+
+def test_gains_only_data_start_the_loss_parameters_at_their_prior():
+    # invented gains-only data (bank 0, nothing kept on a bust: no outcome below the
+    # reference point), so beta, loss_aversion and delta never enter the likelihood
+    design = stopping_design(10, 10, (0.75, 0.9), 1.0, seed=1)
+    theta = {"alpha": 0.7, "beta": 0.8, "loss_aversion": 1.5, "gamma": 0.7}
+    theta |= {"delta": 0.7, "precision": 2.0}
+    frame = simulate("pt+tk+target+logit", theta, design, seed=2)
+    data = stopwise.load(frame).arrays()
+    model = build_model("pt+tk+target+logit")
+    start = ml_start(model, data, None, ML_POINT_FITS)
+    assert (
+        start.usable
+        and "not identified by these data: beta, loss_aversion, delta" in (start.notes[0])
+    )
+    names = list(model.param_names)
+    for name in ("beta", "loss_aversion", "delta"):
+        i = names.index(name)
+        spec = model.spec(name)
+        sigma = {"beta": 0.5, "loss_aversion": 0.75, "delta": 0.5}[name]
+        # the default prior LogNormal(0, sigma) truncated to (lower, upper): its median by
+        # scipy.stats.lognorm (package registry), F^-1((F(lower) + F(upper)) / 2)
+        edges = stats.lognorm.cdf([spec.lower, spec.upper], sigma)
+        median = stats.lognorm.ppf(edges.mean(), sigma)
+        got = float(spec.to_natural(start.coef[i]))
+        assert got == pytest.approx(median, rel=0.05), (name, got, median)
+        assert start.cov[i, i] == FLAT_VARIANCE
+        assert np.all(np.delete(start.cov[i], i) == 0.0)
+        assert 0.05 < start.jitter[i] < 2.0
+    # the identified block is the ML covariance with the loss side held fixed (its
+    # parameters do not enter the likelihood, so where they are held does not matter)
+    fit = fit_mle(
+        model,
+        data,
+        se="hessian",
+        fixed={"beta": 1.3, "loss_aversion": 4.0, "delta": 0.4},
+        progress=False,
+    )
+    rows = [names.index(n) for n in ("alpha", "gamma", "precision")]
+    np.testing.assert_allclose(start.cov[np.ix_(rows, rows)], fit.cov_z, rtol=1e-4)
+    np.testing.assert_allclose(start.coef[rows], fit.z, rtol=1e-5, atol=1e-7)

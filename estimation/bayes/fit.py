@@ -48,6 +48,7 @@ from stopwise.estimation.bayes.sampler import (
 from stopwise.estimation.bayes.subject_start import (
     describe_parametrisation,
 )
+from stopwise.estimation.bayes.support import sample_below_cliff
 from stopwise.estimation.bayes.truncation import (
     check_passed,
 )
@@ -116,6 +117,10 @@ def fit_bayes(
     exact_model = as_model(model)
     data = as_bundle(data)
     model, capped = sampling_model(exact_model, data, planner_cap, notes)
+    model, cliff_note = sample_below_cliff(  # issue 16 item 2: r < 1 where data rule out r >= 1
+        model, data, hierarchical=hierarchical, formulas=formulas, priors=priors
+    )
+    notes += [cliff_note] if cliff_note else []
     unit = pointwise_unit(loo if loo is not None else pointwise, data)
     check_parametrisation(parametrisation)
     from_ml = pooled_from_ml(hierarchical, init)

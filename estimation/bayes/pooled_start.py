@@ -30,6 +30,8 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.bayes.priors import resolve_priors
+from stopwise.estimation.loss_side import data_has_losses, loss_parameters
 from stopwise.estimation.point_fits import PointFits, require_point_fits
 
 
@@ -42,6 +44,7 @@ class PooledStart:
     coef: np.ndarray | None
     cov: np.ndarray | None
     notes: list[str] = field(default_factory=list)
+    jitter: np.ndarray | None = None  # start jitter per coefficient (default: sqrt diag cov)
 
     @property
     def usable(self) -> bool:
@@ -82,8 +85,12 @@ def population_permutation(
 
 def ml_start(model: Any, data: Any, formulas: Any, point_fits: PointFits | None) -> PooledStart:
     """The pooled ML fit (Hessian covariance, estimation/ml/mle.py) as a sampler start; a fit
-    that fails or whose Hessian is not positive definite gives what it can with a note."""
+    that fails or whose Hessian is not positive definite gives what it can with a note.
+    Loss-side parameters the data cannot move are handled by ``start_without_losses``."""
     fit_pooled = require_point_fits(point_fits, "a pooled fit's ML start").pooled
+    absent = () if formulas or data_has_losses(model, data) else loss_parameters(model)
+    if absent:
+        return start_without_losses(model, data, absent, fit_pooled)
     try:
         fit = fit_pooled(model, data, se="hessian", formulas=formulas, progress=False)
     except StopwiseInputError:
@@ -130,6 +137,7 @@ def start_sites(
     scales (one ML standard error per coefficient)."""
     assert start.coef is not None
     sd = np.sqrt(np.diag(start.cov)) if start.cov is not None else np.full(len(start.coef), 0.1)
+    sd = sd if start.jitter is None else start.jitter
     values: dict[str, Any] = {}
     scales: dict[str, Any] = {}
     for name in names:
@@ -193,3 +201,62 @@ def prior_precision(
         return -log_prior(at)
 
     return np.asarray(jax.hessian(negative_log_prior)(jnp.asarray(flat)))
+
+
+FLAT_VARIANCE = 1e6  # stands in for the infinite ML variance of a direction the data leave flat
+
+
+def prior_median_and_sd(prior: Any, spec: Any) -> tuple[float, float]:
+    """Unconstrained median of a default prior (from 2,001 exact draws, fixed key) and the
+    curvature sd there: (median z, (-d^2/dz^2 log p(z))^-1/2), log p(z) the prior's density of
+    z (estimation/bayes/priors.py, ``log_density_unconstrained``)."""
+    draws = prior.sample(spec, jax.random.PRNGKey(0), 2001)
+    z0 = float(spec.to_unconstrained(float(np.median(draws))))
+    curvature = -float(jax.hessian(lambda z: prior.log_density_unconstrained(spec, z))(z0))
+    return z0, 1.0 / math.sqrt(curvature) if curvature > 0 else 1.0
+
+
+def start_without_losses(
+    model: Any, data: Any, absent: Sequence[str], fit_pooled: Callable[..., Any]
+) -> PooledStart:
+    """Start for data with no outcome below the reference point, where the loss-side
+    parameters ``absent`` never enter the likelihood (estimation/loss_side.py): their
+    posterior is their prior, independent of the rest. ML for the other parameters with
+    these held at their start values; ``absent`` start at their default prior's median with
+    that prior's curvature sd as jitter, and ML variance FLAT_VARIANCE (no curvature from
+    the likelihood) with no covariance, so the Laplace mass matrix (H + P)^-1 gives them the
+    prior's width. The note names them."""
+    fixed = {name: model.spec(name).start for name in absent}
+    note = (
+        f"not identified by these data: {', '.join(absent)} (no outcome lies below the "
+        "reference point, so they never enter the likelihood); their posterior is their "
+        "prior (their rows in the table show the prior, not evidence)"
+    )
+    try:
+        fit = fit_pooled(model, data, se="hessian", fixed=fixed, progress=False)
+    except StopwiseInputError:
+        raise
+    except Exception as exc:  # the ML fit is only a starting point
+        failed = f"pooled start: the ML fit failed ({type(exc).__name__}: {exc})"
+        return PooledStart({}, None, None, [note, failed])
+    priors = resolve_priors(model)
+    names = list(model.param_names)
+    free = [n for n in names if n not in absent]
+    free_z = dict(zip(free, np.asarray(fit.z, np.float64)))
+    coef, jitter = np.zeros(len(names)), np.zeros(len(names))
+    cov = np.zeros((len(names), len(names)))
+    for name in absent:
+        i = names.index(name)
+        coef[i], jitter[i] = prior_median_and_sd(priors[name], model.spec(name))
+        cov[i, i] = FLAT_VARIANCE
+    ml_cov = None if fit.cov_z is None else np.asarray(fit.cov_z, np.float64)
+    rows = [names.index(n) for n in free]
+    for n in free:
+        coef[names.index(n)] = free_z[n]
+    if ml_cov is None or not np.all(np.isfinite(ml_cov)):
+        flat = "pooled start: the ML Hessian is not positive definite; identity mass matrix"
+        return PooledStart(natural_intercepts(model, fit), coef, None, [note, flat])
+    cov[np.ix_(rows, rows)] = ml_cov
+    jitter[rows] = np.sqrt(np.diag(ml_cov))
+    natural = {n: float(model.spec(n).to_natural(coef[names.index(n)])) for n in names}
+    return PooledStart(natural, coef, cov, [note], jitter)

@@ -48,10 +48,12 @@ def is_planner(model: Model) -> bool:
 
 
 def with_planner_cap(model: Model, max_target: int | None) -> Model:
-    """The same spec and options, with ``max_target`` replaced (None: the default cap)."""
+    """The same spec, options and parameter bounds, with ``max_target`` replaced (None: the
+    default cap). The bounds are the given model's: a pooled fit may sample r on narrower
+    ones (estimation/bayes/support.py), and its draws mean the same values in both models."""
     options = dict(model.options or {})
     kept = {k: options[k] for k in DEFAULT_OPTIONS if k in options and k != "max_target"}
-    return build_model(model.name, **kept, max_target=max_target)
+    return replace(build_model(model.name, **kept, max_target=max_target), params=model.params)
 
 
 def default_cap_reference(model: Model) -> Model | None:

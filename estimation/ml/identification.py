@@ -32,6 +32,7 @@ import numpy as np
 
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.loss_side import data_has_losses, loss_parameters
 from stopwise.estimation.ml.covariance import RowTable, wald_rows
 from stopwise.estimation.ml.mle import fit_mle
 from stopwise.estimation.ml.natural_profiles import attach_profiles
@@ -41,7 +42,6 @@ FLAT_DERIVATIVE = 1e-12
 NULL_EIGEN = 1e-9
 LOADING = 0.3
 PERFECT_PER_OBS = 1e-6
-LOSS_PARAMS = ("beta", "loss_aversion")
 
 
 @dataclass
@@ -108,32 +108,6 @@ def refuse_constant_response(model_name: str, data: Any) -> None:
             "and no parameter has a maximum-likelihood estimate (perfect prediction); "
             "fit data in which the decisions vary"
         )
-
-
-def data_has_losses(model: Any, data: Any) -> bool:
-    """Whether any outcome lies below the reference point: a negative lottery outcome, or
-    a stopping trial that starts with a bank above zero and keeps less than it on a bust
-    (reference: the start bank, or the model's numeric reference point)."""
-    if isinstance(data, LotteryData):
-        outcomes = np.concatenate([np.ravel(data.a_x), np.ravel(data.b_x)])
-        probs = np.concatenate([np.ravel(data.a_p), np.ravel(data.b_p)])
-        return bool(np.any((outcomes < 0) & (probs > 0)))
-    if isinstance(data, StoppingData):
-        reference = (model.options or {}).get("reference", "start")
-        start = np.asarray(data.cond_start, dtype=float)
-        kept = np.asarray(data.cond_bust_keep, dtype=float) * start
-        if reference == "start":
-            return bool(np.any(kept < start))
-        return bool(np.any(np.minimum(kept, start) < float(reference)))
-    return True
-
-
-def loss_parameters(model: Any) -> tuple[str, ...]:
-    """Parameters that act only on losses: beta, loss_aversion, and delta of TK weighting."""
-    names = set(LOSS_PARAMS)
-    if "+tk" in f"+{model.name}":
-        names.add("delta")
-    return tuple(n for n in model.param_names if n in names)
 
 
 def flat_coefficients(jac_at_estimate: np.ndarray, jac_at_start: np.ndarray) -> np.ndarray:
