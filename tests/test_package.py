@@ -5,6 +5,7 @@ from __future__ import annotations
 import ast
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import pytest
@@ -29,6 +30,23 @@ def test_x64_is_enabled_on_import() -> None:
 
     assert jax.config.jax_enable_x64
     assert jnp.asarray(1.0).dtype == jnp.float64
+
+
+def test_every_package_folder_is_listed_for_the_wheel() -> None:
+    """A non-editable install ships only the packages pyproject.toml lists: every folder with
+    an __init__.py under the mapped top-level folders must be there under its import name."""
+    tool = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["tool"]
+    listed = set(tool["setuptools"]["packages"])
+    folders = {ROOT / path: name for name, path in tool["setuptools"]["package-dir"].items()}
+    found = set()
+    for top, name in folders.items():
+        for init in top.rglob("__init__.py"):
+            if ".venv" in init.parts:
+                continue
+            relative = init.parent.relative_to(top).parts
+            found.add(".".join((name, *relative)))
+    assert found - listed == set(), "add these to [tool.setuptools] packages"
+    assert "stopwise.estimation.ml" in found and "stopwise.estimation.bayes" in found
 
 
 def test_top_level_folders_are_mapped_into_one_package() -> None:
