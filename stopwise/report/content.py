@@ -135,7 +135,7 @@ def comparison_blocks(label: str, saved: SavedCollection) -> list[Block]:
     table = saved.table
     blocks = [Block("text", text=f"From {label}."), Block("table", table=table)]
     if "delta_aic" in table:
-        fig = comparison_figure(table, "delta_aic")
+        fig = comparison_figure(table, "delta_aic", "delta_aic_se")
     elif "elpd_diff" in table:
         fig = comparison_figure(table, "elpd_diff", "dse")
     else:
