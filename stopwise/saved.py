@@ -7,6 +7,8 @@ per row P(draw) = h_{step}(theta) of the row's condition. On data whose fingerpr
 the fitted data's (``data_sha256``) it certifies itself first: the log-likelihood
 sum_i log P(y_i | theta) recomputed from the rebuilt model must equal the saved one within
 1e-6 (relative), otherwise it refuses (the model or its options were not rebuilt exactly).
+Formula fits (per covariate profile) and per-subject fits (per subject) predict too, with
+their own certificates (stopwise/saved_predict.py).
 No pickle: the JSON is parsed with the standard library only.
 """
 
@@ -32,6 +34,16 @@ from stopwise.fit_record import bundle_fingerprint
 from stopwise.models.base import Model
 from stopwise.models.simulate import simulate
 from stopwise.models.spec import build_model
+from stopwise.saved_predict import (
+    certify_groups,
+    check_loglik,
+    formula_thetas,
+    grouped_predictions,
+    row_logliks,
+    row_profiles,
+    subject_thetas,
+    subjects_of_rows,
+)
 
 LOGLIK_RTOL = 1e-6
 REQUIRED_KEYS = ("model", "params")
@@ -89,9 +101,9 @@ class SavedFit:
         whose parameters differ across rows or subjects."""
         if self.formulas or "type_probabilities" in self.record:
             raise StopwiseInputError(
-                f"{self.source}: a saved fit with covariate formulas or types predicts per "
-                "covariate profile or type; load_result serves pooled fits only (refit to "
-                "predict from this one)"
+                f"{self.source}: a saved fit with covariate formulas or types has no single "
+                "parameter vector; simulating and contest counterfactuals need a pooled fit "
+                "(a formula fit predicts per covariate profile with .predict)"
             )
         values = self.estimates()
         missing = [n for n in model.param_names if n not in values]
@@ -100,15 +112,7 @@ class SavedFit:
         return {n: values[n] for n in model.param_names}
 
     def _selected(self, data: Any) -> tuple[Model, Any, dict[str, float]]:
-        if "spec" not in self.record:
-            raise StopwiseInputError(
-                f"{self.source}: this result records no model spec and options (written by "
-                "an older stopwise); refit it to predict"
-            )
-        model = self.build_model()
-        bundle, frame = resolve_data(data)
-        bundle, _, _ = select_data(model, bundle, frame)
-        prepare_model(model, bundle)
+        model, bundle, _ = model_and_rows(self.record, self.source, data)
         theta = self.theta(model)
         if bundle_fingerprint(bundle) == self.record.get("data_sha256"):
             self.certify(model, theta, bundle)
@@ -132,7 +136,10 @@ class SavedFit:
 
     def predict(self, data: Any) -> dict[str, pd.DataFrame]:
         """As Fit.predict: "rows" (P(draw) or P(choose B) per row) and, for stopping data,
-        "stop_steps" (per condition and step: p_draw, p_reach, p_stop_here, p_bust_here)."""
+        "stop_steps" (per condition and step: p_draw, p_reach, p_stop_here, p_bust_here).
+        A formula fit predicts per covariate profile (stopwise/saved_predict.py)."""
+        if self.formulas and "type_probabilities" not in self.record:
+            return self.predict_profiles(data)
         model, bundle, theta = self._selected(data)
         subject = np.asarray(bundle.subject)
         labels = (
@@ -160,6 +167,28 @@ class SavedFit:
             }
         )
         return {"rows": rows, "stop_steps": table}
+
+    def predict_profiles(self, data: Any) -> dict[str, pd.DataFrame]:
+        """A formula fit's predictions: each row with the saved theta of its covariate
+        profile, certified on the fitted data (stopwise/saved_predict.py); frames as
+        Fit.predict of the live fit ("rows" and "stop_steps" carry a "profile" column)."""
+        model, bundle, frame = model_and_rows(self.record, self.source, data)
+        if frame is None:
+            frame = pd.DataFrame({k: np.asarray(v) for k, v in bundle.covariates.items()})
+        fixed = (self.record.get("spec") or {}).get("fixed") or {}
+        variables, keys, thetas = formula_thetas(self.record, fixed)
+        for theta in thetas.values():
+            missing = [n for n in model.param_names if n not in theta]
+            if missing:
+                raise StopwiseInputError(f"{self.source}: no profile value for {missing}")
+        profile = row_profiles(frame, variables, keys, self.source)
+        if bundle_fingerprint(bundle) == self.record.get("data_sha256"):
+            total = sum(
+                float(row_logliks(model, thetas[c], bundle)[profile == c].sum())
+                for c in np.unique(profile)
+            )
+            check_loglik(total, self.record.get("loglik"), "the fit", self.source)
+        return grouped_predictions(model, bundle, profile, thetas, "profile")
 
     def simulate(self, design: pd.DataFrame, seed: int = 0) -> pd.DataFrame:
         """Data simulated at the point estimates over ``design`` (stopwise.simulate)."""
@@ -211,6 +240,42 @@ class SavedCollection:
 
     def to_dict(self) -> dict[str, Any]:
         return dict(self.record)
+
+    def predict(self, data: Any) -> dict[str, pd.DataFrame]:
+        """Per-subject fits: every row predicted with its subject's saved estimates, each
+        subject's log-likelihood certified on the fitted data (stopwise/saved_predict.py);
+        "rows" as SavedFit.predict, "stop_steps" with a "subject" column."""
+        if self.kind != "by_subject":
+            raise StopwiseInputError(
+                f"{self.source}: a comparison predicts through its fits (.fits[i].predict)"
+            )
+        model, bundle, _ = model_and_rows(self.record, self.source, data)
+        fixed = (self.record.get("spec") or {}).get("fixed") or {}
+        fits = self.record.get("fits") or []
+        thetas = subject_thetas(fits, fixed, model.param_names)
+        group = subjects_of_rows(bundle, thetas, self.source)
+        if bundle_fingerprint(bundle) == self.record.get("data_sha256"):
+            saved = {str(f.get("subject")): f.get("loglik") for f in fits}
+            certify_groups(model, bundle, group, thetas, saved, self.source)
+        return grouped_predictions(model, bundle, group, thetas, "subject")
+
+
+def model_and_rows(
+    record: dict[str, Any], source: str, data: Any
+) -> tuple[Model, Any, pd.DataFrame | None]:
+    """The model rebuilt from the record's spec, prepared on the rows of ``data`` it
+    explains, with those rows' bundle and frame."""
+    spec = record.get("spec")
+    if not spec:
+        raise StopwiseInputError(
+            f"{source}: this result records no model spec and options (written by an older "
+            "stopwise); refit it to predict"
+        )
+    model = build_model(str(record["model"]), **(spec.get("options") or {}))
+    bundle, frame = resolve_data(data)
+    bundle, frame, _ = select_data(model, bundle, frame)
+    prepare_model(model, bundle)
+    return model, bundle, frame
 
 
 def result_from_record(record: Any, source: str = "<dict>") -> SavedFit | SavedCollection:

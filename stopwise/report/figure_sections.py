@@ -23,8 +23,10 @@ from stopwise.figures.stopping import solo_rows, stop_distribution_figure, stopp
 from stopwise.figures.subjects import shrinkage_figure, subject_estimates_figure
 from stopwise.report.blocks import Block, Inputs, Section, figure_block
 from stopwise.saved import SavedCollection, SavedFit
+from stopwise.saved_predict import PROFILE_KEYS
 
 MAX_CONTEST_SCHEMES = 4
+MAX_PROFILES = 4
 SCHEME_COLUMNS = (
     "scheme",
     "prediction",
@@ -49,10 +51,32 @@ def solo_predictions(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) 
         if model_kind(fit) != "stopping":
             continue
         try:
-            out[fit.model] = fit.predict(inputs.data)["stop_steps"]
+            table = fit.predict(inputs.data)["stop_steps"]
         except StopwiseInputError as exc:
             warnings.append(f"no stopping-curve prediction from {fit.model}: {exc}")
+            continue
+        if "profile" not in table:
+            out[fit.model] = table
+            continue
+        profiles = sorted(table["profile"].unique())
+        if len(profiles) > MAX_PROFILES:
+            warnings.append(
+                f"{fit.model}: {len(profiles)} covariate profiles; the stopping curves show "
+                f"the first {MAX_PROFILES}"
+            )
+        for c in profiles[:MAX_PROFILES]:
+            label = f"{fit.model} ({profile_label(fit.record, int(c))})"
+            out[label] = table[table["profile"] == c].drop(columns="profile")
     return out
+
+
+def profile_label(record: dict, profile: int) -> str:
+    """A formula fit's covariate profile as text, e.g. "treatment = 1"."""
+    for row in record.get("profiles") or []:
+        if int(row["profile"]) == profile:
+            names = [k for k in row if k not in PROFILE_KEYS]
+            return ", ".join(f"{k} = {row[k]}" for k in names) or f"profile {profile}"
+    return f"profile {profile}"
 
 
 def stopping_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> Section | None:
