@@ -17,6 +17,8 @@ can lose crates). Everything is synthetic and reproducible from the seed.
 
 from __future__ import annotations
 
+import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -391,23 +393,42 @@ def write_demo_report(data: Path, results: list[Any], out: Path, n_subjects: int
     )
 
 
+def timed(
+    timings: list[tuple[str, float]], label: str, step: Callable[..., Any], *args: Any
+) -> Any:
+    """step(*args), appending (label, wall-clock seconds) to ``timings``."""
+    start = time.perf_counter()
+    value = step(*args)
+    timings.append((label, time.perf_counter() - start))
+    return value
+
+
 def run_demo(out: Path, n_subjects: int = 120) -> None:
     """Write the demo data into ``out``, validate and describe the files, fit and compare
     solo, lottery and contest models, predict play under other bonus schemes, and run a
     small hierarchical Bayesian fit with its diagnostics."""
     out = Path(out)
+    start = time.perf_counter()
     paths = write_demo_files(demo_data(n_subjects=n_subjects), out)
     print(f"Demo data (invented salvage-diving study) written to {out}/")
     print()
     validate_demo_files(paths)
     describe_demo_files(paths)
+    timings = [("data: simulate, validate, describe", time.perf_counter() - start)]
     results = [
-        fit_solo_models(paths["stopping"], out),
-        fit_lottery_model(paths["lottery"], out),
-        fit_contest_models(paths["stopping"], out),
-        fit_hierarchical_model(paths["stopping"], out),
+        timed(
+            timings, "solo comparison and treatment fit", fit_solo_models, paths["stopping"], out
+        ),
+        timed(timings, "lottery fit", fit_lottery_model, paths["lottery"], out),
+        timed(timings, "contest comparison", fit_contest_models, paths["stopping"], out),
+        timed(timings, "hierarchical Bayes", fit_hierarchical_model, paths["stopping"], out),
     ]
-    report = write_demo_report(paths["stopping"], results, out, n_subjects)
+    report = timed(
+        timings, "report", write_demo_report, paths["stopping"], results, out, n_subjects
+    )
+    print("\nTime per step on this machine (wall clock, seconds):")
+    for label, seconds in timings:
+        print(f"  {label:<36} {seconds:7.1f}")
     print(
         f"\nTables and JSON results are in {out}/. These are research estimates on invented "
         "data, not a basis for individual financial, clinical or hiring decisions."
