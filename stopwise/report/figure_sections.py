@@ -19,6 +19,7 @@ from stopwise.figures.contest import (
     schemes_figure,
     target_distribution_figure,
 )
+from stopwise.figures.lottery import lottery_choice_figure, lottery_items
 from stopwise.figures.stopping import solo_rows, stop_distribution_figure, stopping_curves_figure
 from stopwise.figures.subjects import shrinkage_figure, subject_estimates_figure
 from stopwise.report.blocks import Block, Inputs, Section, figure_block
@@ -246,9 +247,48 @@ def bayes_section(inputs: Inputs) -> Section | None:
     return Section("Bayesian diagnostics", blocks) if blocks else None
 
 
+def lottery_predictions(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> dict:
+    """label -> per-item frame (lottery_items with "predicted") of every lottery fit that
+    predicts these data row by row."""
+    frame = inputs.data.frame
+    out = {}
+    for fit in fits:
+        if model_kind(fit) != "lottery":
+            continue
+        try:
+            p_choose_b = fit.predict(inputs.data)["rows"]["p_choose_b"].to_numpy()
+        except StopwiseInputError as exc:
+            warnings.append(f"no lottery-choice prediction from {fit.model}: {exc}")
+            continue
+        if len(p_choose_b) != len(frame):
+            warnings.append(f"{fit.model}: predictions do not align with the data rows; not drawn")
+            continue
+        out[fit.model] = lottery_items(frame, p_choose_b)
+    return out
+
+
+def lottery_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> Section | None:
+    if inputs.data is None or inputs.data.kind != "lottery":
+        return None
+    predictions = lottery_predictions(inputs, fits, warnings)
+    return Section(
+        "Lottery choices",
+        [
+            figure_block(
+                lottery_choice_figure(lottery_items(inputs.data.frame), predictions),
+                "lottery_choices",
+                "Share of choices of the riskier option (larger outcome spread) per item "
+                "against its expected-value advantage: observed with exact binomial 95% "
+                "intervals, and each fitted model's mean predicted probability.",
+            )
+        ],
+    )
+
+
 def figure_sections(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> list[Section]:
     sections = [
         stopping_section(inputs, fits, warnings),
+        lottery_section(inputs, fits, warnings),
         subjects_section(inputs),
         contest_section(inputs, fits, warnings),
         bayes_section(inputs),
