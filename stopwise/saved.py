@@ -278,10 +278,58 @@ def model_and_rows(
     return model, bundle, frame
 
 
-def result_from_record(record: Any, source: str = "<dict>") -> SavedFit | SavedCollection:
-    """A SavedFit (one fit) or SavedCollection (comparison, per-subject fits)."""
+@dataclass
+class SavedSweep:
+    """A contest sweep written by ``stopwise sweep --out FILE.json``: {"axis", "rows"}."""
+
+    record: dict[str, Any]
+    source: str = "<dict>"
+    fits: list[SavedFit] = field(default_factory=list)  # none: a sweep fits nothing
+
+    @property
+    def axis(self) -> str:
+        return str(self.record["axis"])
+
+    @property
+    def table(self) -> pd.DataFrame:
+        return pd.DataFrame(self.record["rows"])
+
+    def lines(self) -> list[pd.DataFrame]:
+        """One frame per line of the grid (the other setting held at one value), in order
+        along the swept axis."""
+        table = self.table
+        fixed = "prize" if self.axis == "p_survive" else "p_survive"
+        return [
+            line.sort_values(self.axis).reset_index(drop=True)
+            for _, line in table.groupby(fixed, sort=True)
+        ]
+
+    def to_dict(self) -> dict[str, Any]:
+        return dict(self.record)
+
+
+SWEEP_COLUMNS = ("p_survive", "prize", "certified", "max_regret", "concept", "tv_prev")
+
+
+def sweep_from_record(record: dict[str, Any], source: str) -> SavedSweep:
+    """A sweep record, checked for the columns its figure reads."""
+    rows = record["rows"]
+    if record.get("axis") not in ("p_survive", "prize") or not rows:
+        raise StopwiseInputError(f"{source}: a sweep needs axis p_survive or prize and rows")
+    missing = [c for c in SWEEP_COLUMNS if not all(isinstance(r, dict) and c in r for r in rows)]
+    if missing:
+        raise StopwiseInputError(f"{source}: sweep rows lack the column(s) {missing}")
+    return SavedSweep(record, source)
+
+
+def result_from_record(
+    record: Any, source: str = "<dict>"
+) -> SavedFit | SavedCollection | SavedSweep:
+    """A SavedFit (one fit), SavedCollection (comparison, per-subject fits) or SavedSweep."""
     if not isinstance(record, dict):
         raise StopwiseInputError(f"{source}: expected a JSON object, got {type(record).__name__}")
+    if isinstance(record.get("rows"), list) and "axis" in record:
+        return sweep_from_record(record, source)
     if isinstance(record.get("fits"), list) or isinstance(record.get("models"), list):
         fits = [
             result_from_record(item, f"{source} fits[{i}]")
@@ -297,8 +345,8 @@ def result_from_record(record: Any, source: str = "<dict>") -> SavedFit | SavedC
     return SavedFit(record, source)
 
 
-def load_result(path: str | os.PathLike[str]) -> SavedFit | SavedCollection:
-    """Read a result JSON written by stopwise (fit, compare, fit --by subject)."""
+def load_result(path: str | os.PathLike[str]) -> SavedFit | SavedCollection | SavedSweep:
+    """Read a result JSON written by stopwise (fit, compare, fit --by subject, sweep)."""
     source = os.fspath(path)
     try:
         text = Path(source).read_text(encoding="utf-8")

@@ -22,12 +22,14 @@ from stopwise.figures.contest import (
 from stopwise.figures.lottery import lottery_choice_figure, lottery_items
 from stopwise.figures.stopping import solo_rows, stop_distribution_figure, stopping_curves_figure
 from stopwise.figures.subjects import shrinkage_figure, subject_estimates_figure
+from stopwise.figures.sweep import sweep_figure
 from stopwise.report.blocks import Block, Inputs, Section, figure_block
-from stopwise.saved import SavedCollection, SavedFit
+from stopwise.saved import SavedCollection, SavedFit, SavedSweep
 from stopwise.saved_predict import PROFILE_KEYS
 
 MAX_CONTEST_SCHEMES = 4
 MAX_PROFILES = 4
+MAX_SWEEP_LINES = 4
 SCHEME_COLUMNS = (
     "scheme",
     "prediction",
@@ -285,12 +287,56 @@ def lottery_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -
     )
 
 
+def sweep_caption(line: pd.DataFrame, axis: str) -> str:
+    """What a sweep figure shows and how far its points are certified."""
+    certified = line["certified"].astype(bool)
+    regret = pd.to_numeric(line["max_regret"], errors="coerce")
+    worst = float(regret.max()) if regret.notna().any() else float("nan")
+    status = (
+        f"all {len(line)} points certified (largest max regret {worst:.2g})"
+        if certified.all()
+        else f"{int((~certified).sum())} of {len(line)} points NOT certified (crosses)"
+    )
+    return (
+        f"{line['concept'].iloc[0]} play along {axis.replace('_', ' ')}: probability of each "
+        "target (top) and the total-variation jump to the previous point (bottom); " + status
+    )
+
+
+def sweep_section(inputs: Inputs, warnings: list[str]) -> Section | None:
+    """One figure per line of every saved sweep (at most MAX_SWEEP_LINES each)."""
+    blocks = []
+    for label, saved, _ in inputs.results:
+        if not isinstance(saved, SavedSweep):
+            continue
+        lines = saved.lines()
+        if len(lines) > MAX_SWEEP_LINES:
+            warnings.append(
+                f"{label}: {len(lines)} lines in the sweep's grid; the report draws the first "
+                f"{MAX_SWEEP_LINES}"
+            )
+        for line in lines[:MAX_SWEEP_LINES]:
+            message = f"{label}: the sweep holds points that are not certified"
+            if not line["certified"].astype(bool).all() and message not in warnings:
+                warnings.append(message)
+            blocks.append(
+                Block(
+                    "figure",
+                    text=f"From {label}: " + sweep_caption(line, saved.axis),
+                    png=sweep_figure(line, saved.axis),
+                    stem=f"sweep_{len(blocks)}",
+                )
+            )
+    return Section("Sweeps", blocks) if blocks else None
+
+
 def figure_sections(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> list[Section]:
     sections = [
         stopping_section(inputs, fits, warnings),
         lottery_section(inputs, fits, warnings),
         subjects_section(inputs),
         contest_section(inputs, fits, warnings),
+        sweep_section(inputs, warnings),
         bayes_section(inputs),
     ]
     return [s for s in sections if s is not None]
