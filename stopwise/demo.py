@@ -352,6 +352,7 @@ def fit_hierarchical_model(path: Path, out: Path) -> Any:
     HIER_SUBJECTS divers, with its diagnostics, written to ``out/fit_hier.json``."""
     from stopwise._io import write_json
     from stopwise.api import fit
+    from stopwise.bayes_draws import result_record
     from stopwise.data_schemas.load import load
 
     frame = load(path).frame
@@ -375,7 +376,7 @@ def fit_hierarchical_model(path: Path, out: Path) -> Any:
         loo="trial",  # leave-one-subject-out would refit the hierarchy per flagged subject
     )
     print(posterior.summary())
-    write_json(out / "fit_hier.json", posterior.to_dict())
+    write_json(out / "fit_hier.json", result_record(posterior))
     return posterior
 
 

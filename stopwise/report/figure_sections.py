@@ -8,10 +8,11 @@ from typing import Any
 
 import pandas as pd
 
+from stopwise.bayes_draws import KEY as THINNED_KEY
+from stopwise.bayes_draws import saved_draws
 from stopwise.contest import counterfactual
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.posterior import Posterior
-from stopwise.figures.bayes import posterior_figure
+from stopwise.figures.bayes import idata_from_draws, posterior_figure
 from stopwise.figures.contest import (
     CONTEST_CONDITION,
     contest_conditions,
@@ -231,21 +232,31 @@ def contest_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -
     return Section("Contests", blocks) if blocks else None
 
 
-def bayes_section(inputs: Inputs) -> Section | None:
+def bayes_section(inputs: Inputs, warnings: list[str]) -> Section | None:
+    """Rank plots and densities of every Bayesian fit, from the thinned draws its record
+    keeps (stopwise/bayes_draws.py), so a saved JSON draws the same figure as a live fit."""
     blocks = []
-    for _, _, original in inputs.results:
-        if isinstance(original, Posterior):
-            names = list(original.params.index)
-            population = [n for n in names if n in original.idata.posterior.data_vars]
-            if population:
-                blocks.append(
-                    figure_block(
-                        posterior_figure(original.idata, population),
-                        f"bayes_{len(blocks)}",
-                        f"{original.model.name}: rank plots of the chains (near uniform when "
-                        "they agree) and posterior densities with 95% HDI.",
-                    )
-                )
+    for label, saved, _ in inputs.results:
+        if not isinstance(saved, SavedFit) or saved.method != "bayes":
+            continue
+        draws = saved_draws(saved.record)
+        if not draws:
+            warnings.append(
+                f"{label}: no posterior draws saved with this Bayesian fit (written by an "
+                "older stopwise); rank plots and densities are not drawn"
+            )
+            continue
+        kept = saved.record[THINNED_KEY]
+        blocks.append(
+            figure_block(
+                posterior_figure(idata_from_draws(draws), list(draws)),
+                f"bayes_{len(blocks)}",
+                f"{saved.model}: rank plots of the chains (near uniform when they agree) and "
+                "posterior densities with 95% HDI, from the draws saved with the fit: "
+                f"{next(iter(draws.values())).shape[1]} of {kept['draws_per_chain']} per "
+                f"chain (thinning step {kept['step']}), {kept['chains']} chains.",
+            )
+        )
     return Section("Bayesian diagnostics", blocks) if blocks else None
 
 
@@ -337,6 +348,6 @@ def figure_sections(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -
         subjects_section(inputs),
         contest_section(inputs, fits, warnings),
         sweep_section(inputs, warnings),
-        bayes_section(inputs),
+        bayes_section(inputs, warnings),
     ]
     return [s for s in sections if s is not None]
