@@ -34,9 +34,11 @@ def comparison_figure(
         capsize=3,
         height=0.6,
     )
-    for yi, v in zip(y, values):
+    ends = values + (np.nan_to_num(errors) if errors is not None else 0.0)
+    for yi, v, end in zip(y, values, ends):
+        label = f"{v:.1f}" if errors is None or end == v else f"{v:.1f} ± {end - v:.1f}"
         ax.annotate(
-            f"{v:.1f}", (v, yi), xytext=(4, 0), textcoords="offset points", va="center", fontsize=8
+            label, (end, yi), xytext=(4, 0), textcoords="offset points", va="center", fontsize=8
         )
     ax.set_yticks(y, [str(m) for m in ordered.index])
     if value == "delta_aic":
@@ -45,8 +47,6 @@ def comparison_figure(
         ax.set_xlabel(f"ΔAIC to the best model{bars} (dotted: 10)")
     else:
         ax.set_xlabel(value.replace("_", " "))
-    ax.set_xlim(
-        0, max(1.0, float(np.nanmax(values + (errors if errors is not None else 0)))) * 1.15
-    )
+    ax.set_xlim(0, max(1.0, float(np.nanmax(ends))) * 1.25)
     ax.set_title("Model comparison (best model on top, at 0)")
     return fig
