@@ -26,6 +26,10 @@ import numpy as np
 import pandas as pd
 
 from stopwise._io import write_table
+from stopwise.bayes_draws import result_record
+from stopwise.data_schemas.load import load
+from stopwise.figures.lottery import lottery_choice_figure, lottery_items
+from stopwise.figures.palette import save_figure
 
 DEMO_SEED = 20261201
 TRIALS_PER_BLOCK = 12
@@ -317,6 +321,14 @@ def fit_lottery_model(path: Path, out: Path) -> Any:
     result = fit(build_model(LOTTERY_MODEL, wealth=LOTTERY_WEALTH), path, seed=1)
     print(result.summary())
     write_json(out / "fit_lottery.json", result.to_dict())
+    frame = load(path).frame
+    items = lottery_items(frame, result.predict(path)["rows"]["p_choose_b"].to_numpy())
+    save_figure(lottery_choice_figure(lottery_items(frame), {result.model: items}), out / "lottery")
+    print(
+        f"\nFigure {out}/lottery.png (and .svg): share choosing the riskier option per item "
+        "against its expected-value advantage, observed (exact 95% intervals) and predicted; "
+        "the report below covers the dive data"
+    )
     return result
 
 
@@ -352,8 +364,6 @@ def fit_hierarchical_model(path: Path, out: Path) -> Any:
     HIER_SUBJECTS divers, with its diagnostics, written to ``out/fit_hier.json``."""
     from stopwise._io import write_json
     from stopwise.api import fit
-    from stopwise.bayes_draws import result_record
-    from stopwise.data_schemas.load import load
 
     frame = load(path).frame
     frame = frame[frame["task"] == "solo"]
