@@ -87,8 +87,10 @@ class SavedFit:
         return list((self.record.get("spec") or {}).get("formulas") or [])
 
     def estimates(self) -> dict[str, float]:
-        """The model's parameters on their natural scale (held-fixed values included)."""
+        """The model's parameters on their natural scale (held-fixed values included: the
+        user's, and those identification held fixed because the data cannot move them)."""
         values = dict(self.params["estimate"])
+        values.update((self.record.get("identification") or {}).get("fixed") or {})
         values.update((self.record.get("spec") or {}).get("fixed") or {})
         return {k: float(v) for k, v in values.items()}
 

@@ -15,7 +15,7 @@ import stopwise
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.recovery import stopping_design
 from stopwise.models.spec import build_model
-from stopwise.saved import load_result
+from stopwise.saved import SavedFit, load_result
 
 SPEC = "crra+myopic+logit"
 
@@ -121,3 +121,21 @@ def test_saved_per_subject_fit_refuses_unknown_subjects_and_tampered_estimates(
     path.write_text(json.dumps(record), encoding="utf-8")
     with pytest.raises(StopwiseInputError, match="refusing to predict"):
         load_result(path).predict(solo_file)
+
+
+def test_parameters_held_fixed_by_identification_complete_a_saved_fit() -> None:
+    # a prospect-theory fit to gains-only data holds the loss parameters fixed
+    # (estimation/identification.py) and reports them under "identification", not "params"
+    record = {
+        "model": "pt+tk+target+logit",
+        "params": [
+            {"name": n, "estimate": v}
+            for n, v in (("alpha", 0.8), ("gamma", 0.7), ("precision", 2.0))
+        ],
+        "spec": {"model": "pt+tk+target+logit", "options": {}, "formulas": [], "fixed": {}},
+        "identification": {"fixed": {"beta": 0.8, "loss_aversion": 1.5, "delta": 0.7}},
+    }
+    saved = SavedFit(record, "pt.json")
+    theta = saved.theta(saved.build_model())
+    assert theta["loss_aversion"] == 1.5 and theta["delta"] == 0.7 and theta["alpha"] == 0.8
+    assert set(theta) == set(saved.build_model().param_names)
