@@ -19,6 +19,8 @@ DEMO_OUTPUTS = sorted(
         "report.html",
         "fit_solo.json",
         "fit_lottery.json",
+        "lottery.png",
+        "lottery.svg",
         "fit_hier.json",
         "compare_contest.csv",
         "counterfactual.csv",
@@ -83,6 +85,10 @@ def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
     assert hier["method"] == "bayes" and hier["hierarchical"] is True
     assert hier["n_subjects"] == 12
     assert {"max_rhat", "min_ess_bulk", "divergences"} <= set(hier["diagnostics"])
+    # thinned draws for the report's rank plots; the report draws them from the record
+    assert hier["thinned_draws"]["chains"] == 4 and hier["thinned_draws"]["params"]
+    assert "<h2>Bayesian diagnostics</h2>" in page
+    assert "Time per step on this machine" in printed
 
 
 def test_demo_hides_library_deprecation_banners_but_not_ours() -> None:

@@ -5,6 +5,8 @@
   (estimation/nesting.py); nested pairs get a likelihood-ratio test with the chi2 or
   chi-bar-square reference, the others Vuong's and Clarke's tests, and pairs whose
   per-subject log-likelihoods coincide read "indistinguishable" (estimation/pair_tests.py).
+* ΔAIC to the best model with its standard error over subjects, 2 sqrt(G) sd(d_g)
+  (estimation/aic_difference.py).
 * Subject-level k-fold cross-validation: subjects are split into k folds; each fold's
   held-out log-likelihood is computed at the estimate from the other folds; the log score
   is the sum over folds (higher is better). Folds use the full fit's multistart design; a
@@ -20,6 +22,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from stopwise.estimation.aic_difference import delta_aic_ses
 from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.identification import fit_identified
 from stopwise.estimation.ml.mle import build_problem, optimise, start_design
@@ -393,6 +396,9 @@ def compare_fits(
         rows.append(row)
     table = pd.DataFrame(rows).set_index("model")
     table["delta_aic"] = table["aic"] - table["aic"].min()
+    table["delta_aic_se"] = delta_aic_ses(
+        [subject_logliks(f) for f in fits], [f.aic for f in fits], [f.converged for f in fits]
+    )
     weights = np.exp(-0.5 * table["delta_aic"].to_numpy())
     table["aic_weight"] = weights / weights.sum()
     table = table.sort_values("aic")
@@ -401,5 +407,10 @@ def compare_fits(
         notes.append(
             f"cross-validation skipped: fewer subjects ({data.n_subjects}) than folds ({cv_folds})"
         )
+    notes.append(
+        "delta_aic_se: SE of AIC_m - AIC_best over subjects, 2 sqrt(G) sd(d_g) with d_g the "
+        f"per-subject log-likelihood difference, G = {data.n_subjects} (estimation/"
+        "aic_difference.py); -delta_aic/SE is Vuong's AIC-corrected Z (Vuong 1989, from memory)"
+    )
     notes.append("AIC weights: exp(-dAIC/2) normalised (Burnham & Anderson 2002, from memory)")
     return Comparison(table=table, tests=tests, fits=fits, notes=notes, warnings=cv_warnings)

@@ -338,6 +338,7 @@ class FitBySubject:
     flags: dict[Any, list[str]]
     seed: int
     warnings: list[str] = field(default_factory=list)
+    extras: dict[str, Any] = field(default_factory=dict)  # "record": spec, data fingerprint
 
     @property
     def params(self) -> pd.DataFrame:
@@ -359,6 +360,7 @@ class FitBySubject:
                 {"subject": _plain(s), **f.to_dict(), "flags": self.flags.get(s, [])}
                 for s, f in self.fits
             ],
+            **self.extras.get("record", {}),  # spec, options, data fingerprint (stopwise.saved)
         }
 
     def to_json(self) -> str:

@@ -7,6 +7,7 @@ import sys
 from typing import Any
 
 from stopwise._io import write_json
+from stopwise.bayes_draws import result_record
 from stopwise.commands import _args, _cluster, _options, _table
 from stopwise.data_schemas.errors import StopwiseInputError
 
@@ -148,7 +149,7 @@ def emit(result: Any, json_path: str | None) -> None:
     text = result.summary() if hasattr(result, "summary") else str(result)
     print(text, file=sys.stderr if json_path == "-" else sys.stdout)
     if json_path:
-        write_json(json_path, result.to_dict())
+        write_json(json_path, result_record(result))  # Bayes: plus thinned draws
 
 
 def option_note(items: list[str]) -> list[str]:

@@ -14,9 +14,9 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         "report",
         help="write one self-contained HTML (or Markdown) report of data and results",
         description="Write a report from a data file and/or result JSON files (from fit "
-        "--json, compare --json, fit --by subject --json): the data summary, each fit's "
-        "table, the comparison, figures of stopping behaviour, subjects and contests against "
-        "the fitted models, warnings, and a reproducibility record (versions, seeds, this "
+        "--json, compare --json, fit --by subject --json, sweep --out FILE.json): the data "
+        "summary, each fit's table, the comparison, figures of stopping behaviour, lottery "
+        "choices, subjects and contests against the fitted models, sweeps, warnings, and a reproducibility record (versions, seeds, this "
         "command, SHA-256 of each input, date, machine). HTML embeds its figures and "
         "fetches nothing; Markdown writes its PNG figures to OUT_STEM_figures/.",
     )

@@ -3,13 +3,19 @@ densities of the population parameters, drawn on one Figure of our own."""
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import arviz as az
+import numpy as np
 from matplotlib.figure import Figure
 
 from stopwise.figures.palette import MODELS, new_figure
+
+
+def idata_from_draws(draws: Mapping[str, np.ndarray]) -> Any:
+    """An ArviZ InferenceData whose posterior holds ``draws`` (name -> (chains, draws))."""
+    return az.from_dict(posterior={name: np.asarray(v, dtype=float) for name, v in draws.items()})
 
 
 def posterior_figure(idata: Any, var_names: Sequence[str]) -> Figure:

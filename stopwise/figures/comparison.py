@@ -1,7 +1,8 @@
 """Figure of a model comparison: each model's difference to the best one.
 
 ML comparisons show ΔAIC_m = AIC_m - min AIC (Akaike 1974; Burnham & Anderson 2002, from
-memory, read ΔAIC > 10 as essentially no support); Bayesian ones show elpd_best - elpd_m
+memory, read ΔAIC > 10 as essentially no support) with, where given, its standard error
+over subjects 2 sqrt(G) sd(d_g) (estimation/aic_difference.py) as error bars; Bayesian ones show elpd_best - elpd_m
 with the standard error of the difference (Vehtari, Gelman & Gabry 2017) as error bars.
 """
 
@@ -33,18 +34,19 @@ def comparison_figure(
         capsize=3,
         height=0.6,
     )
-    for yi, v in zip(y, values):
+    ends = values + (np.nan_to_num(errors) if errors is not None else 0.0)
+    for yi, v, end in zip(y, values, ends):
+        label = f"{v:.1f}" if errors is None or end == v else f"{v:.1f} ± {end - v:.1f}"
         ax.annotate(
-            f"{v:.1f}", (v, yi), xytext=(4, 0), textcoords="offset points", va="center", fontsize=8
+            label, (end, yi), xytext=(4, 0), textcoords="offset points", va="center", fontsize=8
         )
     ax.set_yticks(y, [str(m) for m in ordered.index])
     if value == "delta_aic":
         ax.axvline(10.0, ls=":", color=BENCHMARK, lw=1)
-        ax.set_xlabel("ΔAIC to the best model (dotted: 10)")
+        bars = " ± 1 SE over subjects" if errors is not None else ""
+        ax.set_xlabel(f"ΔAIC to the best model{bars} (dotted: 10)")
     else:
         ax.set_xlabel(value.replace("_", " "))
-    ax.set_xlim(
-        0, max(1.0, float(np.nanmax(values + (errors if errors is not None else 0)))) * 1.15
-    )
+    ax.set_xlim(0, max(1.0, float(np.nanmax(ends))) * 1.25)
     ax.set_title("Model comparison (best model on top, at 0)")
     return fig

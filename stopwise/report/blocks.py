@@ -10,7 +10,7 @@ from matplotlib.figure import Figure
 
 from stopwise.data_schemas.load import Dataset
 from stopwise.figures.palette import figure_bytes
-from stopwise.saved import SavedCollection, SavedFit
+from stopwise.saved import SavedCollection, SavedFit, SavedSweep
 
 
 @dataclass
@@ -37,7 +37,7 @@ class Inputs:
     """The loaded inputs: data (or None), results as (label, saved, original object)."""
 
     data: Dataset | None
-    results: list[tuple[str, SavedFit | SavedCollection, Any]]
+    results: list[tuple[str, SavedFit | SavedCollection | SavedSweep, Any]]
     files: list[str]
 
 

@@ -15,6 +15,7 @@ from typing import Any
 
 import pandas as pd
 
+from stopwise.bayes_draws import result_record
 from stopwise.data_schemas.load import load
 from stopwise.describe import describe
 from stopwise.estimation.ml.results import DISCLAIMER
@@ -60,7 +61,7 @@ def read_inputs(data: Any, results: Sequence[Any]) -> Inputs:
             loaded.append((Path(item).name, load_result(item), None))
         else:
             label = result_label(item, i)
-            loaded.append((label, result_from_record(item.to_dict(), label), item))
+            loaded.append((label, result_from_record(result_record(item), label), item))
     return Inputs(dataset, loaded, files)
 
 
@@ -135,7 +136,7 @@ def comparison_blocks(label: str, saved: SavedCollection) -> list[Block]:
     table = saved.table
     blocks = [Block("text", text=f"From {label}."), Block("table", table=table)]
     if "delta_aic" in table:
-        fig = comparison_figure(table, "delta_aic")
+        fig = comparison_figure(table, "delta_aic", "delta_aic_se")
     elif "elpd_diff" in table:
         fig = comparison_figure(table, "elpd_diff", "dse")
     else:

@@ -8,10 +8,11 @@ from typing import Any
 
 import pandas as pd
 
+from stopwise.bayes_draws import KEY as THINNED_KEY
+from stopwise.bayes_draws import saved_draws
 from stopwise.contest import counterfactual
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes.posterior import Posterior
-from stopwise.figures.bayes import posterior_figure
+from stopwise.figures.bayes import idata_from_draws, posterior_figure
 from stopwise.figures.contest import (
     CONTEST_CONDITION,
     contest_conditions,
@@ -19,12 +20,17 @@ from stopwise.figures.contest import (
     schemes_figure,
     target_distribution_figure,
 )
+from stopwise.figures.lottery import lottery_choice_figure, lottery_items
 from stopwise.figures.stopping import solo_rows, stop_distribution_figure, stopping_curves_figure
 from stopwise.figures.subjects import shrinkage_figure, subject_estimates_figure
+from stopwise.figures.sweep import sweep_figure
 from stopwise.report.blocks import Block, Inputs, Section, figure_block
-from stopwise.saved import SavedCollection, SavedFit
+from stopwise.saved import SavedCollection, SavedFit, SavedSweep
+from stopwise.saved_predict import PROFILE_KEYS
 
 MAX_CONTEST_SCHEMES = 4
+MAX_PROFILES = 4
+MAX_SWEEP_LINES = 4
 SCHEME_COLUMNS = (
     "scheme",
     "prediction",
@@ -49,10 +55,32 @@ def solo_predictions(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) 
         if model_kind(fit) != "stopping":
             continue
         try:
-            out[fit.model] = fit.predict(inputs.data)["stop_steps"]
+            table = fit.predict(inputs.data)["stop_steps"]
         except StopwiseInputError as exc:
             warnings.append(f"no stopping-curve prediction from {fit.model}: {exc}")
+            continue
+        if "profile" not in table:
+            out[fit.model] = table
+            continue
+        profiles = sorted(table["profile"].unique())
+        if len(profiles) > MAX_PROFILES:
+            warnings.append(
+                f"{fit.model}: {len(profiles)} covariate profiles; the stopping curves show "
+                f"the first {MAX_PROFILES}"
+            )
+        for c in profiles[:MAX_PROFILES]:
+            label = f"{fit.model} ({profile_label(fit.record, int(c))})"
+            out[label] = table[table["profile"] == c].drop(columns="profile")
     return out
+
+
+def profile_label(record: dict, profile: int) -> str:
+    """A formula fit's covariate profile as text, e.g. "treatment = 1"."""
+    for row in record.get("profiles") or []:
+        if int(row["profile"]) == profile:
+            names = [k for k in row if k not in PROFILE_KEYS]
+            return ", ".join(f"{k} = {row[k]}" for k in names) or f"profile {profile}"
+    return f"profile {profile}"
 
 
 def stopping_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> Section | None:
@@ -204,29 +232,122 @@ def contest_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -
     return Section("Contests", blocks) if blocks else None
 
 
-def bayes_section(inputs: Inputs) -> Section | None:
+def bayes_section(inputs: Inputs, warnings: list[str]) -> Section | None:
+    """Rank plots and densities of every Bayesian fit, from the thinned draws its record
+    keeps (stopwise/bayes_draws.py), so a saved JSON draws the same figure as a live fit."""
     blocks = []
-    for _, _, original in inputs.results:
-        if isinstance(original, Posterior):
-            names = list(original.params.index)
-            population = [n for n in names if n in original.idata.posterior.data_vars]
-            if population:
-                blocks.append(
-                    figure_block(
-                        posterior_figure(original.idata, population),
-                        f"bayes_{len(blocks)}",
-                        f"{original.model.name}: rank plots of the chains (near uniform when "
-                        "they agree) and posterior densities with 95% HDI.",
-                    )
-                )
+    for label, saved, _ in inputs.results:
+        if not isinstance(saved, SavedFit) or saved.method != "bayes":
+            continue
+        draws = saved_draws(saved.record)
+        if not draws:
+            warnings.append(
+                f"{label}: no posterior draws saved with this Bayesian fit (written by an "
+                "older stopwise); rank plots and densities are not drawn"
+            )
+            continue
+        kept = saved.record[THINNED_KEY]
+        blocks.append(
+            figure_block(
+                posterior_figure(idata_from_draws(draws), list(draws)),
+                f"bayes_{len(blocks)}",
+                f"{saved.model}: rank plots of the chains (near uniform when they agree) and "
+                "posterior densities with 95% HDI, from the draws saved with the fit: "
+                f"{next(iter(draws.values())).shape[1]} of {kept['draws_per_chain']} per "
+                f"chain (thinning step {kept['step']}), {kept['chains']} chains.",
+            )
+        )
     return Section("Bayesian diagnostics", blocks) if blocks else None
+
+
+def lottery_predictions(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> dict:
+    """label -> per-item frame (lottery_items with "predicted") of every lottery fit that
+    predicts these data row by row."""
+    frame = inputs.data.frame
+    out = {}
+    for fit in fits:
+        if model_kind(fit) != "lottery":
+            continue
+        try:
+            p_choose_b = fit.predict(inputs.data)["rows"]["p_choose_b"].to_numpy()
+        except StopwiseInputError as exc:
+            warnings.append(f"no lottery-choice prediction from {fit.model}: {exc}")
+            continue
+        if len(p_choose_b) != len(frame):
+            warnings.append(f"{fit.model}: predictions do not align with the data rows; not drawn")
+            continue
+        out[fit.model] = lottery_items(frame, p_choose_b)
+    return out
+
+
+def lottery_section(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> Section | None:
+    if inputs.data is None or inputs.data.kind != "lottery":
+        return None
+    predictions = lottery_predictions(inputs, fits, warnings)
+    return Section(
+        "Lottery choices",
+        [
+            figure_block(
+                lottery_choice_figure(lottery_items(inputs.data.frame), predictions),
+                "lottery_choices",
+                "Share of choices of the riskier option (larger outcome spread) per item "
+                "against its expected-value advantage: observed with exact binomial 95% "
+                "intervals, and each fitted model's mean predicted probability.",
+            )
+        ],
+    )
+
+
+def sweep_caption(line: pd.DataFrame, axis: str) -> str:
+    """What a sweep figure shows and how far its points are certified."""
+    certified = line["certified"].astype(bool)
+    regret = pd.to_numeric(line["max_regret"], errors="coerce")
+    worst = float(regret.max()) if regret.notna().any() else float("nan")
+    status = (
+        f"all {len(line)} points certified (largest max regret {worst:.2g})"
+        if certified.all()
+        else f"{int((~certified).sum())} of {len(line)} points NOT certified (crosses)"
+    )
+    return (
+        f"{line['concept'].iloc[0]} play along {axis.replace('_', ' ')}: probability of each "
+        "target (top) and the total-variation jump to the previous point (bottom); " + status
+    )
+
+
+def sweep_section(inputs: Inputs, warnings: list[str]) -> Section | None:
+    """One figure per line of every saved sweep (at most MAX_SWEEP_LINES each)."""
+    blocks = []
+    for label, saved, _ in inputs.results:
+        if not isinstance(saved, SavedSweep):
+            continue
+        lines = saved.lines()
+        if len(lines) > MAX_SWEEP_LINES:
+            warnings.append(
+                f"{label}: {len(lines)} lines in the sweep's grid; the report draws the first "
+                f"{MAX_SWEEP_LINES}"
+            )
+        for line in lines[:MAX_SWEEP_LINES]:
+            message = f"{label}: the sweep holds points that are not certified"
+            if not line["certified"].astype(bool).all() and message not in warnings:
+                warnings.append(message)
+            blocks.append(
+                Block(
+                    "figure",
+                    text=f"From {label}: " + sweep_caption(line, saved.axis),
+                    png=sweep_figure(line, saved.axis),
+                    stem=f"sweep_{len(blocks)}",
+                )
+            )
+    return Section("Sweeps", blocks) if blocks else None
 
 
 def figure_sections(inputs: Inputs, fits: list[SavedFit], warnings: list[str]) -> list[Section]:
     sections = [
         stopping_section(inputs, fits, warnings),
+        lottery_section(inputs, fits, warnings),
         subjects_section(inputs),
         contest_section(inputs, fits, warnings),
-        bayes_section(inputs),
+        sweep_section(inputs, warnings),
+        bayes_section(inputs, warnings),
     ]
     return [s for s in sections if s is not None]
