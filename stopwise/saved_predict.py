@@ -12,7 +12,7 @@ parameter vector per covariate profile) and per-subject fits (one per subject).
   theta_s) equals that subject's saved log-likelihood within LOGLIK_RTOL.
 
 Rows: P(draw) = h_step(theta) of the row's condition (stopping) or P(choose B) (lottery);
-stop-step tables per profile or subject (estimation.ml.mle.stop_step_table).
+stop-step tables per profile or subject (estimation.ml.response.stop_step_table).
 """
 
 from __future__ import annotations
