@@ -26,9 +26,11 @@ STALL_TOL (rounding level reached), when mu exceeds 1e8 or the radius falls belo
 The folds x starts runs are vmapped inside one ``lax.while_loop``, so a multistart costs one
 device call instead of ~50 host round trips through scipy. Runs that do not reach
 max |g| < GRAD_TOL here are rerun from their start by scipy's trust-exact
-(optimize.minimize_one), and every run records which optimiser produced it. The best run of
-each fold is re-evaluated by the ordinary step program (problem.value_grad_hess) on the host:
-its value and gradient, not the loop's, certify convergence.
+(optimize.minimize_one), and every run records which optimiser produced it. A run's
+certificate is the exact gradient at its final z (converged: max |g| < GRAD_TOL, the
+criterion of the scipy path); the Hessian there is handed to the Problem
+(remember_second_order), where the standard errors check its definiteness, so a single fit
+neither recomputes it nor traces the separate step program.
 """
 
 from __future__ import annotations
@@ -80,8 +82,10 @@ def _all_finite(value: Any, grad: Any, hess: Any) -> Any:
 def newton_runs(rows: Any, starts: Any, args: Any, weights: Any, max_iter: Any) -> tuple[Any, ...]:
     """Minimise negll_f from every start for every weight vector (module docstring).
 
-    starts (S, k), weights (F, n): returns z (F, S, k), negll (F, S), max |g| (F, S) and
-    iterations (F, S)."""
+    starts (S, k), weights (F, n): returns z (F, S, k), negll (F, S), gradient (F, S, k),
+    Hessian (F, S, k, k), max |g| (F, S) and iterations (F, S), the derivatives at z. The
+    loop's first pass evaluates the starts themselves (a zero step), so the step program
+    is traced once."""
     n_folds, n_starts, k = weights.shape[0], starts.shape[0], starts.shape[1]
 
     def one(z: Any, w: Any) -> tuple[Any, Any, Any]:
@@ -97,29 +101,30 @@ def newton_runs(rows: Any, starts: Any, args: Any, weights: Any, max_iter: Any) 
         return jnp.where(ok, v, jnp.inf), g, h, gmax
 
     z0 = jnp.tile(starts, (n_folds, 1))
-    v, g, h, gmax = evaluate(z0)
     n = z0.shape[0]
     state = (
         jnp.asarray(0),
         z0,
-        v,
-        g,
-        h,
-        gmax,
+        jnp.full(n, jnp.inf),
+        jnp.zeros((n, k)),
+        jnp.tile(jnp.eye(k), (n, 1, 1)),
+        jnp.full(n, jnp.inf),
         jnp.full(n, 1e-6),
         jnp.full(n, FIRST_RADIUS),
-        gmax < POLISH_TOL,
-        jnp.zeros(n, dtype=jnp.int32),
+        jnp.zeros(n, dtype=bool),
+        jnp.full(n, -1, dtype=jnp.int32),
     )
 
     def cond(s: tuple[Any, ...]) -> Any:
-        return (s[0] < max_iter) & ~jnp.all(s[8])
+        return (s[0] <= max_iter) & ~jnp.all(s[8])
 
     def body(s: tuple[Any, ...]) -> tuple[Any, ...]:
         it, z, v, g, h, gmax, mu, radius, done, iters = s
+        first = it == 0  # evaluate the starts
         g_safe = jnp.where(jnp.isfinite(g), g, 0.0)
         h_safe = jnp.where(jnp.isfinite(h), h, 0.0)
-        z_new = jnp.clip(z + jax.vmap(damped_step)(g_safe, h_safe, mu, radius), -Z_LIMIT, Z_LIMIT)
+        step = jnp.where(first, 0.0, jax.vmap(damped_step)(g_safe, h_safe, mu, radius))
+        z_new = jnp.clip(z + step, -Z_LIMIT, Z_LIMIT)
         v_new, g_new, h_new, gmax_new = evaluate(z_new)
         within_rounding = v_new <= v + 1e-10 * (1.0 + jnp.abs(v))
         better = (v_new < v) | (within_rounding & (gmax_new < gmax))
@@ -129,21 +134,24 @@ def newton_runs(rows: Any, starts: Any, args: Any, weights: Any, max_iter: Any) 
         g = jnp.where(accept[:, None], g_new, g)
         h = jnp.where(accept[:, None, None], h_new, h)
         gmax = jnp.where(accept, gmax_new, gmax)
-        mu = jnp.where(accept, jnp.maximum(mu * 0.1, 1e-12), mu * 10.0)
-        radius = jnp.where(accept, jnp.minimum(2.0 * radius, STEP_CAP), 0.25 * radius)
+        mu = jnp.where(first, mu, jnp.where(accept, jnp.maximum(mu * 0.1, 1e-12), mu * 10.0))
+        shrunk = jnp.where(accept, jnp.minimum(2.0 * radius, STEP_CAP), 0.25 * radius)
+        radius = jnp.where(first, radius, shrunk)
         iters = iters + (~done).astype(jnp.int32)
         stalled = ~accept & (gmax < STALL_TOL)
         stuck = (mu > 1e8) | (radius < 1e-12)
         done = done | (gmax < POLISH_TOL) | stalled | stuck
         return it + 1, z, v, g, h, gmax, mu, radius, done, iters
 
-    _, z, v, _, _, gmax, _, _, _, iters = jax.lax.while_loop(cond, body, state)
-    shape = (n_folds, n_starts)
+    _, z, v, g, h, gmax, _, _, _, iters = jax.lax.while_loop(cond, body, state)
+    fs = (n_folds, n_starts)
     return (
-        z.reshape(n_folds, n_starts, k),
-        v.reshape(shape),
-        gmax.reshape(shape),
-        iters.reshape(shape),
+        z.reshape(*fs, k),
+        v.reshape(fs),
+        g.reshape(*fs, k),
+        h.reshape(*fs, k, k),
+        gmax.reshape(fs),
+        iters.reshape(fs),
     )
 
 
@@ -172,16 +180,6 @@ def fallback_record(
     return replace(run, algorithm=FALLBACK)
 
 
-def certified(problem: Problem, run: OptimumRecord, w: np.ndarray | None) -> OptimumRecord:
-    """The run with value, gradient and convergence recomputed at its z by the ordinary step
-    program (problem.second_order): the certificate does not rest on the loop's numbers."""
-    value, grad, _ = problem.second_order(run.z, w)
-    value = float(value)
-    gmax = float(np.max(np.abs(grad))) if np.all(np.isfinite(grad)) else float("inf")
-    converged = bool(np.isfinite(value) and gmax < GRAD_TOL)
-    return replace(run, value=value, grad_norm=gmax, converged=converged)
-
-
 def fold_weights(problem: Problem, weights: list[np.ndarray | None]) -> np.ndarray:
     """(F, n) row weights: the problem's own where an entry is None."""
     return np.stack(
@@ -197,11 +195,12 @@ def compiled_multistart(
 ) -> list[tuple[OptimumRecord, list[OptimumRecord]]]:
     """(best, runs) for each weight vector (default: the problem's own, one entry): every
     start of every fold in one compiled call (newton_runs); unconverged runs are redone by
-    scipy's trust-exact; each fold's best run is certified on the host."""
+    scipy's trust-exact; the best run of each fold (optimize.best_run) leaves its
+    derivatives with the Problem."""
     weights = weights if weights is not None else [None]
     starts = np.atleast_2d(np.asarray(starts, dtype=np.float64))
     args, _ = problem.on_device()
-    z, v, gmax, iters = (
+    z, v, g, h, gmax, iters = (
         np.asarray(a)
         for a in newton_runs(
             problem.rows,
@@ -217,24 +216,9 @@ def compiled_multistart(
         for s, start in enumerate(starts):
             run = compiled_record(z[f, s], v[f, s], gmax[f, s], iters[f, s], start)
             runs.append(run if run.converged else fallback_record(problem, start, w, max_iter))
-        out.append(certified_best(problem, runs, w, max_iter))
-    return out
-
-
-def certified_best(
-    problem: Problem, runs: list[OptimumRecord], w: np.ndarray | None, max_iter: int
-) -> tuple[OptimumRecord, list[OptimumRecord]]:
-    """The best run (optimize.best_run) after its certificate on the host; a compiled run
-    that fails the certificate is redone by the fallback and the choice is made again."""
-    runs = list(runs)
-    while True:
         best = best_run(runs)
-        i = next(j for j, r in enumerate(runs) if r is best)
-        if best.algorithm != COMPILED:
-            return best, runs
-        checked = certified(problem, best, w)
-        runs[i] = (
-            checked if checked.converged else fallback_record(problem, best.start, w, max_iter)
-        )
-        if checked.converged:
-            return checked, runs
+        if best.algorithm == COMPILED:
+            i = next(j for j, r in enumerate(runs) if r is best)
+            problem.remember_second_order(best.z, w, v[f, i], g[f, i], h[f, i])
+        out.append((best, runs))
+    return out

@@ -96,9 +96,9 @@ def test_a_start_the_compiled_newton_leaves_unconverged_is_rerun_by_scipy_and_re
     real = compiled_module.newton_runs
 
     def first_start_fails(rows, starts, args, weights, max_iter):
-        z, v, gmax, iters = real(rows, starts, args, weights, max_iter)
+        z, v, g, h, gmax, iters = real(rows, starts, args, weights, max_iter)
         # as a run that ends with a non-finite objective (a device-side failure)
-        return z, v.at[:, 0].set(np.nan), gmax.at[:, 0].set(np.inf), iters
+        return z, v.at[:, 0].set(np.nan), g, h, gmax.at[:, 0].set(np.inf), iters
 
     monkeypatch.setattr(compiled_module, "newton_runs", first_start_fails)
     fit = fit_mle(build_model(SPEC), data, se="hessian", starts=3)
