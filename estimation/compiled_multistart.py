@@ -91,11 +91,11 @@ def newton_runs(rows: Any, starts: Any, args: Any, weights: Any, max_iter: Any) 
     def one(z: Any, w: Any) -> tuple[Any, Any, Any]:
         return value_grad_hess_forward(lambda zz: _negll(rows, zz, args, w), z)
 
-    per_fold = jax.vmap(jax.vmap(one, in_axes=(0, None)), in_axes=(0, 0))
+    run_weights = jnp.repeat(weights, n_starts, axis=0)  # run r = fold r // S, start r % S
+    per_run = jax.vmap(one)  # one batching layer (two nested ones trace slower)
 
     def evaluate(z: Any) -> tuple[Any, Any, Any, Any]:
-        v, g, h = per_fold(z.reshape(n_folds, n_starts, k), weights)
-        v, g, h = v.reshape(-1), g.reshape(-1, k), h.reshape(-1, k, k)
+        v, g, h = per_run(z, run_weights)
         ok = _all_finite(v, g, h)
         gmax = jnp.where(ok, jnp.max(jnp.abs(g), axis=-1), jnp.inf)
         return jnp.where(ok, v, jnp.inf), g, h, gmax
@@ -200,14 +200,12 @@ def compiled_multistart(
     weights = weights if weights is not None else [None]
     starts = np.atleast_2d(np.asarray(starts, dtype=np.float64))
     args, _ = problem.on_device()
+    # numpy arguments go to the device with the call (jnp.asarray would compile a small
+    # program for each conversion in a fresh process)
     z, v, g, h, gmax, iters = (
         np.asarray(a)
         for a in newton_runs(
-            problem.rows,
-            jnp.asarray(starts),
-            args,
-            jnp.asarray(fold_weights(problem, weights)),
-            jnp.asarray(max_iter, dtype=jnp.int32),
+            problem.rows, starts, args, fold_weights(problem, weights), np.int32(max_iter)
         )
     )
     out = []
