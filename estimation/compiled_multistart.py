@@ -12,9 +12,8 @@ iteration takes the step
 
 capped at a length ``radius`` (a descent direction even where H is indefinite; the radius
 starts at 1, doubles after an accepted step up to 5 and falls to a quarter after a rejected
-one, as a trust region's does). A step is accepted when
-negll falls, or when it rises by no more than rounding, 1e-10 (1 + |negll|), while max |g|
-falls (the polish of optimize.newton_polish: near the optimum Newton's quadratic convergence
+one, as a trust region's does). A step is accepted when negll falls, or when it rises by
+no more than rounding, 1e-10 (1 + |negll|), while max |g| falls (the polish of optimize.newton_polish: near the optimum Newton's quadratic convergence
 brings the gradient to rounding level, so the estimate does not depend on the path to it).
 mu shrinks tenfold after an accepted step (to 1e-12: then the step is Newton's) and grows
 tenfold after a rejected one; each direction is damped relative to its own curvature, so a
@@ -54,7 +53,10 @@ from stopwise.estimation.optimize import (
 from stopwise.estimation.problem import Problem, _negll
 
 COMPILED = "compiled damped Newton (exact JAX gradient and Hessian, one device call)"
-FALLBACK = "scipy trust-exact (exact JAX gradient and Hessian), fallback after the compiled Newton run did not converge"
+FALLBACK = (
+    "scipy trust-exact (exact JAX gradient and Hessian), fallback after the compiled Newton "
+    "run did not converge"
+)
 POLISH_TOL = 1e-10  # max |g| at which a run stops polishing
 STALL_TOL = 1e-6  # below this max |g|, a rejected step means rounding level is reached
 STEP_CAP = 5.0  # longest step on the unconstrained scale
