@@ -28,7 +28,7 @@ import pandas as pd
 
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.ml.mle import _response_probability, _strip, stop_step_table
+from stopwise.estimation.ml.response import _response_probability, _strip, stop_step_table
 from stopwise.models.base import Model
 
 LOGLIK_RTOL = 1e-6

@@ -161,18 +161,18 @@ def test_identical_fits_read_indistinguishable(logit_data) -> None:
 
 
 def test_cv_folds_use_the_full_multistart(logit_data, monkeypatch) -> None:
-    seen: list[int] = []
-    real = compare_module.optimise
+    seen: list[tuple[int, int]] = []
+    real = compare_module.compiled_multistart
 
-    def spy(problem, starts, *args, **kw):
-        seen.append(len(starts))
-        return real(problem, starts, *args, **kw)
+    def spy(problem, starts, max_iter, weights):
+        seen.append((len(starts), len(weights)))
+        return real(problem, starts, max_iter, weights)
 
-    monkeypatch.setattr(compare_module, "optimise", spy)
+    monkeypatch.setattr(compare_module, "compiled_multistart", spy)
     result = compare_fits(
         [build_model(LOGIT), build_model("crra+myopic+logit")], logit_data, cv_folds=3, starts=3
     )
-    assert seen == [3] * 6  # 3 folds x 2 models, each from 3 starts
+    assert seen == [(3, 3)] * 2  # per model one call: 3 starts for each of 3 folds
     cv = result.table["cv_log_score_3fold"]
     assert np.all(np.isfinite(cv)) and not result.warnings
 

@@ -9,8 +9,9 @@
   (estimation/aic_difference.py).
 * Subject-level k-fold cross-validation: subjects are split into k folds; each fold's
   held-out log-likelihood is computed at the estimate from the other folds; the log score
-  is the sum over folds (higher is better). Folds use the full fit's multistart design; a
-  fold whose fit does not converge makes the score NaN, with a warning.
+  is the sum over folds (higher is better). Folds use the full fit's multistart design (all
+  folds x starts of one model run as one compiled program, estimation/ml/compiled_multistart.py);
+  a fold whose fit does not converge makes the score NaN, with a warning.
 """
 
 from __future__ import annotations
@@ -23,7 +24,8 @@ import numpy as np
 import pandas as pd
 
 from stopwise.estimation.aic_difference import delta_aic_ses
-from stopwise.estimation.distributed import run_tasks
+from stopwise.estimation.distributed import plan_for, run_tasks
+from stopwise.estimation.ml.compiled_multistart import compiled_multistart
 from stopwise.estimation.ml.identification import fit_identified
 from stopwise.estimation.ml.mle import build_problem, optimise, start_design
 from stopwise.estimation.ml.response import _strip
@@ -117,6 +119,22 @@ def fit_fold(fold: int, payload: FoldPayload) -> tuple[float, bool, float]:
     return held_out, bool(best.converged), float(best.grad_norm)
 
 
+def all_folds_at_once(payload: FoldPayload, folds: int) -> list[tuple[float, bool, float]]:
+    """Every fold x start in one compiled call (estimation/ml/compiled_multistart.py); per fold
+    the same (held-out log-likelihood, converged, max |gradient|) as ``fit_fold``."""
+    problem, fold_of = payload.problem, payload.fold_of
+    train = [problem.cluster_weights((fold_of != f).astype(float)) for f in range(folds)]
+    fold_runs = compiled_multistart(problem, payload.starts, payload.max_iter, train)
+    return [
+        (
+            float(problem.cluster_loglik(best.z)[fold_of == f].sum()),
+            bool(best.converged),
+            float(best.grad_norm),
+        )
+        for f, (best, _) in enumerate(fold_runs)
+    ]
+
+
 def cv_log_score(
     model: Any,
     data: Any,
@@ -130,8 +148,9 @@ def cv_log_score(
     scheduler: str | None = None,
 ) -> CrossValidation:
     """Sum over folds of the held-out subjects' log-likelihood at the estimate from the
-    other folds (module docstring); every fold uses the full fit's multistart design and is
-    one task of the study runner (``workers``/``scheduler``: estimation/distributed.py)."""
+    other folds (module docstring); every fold uses the full fit's multistart design. In
+    process, all folds x starts run as one compiled call (``all_folds_at_once``); on a
+    cluster (``workers``/``scheduler``: estimation/distributed.py) each fold is one task."""
     problem, _layout, _ = build_problem(
         model, data, formulas=formulas, covariate_frame=covariate_frame
     )
@@ -139,17 +158,24 @@ def cv_log_score(
     rng = np.random.default_rng(seed)
     fold_of = rng.permutation(np.arange(g) % folds)
     starts_m = start_design(problem.z0, max(int(starts), 1), seed)
-    run = run_tasks(
-        fit_fold,
-        [{"fold": f} for f in range(folds)],
-        workers=workers,
-        scheduler=scheduler,
-        progress=False,
-        desc="cv folds",
-        shared={"payload": FoldPayload(problem, fold_of, starts_m, max_iter)},
-    )
+    payload = FoldPayload(problem, fold_of, starts_m, max_iter)
+    plan = plan_for(workers, scheduler, folds)
+    failures: list[Any] = []
+    if plan.kind == "in-process" and not getattr(problem.rows, "multimodal", False):
+        results: list[Any] = all_folds_at_once(payload, folds)  # one device call
+    else:
+        run = run_tasks(
+            fit_fold,
+            [{"fold": f} for f in range(folds)],
+            workers=workers,
+            scheduler=scheduler,
+            progress=False,
+            desc="cv folds",
+            shared={"payload": payload},
+        )
+        results, failures = list(run.results), list(run.failures)
     held_out, converged, warnings = [], [], []
-    for f, result in enumerate(run.results):
+    for f, result in enumerate(results):
         held, ok, grad = result if result is not None else (float("nan"), False, float("nan"))
         held_out.append(held)
         converged.append(ok)
@@ -159,7 +185,7 @@ def cv_log_score(
                 f"from {len(starts_m)} starts (max |gradient| {grad:.3g}); its "
                 "log score is not reported (NaN)"
             )
-    warnings += [f"{model.name}: {failure.describe()}" for failure in run.failures]
+    warnings += [f"{model.name}: {failure.describe()}" for failure in failures]
     score = float(np.sum(held_out)) if all(converged) else float("nan")
     return CrossValidation(score, held_out, converged, warnings)
 

@@ -25,7 +25,7 @@ import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import partial
-from typing import Any
+from typing import Any, ClassVar
 
 import jax
 import jax.numpy as jnp
@@ -65,6 +65,9 @@ class MixtureRows:
 
     layouts: tuple[Layout, ...]
     n_subjects: int
+    # many optima (label switching, vanishing shares): scipy trust-exact's path is kept
+    # (mle.optimise); the compiled Newton reached a vanishing share where it found more
+    multimodal: ClassVar[bool] = True
 
     @property
     def offsets(self) -> tuple[int, ...]:

@@ -3,9 +3,10 @@
     z_hat = argmax_z  sum_i ll_i(theta(z)),   theta_p = to_natural_p(z_p)   (or, with a
     formula, theta_p[i] = to_natural_p(x_p[i]' b_p))
 
-maximised on the unconstrained scale with exact JAX gradients and Hessians (scipy
-trust-exact, several starts); estimates are reported on the natural scale with delta-method
-standard errors (Hessian, subject-clustered sandwich, or subject-level bootstrap).
+maximised on the unconstrained scale with exact JAX gradients and Hessians (several starts
+in one compiled damped-Newton program, estimation/ml/compiled_multistart.py, with scipy's
+trust-exact as the fallback for a start it does not bring to convergence); estimates are
+reported on the natural scale with delta-method standard errors (Hessian, subject-clustered sandwich, or subject-level bootstrap).
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
 from stopwise.estimation.formulas import build_designs, cells_from_designs
 from stopwise.estimation.ml.bootstrap import bootstrap_table
+from stopwise.estimation.ml.compiled_multistart import compiled_multistart
 from stopwise.estimation.ml.covariance import covariance_for, wald_rows
 from stopwise.estimation.ml.optimize import (
     OptimumRecord,
@@ -157,14 +159,18 @@ def starts_from(problem: Problem, layout: Layout, starts: Any, seed: int) -> np.
 def optimise(
     problem: Problem, starts: np.ndarray, max_iter: int = 200, weights: np.ndarray | None = None
 ) -> tuple[OptimumRecord, list[OptimumRecord]]:
-    """Best of several trust-exact runs on negll (optionally with other row weights)."""
-    return multistart(
-        lambda z: problem.value(z, weights),
-        lambda z: problem.grad(z, weights),
-        lambda z: problem.hess(z, weights),
-        starts,
-        max_iter,
-    )
+    """Best of several runs on negll (optionally with other row weights): every start in
+    one compiled call, scipy trust-exact for a start that does not converge there. Row
+    functions marked ``multimodal`` (finite mixtures) keep scipy's trust-exact path."""
+    if getattr(problem.rows, "multimodal", False):
+        return multistart(
+            lambda z: problem.value(z, weights),
+            lambda z: problem.grad(z, weights),
+            lambda z: problem.hess(z, weights),
+            starts,
+            max_iter,
+        )
+    return compiled_multistart(problem, starts, max_iter, [weights])[0]
 
 
 def bound_flags(problem: Problem, z: np.ndarray) -> list[str]:
@@ -257,7 +263,8 @@ def run_fit(
             "error and interval are not meaningful"
         )
     optimizer = {
-        "algorithm": "scipy trust-exact (exact JAX gradient and Hessian)",
+        "algorithm": best.algorithm,
+        "start_algorithms": [r.algorithm for r in runs],
         "grad_norm": best.grad_norm,
         "iterations": best.iterations,
         "message": optimizer_message(best),

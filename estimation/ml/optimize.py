@@ -40,6 +40,7 @@ class OptimumRecord:
     converged: bool
     message: str
     start: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    algorithm: str = "scipy trust-exact (exact JAX gradient and Hessian)"
 
 
 def start_design(z0: np.ndarray, n_starts: int, seed: int, spread: float = 1.5) -> np.ndarray:
@@ -142,10 +143,14 @@ def multistart(
 ) -> tuple[OptimumRecord, list[OptimumRecord]]:
     """Run from every start; the best converged run (else the best finite one) is kept."""
     runs = [minimize_one(fun, grad, hess, s, max_iter) for s in starts]
+    return best_run(runs), runs
+
+
+def best_run(runs: list[OptimumRecord]) -> OptimumRecord:
+    """The lowest negll among converged runs, else among finite ones, else among all."""
     finite = [r for r in runs if np.isfinite(r.value)]
     pool = [r for r in finite if r.converged] or finite or runs
-    best = min(pool, key=lambda r: r.value)
-    return best, runs
+    return min(pool, key=lambda r: r.value)
 
 
 # ---------------------------------------------------------------------------------------

@@ -349,7 +349,7 @@ class Problem:
         """(negll, gradient, Hessian) at z (value_grad_hess), cached for the last (z, w): the
         optimiser asks for the value, the gradient and the Hessian at the same point."""
         z = np.asarray(z, dtype=np.float64)
-        key = (z.tobytes(), None if w is None else np.asarray(w, dtype=np.float64).tobytes())
+        key = self._second_order_key(z, w)
         cache = self.__dict__.setdefault("_cache", {})
         if cache.get("key") != key:
             args, base_weights = self.on_device()
@@ -357,6 +357,20 @@ class Problem:
             out = value_grad_hess(self.rows, jnp.asarray(z), args, weights)
             cache["key"], cache["value"] = key, tuple(np.asarray(a) for a in out)
         return cache["value"]
+
+    @staticmethod
+    def _second_order_key(z: np.ndarray, w: np.ndarray | None) -> tuple[bytes, bytes | None]:
+        return z.tobytes(), None if w is None else np.asarray(w, dtype=np.float64).tobytes()
+
+    def remember_second_order(
+        self, z: np.ndarray, w: np.ndarray | None, value: Any, grad: Any, hess: Any
+    ) -> None:
+        """Keep (negll, gradient, Hessian) at (z, w) computed elsewhere by the same
+        derivatives (the compiled multistart's last step), as if second_order had run."""
+        z = np.asarray(z, dtype=np.float64)
+        cache = self.__dict__.setdefault("_cache", {})
+        cache["key"] = self._second_order_key(z, w)
+        cache["value"] = (np.asarray(value), np.asarray(grad), np.asarray(hess))
 
     def on_device(self) -> tuple[Any, Any]:
         """(args, weights) as device arrays, transferred once per Problem rather than at
