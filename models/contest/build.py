@@ -47,6 +47,7 @@ from stopwise.models.contest.agent import agent_qre_log_probs
 from stopwise.models.contest.certify import UncertifiedAnswer
 from stopwise.models.contest.game import (
     ContestGame,
+    as_jax_game,
     default_max_target,
     make_game,
     resolve_utility,
@@ -100,10 +101,18 @@ def utility_params(name: str) -> tuple[ParamSpec, ...]:
 
 
 def _nash_host(
-    log_q: Any, scores: Any, below: Any, equal: Any, du: Any, u0: Any, n_players: Any
+    log_q: Any,
+    scores: Any,
+    below: Any,
+    equal: Any,
+    du: Any,
+    u0: Any,
+    n_players: Any,
+    top_k: Any = None,
 ) -> np.ndarray:
     """Symmetric Nash sigma on the host (pure callback)."""
-    game = ContestGame(*(jnp.asarray(v) for v in (log_q, scores, below, equal, du, u0, n_players)))
+    fields = (log_q, scores, below, equal, du, u0, n_players, top_k)
+    game = as_jax_game(ContestGame(*fields))
     return np.asarray(contest_nash(game)[0], dtype=np.float64)
 
 
@@ -304,7 +313,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         ones = jnp.ones_like(data.draw)
         return jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
 
-    @partial(jax.jit, static_argnums=(5,))
+    @partial(jax.jit, static_argnums=(5, 9))
     def _distribution(
         theta: Mapping[str, Any],
         p_survive: Any,
@@ -315,9 +324,20 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         gain: Any,
         start: Any,
         bust_keep: Any,
+        top_k: int = 1,
     ) -> Any:
         game = make_game(
-            p_survive, n_players, prize, keep_bank, cap, gain, start, bust_keep, utility, theta
+            p_survive,
+            n_players,
+            prize,
+            keep_bank,
+            cap,
+            gain,
+            start,
+            bust_keep,
+            utility,
+            theta,
+            top_k,
         )
         return jnp.exp(concept_log_probs(concept, theta, game, options))
 
@@ -331,8 +351,10 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         gain: float = 1.0,
         start: float = 0.0,
         bust_keep: float = 0.0,
+        top_k: int = 1,
     ) -> np.ndarray:
-        """Predicted target distribution over 0..cap in one contest condition."""
+        """Predicted target distribution over 0..cap in one contest condition (``top_k``:
+        the prize shared among the k top banks, stopwise.models.contest.topk)."""
         theta = {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()}
         return np.asarray(
             _distribution(
@@ -345,6 +367,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
                 float(gain),
                 float(start),
                 float(bust_keep),
+                int(top_k),
             )
         )
 
