@@ -18,7 +18,8 @@ from stopwise.incentives_uncertainty import from_saved_record
 from stopwise.models.spec import build_model
 
 THETA = {"r": 0.3, "precision": 2.0}
-SE = np.array([0.1, 0.036])  # d goal/d r and d goal/d precision weigh alike
+SE = np.array([0.01, 0.0036])  # d goal/d r and d goal/d precision weigh alike; small
+# enough that the prediction is linear over the spread (the delta method's premise)
 DESIGN = dict(players=(3,), schemes=("winner",), grid_points=2, refine_steps=0)
 
 
@@ -41,9 +42,9 @@ def test_correlation_changes_the_delta_method_se_and_monte_carlo_agrees():
     assert delta["se"] < 0.5 * delta["se_uncorrelated"]  # the correlation matters here
     # brute force: theta ~ N(theta_hat, C) by numpy, the prediction's sd (Monte Carlo)
     rng = np.random.default_rng(5)
-    draws = rng.multivariate_normal([0.3, 2.0], covariance(0.9), size=150)
+    draws = rng.multivariate_normal([0.3, 2.0], covariance(0.9), size=100)
     values = [total_bank({"r": r, "precision": lam}) for r, lam in draws]
-    assert np.std(values, ddof=1) == pytest.approx(delta["se"], rel=0.25)
+    assert np.std(values, ddof=1) == pytest.approx(delta["se"], rel=0.3)  # sd of a 100-draw sd: 7%
     independent = design_incentives(
         {**FIT_BASE, "se": dict(zip(THETA, SE))}, "efficiency", (5.0, 5.0), **DESIGN
     )
