@@ -31,6 +31,7 @@ from stopwise.models.contest.certify import (
 from stopwise.models.contest.dominance import contest_elimination
 from stopwise.models.contest.game import (
     ContestGame,
+    as_jax_game,
     make_numpy_game,
     resolve_utility,
     target_distribution_stats,
@@ -104,8 +105,9 @@ def counterfactual(
     """Predicted play under alternative schemes, by Nash and by the behavioural model.
 
     Each scheme is a mapping with p_survive, players, prize and optionally keep_bank, gain,
-    start, bust_keep, max_target, a name and ``sequential`` (True: players move in turn;
-    rows subgame-perfect and the model's sequential play, stopwise/
+    start, bust_keep, max_target, top_k (the prize shared among the k top banks, 1 <= k <
+    players; stopwise.models.contest.topk), a name and ``sequential`` (True: players move
+    in turn; rows subgame-perfect and the model's sequential play, stopwise/
     contest_counterfactual_sequential.py). The cap on targets is the scheme's max_target,
     else the fit's (the cap it was estimated with), else the default rule. Every row is
     certified (Nash: max regret; QRE: fixed-point residual; level-k, CH: exact by
@@ -119,18 +121,7 @@ def counterfactual(
         if scheme.get("sequential"):  # movers in turn (stopwise/contest_counterfactual_sequential)
             rows += _certified(sequential_rows(model, theta, setting, tolerance), allow_approximate)
             continue
-        game = make_numpy_game(
-            setting["p_survive"],
-            setting["players"],
-            setting["prize"],
-            setting["keep_bank"],
-            setting["cap"],
-            setting["gain"],
-            setting["start"],
-            setting["bust_keep"],
-            resolve_utility(model.options.get("utility", "linear")),
-            {k: jnp.asarray(v) for k, v in theta.items()},
-        )
+        game = _setting_game(model, theta, setting)
         for label, sigma, certificate, regret in _predictions(
             model, theta, game, setting, tolerance
         ):
@@ -158,6 +149,38 @@ def _certified(rows: list[dict[str, Any]], allow_approximate: bool) -> list[dict
     return rows
 
 
+def model_row(
+    fit_or_params: Any, scheme: Mapping[str, Any], tolerance: float = DEFAULT_TOLERANCE
+) -> dict[str, Any]:
+    """The model-prediction row of ``counterfactual(fit_or_params, [scheme])`` (the same
+    numbers and certificate, never raising on a failed certificate: the row says
+    ``certified``), without solving for Nash play (for searches and resampling)."""
+    model, theta, fit_cap = _model_and_theta(fit_or_params)
+    setting = _scheme_setting(dict(scheme), 0, fit_cap)
+    game = _setting_game(model, theta, setting)
+    sigma, certificate, regret = model_prediction(model, theta, game, setting, tolerance)
+    return _row(setting, model.name, game, sigma, certificate, regret)
+
+
+def _setting_game(
+    model: Model, theta: Mapping[str, float], setting: Mapping[str, Any]
+) -> ContestGame:
+    """The numpy normal form of one checked scheme setting under the model's utility."""
+    return make_numpy_game(
+        setting["p_survive"],
+        setting["players"],
+        setting["prize"],
+        setting["keep_bank"],
+        setting["cap"],
+        setting["gain"],
+        setting["start"],
+        setting["bust_keep"],
+        resolve_utility(model.options.get("utility", "linear")),
+        {k: jnp.asarray(v) for k, v in theta.items()},
+        setting["top_k"],
+    )
+
+
 def _scheme_setting(s: dict[str, Any], index: int, fit_cap: int | None) -> dict[str, Any]:
     """A scheme's numbers, checked, with its cap and the cap's source."""
     name = str(s.get("name", f"scheme {index + 1}"))
@@ -173,6 +196,12 @@ def _scheme_setting(s: dict[str, Any], index: int, fit_cap: int | None) -> dict[
     source = "scheme" if s.get("max_target") is not None else "fit" if fit_cap else "default"
     wanted = s.get("max_target") if source == "scheme" else fit_cap
     cap = _check_setup(p, players, prize, gain, wanted, keep, start)
+    top_k = s.get("top_k", 1)
+    if int(top_k) != top_k or not 1 <= top_k < players:
+        raise StopwiseInputError(
+            f"scheme {name!r}: top_k (places sharing the prize) must be a whole number from 1 "
+            f"to players - 1 = {players - 1}, got {top_k}"
+        )
     return {
         "name": name,
         "p_survive": p,
@@ -184,6 +213,7 @@ def _scheme_setting(s: dict[str, Any], index: int, fit_cap: int | None) -> dict[
         "bust_keep": keep,
         "cap": cap,
         "cap_source": source,
+        "top_k": int(top_k),
     }
 
 
@@ -199,6 +229,26 @@ def _predictions(
     nash_sigma = _normalised(nash_sigma)
     dominated = [t for t, _, _ in contest_elimination(game).removed]
     nash_cert, nash_regret = certify("nash", game, nash_sigma, details, dominated, tolerance)
+    model_sigma, model_cert, model_regret = model_prediction(
+        model, theta, game, setting, tolerance, nash_cert
+    )
+    return [
+        ("nash", nash_sigma, nash_cert, nash_regret),
+        (model.name, model_sigma, model_cert, model_regret),
+    ]
+
+
+def model_prediction(
+    model: Model,
+    theta: Mapping[str, float],
+    game: ContestGame,
+    setting: Mapping[str, Any],
+    tolerance: float,
+    nash_cert: Certificate | None = None,
+) -> tuple[np.ndarray, Certificate, float]:
+    """(sigma, certificate, max regret) of the model's play alone: QRE by its fixed-point
+    residual, level-k/CH exact by construction, Nash-with-trembles by the Nash certificate
+    (``nash_cert``; solved here when not given)."""
     model_sigma = _normalised(
         model.options["target_distribution"](
             theta,
@@ -210,10 +260,11 @@ def _predictions(
             setting["gain"],
             setting["start"],
             setting["bust_keep"],
+            setting["top_k"],
         )
     )
     concept = model.options["concept"]
-    jax_game = ContestGame(*(jnp.asarray(x) for x in game))
+    jax_game = as_jax_game(game)
     if concept == "qre":
         log_sigma = jnp.log(jnp.asarray(model_sigma))
         residual = float(fixed_point_residual(log_sigma, theta["precision"], jax_game))
@@ -222,14 +273,17 @@ def _predictions(
         _, residual = agent_qre_with_residual(jnp.float64(theta["precision"]), jax_game)
         model_cert = fixed_point_certificate(float(residual), tolerance)
     elif concept == "nash":  # Nash mixed with trembles: the Nash part carries the check
+        if nash_cert is None:
+            nash_sigma, details = concept_strategy(game, "nash")
+            dominated = [t for t, _, _ in contest_elimination(game).removed]
+            nash_cert, _ = certify(
+                "nash", game, _normalised(nash_sigma), details, dominated, tolerance
+            )
         model_cert = nash_cert
     else:
         model_cert = exact_certificate(model_sigma, tolerance)
     payoffs = np.asarray(target_payoffs(game, model_sigma))
-    return [
-        ("nash", nash_sigma, nash_cert, nash_regret),
-        (model.name, model_sigma, model_cert, symmetric_regret(payoffs, model_sigma)),
-    ]
+    return model_sigma, model_cert, symmetric_regret(payoffs, model_sigma)
 
 
 def _normalised(sigma: Any) -> np.ndarray:
@@ -252,6 +306,7 @@ def _row(
         "players": setting["players"],
         "prize": setting["prize"],
         "keep_bank": bool(setting["keep_bank"]),
+        "top_k": setting["top_k"],
         "p_survive": setting["p_survive"],
         "cap": setting["cap"],
         "cap_source": setting["cap_source"],

@@ -32,6 +32,7 @@ from stopwise.models.contest.dominance import Elimination, contest_elimination
 from stopwise.models.contest.game import (
     CAP_LIMIT,
     ContestGame,
+    as_jax_game,
     default_max_target,
     expected_bank,
     make_numpy_game,
@@ -162,7 +163,7 @@ def concept_strategy(
         sigma, _, method, notes = contest_nash(game)
         return np.asarray(sigma, float), {"method": method, "notes": notes}
     lam = _check_precision(_need("precision", precision, concept), game)
-    jax_game = ContestGame(*(jnp.asarray(x) for x in game))
+    jax_game = as_jax_game(game)
     if concept == "qre":
         qre = qre_symmetric_certified(lam, jax_game, tolerance=tolerance)
         method = f"symmetric logit QRE on the principal branch ({qre.message}), Newton in log space"

@@ -20,11 +20,9 @@ import stopwise  # (also enables float64 JAX)
 from stopwise import cli
 from stopwise.contest import counterfactual, design_incentives, equilibrium
 from stopwise.incentives import (
-    GOLDEN,
     DesignProblem,
     best_per_setting,
     counterfactual_evaluator,
-    golden_section,
     search,
 )
 from stopwise.incentives_gradient import goal_of_prize, prize_derivative
@@ -98,14 +96,6 @@ def test_refinement_is_never_worse_than_the_grid_and_stays_admissible():
     fine = design_incentives(FIT, "bust", (1.0, 10.0), refine_steps=8, **kwargs)
     assert fine.choice["model"]["goal_value"] <= grid.choice["model"]["goal_value"]
     assert fine.choice["model"]["bust_rate"] <= 0.56 and fine.choice["model"]["certified"]
-
-
-def test_golden_section_finds_the_maximum_of_a_parabola():
-    # closed form: argmax of -(x - 2.3)^2 is 2.3; after S steps the bracket is
-    # (b - a) g^(S+1) wide (golden-section search, common practice, no source)
-    visited = golden_section(lambda x: -((x - 2.3) ** 2), 0.0, 5.0, 20)
-    best = max(visited, key=lambda x: -((x - 2.3) ** 2))
-    assert abs(best - 2.3) <= 5.0 * GOLDEN**20
 
 
 def test_an_uncertified_candidate_is_never_chosen():

@@ -223,7 +223,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         draw = jnp.exp(jax.vmap(hazard_loglik)(log_sigma[data.cond], data.step, ones))
         return sequential.draw_probability(theta, data, cap, draw)
 
-    @partial(jax.jit, static_argnums=(5,))
+    @partial(jax.jit, static_argnums=(5, 9))
     def _distribution(
         theta: Mapping[str, Any],
         p_survive: Any,
@@ -234,9 +234,20 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         gain: Any,
         start: Any,
         bust_keep: Any,
+        top_k: int = 1,
     ) -> Any:
         game = make_game(
-            p_survive, n_players, prize, keep_bank, cap, gain, start, bust_keep, utility, theta
+            p_survive,
+            n_players,
+            prize,
+            keep_bank,
+            cap,
+            gain,
+            start,
+            bust_keep,
+            utility,
+            theta,
+            top_k,
         )
         return jnp.exp(concept_log_probs(concept, theta, game, options))
 
@@ -250,8 +261,10 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         gain: float = 1.0,
         start: float = 0.0,
         bust_keep: float = 0.0,
+        top_k: int = 1,
     ) -> np.ndarray:
-        """Predicted target distribution over 0..cap in one contest condition."""
+        """Predicted target distribution over 0..cap in one contest condition (``top_k``:
+        the prize shared among the k top banks, stopwise.models.contest.topk)."""
         theta = {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()}
         return np.asarray(
             _distribution(
@@ -264,6 +277,7 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
                 float(gain),
                 float(start),
                 float(bust_keep),
+                int(top_k),
             )
         )
 

@@ -46,6 +46,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.models.contest.topk import share_prob_profile, share_prob_symmetric
 from stopwise.models.utility import UTILITIES
 
 CAP_TOLERANCE = 1e-12
@@ -126,6 +127,10 @@ class ContestGame(NamedTuple):
     log_q[t, i]: log P(slot i | target t); scores[i]: final bank of slot i;
     below[j, i] = 1 if slot j's bank is strictly below slot i's, equal[j, i] = 1 if level;
     du[i] = u(kb*s_i + prize) - u(kb*s_i), u0[i] = u(kb*s_i); n_players (float).
+    top_k: None when the top bank takes the prize (W by the closed form above), else an
+    array of shape (k,) whose length k (static under tracing) is the number of top places
+    that share the prize, each taking prize / k (du uses prize / k; W by
+    stopwise.models.contest.topk).
     """
 
     log_q: Any
@@ -135,6 +140,12 @@ class ContestGame(NamedTuple):
     du: Any
     u0: Any
     n_players: Any
+    top_k: Any = None
+
+    @property
+    def shared_places(self) -> int:
+        """k: how many top places share the prize (1: winner takes it)."""
+        return 1 if self.top_k is None else int(self.top_k.shape[-1])
 
     @property
     def n_targets(self) -> int:
@@ -193,8 +204,10 @@ def make_game(
     bust_keep: Any = 0.0,
     utility: Utility = _linear,
     theta: Mapping[str, Any] | None = None,
+    top_k: int = 1,
 ) -> ContestGame:
-    """Build the contest's normal form over targets 0..cap (module docstring), with JAX."""
+    """Build the contest's normal form over targets 0..cap (module docstring), with JAX;
+    ``top_k`` > 1 shares the prize among the k top banks (ContestGame.top_k)."""
     theta = {} if theta is None else theta
     p_survive = jnp.asarray(p_survive, dtype=jnp.float64)
     log_q = slot_log_probs(p_survive, cap)
@@ -207,7 +220,7 @@ def make_game(
     below, equal = rank_relations(scores)
     own_money = jnp.asarray(keep_bank, jnp.float64) * scores
     u_lose = money_utility(utility, own_money, theta)
-    u_win = money_utility(utility, own_money + prize, theta)
+    u_win = money_utility(utility, own_money + prize / top_k, theta)
     return ContestGame(
         log_q=log_q,
         scores=scores,
@@ -216,7 +229,15 @@ def make_game(
         du=u_win - u_lose,
         u0=u_lose,
         n_players=jnp.asarray(n_players, jnp.float64),
+        top_k=_places(top_k),
     )
+
+
+def _places(top_k: int) -> Any:
+    """ContestGame.top_k of k shared places: None for k = 1, else ones of shape (k,)."""
+    if int(top_k) != top_k or top_k < 1:
+        raise StopwiseInputError(f"top_k must be a whole number >= 1, got {top_k}")
+    return None if top_k == 1 else np.ones(int(top_k))
 
 
 def make_numpy_game(
@@ -230,6 +251,7 @@ def make_numpy_game(
     bust_keep: float = 0.0,
     utility: Utility = _linear,
     theta: Mapping[str, Any] | None = None,
+    top_k: int = 1,
 ) -> ContestGame:
     """The same normal form as ``make_game`` in numpy arrays (nothing compiled for linear
     utility; other utilities are evaluated once by their JAX function)."""
@@ -239,8 +261,17 @@ def make_numpy_game(
     own_money = float(keep_bank) * scores
     theta = {} if theta is None else theta
     u_lose = np.asarray(money_utility(utility, own_money, theta), dtype=np.float64)
-    u_win = np.asarray(money_utility(utility, own_money + prize, theta), dtype=np.float64)
-    return ContestGame(log_q, scores, below, equal, u_win - u_lose, u_lose, np.float64(n_players))
+    u_win = np.asarray(money_utility(utility, own_money + prize / top_k, theta), dtype=np.float64)
+    return ContestGame(
+        log_q,
+        scores,
+        below,
+        equal,
+        u_win - u_lose,
+        u_lose,
+        np.float64(n_players),
+        _places(top_k),
+    )
 
 
 def slot_distribution(game: ContestGame, sigma: Any) -> Any:
@@ -253,6 +284,8 @@ def win_prob_symmetric(game: ContestGame, opponent_slots: Any) -> Any:
     xp = array_module(opponent_slots, game.below)
     b = opponent_slots @ game.below
     e = opponent_slots @ game.equal
+    if game.top_k is not None:  # the prize shared among the top k
+        return share_prob_symmetric(xp, b, e, game.n_players, game.shared_places)
     a = b + e
     n = game.n_players
     interior = b > 0
@@ -283,6 +316,8 @@ def win_prob_profile(game: ContestGame, opponents_slots: Any) -> Any:
     coefficients of prod_j (b_j + e_j x), then W = sum_k c_k / (k+1)."""
     b_all = opponents_slots @ game.below
     e_all = opponents_slots @ game.equal
+    if game.top_k is not None:  # the prize shared among the top k
+        return share_prob_profile(jnp, b_all, e_all, game.shared_places)
     n_opp = opponents_slots.shape[0]
     coeffs = jnp.zeros((n_opp + 1, b_all.shape[-1])).at[0].set(1.0)
     for j in range(n_opp):
@@ -314,7 +349,10 @@ def payoff_matrix(game: ContestGame) -> Any:
     """Two-player payoff matrix A[t, s] of the row player aiming t against target s
     (ties split evenly: W = P(below) + P(level)/2); the column player's matrix is A.T:
     A[t, s] = sum_i q[t, i] (w[s, i] du_i + u0_i), w[s, i] = sum_j q[s, j] (below + equal/2)[j, i].
+    A shared prize (top_k) needs more than two players: refused.
     """
+    if game.top_k is not None:
+        raise StopwiseInputError("a prize shared among the top k needs more than k players")
     q = game.q
     w = q @ (game.below + 0.5 * game.equal)  # w[s, i]: win prob of slot i against target s
     return (q * game.du) @ w.T + (q @ game.u0)[:, None]
@@ -344,7 +382,12 @@ def max_regret(payoffs: Any, sigma: Any) -> Any:
 
 def as_numpy_game(game: ContestGame) -> ContestGame:
     """The same game with numpy arrays (for host-side solvers)."""
-    return ContestGame(*(np.asarray(x) for x in game))
+    return ContestGame(*(None if x is None else np.asarray(x) for x in game))
+
+
+def as_jax_game(game: ContestGame) -> ContestGame:
+    """The same game with JAX arrays."""
+    return ContestGame(*(None if x is None else jnp.asarray(x) for x in game))
 
 
 jax_target_payoffs = jax.jit(target_payoffs)

@@ -23,6 +23,7 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.agent import agent_qre_log_probs
 from stopwise.models.contest.game import (
     ContestGame,
+    as_jax_game,
     default_max_target,
     target_payoffs,
 )
@@ -43,10 +44,18 @@ MAX_LEVEL = 6
 
 
 def _nash_host(
-    log_q: Any, scores: Any, below: Any, equal: Any, du: Any, u0: Any, n_players: Any
+    log_q: Any,
+    scores: Any,
+    below: Any,
+    equal: Any,
+    du: Any,
+    u0: Any,
+    n_players: Any,
+    top_k: Any = None,
 ) -> np.ndarray:
     """Symmetric Nash sigma on the host (pure callback)."""
-    game = ContestGame(*(jnp.asarray(v) for v in (log_q, scores, below, equal, du, u0, n_players)))
+    fields = (log_q, scores, below, equal, du, u0, n_players, top_k)
+    game = as_jax_game(ContestGame(*fields))
     return np.asarray(contest_nash(game)[0], dtype=np.float64)
 
 

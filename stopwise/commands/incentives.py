@@ -59,8 +59,9 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
         type=_number_list(str, "names like winner,keep"),
         default=("winner", "keep"),
         metavar="S,...",
-        help="winner (top bank takes the prize) and/or keep (everyone also "
-        "keeps their bank) (default both)",
+        help="winner (top bank takes the prize), keep (everyone also keeps their bank) "
+        "and/or topK (the K top banks share the prize, e.g. top2; ties across the K-th "
+        "place in a fair random order) (default winner,keep)",
     )
     parser.add_argument(
         "--p-survive",
@@ -96,9 +97,10 @@ def register(subparsers: Any) -> argparse.ArgumentParser:
     parser.add_argument(
         "--refine",
         type=int,
-        default=12,
+        default=30,
         metavar="S",
-        help="golden-section steps around the best grid prize (default 12)",
+        help="iterations of each derivative-steered root search beside the best grid "
+        "prize (0: grid only; default 30)",
     )
     parser.add_argument(
         "--bootstrap",
