@@ -4,7 +4,8 @@
 * Every pair is first classified as nested (restriction named), overlapping or non-nested
   (estimation/nesting.py); nested pairs get a likelihood-ratio test with the chi2 or
   chi-bar-square reference, the others Vuong's and Clarke's tests, and pairs whose
-  per-subject log-likelihoods coincide read "indistinguishable" (estimation/pair_tests.py).
+  per-subject log-likelihoods agree to rounding level read "indistinguishable"
+  (estimation/pair_tests.py).
 * Subject-level k-fold cross-validation: subjects are split into k folds; each fold's
   held-out log-likelihood is computed at the estimate from the other folds; the log score
   is the sum over folds (higher is better). Folds use the full fit's multistart design; a
