@@ -358,8 +358,8 @@ def _non_nested_rows(
         notes.append(
             f"{a.model} vs {b.model}: the fits differ by {float(d.sum()):.3g} in total, less "
             f"than the Schwarz term {penalty:.3g} in Vuong's statistic, so its sign is set by "
-            "the parameter count; a large |Z| here says the extra parameters do not pay for "
-            "themselves, not that the predictions differ"
+            "the parameter count: |Z| then measures how surely the extra parameters fail to "
+            "pay for themselves, not how much the predictions differ"
         )
     return out, notes
 
