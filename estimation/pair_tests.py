@@ -10,9 +10,22 @@
   Vuong's (1989) Schwarz-corrected statistic  Z = (sum_g d_g - (k_A - k_B) ln(G) / 2) /
   (sqrt(G) sd(d)),  sd with divisor G, Z ~ N(0, 1) under equal fit; Z > 0 favours A.
   Clarke's (2007) sign test: B = #{g: d_g - (k_A - k_B) ln(G) / (2G) > 0} ~ Binomial(G, 1/2).
-* Both need variation in d: when every |d_g| is below a tolerance the two models make the
-  same predictions on these data and the pair reads "indistinguishable" (for overlapping
-  models this is Vuong's first step, the test that the two coincide).
+* Both need differences above the numerical accuracy of the per-subject log-likelihoods.
+  Each subject g gets a scale s_g = max(n_g, 1 + max(|ln L_A,g|, |ln L_B,g|)), n_g its
+  decision rows (a row's log-likelihood is of order one; without row counts the second term
+  alone). Subject g is a *tie* when |d_g| <= ROW_TOLERANCE * s_g, ROW_TOLERANCE = 1e-6 per
+  row: the accuracy to which a row's likelihood is known (a QRE fixed point is certified to
+  a residual of 1e-6; summation rounding is far below it). The pair reads
+  "indistinguishable" when BOTH
+    (a) the totals agree: |sum_g d_g| <= ROW_TOLERANCE * sum_g s_g, and
+    (b) the differences are at rounding level: every subject ties, or
+        sd(d) <= ROW_TOLERANCE * mean(s_g).
+  Without (b) the Schwarz term (k_A - k_B) ln(G) / 2, or a rounding-level mean, divided by a
+  rounding-level sd gives an arbitrarily large Z (1e4 and more) that measures nothing; for
+  overlapping models (b) stands in for Vuong's first step, the test that the two coincide.
+  Vuong's Z is not computed when sd(d) is at rounding level. Clarke's test drops ties, as a
+  sign test does (common practice, no source): B counts the untied subjects favouring A
+  and the reference is Binomial(untied, 1/2).
 
 References are cited from memory.
 """
@@ -25,7 +38,7 @@ import numpy as np
 from scipy import stats
 
 LEVEL = 0.05
-SAME_TOLERANCE = 1e-6  # |d_g| <= tol * (1 + |ln L_g|) for every g: indistinguishable
+ROW_TOLERANCE = 1e-6  # per decision row: |d_g| <= ROW_TOLERANCE * s_g is a tie
 
 
 def chi_bar_square_sf(statistic: float, df: int, n_boundary: int) -> float:
@@ -60,33 +73,76 @@ def likelihood_ratio(
     }
 
 
-def indistinguishable(ll_a: np.ndarray, ll_b: np.ndarray) -> bool:
-    """Every subject's log-likelihood difference vanishes (module docstring)."""
+def subject_scales(
+    ll_a: np.ndarray, ll_b: np.ndarray, rows: np.ndarray | None = None
+) -> np.ndarray:
+    """s_g = max(n_g, 1 + max(|ln L_A,g|, |ln L_B,g|)); without ``rows`` the second term."""
     a, b = np.asarray(ll_a, dtype=float), np.asarray(ll_b, dtype=float)
-    scale = 1.0 + np.maximum(np.abs(a), np.abs(b))
-    return bool(np.all(np.abs(a - b) <= SAME_TOLERANCE * scale))
+    magnitude = 1.0 + np.maximum(np.abs(a), np.abs(b))
+    if rows is None:
+        return magnitude
+    return np.maximum(np.asarray(rows, dtype=float), magnitude)
 
 
-def vuong_test(ll_a: np.ndarray, ll_b: np.ndarray, k_a: int, k_b: int) -> tuple[float, float]:
-    """Vuong's Schwarz-corrected Z over G units and its two-sided p-value; (nan, nan) with
-    fewer than 2 units or no variation in the differences."""
+def ties(ll_a: np.ndarray, ll_b: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+    """Subjects whose difference is at rounding level: |d_g| <= ROW_TOLERANCE * s_g."""
+    d = np.asarray(ll_a, dtype=float) - np.asarray(ll_b, dtype=float)
+    return np.abs(d) <= ROW_TOLERANCE * subject_scales(ll_a, ll_b, rows)
+
+
+def spread_at_rounding_level(
+    ll_a: np.ndarray, ll_b: np.ndarray, rows: np.ndarray | None = None
+) -> bool:
+    """sd(d) (divisor G) <= ROW_TOLERANCE * mean(s_g): no variation to scale a statistic by."""
+    d = np.asarray(ll_a, dtype=float) - np.asarray(ll_b, dtype=float)
+    if len(d) == 0:
+        return True
+    limit = ROW_TOLERANCE * float(np.mean(subject_scales(ll_a, ll_b, rows)))
+    return bool(float(d.std(ddof=0)) <= limit)
+
+
+def totals_agree(ll_a: np.ndarray, ll_b: np.ndarray, rows: np.ndarray | None = None) -> bool:
+    """|sum_g d_g| <= ROW_TOLERANCE * sum_g s_g."""
+    d = np.asarray(ll_a, dtype=float) - np.asarray(ll_b, dtype=float)
+    limit = ROW_TOLERANCE * float(np.sum(subject_scales(ll_a, ll_b, rows)))
+    return bool(abs(float(d.sum())) <= limit)
+
+
+def indistinguishable(ll_a: np.ndarray, ll_b: np.ndarray, rows: np.ndarray | None = None) -> bool:
+    """The totals agree and the per-subject differences are at rounding level (module
+    docstring, rules (a) and (b))."""
+    at_rounding = bool(np.all(ties(ll_a, ll_b, rows))) or spread_at_rounding_level(ll_a, ll_b, rows)
+    return totals_agree(ll_a, ll_b, rows) and at_rounding
+
+
+def vuong_test(
+    ll_a: np.ndarray, ll_b: np.ndarray, k_a: int, k_b: int, rows: np.ndarray | None = None
+) -> tuple[float, float]:
+    """Vuong's Schwarz-corrected Z = (sum_g d_g - (k_A - k_B) ln(G) / 2) / (sqrt(G) sd(d))
+    over G units and its two-sided p-value; (nan, nan) with fewer than 2 units or when
+    sd(d) is at rounding level (module docstring)."""
     d = np.asarray(ll_a, dtype=float) - np.asarray(ll_b, dtype=float)
     g = len(d)
     sd = float(d.std(ddof=0)) if g else 0.0
-    if g < 2 or sd <= 0.0 or indistinguishable(ll_a, ll_b):
+    if g < 2 or sd <= 0.0 or spread_at_rounding_level(ll_a, ll_b, rows):
         return float("nan"), float("nan")
     corrected = d.sum() - (k_a - k_b) * np.log(g) / 2.0
     z = corrected / (np.sqrt(g) * sd)
     return float(z), float(2.0 * stats.norm.sf(abs(z)))
 
 
-def clarke_test(ll_a: np.ndarray, ll_b: np.ndarray, k_a: int, k_b: int) -> tuple[float, float]:
-    """Clarke's B (units favouring A after the per-unit Schwarz correction) and its
-    two-sided binomial p-value; (nan, nan) when the differences vanish."""
+def clarke_test(
+    ll_a: np.ndarray, ll_b: np.ndarray, k_a: int, k_b: int, rows: np.ndarray | None = None
+) -> tuple[float, float]:
+    """Clarke's B = #{untied g: d_g - (k_A - k_B) ln(G) / (2G) > 0} and its two-sided
+    Binomial(untied, 1/2) p-value; ties at rounding level are dropped (module docstring);
+    (nan, nan) when every subject ties."""
     d = np.asarray(ll_a, dtype=float) - np.asarray(ll_b, dtype=float)
     g = len(d)
-    if g == 0 or indistinguishable(ll_a, ll_b):
+    untied = ~ties(ll_a, ll_b, rows)
+    n_untied = int(untied.sum())
+    if n_untied == 0:
         return float("nan"), float("nan")
-    corrected = d - (k_a - k_b) * np.log(g) / (2.0 * g)
+    corrected = d[untied] - (k_a - k_b) * np.log(g) / (2.0 * g)
     b = int((corrected > 0).sum())
-    return float(b), float(stats.binomtest(b, g, 0.5).pvalue)
+    return float(b), float(stats.binomtest(b, n_untied, 0.5).pvalue)

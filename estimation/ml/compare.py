@@ -4,7 +4,8 @@
 * Every pair is first classified as nested (restriction named), overlapping or non-nested
   (estimation/nesting.py); nested pairs get a likelihood-ratio test with the chi2 or
   chi-bar-square reference, the others Vuong's and Clarke's tests, and pairs whose
-  per-subject log-likelihoods coincide read "indistinguishable" (estimation/pair_tests.py).
+  per-subject log-likelihoods agree to rounding level read "indistinguishable"
+  (estimation/pair_tests.py).
 * ΔAIC to the best model with its standard error over subjects, 2 sqrt(G) sd(d_g)
   (estimation/aic_difference.py).
 * Subject-level k-fold cross-validation: subjects are split into k folds; each fold's
@@ -33,9 +34,11 @@ from stopwise.estimation.ml.results import DISCLAIMER, Fit
 from stopwise.estimation.nesting import Relation, classify, verify_nesting
 from stopwise.estimation.pair_tests import (
     LEVEL,
+    ROW_TOLERANCE,
     clarke_test,
     indistinguishable,
     likelihood_ratio,
+    subject_scales,
     vuong_test,
 )
 
@@ -85,6 +88,13 @@ def subject_logliks(fit: Fit) -> np.ndarray:
     """ln L_g at the estimate for every subject g."""
     problem = fit.extras["problem"]
     return problem.cluster_loglik(fit.z)
+
+
+def subject_rows(fit: Fit) -> np.ndarray:
+    """n_g, the decision rows of every subject g (padding rows excluded)."""
+    problem = fit.extras["problem"]
+    counted = (np.asarray(problem.weights) > 0).astype(float)
+    return np.bincount(problem.cluster, weights=counted, minlength=problem.n_clusters)
 
 
 @dataclass
@@ -212,6 +222,7 @@ def pairwise_tests(
     notes: list[str] = []
     rows: list[dict[str, Any]] = []
     per_subject = [subject_logliks(f) for f in fits]
+    rows_of = subject_rows(fits[0]) if fits else None
     for i in range(len(fits)):
         for j in range(i + 1, len(fits)):
             relation = classify(models[i], models[j])
@@ -230,7 +241,11 @@ def pairwise_tests(
                     rows += lr_rows
                     continue
                 relation = classify_fallback(relation)
-            rows += _non_nested_rows(relation, fits[i], fits[j], per_subject[i], per_subject[j])
+            pair_rows, pair_notes = _non_nested_rows(
+                relation, fits[i], fits[j], per_subject[i], per_subject[j], rows_of
+            )
+            rows += pair_rows
+            notes += pair_notes
             if relation.kind == "overlapping":
                 notes.append(
                     f"{fits[i].model} and {fits[j].model} overlap: {relation.reason}; Vuong's "
@@ -318,36 +333,44 @@ def _nested_rows(
 
 
 def _non_nested_rows(
-    relation: Relation, a: Fit, b: Fit, ll_a: np.ndarray, ll_b: np.ndarray
-) -> list[dict[str, Any]]:
-    """Vuong and Clarke rows, or one "indistinguishable" row when the differences vanish."""
+    relation: Relation,
+    a: Fit,
+    b: Fit,
+    ll_a: np.ndarray,
+    ll_b: np.ndarray,
+    rows: np.ndarray | None = None,
+) -> tuple[list[dict[str, Any]], list[str]]:
+    """Vuong and Clarke rows, or one "indistinguishable" row when the differences are at
+    rounding level (estimation/pair_tests.py); each with a note that states its check."""
     base = {
         "model_a": a.model,
         "model_b": b.model,
         "relation": relation.kind,
         "restriction": relation.common and f"both reduce to {relation.common}",
     }
-    if indistinguishable(ll_a, ll_b):
-        max_gap = float(np.max(np.abs(np.asarray(ll_a) - np.asarray(ll_b)), initial=0.0))
-        return [
-            {
-                **base,
-                "test": "per-subject differences",
-                "statistic": max_gap,
-                "df": np.nan,
-                "p_value": np.nan,
-                "favours": "indistinguishable",
-            }
-        ]
-    out = []
+    d = np.asarray(ll_a, dtype=float) - np.asarray(ll_b, dtype=float)
+    scales = subject_scales(ll_a, ll_b, rows)
+    per_row_gap = float(np.max(np.abs(d) / scales, initial=0.0))
+    if indistinguishable(ll_a, ll_b, rows):
+        note = (
+            f"{a.model} and {b.model} are indistinguishable on these data: the summed "
+            f"log-likelihoods differ by {abs(float(d.sum())):.3g}, the largest per-subject "
+            f"difference is {per_row_gap:.3g} per decision row and their sd "
+            f"{float(d.std(ddof=0)):.3g} (rounding level: {ROW_TOLERANCE:g} per row); "
+            "Vuong's and Clarke's tests would divide by rounding noise"
+        )
+        row = {**base, "test": "per-subject differences", "statistic": float(np.abs(d).max())}
+        return [{**row, "df": np.nan, "p_value": np.nan, "favours": "indistinguishable"}], [note]
+    out, notes = [], []
     g = len(ll_a)
     for name, (stat, p) in (
-        ("Vuong (Schwarz-corrected)", vuong_test(ll_a, ll_b, a.k, b.k)),
-        ("Clarke sign (Schwarz-corrected)", clarke_test(ll_a, ll_b, a.k, b.k)),
+        ("Vuong (Schwarz-corrected)", vuong_test(ll_a, ll_b, a.k, b.k, rows)),
+        ("Clarke sign (Schwarz-corrected)", clarke_test(ll_a, ll_b, a.k, b.k, rows)),
     ):
-        favours = "neither"
+        favours = "neither" if np.isfinite(stat) else "not computed (differences at rounding level)"
         if np.isfinite(p) and p < LEVEL:
-            better = stat > 0 if name.startswith("Vuong") else stat > g / 2
+            untied = int((np.abs(d) > ROW_TOLERANCE * scales).sum())
+            better = stat > 0 if name.startswith("Vuong") else stat > untied / 2
             favours = a.model if better else b.model
         out.append(
             {
@@ -359,7 +382,15 @@ def _non_nested_rows(
                 "favours": favours,
             }
         )
-    return out
+    penalty = (a.k - b.k) * np.log(g) / 2.0 if g else 0.0
+    if penalty and abs(float(d.sum())) < abs(penalty) and np.isfinite(out[0]["statistic"]):
+        notes.append(
+            f"{a.model} vs {b.model}: the fits differ by {float(d.sum()):.3g} in total, less "
+            f"than the Schwarz term {penalty:.3g} in Vuong's statistic, so its sign is set by "
+            "the parameter count: |Z| then measures how surely the extra parameters fail to "
+            "pay for themselves, not how much the predictions differ"
+        )
+    return out, notes
 
 
 def compare_fits(
