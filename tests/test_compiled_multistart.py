@@ -15,6 +15,7 @@ from stopwise.estimation.ml import compiled_multistart as compiled_module
 from stopwise.estimation.ml.compiled_multistart import COMPILED, FALLBACK, compiled_multistart
 from stopwise.estimation.ml.mle import build_problem, fit_mle, starts_from
 from stopwise.estimation.ml.optimize import multistart
+from stopwise.estimation.ml.problem import Layout, PooledRows
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.models.spec import build_model
 
@@ -107,3 +108,23 @@ def test_a_start_the_compiled_newton_leaves_unconverged_is_rerun_by_scipy_and_re
     assert fit.to_dict()["optimizer"]["start_algorithms"][0] == FALLBACK
     reference, _ = scipy_path(problem, starts_from(problem, layout, 3, 0))
     np.testing.assert_allclose(fit.z, reference.z, rtol=1e-8, atol=1e-10)
+
+
+def test_host_callback_and_mixture_rows_keep_the_scipy_path() -> None:
+    """Contest Nash play is solved on the host (jax.pure_callback); inside the compiled
+    loop that callback deadlocked a whole `stopwise demo`. Such rows, and finite mixtures,
+    must not enter the compiled loop; every other row function does."""
+
+    def rows(spec: str) -> PooledRows:
+        model = build_model(spec)
+        free = tuple(model.param_names)
+        return PooledRows(Layout(model, free, (1,) * len(free)))
+
+    assert not compiled_module.compiled_path_suits(rows("crra+nash+tremble"))
+    assert compiled_module.compiled_path_suits(rows("crra+qre"))
+    assert compiled_module.compiled_path_suits(rows("crra+planner+logit"))
+
+    class MixtureLike:
+        multimodal = True
+
+    assert not compiled_module.compiled_path_suits(MixtureLike())

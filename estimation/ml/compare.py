@@ -26,7 +26,7 @@ import pandas as pd
 
 from stopwise.estimation.aic_difference import delta_aic_ses
 from stopwise.estimation.distributed import plan_for, run_tasks
-from stopwise.estimation.ml.compiled_multistart import compiled_multistart
+from stopwise.estimation.ml.compiled_multistart import compiled_multistart, compiled_path_suits
 from stopwise.estimation.ml.identification import fit_identified
 from stopwise.estimation.ml.mle import build_problem, optimise, start_design
 from stopwise.estimation.ml.response import _strip
@@ -171,7 +171,7 @@ def cv_log_score(
     payload = FoldPayload(problem, fold_of, starts_m, max_iter)
     plan = plan_for(workers, scheduler, folds)
     failures: list[Any] = []
-    if plan.kind == "in-process" and not getattr(problem.rows, "multimodal", False):
+    if plan.kind == "in-process" and compiled_path_suits(problem.rows):
         results: list[Any] = all_folds_at_once(payload, folds)  # one device call
     else:
         run = run_tasks(

@@ -189,6 +189,19 @@ def fold_weights(problem: Problem, weights: list[np.ndarray | None]) -> np.ndarr
     )
 
 
+def compiled_path_suits(rows: Any) -> bool:
+    """Whether the compiled Newton loop may run these row functions. Not for finite
+    mixtures (``multimodal``: the loop can stop at a vanishing type share, a worse optimum
+    than scipy finds) nor for likelihoods that call the host (model option
+    ``host_callback``: contest Nash play solved through jax.pure_callback; inside the
+    compiled loop the callback waits on the CPU runtime the loop holds, and the process
+    deadlocks). Those keep scipy's trust-exact path."""
+    if getattr(rows, "multimodal", False):
+        return False
+    model = getattr(getattr(rows, "layout", None), "model", None)
+    return not bool(getattr(model, "options", None) and model.options.get("host_callback"))
+
+
 def compiled_multistart(
     problem: Problem,
     starts: np.ndarray,

@@ -22,7 +22,7 @@ from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.cells import split_into_cells
 from stopwise.estimation.formulas import build_designs, cells_from_designs
 from stopwise.estimation.ml.bootstrap import bootstrap_table
-from stopwise.estimation.ml.compiled_multistart import compiled_multistart
+from stopwise.estimation.ml.compiled_multistart import compiled_multistart, compiled_path_suits
 from stopwise.estimation.ml.covariance import covariance_for, wald_rows
 from stopwise.estimation.ml.optimize import (
     OptimumRecord,
@@ -161,8 +161,9 @@ def optimise(
 ) -> tuple[OptimumRecord, list[OptimumRecord]]:
     """Best of several runs on negll (optionally with other row weights): every start in
     one compiled call, scipy trust-exact for a start that does not converge there. Row
-    functions marked ``multimodal`` (finite mixtures) keep scipy's trust-exact path."""
-    if getattr(problem.rows, "multimodal", False):
+    functions the compiled loop does not suit (finite mixtures, host callbacks:
+    compiled_multistart.compiled_path_suits) keep scipy's trust-exact path."""
+    if not compiled_path_suits(problem.rows):
         return multistart(
             lambda z: problem.value(z, weights),
             lambda z: problem.grad(z, weights),

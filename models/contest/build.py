@@ -361,6 +361,8 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
             **options,
             "concept": concept,
             "utility": utility_name,
+            # Nash play is solved on the host (jax.pure_callback, contest/play.py)
+            "host_callback": concept == "nash",
             "target_distribution": target_distribution,
             "prepare": resolve_cap,
             "notes": (LEVEL_NOTE,) if concept == "levelk" and level is None else (),
