@@ -121,7 +121,7 @@ def test_host_callback_and_mixture_rows_keep_the_scipy_path() -> None:
         return PooledRows(Layout(model, free, (1,) * len(free)))
 
     assert not compiled_module.compiled_path_suits(rows("crra+nash+tremble"))
-    assert compiled_module.compiled_path_suits(rows("crra+qre"))
+    assert not compiled_module.compiled_path_suits(rows("crra+qre"))
     assert compiled_module.compiled_path_suits(rows("crra+planner+logit"))
 
     class MixtureLike:

@@ -195,10 +195,14 @@ def compiled_path_suits(rows: Any) -> bool:
     than scipy finds) nor for likelihoods that call the host (model option
     ``host_callback``: contest Nash play solved through jax.pure_callback; inside the
     compiled loop the callback waits on the CPU runtime the loop holds, and the process
-    deadlocks). Those keep scipy's trust-exact path."""
+    deadlocks), nor for contest models at all: the demo's crra+qre / linear+levelk
+    comparison also stalled inside the loop (cause not yet found). Those keep scipy's
+    trust-exact path, which they used before the compiled loop existed."""
     if getattr(rows, "multimodal", False):
         return False
     model = getattr(getattr(rows, "layout", None), "model", None)
+    if getattr(model, "data_kind", None) == "contest":  # a demo contest fit hung in the loop
+        return False
     return not bool(getattr(model, "options", None) and model.options.get("host_callback"))
 
 
