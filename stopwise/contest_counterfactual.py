@@ -162,19 +162,20 @@ def model_row(
     return _row(setting, model.name, game, sigma, certificate, regret)
 
 
+GAME_FIELDS = ("p_survive", "players", "prize", "keep_bank", "cap", "gain", "start", "bust_keep")
+
+
+def game_fields(setting: Mapping[str, Any]) -> tuple[Any, ...]:
+    """A checked scheme setting's game arguments, in the order the game builders take them."""
+    return tuple(setting[name] for name in GAME_FIELDS)
+
+
 def _setting_game(
     model: Model, theta: Mapping[str, float], setting: Mapping[str, Any]
 ) -> ContestGame:
     """The numpy normal form of one checked scheme setting under the model's utility."""
     return make_numpy_game(
-        setting["p_survive"],
-        setting["players"],
-        setting["prize"],
-        setting["keep_bank"],
-        setting["cap"],
-        setting["gain"],
-        setting["start"],
-        setting["bust_keep"],
+        *game_fields(setting),
         resolve_utility(model.options.get("utility", "linear")),
         {k: jnp.asarray(v) for k, v in theta.items()},
         setting["top_k"],
@@ -250,18 +251,7 @@ def model_prediction(
     residual, level-k/CH exact by construction, Nash-with-trembles by the Nash certificate
     (``nash_cert``; solved here when not given)."""
     model_sigma = _normalised(
-        model.options["target_distribution"](
-            theta,
-            setting["p_survive"],
-            setting["players"],
-            setting["prize"],
-            setting["keep_bank"],
-            setting["cap"],
-            setting["gain"],
-            setting["start"],
-            setting["bust_keep"],
-            setting["top_k"],
-        )
+        model.options["target_distribution"](theta, *game_fields(setting), setting["top_k"])
     )
     concept = model.options["concept"]
     jax_game = as_jax_game(game)

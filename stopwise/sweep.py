@@ -69,6 +69,7 @@ from stopwise.sweep_solvers import (
     symmetric_regret,
     two_player_tables,
 )
+from stopwise.sweep_table import probability_columns, refusal_message, sweep_frame
 
 CH_DEPTH = 15  # levels of cognitive hierarchy, as stopwise.contest.equilibrium
 SUPPORT_THRESHOLD = 1e-12
@@ -397,9 +398,9 @@ def sweep_contests(
     if not run.complete:
         raise RuntimeError("not every line of the sweep was solved: " + run.summary_line("lines"))
     rows = [row for line_rows in run.results for row in line_rows]
-    table = _frame(rows, setting)
+    table = sweep_frame(rows, setting)
     if not allow_approximate and not table["certified"].all():
-        raise UncertifiedSweepError(_refusal(table, concept), table)
+        raise UncertifiedSweepError(refusal_message(table, concept), table)
     return table
 
 
@@ -419,7 +420,9 @@ def solve_line(
         row = solve_point(p, x, setting, previous, cold_solve)
         sigma = row.pop("sigma")
         tv = math.nan if previous is None else total_variation(sigma, previous)
-        rows.append({"p_survive": p, "prize": x, **_probs(sigma), **row, "tv_prev": tv})
+        rows.append(
+            {"p_survive": p, "prize": x, **probability_columns(sigma), **row, "tv_prev": tv}
+        )
         previous = sigma if row["certified"] else None
         if tick is not None:
             tick()
@@ -475,30 +478,4 @@ def make_setting(
         start,
         bust_keep,
         float(tolerance),
-    )
-
-
-def _probs(sigma: np.ndarray) -> dict[str, float]:
-    return {f"prob_{t}": float(q) for t, q in enumerate(sigma)}
-
-
-def _frame(rows: list[dict[str, Any]], s: Setting) -> pd.DataFrame:
-    table = pd.DataFrame(rows)
-    table.insert(2, "players", s.players)
-    table.insert(3, "keep_bank", s.keep_bank)
-    table.insert(4, "concept", s.concept)
-    table.insert(5, "cap", s.cap)
-    return table
-
-
-def _refusal(table: pd.DataFrame, concept: str) -> str:
-    bad = table.loc[~table["certified"]]
-    first = ", ".join(
-        f"p_survive={r.p_survive:g} prize={r.prize:g} ({r.method})"
-        for r in bad.head(3).itertuples()
-    )
-    return (
-        f"{len(bad)} of {len(table)} points failed their certificate ({concept}): {first}. "
-        "Try a finer grid (closer neighbours), a larger --max-target, or --allow-approximate "
-        "to see the marked rows"
     )
