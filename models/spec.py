@@ -28,6 +28,7 @@ when contextual]; tremble (0, 1) [0.05].
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 import warnings
 from collections.abc import Mapping
@@ -309,6 +310,11 @@ def _stopping_model(
         if p.size:
             check_table_size(name, policy, risk.noise.base, p.size, 1, caps.sized_for(p))
 
+    def program_key() -> str:
+        """What the traced likelihood depends on besides the data's shapes: the model, its
+        options and the static caps in use (estimation/program_store.py)."""
+        return structure_key(name, opts, repr(seen.get("caps", caps)))
+
     return Model(
         name=name,
         params=params,
@@ -316,9 +322,22 @@ def _stopping_model(
         simulate=simulate,
         data_kind="stopping",
         predict=predict,
-        options={**opts, "policy": policy, "prepare": prepare, "learning": learning},
+        options={
+            **opts,
+            "policy": policy,
+            "prepare": prepare,
+            "learning": learning,
+            "program_key": program_key,
+        },
         description=f"stopping model {name}",
     )
+
+
+def structure_key(name: str, opts: Mapping[str, Any], caps: str) -> str:
+    """JSON text naming a spec-built model's traced structure: its canonical name, its plain
+    options and its static caps (the key of its stored programs)."""
+    plain = {k: v for k, v in opts.items() if v is None or isinstance(v, (str, int, float))}
+    return json.dumps({"model": name, "options": plain, "caps": caps}, sort_keys=True)
 
 
 def warn_beyond_caps(data: Any, caps: Caps, policy: str) -> None:
@@ -365,6 +384,7 @@ def _lottery_model(
 
     lottery_opts = {k: opts[k] for k in ("wealth", "reference", "contextual")}
     lottery_opts["prepare"] = prepare
+    lottery_opts["program_key"] = lambda: structure_key(name, opts, "")
     return Model(
         name=name,
         params=params,

@@ -51,6 +51,7 @@ from stopwise.estimation.ml.optimize import (
     value_grad_hess_forward,
 )
 from stopwise.estimation.ml.problem import Problem, _negll
+from stopwise.estimation.program_store import call_stored
 
 COMPILED = "compiled damped Newton (exact JAX gradient and Hessian, one device call)"
 FALLBACK = (
@@ -223,8 +224,14 @@ def compiled_multistart(
     # program for each conversion in a fresh process)
     z, v, g, h, gmax, iters = (
         np.asarray(a)
-        for a in newton_runs(
-            problem.rows, starts, args, fold_weights(problem, weights), np.int32(max_iter)
+        for a in call_stored(
+            "newton_runs",
+            newton_runs,
+            problem.rows,
+            starts,
+            args,
+            fold_weights(problem, weights),
+            np.int32(max_iter),
         )
     )
     out = []

@@ -15,6 +15,7 @@ the compiled code.
 
 from __future__ import annotations
 
+import json
 import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
@@ -28,6 +29,7 @@ import numpy as np
 from stopwise.data_schemas.arrays import LotteryData, StoppingData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation.ml.optimize import value_grad_hess_forward
+from stopwise.estimation.program_store import call_stored
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------
@@ -131,6 +133,17 @@ def theta_per_cell(layout: Layout, z: Any, designs: tuple[Any, ...]) -> dict[str
 # Row functions (static, hashable); ``args`` holds the arrays.
 
 
+def layout_key(layout: Layout) -> str | None:
+    """JSON text naming a layout's traced structure (the model's ``program_key`` option,
+    free parameters, coefficients per parameter, fixed values), or None for a model without
+    one (a user-written model: its programs are not stored across processes)."""
+    describe = (layout.model.options or {}).get("program_key")
+    if not callable(describe):
+        return None
+    parts = {"model": describe(), "free": layout.free, "n_coef": layout.n_coef}
+    return json.dumps({**parts, "fixed": [[k, repr(v)] for k, v in layout.fixed]})
+
+
 @dataclass(frozen=True)
 class PooledRows:
     """ll_i(z) = loglik_obs(theta(z), data)_i; args = the (padded) bundle."""
@@ -139,6 +152,10 @@ class PooledRows:
 
     def __call__(self, z: Any, args: Any) -> Any:
         return self.layout.model.loglik_obs(theta_scalars(self.layout, z), args)
+
+    def program_key(self) -> str | None:
+        key = layout_key(self.layout)
+        return None if key is None else f"PooledRows {key}"
 
 
 @dataclass(frozen=True)
@@ -153,6 +170,10 @@ class CellRows:
         theta = theta_per_cell(self.layout, z, designs)
         per_cell = jax.vmap(self.layout.model.loglik_obs)(theta, data)
         return per_cell.reshape(-1)
+
+    def program_key(self) -> str | None:
+        key = layout_key(self.layout)
+        return None if key is None else f"CellRows {key}"
 
 
 # ---------------------------------------------------------------------------------------
@@ -353,8 +374,8 @@ class Problem:
         cache = self.__dict__.setdefault("_cache", {})
         if cache.get("key") != key:
             args, base_weights = self.on_device()
-            weights = base_weights if w is None else jnp.asarray(w)
-            out = value_grad_hess(self.rows, jnp.asarray(z), args, weights)
+            weights = base_weights if w is None else jax.device_put(w)
+            out = call_stored("value_grad_hess", value_grad_hess, self.rows, z, args, weights)
             cache["key"], cache["value"] = key, tuple(np.asarray(a) for a in out)
         return cache["value"]
 
@@ -376,7 +397,7 @@ class Problem:
         """(args, weights) as device arrays, transferred once per Problem rather than at
         every optimiser step."""
         if "_device" not in self.__dict__:
-            self.__dict__["_device"] = (jax.device_put(self.args), jnp.asarray(self.weights))
+            self.__dict__["_device"] = (jax.device_put(self.args), jax.device_put(self.weights))
         return self.__dict__["_device"]
 
     def evaluate(self, z: np.ndarray, w: np.ndarray | None = None) -> tuple[Any, ...]:
@@ -399,12 +420,13 @@ class Problem:
         z = np.asarray(z, dtype=np.float64)
         cache = self.__dict__.setdefault("_scores", {})
         if cache.get("key") != z.tobytes():
-            _, jac = row_scores(self.rows, jnp.asarray(z), self.on_device()[0])
+            _, jac = call_stored("row_scores", row_scores, self.rows, z, self.on_device()[0])
             cache["key"], cache["value"] = z.tobytes(), np.asarray(jac)
         return cache["value"]
 
     def row_loglik(self, z: np.ndarray) -> np.ndarray:
-        return np.asarray(rows_loglik(self.rows, jnp.asarray(z), self.on_device()[0]))
+        args = self.on_device()[0]
+        return np.asarray(call_stored("rows_loglik", rows_loglik, self.rows, z, args))
 
     def cluster_loglik(self, z: np.ndarray) -> np.ndarray:
         """Sum of weighted row log-likelihoods per cluster (subject), shape (n_clusters,)."""

@@ -106,7 +106,7 @@ def stop_step_table(model: Any, theta: Mapping[str, Any], data: StoppingData) ->
 def _make_predictor(
     model: Any, layout: Layout, fit: Fit, fitted: Any, extra: Mapping[str, Any]
 ) -> Any:
-    z = jnp.asarray(fit.z)
+    z = jax.device_put(np.asarray(fit.z, dtype=np.float64))
 
     def predict(data: Any = None) -> dict[str, pd.DataFrame]:
         data = fitted if data is None else data
