@@ -114,6 +114,16 @@ class RecoveryPayload:
     rival_starts: int
 
 
+HORIZON_BUCKET = 8
+
+
+def replication_horizon(max_step: int) -> int:
+    """max_step + 5 rounded up to a multiple of HORIZON_BUCKET: the horizon is a static size
+    of the traced likelihood, so replications whose longest trial differs by a few steps
+    share their compiled (and stored) programs instead of compiling one each."""
+    return HORIZON_BUCKET * -(-(max_step + 5) // HORIZON_BUCKET)
+
+
 def run_replication(
     rep: int, seed: int, truth: Mapping[str, float], payload: RecoveryPayload
 ) -> tuple[list[dict[str, Any]], bool | None]:
@@ -124,7 +134,7 @@ def run_replication(
     key = jax.random.fold_in(jax.random.PRNGKey(seed), rep)
     frame = model.simulate(dict(truth), payload.design, key)
     if "step" in frame:
-        data = payload.to_bundle(frame, int(frame["step"].max()) + 5)
+        data = payload.to_bundle(frame, replication_horizon(int(frame["step"].max())))
     else:
         data = payload.to_bundle(frame)
     fit = fit_mle(
