@@ -173,8 +173,14 @@ def write_atomically(path: Path, data: bytes) -> None:
 def evict_oldest(folder: Path, keep: int = MAX_ENTRIES) -> None:
     """Delete the least recently used entries (by modification time, refreshed on every
     load) beyond ``keep``."""
-    entries = sorted(folder.glob("*.program"), key=lambda p: p.stat().st_mtime)
-    for path in entries[: max(len(entries) - keep, 0)]:
+    entries = []
+    for path in folder.glob("*.program"):
+        try:  # another process (a Dask worker) may delete or replace it meanwhile
+            entries.append((path.stat().st_mtime, path))
+        except OSError:
+            continue
+    entries.sort()
+    for _, path in entries[: max(len(entries) - keep, 0)]:
         path.unlink(missing_ok=True)
 
 
@@ -194,7 +200,10 @@ def load_entry(path: Path, key: str, specs: list[Any]) -> export.Exported | None
     ]:
         COUNTS["rejected"] += 1
         return None
-    os.utime(path)
+    try:
+        os.utime(path)  # recently used: evicted last
+    except OSError:
+        pass
     COUNTS["loaded"] += 1
     return program
 
