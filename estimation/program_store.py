@@ -210,15 +210,25 @@ def load_entry(path: Path, key: str, specs: list[Any]) -> export.Exported | None
 
 def build_entry(
     path: Path, key: str, program: Callable[..., Any], rows: Any, treedef: Any, specs: list[Any]
-) -> export.Exported:
-    """Trace and lower program(rows, *args) on the argument leaves, store it, return it."""
+) -> export.Exported | None:
+    """Trace and lower program(rows, *args) on the argument leaves, store it, return it; None
+    when JAX cannot export it (e.g. a host callback, a custom call outside JAX's stable
+    list): the caller then runs the program directly. A folder that refuses the write
+    leaves the program in memory only."""
 
     def on_leaves(*leaves: Any) -> Any:
         return program(rows, *jax.tree_util.tree_unflatten(treedef, leaves))
 
-    exported = export.export(jax.jit(on_leaves))(*specs)
-    write_atomically(path, entry_bytes(key, exported.serialize()))
-    evict_oldest(path.parent)
+    try:
+        exported = export.export(jax.jit(on_leaves))(*specs)
+        payload = exported.serialize()
+    except Exception:  # not exportable: never a reason for a fit to fail
+        return None
+    try:
+        write_atomically(path, entry_bytes(key, payload))
+        evict_oldest(path.parent)
+    except OSError:
+        pass
     COUNTS["built"] += 1
     return exported
 
@@ -243,5 +253,8 @@ def call_stored(name: str, program: Callable[..., Any], rows: Any, *args: Any) -
         exported = load_entry(path, key, specs)
         if exported is None:
             exported = build_entry(path, key, program, rows, treedef, specs)
+        if exported is None:
+            COUNTS["direct"] += 1
+            return program(rows, *args)
         compiled = _IN_PROCESS[key] = jax.jit(exported.call)
     return compiled(*leaves)

@@ -230,6 +230,24 @@ def test_a_model_without_a_program_key_is_called_directly(data, folder) -> None:
     assert not folder.exists() or not list(folder.glob("*.program"))
 
 
+def test_a_program_jax_cannot_export_runs_directly(data, folder, monkeypatch) -> None:
+    """An export failure (a model whose program JAX cannot serialise) never fails the fit:
+    the program runs as it would without the store, and nothing is written."""
+
+    def refuse(*args, **kwargs):
+        raise ValueError("not exportable")
+
+    monkeypatch.setattr(store.export, "export", refuse)
+    problem = problem_of(data)
+    z = np.array([0.2, 0.4])
+    before = counts()
+    ours = stored_rows_loglik(problem, z)
+    assert delta(before) == {"loaded": 0, "built": 0, "rejected": 0, "direct": 1}
+    fresh = np.asarray(rows_loglik(problem.rows, z, problem.on_device()[0]))
+    np.testing.assert_allclose(ours, fresh, rtol=1e-12, atol=0)
+    assert not list(folder.glob("*.program"))
+
+
 def test_a_folder_others_may_write_is_not_used(data, folder) -> None:
     folder.mkdir()
     folder.chmod(0o777)
