@@ -166,6 +166,7 @@ def test_predict_rows(conjugate_fit, bernoulli_data):
     )
 
 
+@pytest.mark.slow
 def test_same_seed_same_draws(bernoulli_data):
     a = fit_bayes(
         CONSTANT,
@@ -190,6 +191,7 @@ def test_same_seed_same_draws(bernoulli_data):
     np.testing.assert_array_equal(a.draws("p"), b.draws("p"))
 
 
+@pytest.mark.slow
 def test_hierarchical_short_run_warns_and_reports_subjects(bernoulli_data):
     post = fit_bayes(
         CONSTANT,
@@ -224,6 +226,7 @@ def test_hierarchical_short_run_warns_and_reports_subjects(bernoulli_data):
     assert "between-subject sd (unconstrained scale)" in post.summary()
 
 
+@pytest.mark.slow
 def test_compare_ranks_by_elpd(conjugate_fit, bernoulli_data):
     # 30% draws: a free p fits better than p near 1/2
     coin = fit_bayes(
@@ -317,6 +320,7 @@ def test_every_sampler_problem_gives_a_named_warning():
 
 
 @pytest.mark.skipif(not os.path.exists("/proc/self/maps"), reason="needs Linux /proc")
+@pytest.mark.slow
 def test_repeated_fits_do_not_accumulate_compiled_programs(bernoulli_data):
     # Every MCMC run compiles a new sampler loop that JAX would keep for good; a fit releases
     # them when it ends, so the process's memory mappings stop growing (without the release:

@@ -104,6 +104,7 @@ def refit_for(data_kw):
     return refit
 
 
+@pytest.mark.slow
 def test_exact_refits_reproduce_brute_force_leave_one_subject_out(tiny, tiny_fit):
     _, draw, subject = tiny
     exact = exact_subject_elpd(draw, subject)
@@ -155,6 +156,7 @@ def test_without_subjects_renumbers_codes_and_labels(tiny):
     assert kept.n_obs == 24
 
 
+@pytest.mark.slow
 def test_compare_says_its_unit(tiny, tiny_fit):
     data, _, _ = tiny
     other = fit_bayes(

@@ -130,6 +130,7 @@ def test_pooled_default_converges_and_matches_statsmodels_logit(logistic_fit):
         assert sd == pytest.approx(ref.bse[i], rel=0.12), (name, sd, ref.bse[i])
 
 
+@pytest.mark.slow
 def test_user_start_values_keep_the_former_start():
     data = logistic_bundle(400, seed=6)
     post = fit_bayes(
@@ -211,6 +212,7 @@ def test_prior_precision_matches_finite_differences():
     np.testing.assert_allclose(got, numeric, atol=1e-6)
 
 
+@pytest.mark.slow
 def test_gains_only_data_start_the_loss_parameters_at_their_prior():
     # invented gains-only data (bank 0, nothing kept on a bust: no outcome below the
     # reference point), so beta, loss_aversion and delta never enter the likelihood

@@ -99,6 +99,7 @@ def test_shrinkage_pulls_subjects_towards_the_population(hierarchical_case):
     assert r["shrinkage"].median() > 0
 
 
+@pytest.mark.slow
 def test_shrinkage_needs_a_hierarchical_fit(hierarchical_case):
     model, data, _ = hierarchical_case
     pooled = fit_bayes(

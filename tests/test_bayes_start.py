@@ -115,6 +115,7 @@ def small_stopping():
     return model, to_stopping_data(pd.concat(frames, ignore_index=True))
 
 
+@pytest.mark.slow
 def test_centred_and_noncentred_sites_give_the_same_offsets_and_density(small_stopping):
     # Every per-parameter choice describes the same u_s = diag(sd) L eta_s ~ MVN(0, Sigma):
     # equal offsets, equal likelihood, and a density that differs from the non-centred one
@@ -155,6 +156,7 @@ def test_centred_and_noncentred_sites_give_the_same_offsets_and_density(small_st
     assert max(values) - min(values) < 1e-9 * abs(values[0])
 
 
+@pytest.mark.slow
 def test_forced_parametrisations_are_recorded_and_checked(small_stopping):
     model, data = small_stopping
     for form in ("centred", "noncentred"):
@@ -214,6 +216,7 @@ def test_start_variances_are_normal_approximations():
 
 
 @pytest.mark.parametrize("dense", [True, False])
+@pytest.mark.slow
 def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, dense):
     from functools import partial
 
@@ -253,6 +256,7 @@ def test_initial_inverse_mass_covers_every_sampled_coordinate(small_stopping, de
         np.testing.assert_allclose(blocks[(subject_site,)], expected)
 
 
+@pytest.mark.slow
 def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     # One equilibrium per subject inside per-subject Newton fits is far too slow for a start
     # (16 demo subjects: not done in 10 minutes), so contest models skip those fits.

@@ -61,6 +61,7 @@ def test_numpy_floating_point_warnings_become_one_note(
     assert "numpy reported 1 floating-point warning(s) (overflow encountered in exp)" in err
 
 
+@pytest.mark.slow
 def test_compare_shows_no_raw_runtime_warnings(tmp_path: Path) -> None:
     """A real case: scipy's trust-region steps overflow while fitting these probit data."""
     data = tmp_path / "probit.csv"
@@ -254,6 +255,7 @@ def test_import_stopwise_exposes_only_its_public_names() -> None:
     assert not {"Any", "jax", "importlib", "annotations"} & set(stopwise.__all__)
 
 
+@pytest.mark.slow
 def test_level_k_fit_explains_its_level(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     data = tmp_path / "contest.csv"
     simulate = ["simulate", "--model", "linear+levelk", "--set", "precision=2", "--set"]

@@ -134,6 +134,7 @@ def lottery_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return path
 
 
+@pytest.mark.slow
 def test_compare_option_reaches_every_model(
     lottery_file: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -175,6 +176,7 @@ def _loglik_of(argv: list[str], capsys: pytest.CaptureFixture[str]) -> dict:
     return json.loads(out)
 
 
+@pytest.mark.slow
 def test_joint_fit_equals_separate_fits_at_the_shared_value(
     lottery_file: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -253,6 +255,7 @@ def test_hierarchical_bayes_reports_each_subject(
     assert f"{rows[0]['estimate']:.4g} [{rows[0]['ci_low']:.4g}" in text
 
 
+@pytest.mark.slow
 def test_recover_command_reports_bias_and_coverage(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
