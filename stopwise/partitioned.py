@@ -27,9 +27,11 @@ from stopwise.data_schemas.partitioned import (
     load_parts,
     merge_checks,
     part_columns,
+    part_head,
     refuse_invalid,
 )
 from stopwise.data_schemas.report import ValidationReport
+from stopwise.data_schemas.validate import check_source
 from stopwise.data_schemas.validate import validate as validate_source
 from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.counts import (
@@ -56,9 +58,11 @@ def _pass(
     workers: int | None,
     scheduler: str | None,
     progress: bool,
+    fast: bool = True,
 ) -> tuple[ValidationReport, list[pd.DataFrame]]:
     """Validate every part as one task each (and count them); the merged report and the
-    parts' counts."""
+    parts' counts. ``fast``: clean parts go through the Arrow screen (estimation/ml/counts.py
+    ``check_and_count_part``); False runs the full validator on every part."""
     parts = list_parts(source)
     inputs = [
         {
@@ -68,6 +72,7 @@ def _pass(
             "allow_censored": allow_censored,
             "max_per_kind": max_per_kind,
             "count": count,
+            "fast": fast,
         }
         for k in range(len(parts))
     ]
@@ -94,10 +99,11 @@ def validate_parts(
     workers: int | None = 0,
     scheduler: str | None = None,
     progress: bool = False,
+    fast: bool = True,
 ) -> ValidationReport:
-    """Every problem of every part, each with its file and line."""
+    """Every problem of every part, each with its file and line (``fast``: see ``_pass``)."""
     report, _ = _pass(
-        source, kind, allow_censored, max_per_kind, False, workers, scheduler, progress
+        source, kind, allow_censored, max_per_kind, False, workers, scheduler, progress, fast
     )
     return report
 
@@ -129,15 +135,27 @@ class PartsFit:
     warnings: list[str] = field(default_factory=list)
 
 
+def _whole_trials(frame: pd.DataFrame) -> pd.DataFrame:
+    """The rows without the last (subject, trial), which the cut may have split; all rows
+    when they hold one trial only."""
+    last = frame[["subject", "trial"]].iloc[-1]
+    whole = (frame["subject"] != last["subject"]) | (frame["trial"] != last["trial"])
+    return frame[whole] if whole.any() else frame
+
+
 def _certify(model: Any, parts: Sequence[str], kind: str | None) -> float:
-    """The count reduction's relative gap on (up to CERTIFY_ROWS of) the first part's rows."""
+    """The count reduction's relative gap on (up to CERTIFY_ROWS of) the first part's rows:
+    its head cut to whole trials and typed by the validator; the whole part's clean rows when
+    the head alone is not clean (e.g. one trial longer than the head)."""
+    head = part_head(parts[0], CERTIFY_ROWS)
+    if len(head):
+        _, clean = check_source(_whole_trials(head), kind)
+        if clean is not None and len(clean):
+            return reduction_gap(model, clean)
     _, clean = check_part(parts, 0, kind)
     if clean is None:
         return 0.0
-    head = clean.iloc[:CERTIFY_ROWS]
-    last = head[["subject", "trial"]].iloc[-1]
-    whole = (head["subject"] != last["subject"]) | (head["trial"] != last["trial"])
-    return reduction_gap(model, head[whole] if whole.any() else head)
+    return reduction_gap(model, _whole_trials(clean.iloc[:CERTIFY_ROWS]))
 
 
 def fit_parts(
@@ -153,9 +171,10 @@ def fit_parts(
     prepare: Callable[[Any, Any], list[str]],
     workers: int | None = 0,
     scheduler: str | None = None,
+    fast: bool = True,
 ) -> PartsFit:
     """A pooled fit on counts when the model and data allow it (module docstring); else the
-    rows in memory with a note saying why."""
+    rows in memory with a note saying why (``fast``: see ``_pass``)."""
     parts = list_parts(source)
     header = part_columns(parts[0])
     why = counts_refusal(model, header, formulas)
@@ -167,7 +186,7 @@ def fit_parts(
     if why is not None:
         return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
     progress = bool(kw.get("progress", False))
-    report, pieces = _pass(source, None, False, 20, True, workers, scheduler, progress)
+    report, pieces = _pass(source, None, False, 20, True, workers, scheduler, progress, fast)
     refuse_invalid(report)
     gap = _certify(model, parts, None)
     if gap > EXACT_TOLERANCE:
