@@ -90,6 +90,7 @@ def _leading_rows(path: str, key: tuple[Any, Any]) -> tuple[pd.DataFrame, bool]:
     pieces, whole = [], True
     for g in range(meta.num_row_groups):
         frame = meta.read_row_group(g).to_pandas()
+        frame.columns = [str(c).strip() for c in frame.columns]  # as the part's own rows
         same = (frame["subject"] == key[0]).to_numpy() & (frame["trial"] == key[1]).to_numpy()
         stop = int(np.argmin(same)) if not same.all() else len(frame)
         pieces.append(frame.iloc[:stop])
