@@ -41,7 +41,7 @@ from .arrow_parts import batch_table, column_array, column_values, subject_codes
 from .checks_sequences import BANK_ATOL, BANK_RTOL
 from .checks_stopping import EXACT_ID
 from .limits import MAX_STEPS_PER_TRIAL
-from .partitioned import PartCheck
+from .partitioned import PartCheck, check_part
 
 NUMERIC_COLUMNS = ("trial", "step", "p_survive", "gain", "bank", "start", "bust_keep")
 DESIGN_COLUMNS = ("p_survive", "gain", "start", "bust_keep")  # constant within a trial
@@ -229,3 +229,21 @@ def screen_part(
     if keys is None:
         return None
     return FastPart(part_summary(keys), keys)
+
+
+def check_part_summary(
+    parts: Sequence[str],
+    index: int,
+    kind: str | None = None,
+    allow_censored: bool = False,
+    max_per_kind: int = 20,
+    fast: bool = True,
+) -> PartCheck:
+    """One task of a validation pass: part ``index`` (with its seams) screened on Arrow
+    arrays when ``fast`` and the screen vouches for it, else checked by the full validator
+    (every problem with file, line, column and expectation)."""
+    if fast and max_per_kind >= 1:
+        screened = screen_part(parts, index, kind, allow_censored)
+        if screened is not None:
+            return screened.check
+    return check_part(parts, index, kind, allow_censored, max_per_kind)[0]

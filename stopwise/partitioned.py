@@ -1,6 +1,8 @@
-"""Out-of-core data for the face: validate, describe and fit a folder or glob of Parquet files
-part by part (data_schemas/partitioned.py), each part a task of the study runner
-(estimation/distributed.py: in-process, a LocalCluster or an existing Dask cluster).
+"""Out-of-core data for the face: fit a folder or glob of Parquet files part by part
+(data_schemas/partitioned.py), each part a task of the study runner (estimation/
+distributed.py: in-process, a LocalCluster or an existing Dask cluster). Validation alone
+lives in stopwise/validate_parts.py (no JAX), description in stopwise/describe_parts.py;
+``validate`` and ``validate_parts`` are re-exported here.
 
 A pooled maximum-likelihood fit of a solo stopping model without formulas is done on counts
 (estimation/ml/counts.py): each part is validated and reduced to counts n_u on its worker, the
@@ -32,7 +34,6 @@ from stopwise.data_schemas.partitioned import (
 )
 from stopwise.data_schemas.report import ValidationReport
 from stopwise.data_schemas.validate import check_source
-from stopwise.data_schemas.validate import validate as validate_source
 from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.counts import (
     EXACT_TOLERANCE,
@@ -43,6 +44,7 @@ from stopwise.estimation.ml.counts import (
     merge_counts,
     reduction_gap,
 )
+from stopwise.validate_parts import validate, validate_parts
 
 __all__ = ["fit_parts", "is_partitioned", "load_parts", "validate", "validate_parts"]
 CERTIFY_ROWS = 20_000  # rows of the first part used to certify the count reduction
@@ -88,41 +90,6 @@ def _pass(
         raise RuntimeError("not every part was checked: " + run.summary_line("parts"))
     report = merge_checks(str(source), [c for c, _ in run.results], max_per_kind)
     return report, [n for _, n in run.results if n is not None]
-
-
-def validate_parts(
-    source: str | os.PathLike[str],
-    kind: str | None = None,
-    allow_censored: bool = False,
-    max_per_kind: int = 20,
-    *,
-    workers: int | None = 0,
-    scheduler: str | None = None,
-    progress: bool = False,
-    fast: bool = True,
-) -> ValidationReport:
-    """Every problem of every part, each with its file and line (``fast``: see ``_pass``)."""
-    report, _ = _pass(
-        source, kind, allow_censored, max_per_kind, False, workers, scheduler, progress, fast
-    )
-    return report
-
-
-def validate(
-    source: Any,
-    kind: str | None = None,
-    allow_censored: bool = False,
-    max_per_kind: int = 20,
-    *,
-    workers: int | None = 0,
-    scheduler: str | None = None,
-) -> ValidationReport:
-    """``stopwise.validate``: a file or DataFrame as before, a folder or glob part by part."""
-    if is_partitioned(source):
-        return validate_parts(
-            source, kind, allow_censored, max_per_kind, workers=workers, scheduler=scheduler
-        )
-    return validate_source(source, kind, allow_censored, max_per_kind)
 
 
 @dataclass

@@ -10,6 +10,9 @@ are invented (a small numpy generator below), never real participants.
 from __future__ import annotations
 
 import itertools
+import json
+import subprocess
+import sys
 from collections.abc import Callable
 from pathlib import Path
 
@@ -344,3 +347,29 @@ def test_counts_from_arrays_equal_the_row_loglik(tmp_path: Path) -> None:
         z = rows.z0 + shift
         ll_rows, ll_counts = K.total_loglik(rows, z), K.total_loglik(reduced, z)
         assert abs(ll_rows - ll_counts) <= 1e-9 * max(1.0, abs(ll_rows))
+
+
+PROBE = """
+import contextlib, io, json, sys
+from stopwise.cli import main
+out = io.StringIO()
+with contextlib.redirect_stdout(out), contextlib.redirect_stderr(out):
+    code = main(sys.argv[1:])
+print(json.dumps({"code": code, "jax": "jax" in sys.modules, "out": out.getvalue()}))
+"""
+
+
+def test_validate_command_on_a_folder_starts_without_jax(tmp_path: Path) -> None:
+    parts = _write(_clean_frame(), tmp_path / "parts")
+    argv = ["validate", str(tmp_path / "parts"), "--workers", "0"]
+    done = subprocess.run(
+        [sys.executable, "-c", PROBE, *argv], capture_output=True, text=True, timeout=300
+    )
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    assert result["code"] == 0 and "OK" in result["out"] and not result["jax"]
+    Path(parts[2]).write_bytes(b"PAR1 broken")
+    done = subprocess.run(
+        [sys.executable, "-c", PROBE, *argv], capture_output=True, text=True, timeout=300
+    )
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    assert result["code"] == 2 and parts[2] in result["out"] and not result["jax"]
