@@ -3,7 +3,8 @@ ratios against a bare ``pyarrow`` read of the same folder measured in the same r
 
 N synthetic decision rows (the invented generator of bench_load, written by bench_dask's
 ``write_parts`` into a temporary folder that is deleted afterwards; never committed) in
-Parquet parts of 500,000 rows. Measured in this process, in-process (``workers=0``):
+Parquet parts of 500,000 rows; beyond 10^7 rows the generated parts are written again with
+new trial ids (``write_folder``), so that 10^8 rows do not take an hour to draw. Measured in this process, in-process (``workers=0``):
 
 - baseline: ``pyarrow.parquet.read_table`` of the 7 decision columns of every part;
 - validate the folder: the full pandas validator on every part ("before", ``fast=False``)
@@ -14,7 +15,9 @@ Parquet parts of 500,000 rows. Measured in this process, in-process (``workers=0
   warm-up fit first, so both timed fits reuse the compiled programs of this process;
 
 and as whole command-line processes (``stopwise validate`` and ``stopwise fit`` on the
-folder, each a fresh Python with a cold JAX): wall seconds, CPU seconds and peak resident
+folder, each a fresh Python; the fit once without a persistent compilation cache, as the
+benchmarks run, and once more with a cache an earlier run filled, as a user's second fit of
+the same model and data would): wall seconds, CPU seconds and peak resident
 size of that process (``os.wait4``). CPU seconds (user + system, all threads) are given
 beside wall seconds: the machine is shared, and the load average is printed with them.
 Size: ``STOPWISE_BENCH_PARTS_ROWS`` (default 10,000,000); ``STOPWISE_BENCH_PARTS_BEFORE=0``
@@ -35,6 +38,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 import stopwise
 from benchmarks._common import peak_memory_mib
@@ -47,6 +52,8 @@ ROWS = int(os.environ.get("STOPWISE_BENCH_PARTS_ROWS", "10000000"))
 BEFORE = os.environ.get("STOPWISE_BENCH_PARTS_BEFORE", "1") != "0"
 MODEL = "crra+myopic+logit"
 GOAL = 0.5  # issue 17: throughput >= 0.5x the bare read
+BASE_ROWS = 10_000_000  # rows drawn by the generator; beyond them, parts are re-used
+TRIAL_OFFSET = 1_000_000  # bench_dask's write_parts offsets part k's trial ids by k x this
 
 
 @dataclass(frozen=True)
@@ -69,18 +76,55 @@ def timed(fn: Callable[[], Any]) -> tuple[Any, Timing]:
     return value, Timing(time.perf_counter() - t0, cpu_seconds() - c0)
 
 
-def run_command(argv: list[str]) -> tuple[int, Timing]:
+def write_folder(folder: Path, rows: int) -> int:
+    """Up to BASE_ROWS rows from the generator (bench_dask.write_parts); beyond that the
+    generated parts are written again with their trial ids moved to those of the new part's
+    position (each copy's trials are new (subject, trial) keys). Rows written."""
+    written = write_parts(folder, min(rows, BASE_ROWS))
+    base = list_parts(folder)
+    k = len(base)
+    while written < rows:
+        source = base[k % len(base)]
+        table = pq.read_table(source)  # whole parts only: a cut could split a trial
+        shift = (k - k % len(base)) * TRIAL_OFFSET
+        trial = pc.add(table.column("trial"), shift)
+        table = table.set_column(table.schema.get_field_index("trial"), "trial", trial)
+        pq.write_table(table, folder / f"part-{k:05d}.parquet", row_group_size=100_000)
+        written += table.num_rows
+        k += 1
+    return written
+
+
+# A command process reports its own peak resident size (VmHWM of its address space after
+# exec): ``ru_maxrss`` of a child would include the benchmark process's size at the fork.
+COMMAND = """
+import os, sys
+from stopwise.cli import main
+code = main(sys.argv[1:])
+with open("/proc/self/status", encoding="utf-8") as status:
+    peak = next(line.split()[1] for line in status if line.startswith("VmHWM"))
+with open(os.environ["STOPWISE_BENCH_PEAK_FILE"], "w", encoding="utf-8") as out:
+    out.write(peak)
+sys.exit(code)
+"""
+
+
+def run_command(argv: list[str], **env: str) -> tuple[int, Timing]:
     """A whole ``stopwise`` process: exit code, wall, CPU and peak resident size."""
-    t0 = time.perf_counter()
-    child = subprocess.Popen(
-        [sys.executable, "-m", "stopwise", *argv],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    _, status, usage = os.wait4(child.pid, 0)
-    child.returncode = os.waitstatus_to_exitcode(status)
-    wall = time.perf_counter() - t0
-    return child.returncode, Timing(wall, usage.ru_utime + usage.ru_stime, usage.ru_maxrss / 1024)
+    with tempfile.TemporaryDirectory() as tmp:
+        peak_file = Path(tmp) / "peak"
+        t0 = time.perf_counter()
+        child = subprocess.Popen(
+            [sys.executable, "-c", COMMAND, *argv],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+            env={**os.environ, **env, "STOPWISE_BENCH_PEAK_FILE": str(peak_file)},
+        )
+        _, status, usage = os.wait4(child.pid, 0)
+        wall = time.perf_counter() - t0
+        child.returncode = os.waitstatus_to_exitcode(status)
+        peak = int(peak_file.read_text()) / 1024 if peak_file.exists() else float("nan")
+    return child.returncode, Timing(wall, usage.ru_utime + usage.ru_stime, peak)
 
 
 def fit_folder(folder: Path, fast: bool) -> Any:
@@ -150,11 +194,16 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
     code_v, cli_v = run_command(["validate", str(folder), "--workers", "0"])
     out = folder.parent / "fit.json"
     argv = ["fit", str(folder), "--model", MODEL, "--se", "robust", "--starts", "1"]
-    code_f, cli_f = run_command([*argv, "--workers", "0", "--no-progress", "--json", str(out)])
+    argv += ["--workers", "0", "--no-progress", "--json", str(out)]
+    code_f, cli_f = run_command(argv)
+    cache = str(folder.parent / "compile-cache")
+    run_command(argv, STOPWISE_CACHE_DIR=cache)  # fills a persistent compilation cache
+    code_w, cli_w = run_command(argv, STOPWISE_CACHE_DIR=cache)
     table += [
         row(f"command `stopwise validate` (exit {code_v})", rows, cli_v, base),
-        row(f"command `stopwise fit` (exit {code_f}, cold JAX)", rows, cli_f, base),
+        row(f"command `stopwise fit` (exit {code_f}, no compilation cache)", rows, cli_f, base),
         row("commands validate + fit", rows, add(cli_v, cli_f), base),
+        row(f"command `stopwise fit`, warm compilation cache (exit {code_w})", rows, cli_w, base),
     ]
     both = add(v_after, f_after)
     notes = [
@@ -183,7 +232,7 @@ def section(rows: int = ROWS, before: bool = BEFORE) -> str:
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp) / "parts"
         folder.mkdir()
-        written = write_parts(folder, rows)
+        written = write_folder(folder, rows)
         n_parts = len(list_parts(folder))
         size = sum(p.stat().st_size for p in folder.iterdir()) / 2**20
         body = measure(folder, written, before)
