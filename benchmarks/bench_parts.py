@@ -10,6 +10,7 @@ new trial ids (``write_folder``), so that 10^8 rows do not take an hour to draw.
 - validate the folder: the full pandas validator on every part ("before", ``fast=False``)
   and the Arrow screen ("after", the default; a part it cannot vouch for would still go to
   the full validator);
+- the fit's data pass (``count_parts``: validate and count every part), before and after;
 - the pooled fit through counts (``fit_parts``, the path ``stopwise.fit`` takes for a
   folder: validate and count every part, certify the reduction, fit), before and after; a
   warm-up fit first, so both timed fits reuse the compiled programs of this process;
@@ -46,7 +47,7 @@ from benchmarks._common import peak_memory_mib
 from benchmarks.bench_dask import bare_read, write_parts
 from stopwise.api import prepare_model
 from stopwise.data_schemas.partitioned import list_parts
-from stopwise.partitioned import fit_parts, validate_parts
+from stopwise.partitioned import count_parts, fit_parts, validate_parts
 
 ROWS = int(os.environ.get("STOPWISE_BENCH_PARTS_ROWS", "10000000"))
 BEFORE = os.environ.get("STOPWISE_BENCH_PARTS_BEFORE", "1") != "0"
@@ -164,6 +165,7 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
     bare_read(folder)  # the page cache holds the files for every timed step alike
     _, base = timed(lambda: bare_read(folder))
     report, v_after = timed(lambda: validate_parts(folder, fast=True))
+    _, c_after = timed(lambda: count_parts(folder, fast=True))
     fit_folder(folder, True)  # warm-up: compiles the programs both timed fits reuse
     fit, f_after = timed(lambda: fit_folder(folder, True))
     table = [
@@ -175,6 +177,7 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
     same = "not compared"
     if before:
         report_before, v_before = timed(lambda: validate_parts(folder, fast=False))
+        _, c_before = timed(lambda: count_parts(folder, fast=False))
         fit_before, f_before = timed(lambda: fit_folder(folder, False))
         same = str(
             report_before.to_dict() == report.to_dict()
@@ -182,11 +185,13 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
         )
         table += [
             row("before: validate (full validator on every part)", rows, v_before, base),
+            row("before: validate + count every part (the fit's data pass)", rows, c_before, base),
             row("before: pooled fit through counts", rows, f_before, base),
             row("before: validate + fit", rows, add(v_before, f_before), base),
         ]
     table += [
         row("after: validate (Arrow screen)", rows, v_after, base),
+        row("after: validate + count every part (the fit's data pass)", rows, c_after, base),
         row("after: pooled fit through counts", rows, f_after, base),
         row("after: validate + fit", rows, add(v_after, f_after), base),
     ]

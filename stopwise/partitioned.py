@@ -46,34 +46,38 @@ from stopwise.estimation.ml.counts import (
 )
 from stopwise.validate_parts import validate, validate_parts
 
-__all__ = ["fit_parts", "is_partitioned", "load_parts", "validate", "validate_parts"]
+__all__ = [
+    "count_parts",
+    "fit_parts",
+    "is_partitioned",
+    "load_parts",
+    "validate",
+    "validate_parts",
+]
 CERTIFY_ROWS = 20_000  # rows of the first part used to certify the count reduction
 FIT_OPTIONS = ("starts", "max_iter", "bootstrap_reps", "progress")
 
 
-def _pass(
+def count_parts(
     source: str | os.PathLike[str],
-    kind: str | None,
-    allow_censored: bool,
-    max_per_kind: int,
-    count: bool,
-    workers: int | None,
-    scheduler: str | None,
-    progress: bool,
+    *,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+    progress: bool = False,
     fast: bool = True,
+    max_per_kind: int = 20,
 ) -> tuple[ValidationReport, list[pd.DataFrame]]:
-    """Validate every part as one task each (and count them); the merged report and the
-    parts' counts. ``fast``: clean parts go through the Arrow screen (estimation/ml/counts.py
+    """The fit's data pass: validate every part as one task each and reduce the clean
+    decision-level ones to counts n_u; the merged report and the parts' counts. ``fast``:
+    clean parts go through the Arrow screen (estimation/ml/counts.py
     ``check_and_count_part``); False runs the full validator on every part."""
     parts = list_parts(source)
     inputs = [
         {
             "parts": parts,
             "index": k,
-            "kind": kind,
-            "allow_censored": allow_censored,
             "max_per_kind": max_per_kind,
-            "count": count,
+            "count": True,
             "fast": fast,
         }
         for k in range(len(parts))
@@ -141,7 +145,7 @@ def fit_parts(
     fast: bool = True,
 ) -> PartsFit:
     """A pooled fit on counts when the model and data allow it (module docstring); else the
-    rows in memory with a note saying why (``fast``: see ``_pass``)."""
+    rows in memory with a note saying why (``fast``: see ``count_parts``)."""
     parts = list_parts(source)
     header = part_columns(parts[0])
     why = counts_refusal(model, header, formulas)
@@ -153,7 +157,9 @@ def fit_parts(
     if why is not None:
         return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
     progress = bool(kw.get("progress", False))
-    report, pieces = _pass(source, None, False, 20, True, workers, scheduler, progress, fast)
+    report, pieces = count_parts(
+        source, workers=workers, scheduler=scheduler, progress=progress, fast=fast
+    )
     refuse_invalid(report)
     gap = _certify(model, parts, None)
     if gap > EXACT_TOLERANCE:

@@ -249,6 +249,15 @@ def test_screen_reports_exactly_what_the_validator_reports(tmp_path: Path, name:
         assert all(p["file"].endswith(".parquet") for p in fast["problems"] if p["line"])
 
 
+@pytest.mark.parametrize(
+    "name",
+    ["integer subjects", "covariate column", "without bank, start, bust_keep", "float trial ids"],
+)
+def test_valid_variants_inside_the_cover_take_the_fast_path(tmp_path: Path, name: str) -> None:
+    parts = _write(_apply(CASES[name][0]), tmp_path / "parts")
+    assert all(screen_part(parts, k) is not None for k in range(len(parts)))
+
+
 def test_clean_parts_take_the_fast_path_across_seams(tmp_path: Path) -> None:
     frame = _clean_frame()
     parts = _write(frame, tmp_path / "parts")
