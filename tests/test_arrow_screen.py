@@ -382,3 +382,15 @@ def test_validate_command_on_a_folder_starts_without_jax(tmp_path: Path) -> None
     )
     result = json.loads(done.stdout.strip().splitlines()[-1])
     assert result["code"] == 2 and parts[2] in result["out"] and not result["jax"]
+
+
+def test_merging_many_count_tables_in_chunks_equals_one_merge() -> None:
+    """merge_counts sums MERGE_CHUNK tables at a time; the reference is one groupby over all
+    of them stacked (merge_once)."""
+    frame = _clean_frame(n_subjects=10, n_trials=12, seed=4)
+    pieces = [K.count_rows(frame.iloc[a : a + 7]) for a in range(0, len(frame), 7)]
+    assert len(pieces) > 2 * K.MERGE_CHUNK
+    pd.testing.assert_frame_equal(K.merge_counts(pieces), K.merge_once(pieces))
+    pd.testing.assert_frame_equal(
+        K.merge_counts(iter(pieces)), K.merge_counts([K.count_rows(frame)])
+    )
