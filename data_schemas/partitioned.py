@@ -26,6 +26,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import StopwiseDataError, StopwiseInputError
@@ -66,7 +67,7 @@ def list_parts(source: str | os.PathLike[str]) -> list[str]:
     return sorted(found)
 
 
-def _edge_key(path: str, last: bool) -> tuple[Any, Any] | None:
+def edge_key(path: str, last: bool) -> tuple[Any, Any] | None:
     """(subject, trial) of a part's first or last row; None if unreadable or keyless."""
     try:
         meta = pq.ParquetFile(path)
@@ -89,6 +90,7 @@ def _leading_rows(path: str, key: tuple[Any, Any]) -> tuple[pd.DataFrame, bool]:
     pieces, whole = [], True
     for g in range(meta.num_row_groups):
         frame = meta.read_row_group(g).to_pandas()
+        frame.columns = [str(c).strip() for c in frame.columns]  # as the part's own rows
         same = (frame["subject"] == key[0]).to_numpy() & (frame["trial"] == key[1]).to_numpy()
         stop = int(np.argmin(same)) if not same.all() else len(frame)
         pieces.append(frame.iloc[:stop])
@@ -125,7 +127,7 @@ def part_batch(parts: Sequence[str], k: int) -> PartBatch:
     except Exception as exc:  # pyarrow raises many types for corrupt files
         return PartBatch(None, [path], np.zeros(0, int), np.zeros(0, int), str(exc))
     own.columns = [str(c).strip() for c in own.columns]
-    skip = _lead_length(own, _edge_key(parts[k - 1], last=True) if k > 0 else None)
+    skip = _lead_length(own, edge_key(parts[k - 1], last=True) if k > 0 else None)
     frames = [own.iloc[skip:]]
     files = [path]
     file_of_row = [np.zeros(len(own) - skip, dtype=np.int64)]
@@ -133,7 +135,7 @@ def part_batch(parts: Sequence[str], k: int) -> PartBatch:
     last = tuple(own[c].iloc[-1] for c in TRIAL_KEY) if len(own) > skip else None
     if last is not None and set(TRIAL_KEY) <= set(own.columns):
         for j in range(k + 1, len(parts)):
-            if _edge_key(parts[j], last=False) != last:
+            if edge_key(parts[j], last=False) != last:
                 break
             rows, whole = _leading_rows(parts[j], last)
             files.append(parts[j])
@@ -245,6 +247,16 @@ def load_parts(
     results = [check_part(parts, k, kind, allow_censored) for k in range(len(parts))]
     refuse_invalid(merge_checks(str(source), [c for c, _ in results], 20))
     return pd.concat([f for _, f in results if f is not None], ignore_index=True)
+
+
+def part_head(path: str, n_rows: int) -> pd.DataFrame:
+    """The first ``n_rows`` rows of a Parquet part (read row group by row group, no more),
+    as pandas reads them."""
+    handle = pq.ParquetFile(path)
+    batch = next(handle.iter_batches(batch_size=n_rows), None)
+    if batch is None:
+        return handle.schema_arrow.empty_table().to_pandas()
+    return pa.Table.from_batches([batch]).to_pandas()
 
 
 def part_columns(path: str) -> list[str]:

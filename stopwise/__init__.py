@@ -22,7 +22,7 @@ __version__ = "0.1.0"
 _EXPORTS: dict[str, str] = {
     # data
     "load": "stopwise.data_schemas.load:load",
-    "validate": "stopwise.partitioned:validate",  # files, DataFrames, Parquet folders
+    "validate": "stopwise.validate_parts:validate",  # files, DataFrames, Parquet folders
     "trials_to_decisions": "stopwise.data_schemas.convert:trials_to_decisions",
     "decisions_to_trials": "stopwise.data_schemas.convert:decisions_to_trials",
     "describe": "stopwise.describe_parts:describe",  # files, DataFrames, Parquet folders

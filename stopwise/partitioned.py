@@ -1,6 +1,8 @@
-"""Out-of-core data for the face: validate, describe and fit a folder or glob of Parquet files
-part by part (data_schemas/partitioned.py), each part a task of the study runner
-(estimation/distributed.py: in-process, a LocalCluster or an existing Dask cluster).
+"""Out-of-core data for the face: fit a folder or glob of Parquet files part by part
+(data_schemas/partitioned.py), each part a task of the study runner (estimation/
+distributed.py: in-process, a LocalCluster or an existing Dask cluster). Validation alone
+lives in stopwise/validate_parts.py (no JAX), description in stopwise/describe_parts.py;
+``validate`` and ``validate_parts`` are re-exported here.
 
 A pooled maximum-likelihood fit of a solo stopping model without formulas is done on counts
 (estimation/ml/counts.py): each part is validated and reduced to counts n_u on its worker, the
@@ -27,10 +29,11 @@ from stopwise.data_schemas.partitioned import (
     load_parts,
     merge_checks,
     part_columns,
+    part_head,
     refuse_invalid,
 )
 from stopwise.data_schemas.report import ValidationReport
-from stopwise.data_schemas.validate import validate as validate_source
+from stopwise.data_schemas.validate import check_source
 from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.counts import (
     EXACT_TOLERANCE,
@@ -41,33 +44,41 @@ from stopwise.estimation.ml.counts import (
     merge_counts,
     reduction_gap,
 )
+from stopwise.validate_parts import validate, validate_parts
 
-__all__ = ["fit_parts", "is_partitioned", "load_parts", "validate", "validate_parts"]
+__all__ = [
+    "count_parts",
+    "fit_parts",
+    "is_partitioned",
+    "load_parts",
+    "validate",
+    "validate_parts",
+]
 CERTIFY_ROWS = 20_000  # rows of the first part used to certify the count reduction
 FIT_OPTIONS = ("starts", "max_iter", "bootstrap_reps", "progress")
 
 
-def _pass(
+def count_parts(
     source: str | os.PathLike[str],
-    kind: str | None,
-    allow_censored: bool,
-    max_per_kind: int,
-    count: bool,
-    workers: int | None,
-    scheduler: str | None,
-    progress: bool,
+    *,
+    workers: int | None = 0,
+    scheduler: str | None = None,
+    progress: bool = False,
+    fast: bool = True,
+    max_per_kind: int = 20,
 ) -> tuple[ValidationReport, list[pd.DataFrame]]:
-    """Validate every part as one task each (and count them); the merged report and the
-    parts' counts."""
+    """The fit's data pass: validate every part as one task each and reduce the clean
+    decision-level ones to counts n_u; the merged report and the parts' counts. ``fast``:
+    clean parts go through the Arrow screen (estimation/ml/counts.py
+    ``check_and_count_part``); False runs the full validator on every part."""
     parts = list_parts(source)
     inputs = [
         {
             "parts": parts,
             "index": k,
-            "kind": kind,
-            "allow_censored": allow_censored,
             "max_per_kind": max_per_kind,
-            "count": count,
+            "count": True,
+            "fast": fast,
         }
         for k in range(len(parts))
     ]
@@ -85,40 +96,6 @@ def _pass(
     return report, [n for _, n in run.results if n is not None]
 
 
-def validate_parts(
-    source: str | os.PathLike[str],
-    kind: str | None = None,
-    allow_censored: bool = False,
-    max_per_kind: int = 20,
-    *,
-    workers: int | None = 0,
-    scheduler: str | None = None,
-    progress: bool = False,
-) -> ValidationReport:
-    """Every problem of every part, each with its file and line."""
-    report, _ = _pass(
-        source, kind, allow_censored, max_per_kind, False, workers, scheduler, progress
-    )
-    return report
-
-
-def validate(
-    source: Any,
-    kind: str | None = None,
-    allow_censored: bool = False,
-    max_per_kind: int = 20,
-    *,
-    workers: int | None = 0,
-    scheduler: str | None = None,
-) -> ValidationReport:
-    """``stopwise.validate``: a file or DataFrame as before, a folder or glob part by part."""
-    if is_partitioned(source):
-        return validate_parts(
-            source, kind, allow_censored, max_per_kind, workers=workers, scheduler=scheduler
-        )
-    return validate_source(source, kind, allow_censored, max_per_kind)
-
-
 @dataclass
 class PartsFit:
     """A fit on counts, or (fit None) the rows to fit instead and why."""
@@ -129,15 +106,27 @@ class PartsFit:
     warnings: list[str] = field(default_factory=list)
 
 
+def _whole_trials(frame: pd.DataFrame) -> pd.DataFrame:
+    """The rows without the last (subject, trial), which the cut may have split; all rows
+    when they hold one trial only."""
+    last = frame[["subject", "trial"]].iloc[-1]
+    whole = (frame["subject"] != last["subject"]) | (frame["trial"] != last["trial"])
+    return frame[whole] if whole.any() else frame
+
+
 def _certify(model: Any, parts: Sequence[str], kind: str | None) -> float:
-    """The count reduction's relative gap on (up to CERTIFY_ROWS of) the first part's rows."""
+    """The count reduction's relative gap on (up to CERTIFY_ROWS of) the first part's rows:
+    its head cut to whole trials and typed by the validator; the whole part's clean rows when
+    the head alone is not clean (e.g. one trial longer than the head)."""
+    head = part_head(parts[0], CERTIFY_ROWS)
+    if len(head):
+        _, clean = check_source(_whole_trials(head), kind)
+        if clean is not None and len(clean):
+            return reduction_gap(model, clean)
     _, clean = check_part(parts, 0, kind)
     if clean is None:
         return 0.0
-    head = clean.iloc[:CERTIFY_ROWS]
-    last = head[["subject", "trial"]].iloc[-1]
-    whole = (head["subject"] != last["subject"]) | (head["trial"] != last["trial"])
-    return reduction_gap(model, head[whole] if whole.any() else head)
+    return reduction_gap(model, _whole_trials(clean.iloc[:CERTIFY_ROWS]))
 
 
 def fit_parts(
@@ -153,9 +142,10 @@ def fit_parts(
     prepare: Callable[[Any, Any], list[str]],
     workers: int | None = 0,
     scheduler: str | None = None,
+    fast: bool = True,
 ) -> PartsFit:
     """A pooled fit on counts when the model and data allow it (module docstring); else the
-    rows in memory with a note saying why."""
+    rows in memory with a note saying why (``fast``: see ``count_parts``)."""
     parts = list_parts(source)
     header = part_columns(parts[0])
     why = counts_refusal(model, header, formulas)
@@ -167,7 +157,9 @@ def fit_parts(
     if why is not None:
         return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
     progress = bool(kw.get("progress", False))
-    report, pieces = _pass(source, None, False, 20, True, workers, scheduler, progress)
+    report, pieces = count_parts(
+        source, workers=workers, scheduler=scheduler, progress=progress, fast=fast
+    )
     refuse_invalid(report)
     gap = _certify(model, parts, None)
     if gap > EXACT_TOLERANCE:

@@ -25,6 +25,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from stopwise.data_schemas import columns as C
+from stopwise.data_schemas.arrow_screen import KeyArrays, screen_part
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.partitioned import PartCheck, check_part
 from stopwise.estimation.ml.mle import build_problem, run_fit, starts_from
@@ -37,6 +39,9 @@ EXACT_TOLERANCE = 1e-9  # on |ll_rows - ll_counts| / max(1, |ll_rows|)
 # sequential moves): such data are fitted on rows.
 ROW_ONLY_COLUMNS = ("group", "pool_size", "pool_bad", "odds_known", "order", "rival_bank")
 DEFAULTS = {"start": 0.0, "bust_keep": 0.0}
+OUTCOME_LABELS = np.asarray([*C.OUTCOMES, ""], dtype=object)  # by outcome code; "" = empty
+MERGE_CHUNK = 16  # count tables summed at a time (merge_counts)
+DENSE_CELLS_PER_ROW = 8  # count by np.bincount while the key space is at most this x rows
 
 
 def counts_refusal(model: Any, frame_columns: Iterable[str], formulas: Any = None) -> str | None:
@@ -78,11 +83,79 @@ def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({**out, COUNT_COLUMN: n})
 
 
-def merge_counts(parts: Iterable[pd.DataFrame]) -> pd.DataFrame:
-    """Sum the counts of several partitions (n_u adds over partitions)."""
-    stacked = pd.concat(list(parts), ignore_index=True)
+def condition_codes(keys: KeyArrays) -> tuple[np.ndarray, list[np.ndarray]]:
+    """(condition code per row, per design column its value per condition) for the design
+    columns p_survive, gain, start and bust_keep, which are constant within each trial: the
+    distinct combinations are found among the trials' first rows, then spread over each
+    trial's rows."""
+    firsts = np.flatnonzero(keys.trial_start)
+    per_trial = [pd.factorize(getattr(keys, c)[firsts]) for c in KEY_COLUMNS[1:5]]
+    dims = tuple(max(len(u), 1) for _, u in per_trial)
+    combined = np.ravel_multi_index(tuple(np.asarray(c) for c, _ in per_trial), dims)
+    condition, distinct = pd.factorize(combined)
+    positions = np.unravel_index(np.asarray(distinct), dims)
+    labels = [np.asarray(u)[p] for (_, u), p in zip(per_trial, positions)]
+    trial_of_row = np.cumsum(keys.trial_start) - 1
+    return np.asarray(condition)[trial_of_row], labels
+
+
+def count_cells(codes: Sequence[np.ndarray], dims: tuple[int, ...]) -> tuple[np.ndarray, ...]:
+    """(distinct cells as one code array per key column, n per cell) of combined codes:
+    ``np.bincount`` when the key space is small against the rows, else ``np.unique``."""
+    if float(np.prod(np.asarray(dims, dtype=float))) >= 2.0**62:
+        raise ValueError(f"too many distinct keys to combine in one int64: {dims}")
+    combined = np.ravel_multi_index(tuple(codes), dims)
+    size = int(np.prod(dims))
+    if size <= DENSE_CELLS_PER_ROW * max(len(combined), 1):
+        n = np.bincount(combined, minlength=size)
+        distinct = np.flatnonzero(n)
+        n = n[distinct]
+    else:
+        distinct, n = np.unique(combined, return_counts=True)
+    return (*np.unravel_index(distinct, dims), n.astype(np.int64))
+
+
+def count_keys(keys: KeyArrays) -> pd.DataFrame:
+    """n_u per key u (module docstring) from a screened part's arrays (data_schemas/
+    arrow_screen.py), without a frame of rows: the same table as ``count_rows`` on the part's
+    clean rows, up to the order of its rows (``merge_counts`` sorts them)."""
+    condition, design = condition_codes(keys)
+    n_steps = int(keys.step.max()) + 1 if keys.n_rows else 1
+    labels = [
+        keys.subject_labels,
+        np.arange(len(design[0])),
+        np.arange(n_steps, dtype=np.int64),
+        np.asarray(C.ACTIONS, dtype=object),
+        OUTCOME_LABELS,
+    ]
+    codes = [keys.subject_codes, condition, keys.step, keys.action, keys.outcome]
+    dims = tuple(max(len(u), 1) for u in labels)
+    subject, cond, step, action, outcome, n = count_cells(codes, dims)
+    out = {"subject": keys.subject_labels[subject]}
+    out.update({c: u[cond] for c, u in zip(KEY_COLUMNS[1:5], design)})
+    out.update({"step": step.astype(np.int64), "action": labels[3][action]})
+    out.update({"outcome": OUTCOME_LABELS[outcome], COUNT_COLUMN: n})
+    return pd.DataFrame(out)
+
+
+def merge_once(frames: Sequence[pd.DataFrame]) -> pd.DataFrame:
+    """Stack count tables and sum n_u per key, sorted by key."""
+    stacked = pd.concat(list(frames), ignore_index=True)
     merged = stacked.groupby(list(KEY_COLUMNS), sort=True, observed=True)[COUNT_COLUMN].sum()
     return merged.reset_index()
+
+
+def merge_counts(parts: Iterable[pd.DataFrame]) -> pd.DataFrame:
+    """Sum the counts of several partitions (n_u adds over partitions), MERGE_CHUNK tables
+    at a time into a running total, so that the stacked copy stays small (at 10^8 rows in
+    200 parts, stacking every part's table at once took the fit's process past 2 GiB)."""
+    total: list[pd.DataFrame] = []
+    waiting: list[pd.DataFrame] = []
+    for frame in parts:
+        waiting.append(frame)
+        if len(waiting) == MERGE_CHUNK:
+            total, waiting = [merge_once([*total, *waiting])], []
+    return merge_once([*total, *waiting])
 
 
 def counts_frame(counts: pd.DataFrame) -> pd.DataFrame:
@@ -170,9 +243,16 @@ def check_and_count_part(
     allow_censored: bool = False,
     max_per_kind: int = 20,
     count: bool = False,
+    fast: bool = True,
 ) -> tuple[PartCheck, pd.DataFrame | None]:
     """One task of an out-of-core pass: validate part ``index`` (with its seams,
-    data_schemas/partitioned.py) and, if clean and ``count``, reduce it to counts n_u."""
+    data_schemas/partitioned.py) and, if clean and ``count``, reduce it to counts n_u.
+    With ``fast``, a part the Arrow screen vouches for (data_schemas/arrow_screen.py) is
+    summarised and counted from its arrays; every other part goes to the full validator."""
+    if fast and max_per_kind >= 1:
+        screened = screen_part(parts, index, kind, allow_censored)
+        if screened is not None:
+            return screened.check, (count_keys(screened.keys) if count else None)
     check, clean = check_part(parts, index, kind, allow_censored, max_per_kind)
     if not count or clean is None or check.data_format != "decisions":
         return check, None

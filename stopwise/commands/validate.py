@@ -50,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
 
     check = validate
     if is_partitioned(args.data):  # a folder or glob of Parquet files, part by part
-        from stopwise.partitioned import validate_parts
+        from stopwise.validate_parts import validate_parts
 
         check = partial(validate_parts, **_cluster.cluster_kwargs(args))
     report = check(
