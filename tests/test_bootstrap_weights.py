@@ -82,6 +82,7 @@ def test_grouping_into_device_calls_changes_no_replication(case) -> None:
 
 
 def test_the_in_process_chunk_is_bounded_by_rows_times_replications() -> None:
-    assert in_process_chunk(200, 7_821) == 200
+    assert in_process_chunk(200, 7_821) == 40
+    assert in_process_chunk(30, 7_821) == 30
     assert in_process_chunk(200, 10_000_000) == CHUNK  # never fewer than a cluster task
     assert in_process_chunk(5, 100) == CHUNK  # short runs: one padded chunk as before

@@ -41,16 +41,19 @@ def bootstrap_counts(n_clusters: int, reps: int, seed: int) -> np.ndarray:
 
 ROW_REPLICATES_PER_CALL = 20_000_000  # rows x replications one in-process device call holds
 CHUNK = 16  # replications per task on a cluster (and the least per in-process call)
+IN_PROCESS_CHUNK = 40  # replications per device call without a cluster
 
 
 def in_process_chunk(reps: int, n_obs: int) -> int:
-    """Replications per device call when no cluster is used: all of them in one vmapped
-    Newton program while reps x n_obs <= ROW_REPLICATES_PER_CALL, else as many as fit (at
-    least CHUNK). Each replication's Newton path is its own (done ones are masked), so the
-    grouping changes no estimate; one call saves the per-call dispatch and lets the CPU
-    vectorise across all replications (200 resamples of crra+planner+logit: 2.5 s CPU in one
-    call against 3.2 s in chunks of 16, measured 2026-12-02 at load ~13)."""
-    return max(CHUNK, min(int(reps), ROW_REPLICATES_PER_CALL // max(int(n_obs), 1)))
+    """Replications per device call when no cluster is used: IN_PROCESS_CHUNK (fewer when
+    reps x n_obs would exceed ROW_REPLICATES_PER_CALL; never fewer than CHUNK). Each
+    replication's Newton path is its own (done ones are masked), so the grouping changes no
+    estimate. Measured 2026-12-02 (benchmarks/bootstrap_calls.py, load 7-10, CPU seconds of
+    200 resamples, best of 3) for chunks of 16 / 40 / 100 / 200: crra+planner+logit 3.16 /
+    2.41 / 2.23 / 2.33 s, crra+myopic+logit 0.096 / 0.081 / 0.154 / 0.149 s -- the planner's
+    policy solves vectorise over many replications, the myopic rows fall out of cache."""
+    budget = ROW_REPLICATES_PER_CALL // max(int(n_obs), 1)
+    return max(CHUNK, min(int(reps), IN_PROCESS_CHUNK, budget))
 
 
 def gradient_tolerance(n_obs: int) -> float:
