@@ -196,14 +196,12 @@ def compiled_path_suits(rows: Any) -> bool:
     than scipy finds) nor for likelihoods that call the host (model option
     ``host_callback``: contest Nash play solved through jax.pure_callback; inside the
     compiled loop the callback waits on the CPU runtime the loop holds, and the process
-    deadlocks), nor for contest models at all: the demo's crra+qre / linear+levelk
-    comparison also stalled inside the loop (cause not yet found). Those keep scipy's
-    trust-exact path, which they used before the compiled loop existed."""
+    deadlocks). Those keep scipy's trust-exact path. Contest QRE / level-k / CH models run
+    in the loop: their stall in the demo was LAPACK's LU kernel deadlocking XLA's CPU
+    thread pool, and the QRE solves no longer call it (models/small_solve.py)."""
     if getattr(rows, "multimodal", False):
         return False
     model = getattr(getattr(rows, "layout", None), "model", None)
-    if getattr(model, "data_kind", None) == "contest":  # a demo contest fit hung in the loop
-        return False
     return not bool(getattr(model, "options", None) and model.options.get("host_callback"))
 
 

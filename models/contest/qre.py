@@ -34,6 +34,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stopwise.models.contest.game import ContestGame, target_payoffs
+from stopwise.models.small_solve import solve_small
 
 Residual = Callable[[Any, Any], Any]
 
@@ -46,7 +47,7 @@ def _newton(residual: Residual, x0: Any, params: Any, iterations: int) -> Any:
 
     def step(_: int, x: Any) -> Any:
         jac = jax.jacfwd(residual, argnums=0)(x, params)
-        delta = jnp.linalg.solve(jac, residual(x, params))
+        delta = solve_small(jac, residual(x, params))  # no LAPACK call: models/small_solve.py
         scale = jnp.minimum(1.0, 2.0 / jnp.maximum(jnp.max(jnp.abs(delta)), 1e-300))
         delta = jnp.where(jnp.all(jnp.isfinite(delta)), delta * scale, 0.0)
         return x - delta
@@ -71,7 +72,7 @@ def _solve_root_jvp(
     x = solve_root(residual, x0, params, iterations)
     jac = jax.jacfwd(residual, argnums=0)(x, params)
     _, residual_dot = jax.jvp(lambda p: residual(x, p), (params,), (params_dot,))
-    return x, -jnp.linalg.solve(jac, residual_dot)
+    return x, -solve_small(jac, residual_dot)
 
 
 # ----------------------------------------------------------------------------- residuals
