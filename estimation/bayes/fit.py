@@ -77,6 +77,7 @@ def fit_bayes(
     chain_method: str = "auto",
     parametrisation: str = "auto",
     dense_mass: bool | None = None,
+    whiten_subjects: bool = True,
     hdi_prob: float = 0.95,
     pointwise: str | None = None,
     loo: str | None = None,
@@ -130,13 +131,15 @@ def fit_bayes(
     natural = initial_natural(model, data, start_at, formulas, notes, point_fits)
     t_start = time.perf_counter()
     subjects, form = subject_start(
-        model, data, hierarchical, init, natural, parametrisation, notes, point_fits
+        model, data, hierarchical, init, natural, parametrisation, notes, point_fits, formulas
     )
     setup, args, cells, unit_labels, unit_name = cells_for_sampling(
         model, data, hierarchical, formulas, priors, unit, aggregate, form, notes
     )
     start_seconds = time.perf_counter() - t_start
-    start = sampler_start(setup, args, natural, pooled, subjects, hierarchical, dense_mass)
+    start = sampler_start(
+        setup, args, natural, pooled, subjects, hierarchical, dense_mass, whiten_subjects
+    )
     method = choose_chain_method(chain_method, chains)
     run = sample_and_check(
         setup,
@@ -176,6 +179,7 @@ def fit_bayes(
             "init": _init_text(init, pooled),
             "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": start.dense_mass,
+            "subject_whitening": start.whitening is not None,
             "start_seconds": start_seconds,
             "sampling_seconds": run.sampling_seconds,
             "pointwise_seconds": run.pointwise_seconds,
