@@ -22,7 +22,6 @@ from stopwise.estimation.bayes.whiten import (
 )
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.estimation.ml.recovery import stopping_design
-from stopwise.models.simulation import simulate
 from stopwise.models.spec import build_model
 
 

@@ -236,7 +236,7 @@ def sampler_start(
     subjects: SubjectStart | None,
     hierarchical: bool,
     dense_mass: bool | None,
-    whiten: bool = True,
+    whiten: bool = False,
 ) -> SamplerStart:
     """Pooled ML start: the ML point and the Laplace covariance as a dense inverse mass
     matrix kept through the warm-up (estimation/bayes/pooled_start.py); hierarchical: the
