@@ -283,7 +283,7 @@ def test_contest_models_start_every_subject_at_the_pooled_estimate(monkeypatch):
     def refuse(*_args, **_kw):
         raise AssertionError("per-subject fits were run for a contest model")
 
-    monkeypatch.setattr(initial, "per_subject_estimates", refuse)
+    monkeypatch.setattr(initial, "per_subject_fits", refuse)
     notes: list[str] = []
     start = initial.hierarchical_start(model, data, None, notes, ML_POINT_FITS)
     pooled = fit_mle(model, data, se=None, progress=False)

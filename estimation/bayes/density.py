@@ -41,6 +41,7 @@ from stopwise.estimation.bayes.priors import (
     LKJ_CONCENTRATION,
     Prior,
 )
+from stopwise.estimation.bayes.whiten import WHITE_SITE, sites_from_white, subject_site_names
 from stopwise.models.base import Model, ParamSpec
 
 # ---------------------------------------------------------------------------------------
@@ -57,6 +58,7 @@ class Setup:
     hierarchical: bool
     n_subjects: int
     centred: tuple[bool, ...] = ()  # hierarchical, per parameter: z_subject_<k> or eta_<k>
+    whitened: bool = False  # hierarchical: subject sites drawn as w (estimation/bayes/whiten.py)
 
     def is_centred(self, k: int) -> bool:
         return bool(self.centred[k]) if k < len(self.centred) else False
@@ -87,12 +89,22 @@ class CellArgs:
     row_cell: Any  # (n_obs,) cell of each original data row
     row_pos: Any  # (n_obs,) position of each original row's distinct row in its cell
     row_unit: Any  # (n_obs,) pointwise unit of each original row
+    whitening: Any = None  # SubjectWhitening when setup.whitened (estimation/bayes/whiten.py)
 
 
 jax.tree_util.register_pytree_node(
     CellArgs,
     lambda a: (
-        (a.data, a.weight, dict(a.designs), a.cell_subject, a.row_cell, a.row_pos, a.row_unit),
+        (
+            a.data,
+            a.weight,
+            dict(a.designs),
+            a.cell_subject,
+            a.row_cell,
+            a.row_pos,
+            a.row_unit,
+            a.whitening,
+        ),
         None,
     ),
     lambda _, c: CellArgs(*c),
@@ -239,14 +251,26 @@ def numpyro_model(setup: Setup, args: CellArgs) -> None:
             sites["L_corr"] = numpyro.sample(
                 "L_corr", dist.ImproperUniform(constraints.corr_cholesky, (), (k, k))
             )
-        for j, name in enumerate(setup.names):
-            site = f"z_subject_{name}" if setup.is_centred(j) else f"eta_{name}"
-            sites[site] = numpyro.sample(
-                site, dist.ImproperUniform(constraints.real, (), (setup.n_subjects,))
-            )
+        sites.update(subject_sites(setup, args))
         numpyro.factor("population", jitted_hierarchical_log_density(setup, sites))
     numpyro.factor("prior", jitted_intercept_prior(setup, sites))
     numpyro.factor("loglik", jitted_total_loglik(setup, sites, args))
+
+
+def subject_sites(setup: Setup, args: CellArgs) -> dict[str, Any]:
+    """The subject sites z_subject_<k> / eta_<k> (n_subjects,) each: sampled directly, or,
+    when ``setup.whitened``, built as x_s = a_s + A_s w_s from one site w_subject (n, K)
+    (estimation/bayes/whiten.py; constant Jacobian, so no density term is added)."""
+    names = subject_site_names(
+        setup.names, tuple(setup.is_centred(j) for j in range(len(setup.names)))
+    )
+    if setup.whitened:
+        shape = (setup.n_subjects, len(setup.names))
+        w = numpyro.sample(WHITE_SITE, dist.ImproperUniform(constraints.real, (), shape))
+        x = sites_from_white(w, args.whitening)
+        return {site: x[:, j] for j, site in enumerate(names)}
+    real = dist.ImproperUniform(constraints.real, (), (setup.n_subjects,))
+    return {site: numpyro.sample(site, real) for site in names}
 
 
 def intercept_prior(setup: Setup, sites: Mapping[str, Any]) -> Any:

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import partial
 from typing import Any
 
@@ -54,6 +54,15 @@ from stopwise.estimation.bayes.truncation import (
     auto_capped,
     truncation_check,
 )
+from stopwise.estimation.bayes.whiten import (
+    WHITE_SITE,
+    SubjectWhitening,
+    build_whitening,
+    subject_site_names,
+    unwhiten_samples,
+    white_from_sites,
+)
+from stopwise.estimation.loss_side import data_has_losses, loss_parameters
 from stopwise.estimation.point_fits import PointFits
 from stopwise.models.base import Model
 
@@ -136,15 +145,21 @@ def subject_start(
     parametrisation: str,
     notes: list[str],
     point_fits: PointFits | None,
+    formulas: Any = None,
 ) -> tuple[SubjectStart | None, tuple[bool, ...]]:
     """Hierarchical fits: the subjects' start (estimation/bayes/initial.py) and the
-    centred / non-centred choice per parameter; pooled fits: (None, ())."""
+    centred / non-centred choice per parameter; pooled fits: (None, ()). Loss-side
+    parameters of gains-only data (estimation/loss_side.py) start from their prior and are
+    sampled non-centred, as the pooled fit does (estimation/bayes/pooled_start.py)."""
     if not hierarchical:
         return None, ()
     if model.data_kind == "contest":
         notes.append(CONTEST_HIERARCHY_COST)
     mu = None if init is None else natural
-    start = hierarchical_start(model, data, mu, notes, point_fits)
+    absent = () if formulas or data_has_losses(model, data) else loss_parameters(model)
+    if absent:
+        notes.append(NOT_IDENTIFIED.format(names=", ".join(absent)))
+    start = hierarchical_start(model, data, mu, notes, point_fits, absent)
     form = choose_parametrisation(parametrisation, start, data.n_obs / data.n_subjects)
     return start, form
 
@@ -192,6 +207,14 @@ def cells_for_sampling(
     return prepared
 
 
+NOT_IDENTIFIED = (
+    "not identified by these data: {names} (no outcome lies below the reference point, so "
+    "they never enter the likelihood); their posterior, population and subject level, is "
+    "their prior (their rows in the table show the prior, not evidence)"
+)
+WHITE_JITTER = 0.1  # start jitter of w: a tenth of a posterior sd per coordinate
+
+
 @dataclass(frozen=True)
 class SamplerStart:
     """Initial site values, their jitter scales, the initial inverse mass matrix, whether
@@ -202,6 +225,7 @@ class SamplerStart:
     inverse_mass: Mapping[tuple[str, ...], Any] | None
     dense_mass: bool
     adapt_mass: bool
+    whitening: SubjectWhitening | None = None  # hierarchical: subject sites drawn as w
 
 
 def sampler_start(
@@ -212,10 +236,12 @@ def sampler_start(
     subjects: SubjectStart | None,
     hierarchical: bool,
     dense_mass: bool | None,
+    whiten: bool = False,
 ) -> SamplerStart:
     """Pooled ML start: the ML point and the Laplace covariance as a dense inverse mass
     matrix kept through the warm-up (estimation/bayes/pooled_start.py); hierarchical: the
-    subjects' start (estimation/bayes/initial.py); else the natural start values."""
+    subjects' start (estimation/bayes/initial.py), with the subject sites whitened when
+    ``whiten`` (estimation/bayes/whiten.py); else the natural start values."""
     values = initial_values(setup, natural)
     scales = inverse_mass = None
     if pooled is not None and pooled.coef is not None:
@@ -233,13 +259,38 @@ def sampler_start(
         values = hierarchical_values(setup, subjects, values)
         scales = jitter_scales(setup, subjects)
         inverse_mass = initial_inverse_mass(setup, subjects, args, bool(dense_mass))
-    return SamplerStart(
+    start = SamplerStart(
         values=values,
         scales=scales,
         inverse_mass=inverse_mass,
         dense_mass=bool(dense_mass),
         adapt_mass=not (pooled is not None and pooled.cov is not None),
     )
+    if subjects is not None and whiten:
+        return whitened_start(setup, subjects, start)
+    return start
+
+
+def whitened_start(setup: Setup, subjects: SubjectStart, start: SamplerStart) -> SamplerStart:
+    """The same start with the subject sites replaced by w_subject (estimation/bayes/whiten.py):
+    w = 0 at the start point, jitter WHITE_JITTER (in posterior sds), inverse mass 1."""
+    sites = subject_site_names(
+        setup.names, tuple(setup.is_centred(j) for j in range(len(setup.names)))
+    )
+    x0 = np.stack([np.asarray(start.values[s], np.float64) for s in sites], axis=1)
+    whitening = build_whitening(
+        x0,
+        subjects.subject_cov,
+        subjects.sd,
+        tuple(setup.is_centred(j) for j in range(len(setup.names))),
+    )
+    values = {k: v for k, v in start.values.items() if k not in sites}
+    values[WHITE_SITE] = white_from_sites(x0, whitening)
+    scales = {k: v for k, v in (start.scales or {}).items() if k not in sites}
+    scales[WHITE_SITE] = WHITE_JITTER
+    inverse = {k: v for k, v in (start.inverse_mass or {}).items() if k[0] not in sites}
+    inverse[(WHITE_SITE,)] = np.ones(x0.size)
+    return replace(start, values=values, scales=scales, inverse_mass=inverse, whitening=whitening)
 
 
 @dataclass(frozen=True)
@@ -275,9 +326,13 @@ def sample_and_check(
     """Run NUTS (estimation/bayes/sampler.py), then the pointwise log-likelihood and the
     planner-cap check at the draws (estimation/bayes/truncation.py)."""
     t0 = time.perf_counter()
+    run_setup, run_args = setup, args
+    if start.whitening is not None:
+        run_setup = replace(setup, whitened=True)
+        run_args = replace(args, whitening=start.whitening)
     mcmc = run_nuts(
-        setup,
-        args,
+        run_setup,
+        run_args,
         chains=chains,
         draws=draws,
         warmup=warmup,
@@ -295,6 +350,10 @@ def sample_and_check(
     # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower; the
     # conversion also waits for chains that run asynchronously (pmap), so time after it
     samples = {k: np.asarray(v) for k, v in mcmc.get_samples(group_by_chain=True).items()}
+    if start.whitening is not None:
+        centred = tuple(setup.is_centred(j) for j in range(len(setup.names)))
+        sites = subject_site_names(setup.names, centred)
+        samples = unwhiten_samples(samples, start.whitening, sites)
     elapsed = time.perf_counter() - t0
     t1 = time.perf_counter()
     pointwise_ll = draws_pointwise(setup, samples, args, n_units)

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -25,9 +26,11 @@ from stopwise.estimation.bayes.density import (
     Setup,
     population_sites,
 )
+from stopwise.estimation.bayes.pooled_start import prior_median_and_sd
+from stopwise.estimation.bayes.priors import HYPER_SD_SCALE, resolve_priors
 from stopwise.estimation.bayes.subject_start import (
     SubjectStart,
-    per_subject_estimates,
+    per_subject_fits,
     start_variances,
     summarise_subject_fits,
 )
@@ -78,6 +81,8 @@ def initial_values(setup: Setup, natural: Mapping[str, float]) -> dict[str, Any]
     }
 
 
+HALF_NORMAL_MEDIAN = 0.6745  # median of HalfNormal(1): Phi^-1(3/4), a fact of the trade
+
 CONTEST_HIERARCHY_COST = (
     "hierarchical contest model: every gradient solves one equilibrium per subject (measured "
     "on 16 demo subjects, crra+qre with max_target 30: 0.26 s per gradient against 16 ms "
@@ -92,11 +97,15 @@ def hierarchical_start(
     mu_natural: Mapping[str, float] | None,
     notes: list[str],
     point_fits: PointFits | None,
+    absent: tuple[str, ...] = (),
 ) -> SubjectStart:
     """Population and subject starting values from per-subject ML fits
     (estimation/bayes/subject_start.py); ``mu_natural`` (pooled ML or user values) replaces the
     median of the subjects as the population location when given. Contest models skip the
-    per-subject fits: every subject starts at the pooled ML estimate (or ``mu_natural``)."""
+    per-subject fits: every subject starts at the pooled ML estimate (or ``mu_natural``).
+    ``absent``: parameters that never enter the likelihood (gains-only data,
+    estimation/loss_side.py): held at their start values in the per-subject fits, then
+    started from their priors (``start_from_prior``)."""
     k = len(model.param_names)
     n = int(data.n_subjects)
     mu = None
@@ -120,7 +129,8 @@ def hierarchical_start(
         return start
     fits = require_point_fits(point_fits, "a hierarchical fit's start")
     try:
-        z, se, identified = per_subject_estimates(model, data, fits.by_subject)
+        fixed = {name: model.spec(name).start for name in absent}
+        z, se, cov, identified = per_subject_fits(model, data, fits.by_subject, fixed)
     except StopwiseInputError:
         raise
     except Exception as exc:  # the per-subject fits are only a starting point
@@ -129,11 +139,37 @@ def hierarchical_start(
             "subjects start at the population location with sd 0.3"
         )
         z, se, identified = np.zeros((n, k)), np.full((n, k), np.nan), np.zeros(n, bool)
+        cov = None
     if mu is None and not np.any(identified):  # no subject to summarise: the model's starts
         mu = np.array([float(s.to_unconstrained(s.start)) for s in model.params])
-    start = summarise_subject_fits(z, se, identified, mu)
+    start = summarise_subject_fits(z, se, identified, mu, cov)
     notes.append(start.note)
-    return start
+    return start_from_prior(model, start, absent) if absent else start
+
+
+def start_from_prior(model: Model, start: SubjectStart, absent: tuple[str, ...]) -> SubjectStart:
+    """Parameters that never enter the likelihood have the prior as posterior: mu_k at
+    the prior's unconstrained median, sd_k at the median of HalfNormal(HYPER_SD_SCALE)
+    (0.6745 x scale), every subject at mu_k (eta = 0), the intercept's initial variance
+    the prior's curvature variance; sampled non-centred (no funnel between eta and sd)."""
+    priors = resolve_priors(model)
+    mu, sd = start.mu.copy(), start.sd.copy()
+    subject_z, ratio = start.subject_z.copy(), start.ratio.copy()
+    prior_var = np.full(len(mu), np.nan)
+    index = [model.param_names.index(name) for name in absent]
+    for j, name in zip(index, absent):
+        median, width = prior_median_and_sd(priors[name], model.spec(name))
+        mu[j], sd[j], prior_var[j] = median, HALF_NORMAL_MEDIAN * HYPER_SD_SCALE, width**2
+        subject_z[:, j], ratio[j] = median, np.nan
+    return replace(
+        start,
+        mu=mu,
+        sd=sd,
+        subject_z=subject_z,
+        ratio=ratio,
+        absent=tuple(index),
+        prior_var=prior_var,
+    )
 
 
 def hierarchical_values(

@@ -66,6 +66,9 @@ class SubjectStart:
     n_identified: int
     note: str
     subject_se: np.ndarray | None = None  # (n, K) ML standard errors, NaN where unknown
+    subject_cov: np.ndarray | None = None  # (n, K, K) ML covariances of z, NaN where unknown
+    absent: tuple[int, ...] = ()  # parameters that never enter the likelihood (non-centred)
+    prior_var: np.ndarray | None = None  # (K,) their prior's unconstrained variance, else NaN
 
 
 def robust_spread(values: np.ndarray) -> float:
@@ -76,10 +79,15 @@ def robust_spread(values: np.ndarray) -> float:
 
 
 def summarise_subject_fits(
-    z: np.ndarray, se: np.ndarray, identified: np.ndarray, mu: np.ndarray | None = None
+    z: np.ndarray,
+    se: np.ndarray,
+    identified: np.ndarray,
+    mu: np.ndarray | None = None,
+    cov: np.ndarray | None = None,
 ) -> SubjectStart:
     """The start values of the module docstring from per-subject estimates z (n, K), their
-    standard errors se (n, K) and a per-subject identified flag (n,)."""
+    standard errors se (n, K), a per-subject identified flag (n,) and optionally the full ML
+    covariances (n, K, K), kept for identified subjects (estimation/bayes/whiten.py)."""
     z = np.asarray(z, np.float64)
     se = np.asarray(se, np.float64)
     ok = np.asarray(identified, bool) & np.all(np.isfinite(z), axis=1)
@@ -104,7 +112,8 @@ def summarise_subject_fits(
         "population sd from their spread (MAD less estimation noise)"
     )
     se_start = np.where(ok[:, None] & np.isfinite(se), se, np.nan)
-    return SubjectStart(mu, sd, start, ratio, int(ok.sum()), note, se_start)
+    cov_start = None if cov is None else np.where(ok[:, None, None], cov, np.nan)
+    return SubjectStart(mu, sd, start, ratio, int(ok.sum()), note, se_start, cov_start)
 
 
 @dataclass(frozen=True)
@@ -141,10 +150,15 @@ def start_variances(start: SubjectStart) -> StartVariances:
         [np.median(c[np.isfinite(c)]) ** 2 if np.isfinite(c).any() else 0.0 for c in se.T]
     )
     ratio = np.nan_to_num(np.asarray(start.ratio, np.float64), nan=1.0, posinf=1.0)
+    intercept = (sd**2 + noise) / n
+    log_sd = np.minimum((1.0 + ratio**2) ** 2 / (2.0 * n), 1.0)
+    for j in start.absent:  # prior only: the prior's width (log HalfNormal: about 1)
+        intercept[j] = float(start.prior_var[j]) if start.prior_var is not None else 1.0
+        log_sd[j] = 1.0
     return StartVariances(
         subject=subject,
-        intercept=(sd**2 + noise) / n,
-        log_sd=np.minimum((1.0 + ratio**2) ** 2 / (2.0 * n), 1.0),
+        intercept=intercept,
+        log_sd=log_sd,
         correlation=min(1.0 / n, 1.0),
         n=n,
     )
@@ -162,8 +176,8 @@ def choose_parametrisation(
         raise ValueError(f"parametrisation {choice!r}: expected one of {PARAMETRISATIONS}")
     fallback = rows_per_subject >= CENTRED_MIN_ROWS
     return tuple(
-        bool(r < CENTRED_RATIO) if not math.isnan(r) else fallback
-        for r in np.asarray(start.ratio, float)
+        bool(r < CENTRED_RATIO) if not math.isnan(r) else fallback and j not in start.absent
+        for j, r in enumerate(np.asarray(start.ratio, float))
     )
 
 
@@ -184,19 +198,39 @@ def per_subject_estimates(
     """Per-subject ML: unconstrained estimates (n, K), standard errors (n, K) and an
     identified flag (n,), in subject-index order, from ``fit_by_subject`` (the caller's
     PointFits.by_subject, estimation/point_fits.py)."""
-    fits = fit_by_subject(model, data, se="hessian")
+    z, se, _cov, identified = per_subject_fits(model, data, fit_by_subject)
+    return z, se, identified
+
+
+def per_subject_fits(
+    model: Any,
+    data: Any,
+    fit_by_subject: Callable[..., Any],
+    fixed: Mapping[str, float] | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``per_subject_estimates`` plus each subject's ML covariance of z (n, K, K), NaN
+    where the Hessian gave none. ``fixed`` parameters are held at the given natural values
+    in the fits; their columns hold z of that value, se and covariance NaN."""
+    fixed = dict(fixed or {})
+    fits = fit_by_subject(model, data, se="hessian", **({"fixed": fixed} if fixed else {}))
     labels = list(subject_labels(data))
     n, k = len(labels), len(model.param_names)
+    free = [j for j, name in enumerate(model.param_names) if name not in fixed]
     z = np.full((n, k), np.nan)
     se = np.full((n, k), np.nan)
+    cov = np.full((n, k, k), np.nan)
     identified = np.zeros(n, bool)
+    for j, spec in enumerate(model.params):
+        if spec.name in fixed:
+            z[:, j] = float(spec.to_unconstrained(fixed[spec.name]))
     for label, fit in fits.fits:
         s = labels.index(label)
-        z[s] = np.asarray(fit.z, np.float64)[:k]
+        z[s, free] = np.asarray(fit.z, np.float64)[: len(free)]
         if fit.cov_z is not None:
-            se[s] = np.sqrt(np.clip(np.diag(np.asarray(fit.cov_z))[:k], 0.0, None))
+            cov[s][np.ix_(free, free)] = np.asarray(fit.cov_z, np.float64)[: len(free), : len(free)]
+            se[s] = np.sqrt(np.clip(np.diag(cov[s]), 0.0, None))
         identified[s] = fit.converged and not fits.flags.get(label)
-    return z, se, identified
+    return z, se, cov, identified
 
 
 def init_near(
