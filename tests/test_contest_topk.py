@@ -141,6 +141,7 @@ def test_k_equal_one_reduces_to_the_winner_closed_form_also_with_ties():
         ("crra+ch", {"r": 0.3, "precision": 2.0, "tau": 1.5}),
     ],
 )
+@pytest.mark.slow
 def test_solvers_answers_are_certified_and_check_against_enumerated_payoffs(spec, theta):
     answer = counterfactual(
         {"model": spec, "params": theta, "max_target": CAP},

@@ -81,6 +81,7 @@ def simulate_choices(design: pd.DataFrame, thetas: list[dict[str, float]], seed:
     return pd.concat(parts, ignore_index=True)
 
 
+@pytest.mark.slow
 def test_delta_method_agrees_with_a_parametric_bootstrap() -> None:
     model = build_model("crra+logit")
     formula = "r ~ 1 + treatment"

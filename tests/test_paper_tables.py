@@ -118,6 +118,7 @@ def test_unknown_table_ending_is_refused_before_fitting(small_demo, tmp_path, ca
     assert not out.exists()
 
 
+@pytest.mark.slow
 def test_compare_command_puts_the_models_side_by_side(small_demo, tmp_path):
     data = tmp_path / "dives.csv"
     small_demo["stopping"].to_csv(data, index=False)

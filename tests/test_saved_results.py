@@ -96,6 +96,7 @@ def test_saved_fit_simulates_like_the_simulator_at_the_estimates(solo_fit, tmp_p
     pd.testing.assert_frame_equal(saved.simulate(design, seed=3), direct)
 
 
+@pytest.mark.slow
 def test_saved_contest_fit_gives_the_same_counterfactual(small_demo, tmp_path):
     fit = stopwise.fit("crra+qre", small_demo["stopping"], max_target=25, progress=False)
     _, saved = _saved(fit, tmp_path, "contest.json")
