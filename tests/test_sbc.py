@@ -98,6 +98,7 @@ def lottery_replication(seed: int) -> tuple:
     return model, stopwise.load(frame)
 
 
+@pytest.mark.slow  # an ML fit and three compiled programs: about a minute on a loaded machine
 def test_the_start_is_the_products_pooled_start_and_padding_keeps_the_likelihood() -> None:
     model, data = lottery_replication(3)
     prepared = S.prepare_replication(model, data, ML_POINT_FITS)
@@ -148,6 +149,7 @@ def quadrature_moments(prepared: S.Prepared, half_width: float = 7.0, n: int = 1
     return {s: (mean[i], np.sqrt(var[i])) for i, s in enumerate(sites)}
 
 
+@pytest.mark.slow  # compiles the NUTS program: minutes on a loaded machine
 def test_the_compiled_sampler_reproduces_the_quadrature_posterior() -> None:
     model, data = lottery_replication(8)
     prepared = S.prepare_replication(model, data, ML_POINT_FITS)
