@@ -207,8 +207,12 @@ def _in_process(
     """Replications one after another; progress lines and an atomic checkpoint of the
     results every CHECKPOINT replications; None for those not run before ``stop_at``."""
     cpu0 = time.process_time()
-    outcomes: list[dict[str, Any] | None] = [None] * len(keys)
+    outcomes, earlier, earlier_cpu = resumed(spec, study.sampling, len(keys))
+    t0 -= earlier
+    cpu0 -= earlier_cpu
     for r, key in enumerate(keys):
+        if outcomes[r] is not None:
+            continue
         if stop_at is not None and time.time() >= stop_at:
             print(f"{spec}: stopped at the deadline after {r} replications", flush=True)
             break
@@ -236,6 +240,24 @@ def _in_process(
                 },
             )
     return outcomes
+
+
+def resumed(
+    spec: str, sampling: Sampling, n: int
+) -> tuple[list[dict[str, Any] | None], float, float]:
+    """Outcomes saved by an earlier run of the same study (same sampling), to go on from
+    (replication r depends only on (SEED, r), so the results are those of one run), with
+    that run's wall and CPU seconds; nothing when there is no such file."""
+    path = SAVED.format(slug(spec))
+    if not os.path.exists(path):
+        return [None] * n, 0.0, 0.0
+    with open(path, encoding="utf-8") as fh:
+        saved = json.load(fh)
+    if saved.get("sampling") != sampling.__dict__ or saved.get("spec") != spec:
+        return [None] * n, 0.0, 0.0
+    done = saved["outcomes"][:n]
+    print(f"{spec}: resuming after {len(done)} saved replications", flush=True)
+    return done + [None] * (n - len(done)), float(saved["seconds"]), float(saved["cpu"])
 
 
 def slug(spec: str) -> str:
