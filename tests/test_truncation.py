@@ -129,6 +129,7 @@ def test_automatic_cap_is_only_for_planners_without_a_cap(planner_data):
     assert auto_capped(build_model("crra+myopic+logit"), planner_data) is None
 
 
+@pytest.mark.slow
 def test_fit_bayes_uses_the_checked_automatic_cap(planner_data):
     post = bayes.fit_bayes(
         "crra+planner+logit",
@@ -150,6 +151,7 @@ def test_fit_bayes_uses_the_checked_automatic_cap(planner_data):
         )
 
 
+@pytest.mark.slow
 def test_a_failed_automatic_cap_refits_at_the_default_cap(monkeypatch):
     # Risk seekers (r = -0.5) at p_survive 0.9 would draw up to a bank of about 13 (see
     # above), beyond most observed trials: a cap at the data horizon itself (0 extra steps)
