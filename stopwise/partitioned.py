@@ -34,7 +34,6 @@ from stopwise.data_schemas.partitioned import (
 )
 from stopwise.data_schemas.report import ValidationReport
 from stopwise.data_schemas.validate import check_source
-from stopwise.estimation.distributed import run_tasks
 from stopwise.estimation.ml.counts import (
     EXACT_TOLERANCE,
     check_and_count_part,
@@ -44,7 +43,7 @@ from stopwise.estimation.ml.counts import (
     merge_counts,
     reduction_gap,
 )
-from stopwise.validate_parts import validate, validate_parts
+from stopwise.validate_parts import run_over_parts, validate, validate_parts
 
 __all__ = [
     "count_parts",
@@ -71,29 +70,16 @@ def count_parts(
     decision-level ones to counts n_u; the merged report and the parts' counts. ``fast``:
     clean parts go through the Arrow screen (estimation/ml/counts.py
     ``check_and_count_part``); False runs the full validator on every part."""
-    parts = list_parts(source)
-    inputs = [
-        {
-            "parts": parts,
-            "index": k,
-            "max_per_kind": max_per_kind,
-            "count": True,
-            "fast": fast,
-        }
-        for k in range(len(parts))
-    ]
-    run = run_tasks(
+    results = run_over_parts(
         check_and_count_part,
-        inputs,
+        list_parts(source),
+        {"max_per_kind": max_per_kind, "count": True, "fast": fast},
         workers=workers,
         scheduler=scheduler,
         progress=progress,
-        desc="parts",
     )
-    if not run.complete:
-        raise RuntimeError("not every part was checked: " + run.summary_line("parts"))
-    report = merge_checks(str(source), [c for c, _ in run.results], max_per_kind)
-    return report, [n for _, n in run.results if n is not None]
+    report = merge_checks(str(source), [c for c, _ in results], max_per_kind)
+    return report, [n for _, n in results if n is not None]
 
 
 @dataclass

@@ -10,6 +10,7 @@ nor the estimation engines (``stopwise validate`` starts without them).
 from __future__ import annotations
 
 import os
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from stopwise.data_schemas.arrow_screen import check_part_summary
@@ -17,6 +18,26 @@ from stopwise.data_schemas.partitioned import is_partitioned, list_parts, merge_
 from stopwise.data_schemas.report import ValidationReport
 from stopwise.data_schemas.validate import validate as validate_source
 from stopwise.estimation.distributed import run_tasks
+
+
+def run_over_parts(
+    task: Callable[[dict[str, Any]], Any],
+    parts: Sequence[str],
+    extra: Mapping[str, Any],
+    *,
+    workers: int | None,
+    scheduler: str | None,
+    progress: bool,
+) -> list[Any]:
+    """``task`` run once per part (inputs: the part list, the part's index and ``extra``) on the
+    study runner; every part's result in part order, or an error when any part was lost."""
+    inputs = [{"parts": parts, "index": k, **extra} for k in range(len(parts))]
+    run = run_tasks(
+        task, inputs, workers=workers, scheduler=scheduler, progress=progress, desc="parts"
+    )
+    if not run.complete:
+        raise RuntimeError("not every part was checked: " + run.summary_line("parts"))
+    return list(run.results)
 
 
 def validate_parts(
@@ -33,28 +54,16 @@ def validate_parts(
     """Every problem of every part, each with its file and line. ``fast``: clean parts go
     through the Arrow screen; False runs the full validator on every part."""
     parts = list_parts(source)
-    inputs = [
-        {
-            "parts": parts,
-            "index": k,
-            "kind": kind,
-            "allow_censored": allow_censored,
-            "max_per_kind": max_per_kind,
-            "fast": fast,
-        }
-        for k in range(len(parts))
-    ]
-    run = run_tasks(
+    settings = {"kind": kind, "allow_censored": allow_censored, "max_per_kind": max_per_kind}
+    results = run_over_parts(
         check_part_summary,
-        inputs,
+        parts,
+        {**settings, "fast": fast},
         workers=workers,
         scheduler=scheduler,
         progress=progress,
-        desc="parts",
     )
-    if not run.complete:
-        raise RuntimeError("not every part was checked: " + run.summary_line("parts"))
-    return merge_checks(str(source), run.results, max_per_kind)
+    return merge_checks(str(source), results, max_per_kind)
 
 
 def validate(
