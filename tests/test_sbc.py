@@ -106,7 +106,7 @@ def test_the_start_is_the_products_pooled_start_and_padding_keeps_the_likelihood
     pooled = ml_start(model, bundle, None, ML_POINT_FITS)
     setup, args, *_ = cells_for_sampling(model, bundle, False, None, None, "row", True, (), [])
     product = sampler_start(setup, args, pooled.natural, pooled, None, False, None)
-    assert prepared.laplace and not product.adapt_mass and product.dense_mass
+    assert prepared.laplace and product.dense_mass
     for name, value in product.values.items():
         assert prepared.values[name] == pytest.approx(value, abs=1e-12)
         assert prepared.scales[name] == pytest.approx(product.scales[name], abs=1e-12)
