@@ -18,6 +18,7 @@ from stopwise.estimation.bayes.density import jitted_intercept_prior, jitted_tot
 from stopwise.estimation.bayes.fit_steps import cells_for_sampling, sampler_start
 from stopwise.estimation.bayes.pooled_start import ml_start
 from stopwise.estimation.bayes.prepare import as_bundle
+from stopwise.estimation.bayes.sampler import mass_matrix_settings
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.models.spec import build_model
 
@@ -96,6 +97,21 @@ def lottery_replication(seed: int) -> tuple:
     truth = {"r": 0.4, "precision": 1.5}
     frame = model.simulate(truth, design, jax.random.PRNGKey(seed))
     return model, stopwise.load(frame)
+
+
+def test_study_and_product_adapt_the_laplace_mass_matrix_with_the_same_settings() -> None:
+    # issue 16 item 1: the Laplace matrix starts the warm-up and is adapted, in the product
+    # (run_nuts) and in the study's compiled sampler alike (one function gives both)
+    model, data = lottery_replication(3)
+    setup, *_ = cells_for_sampling(model, as_bundle(data), False, None, None, "row", True, (), [])
+    assert S.mass_matrix_settings is mass_matrix_settings
+    block = ("z_r", "z_precision")
+    inverse = {block: np.array([[0.04, 0.01], [0.01, 0.09]])}
+    laplace = mass_matrix_settings(setup, True, inverse)
+    assert laplace["adapt_mass_matrix"] is True and laplace["dense_mass"] == [block]
+    np.testing.assert_array_equal(laplace["inverse_mass_matrix"][block], inverse[block])
+    identity = mass_matrix_settings(setup, False, None)
+    assert identity == {"dense_mass": False, "inverse_mass_matrix": None, "adapt_mass_matrix": True}
 
 
 @pytest.mark.slow  # an ML fit and three compiled programs: about a minute on a loaded machine
