@@ -14,8 +14,9 @@ the steps before sampling are the product's own functions in the product's order
 the sampler is NumPyro's NUTS (``numpyro.infer.hmc.hmc``, the functions its ``NUTS`` class
 calls) with the product's settings: start at the ML estimate moved by U(-1, 1) x ML standard
 error per chain, the dense inverse mass matrix (H + P)^-1 from the ML Hessian H and the
-prior's curvature P kept through the warm-up (only the step size is adapted), target
-acceptance 0.8, maximum tree depth 10.
+prior's curvature P as the warm-up's starting metric, adapted in the warm-up like the step
+size (the product's ``mass_matrix_settings``, estimation/bayes/sampler.py, gives both the
+same keywords), target acceptance 0.8, maximum tree depth 10.
 
 What differs (settings, stated): the chain counts and lengths (the study's ``Sampling``);
 the chains' starting jitter is drawn from the study's key instead of NumPyro's init-strategy
@@ -60,6 +61,7 @@ from stopwise.estimation.bayes.pooled_start import (
     start_sites,
 )
 from stopwise.estimation.bayes.prepare import as_bundle, prepare
+from stopwise.estimation.bayes.sampler import mass_matrix_settings
 from stopwise.estimation.bayes.support import sample_below_cliff
 
 TARGET_ACCEPT = 0.8  # fit_bayes's default
@@ -90,7 +92,7 @@ class Prepared:
 
     @property
     def laplace(self) -> bool:
-        """Started with the Laplace mass matrix kept fixed (else identity, adapted)."""
+        """Warm-up started from the Laplace mass matrix (else the identity); both adapted."""
         return self.inverse_mass is not None
 
 
@@ -152,8 +154,8 @@ def start_for(
     setup: Setup, natural: Any, pooled: PooledStart
 ) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], Any] | None]:
     """``sampler_start``'s pooled branch (estimation/bayes/fit_steps.py): values, jitter
-    scales and the Laplace inverse mass (H + P)^-1, None where the product adapts the mass
-    matrix (no positive definite ML Hessian). Pooled fits without formulas only."""
+    scales and the Laplace inverse mass (H + P)^-1 the warm-up starts from, None where the
+    product starts from the identity (no positive definite ML Hessian). Pooled fits without formulas only."""
     sites = population_sites(setup)
     if any(not s.startswith("z_") for s in sites):
         raise ValueError("only pooled fits without formulas are supported")
@@ -233,7 +235,6 @@ class CompiledSampler:
         draws: int,
     ):
         self.chains, self.warmup, self.draws, self.laplace = chains, warmup, draws, laplace
-        dense = [population_sites(setup)] if laplace else False
         info = initialize_model(
             jax.random.PRNGKey(0),
             partial(numpyro_model, setup),
@@ -246,10 +247,8 @@ class CompiledSampler:
             state = init_kernel(
                 z0,
                 num_warmup=warmup,
-                inverse_mass_matrix=inverse_mass,
                 adapt_step_size=True,
-                adapt_mass_matrix=not laplace,
-                dense_mass=dense,
+                **mass_matrix_settings(setup, laplace, inverse_mass),
                 target_accept_prob=TARGET_ACCEPT,
                 max_tree_depth=MAX_TREE_DEPTH,
                 model_args=(args,),

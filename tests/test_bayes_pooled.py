@@ -115,7 +115,10 @@ def logistic_fit():
 
 def test_pooled_default_converges_and_matches_statsmodels_logit(logistic_fit):
     data, post = logistic_fit
-    assert post.run["init"] == "ML estimate, inverse mass matrix from the ML covariance"
+    assert (
+        post.run["init"]
+        == "ML estimate, inverse mass matrix from the ML covariance (warm-up start, adapted)"
+    )
     d = post.diagnostics
     assert d["min_ess_bulk"] >= ESS_GOAL, post.params
     assert d["max_rhat"] <= RHAT_GOAL and d["divergences"] == 0

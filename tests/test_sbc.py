@@ -18,6 +18,7 @@ from stopwise.estimation.bayes.density import jitted_intercept_prior, jitted_tot
 from stopwise.estimation.bayes.fit_steps import cells_for_sampling, sampler_start
 from stopwise.estimation.bayes.pooled_start import ml_start
 from stopwise.estimation.bayes.prepare import as_bundle
+from stopwise.estimation.bayes.sampler import mass_matrix_settings
 from stopwise.estimation.ml.point_fits import ML_POINT_FITS
 from stopwise.models.spec import build_model
 
@@ -98,6 +99,21 @@ def lottery_replication(seed: int) -> tuple:
     return model, stopwise.load(frame)
 
 
+def test_study_and_product_adapt_the_laplace_mass_matrix_with_the_same_settings() -> None:
+    # issue 16 item 1: the Laplace matrix starts the warm-up and is adapted, in the product
+    # (run_nuts) and in the study's compiled sampler alike (one function gives both)
+    model, data = lottery_replication(3)
+    setup, *_ = cells_for_sampling(model, as_bundle(data), False, None, None, "row", True, (), [])
+    assert S.mass_matrix_settings is mass_matrix_settings
+    block = ("z_r", "z_precision")
+    inverse = {block: np.array([[0.04, 0.01], [0.01, 0.09]])}
+    laplace = mass_matrix_settings(setup, True, inverse)
+    assert laplace["adapt_mass_matrix"] is True and laplace["dense_mass"] == [block]
+    np.testing.assert_array_equal(laplace["inverse_mass_matrix"][block], inverse[block])
+    identity = mass_matrix_settings(setup, False, None)
+    assert identity == {"dense_mass": False, "inverse_mass_matrix": None, "adapt_mass_matrix": True}
+
+
 @pytest.mark.slow  # an ML fit and three compiled programs: about a minute on a loaded machine
 def test_the_start_is_the_products_pooled_start_and_padding_keeps_the_likelihood() -> None:
     model, data = lottery_replication(3)
@@ -106,7 +122,7 @@ def test_the_start_is_the_products_pooled_start_and_padding_keeps_the_likelihood
     pooled = ml_start(model, bundle, None, ML_POINT_FITS)
     setup, args, *_ = cells_for_sampling(model, bundle, False, None, None, "row", True, (), [])
     product = sampler_start(setup, args, pooled.natural, pooled, None, False, None)
-    assert prepared.laplace and not product.adapt_mass and product.dense_mass
+    assert prepared.laplace and product.dense_mass
     for name, value in product.values.items():
         assert prepared.values[name] == pytest.approx(value, abs=1e-12)
         assert prepared.scales[name] == pytest.approx(product.scales[name], abs=1e-12)

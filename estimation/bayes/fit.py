@@ -258,7 +258,9 @@ def pooled_from_ml(hierarchical: bool, init: Any) -> bool:
 def _init_text(init: Any, pooled: PooledStart | None = None) -> str:
     if pooled is not None:
         if pooled.cov is not None:
-            return "ML estimate, inverse mass matrix from the ML covariance"
+            return (
+                "ML estimate, inverse mass matrix from the ML covariance (warm-up start, adapted)"
+            )
         return "ML estimate" if pooled.coef is not None else "model start values"
     if isinstance(init, Mapping):
         return "user values"

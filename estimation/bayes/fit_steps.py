@@ -217,14 +217,13 @@ WHITE_JITTER = 0.1  # start jitter of w: a tenth of a posterior sd per coordinat
 
 @dataclass(frozen=True)
 class SamplerStart:
-    """Initial site values, their jitter scales, the initial inverse mass matrix, whether
-    the population block is dense and whether the warm-up re-estimates the mass matrix."""
+    """Initial site values, their jitter scales, the initial inverse mass matrix (adapted in
+    the warm-up, estimation/bayes/sampler.py) and whether the population block is dense."""
 
     values: Mapping[str, Any]
     scales: Mapping[str, Any] | None
     inverse_mass: Mapping[tuple[str, ...], Any] | None
     dense_mass: bool
-    adapt_mass: bool
     whitening: SubjectWhitening | None = None  # hierarchical: subject sites drawn as w
 
 
@@ -239,7 +238,7 @@ def sampler_start(
     whiten: bool = False,
 ) -> SamplerStart:
     """Pooled ML start: the ML point and the Laplace covariance as a dense inverse mass
-    matrix kept through the warm-up (estimation/bayes/pooled_start.py); hierarchical: the
+    matrix to start the warm-up's adaptation (estimation/bayes/pooled_start.py); hierarchical: the
     subjects' start (estimation/bayes/initial.py), with the subject sites whitened when
     ``whiten`` (estimation/bayes/whiten.py); else the natural start values."""
     values = initial_values(setup, natural)
@@ -264,7 +263,6 @@ def sampler_start(
         scales=scales,
         inverse_mass=inverse_mass,
         dense_mass=bool(dense_mass),
-        adapt_mass=not (pooled is not None and pooled.cov is not None),
     )
     if subjects is not None and whiten:
         return whitened_start(setup, subjects, start)
@@ -345,7 +343,6 @@ def sample_and_check(
         chain_method=chain_method,
         dense_mass=start.dense_mass,
         inverse_mass=start.inverse_mass,
-        adapt_mass=start.adapt_mass,
     )
     # plain numpy: slicing device arrays draw-chunk by draw-chunk is ~100x slower; the
     # conversion also waits for chains that run asynchronously (pmap), so time after it

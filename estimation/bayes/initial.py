@@ -2,8 +2,8 @@
 mass matrix.
 
 Pooled fits (init None or "mle") start at the ML estimate with the Laplace covariance of the
-posterior as a dense inverse mass matrix, kept through the warm-up while the step size adapts
-(estimation/bayes/pooled_start.py). Hierarchical fits start near per-subject ML estimates
+posterior as the dense inverse mass matrix the warm-up starts from and then adapts, like the
+step size (estimation/bayes/pooled_start.py, estimation/bayes/sampler.py). Hierarchical fits start near per-subject ML estimates
 (estimation/bayes/subject_start.py) and use a dense mass matrix for the population sites
 (intercepts, effects, sd_z, L_corr; ``dense_mass``) and a diagonal one for the subject sites;
 the warm-up starts from an inverse mass matrix of normal-approximation posterior variances

@@ -61,6 +61,31 @@ def choose_chain_method(chain_method: str, chains: int) -> str:
     return chain_method
 
 
+def mass_matrix_settings(
+    setup: Setup,
+    dense_mass: bool,
+    inverse_mass: Mapping[tuple[str, ...], Any] | None,
+) -> dict[str, Any]:
+    """NumPyro's mass-matrix keywords (the same names for ``NUTS`` and ``hmc``'s init kernel):
+    one dense block for the population sites when ``dense_mass``, the initial inverse mass
+    M0^-1 by site blocks (identity if None), always adapted in the warm-up.
+
+    NumPyro 0.22's windowed adaptation (infer/hmc_util.py, ``warmup_adapter``): M0^-1 is used
+    in the initial buffer and the first window (iterations 0-99 of a 500-step warm-up, 0-99
+    of 200); at the end of each window it is replaced by the Welford covariance C of that
+    window's draws alone, regularised as (n / (n + 5)) C + 1e-3 (5 / (n + 5)) I; the matrix
+    sampled with is the last middle window's (draws 250-449 of a 500-step warm-up, 100-149 of
+    200). So a pooled fit starts with the Laplace matrix (H + P)^-1 (good where the posterior
+    is near normal) and ends with the covariance its own draws measured (issue 16 item 1:
+    "adapted during warm-up"; a fixed Laplace matrix diverged on small, non-normal posteriors).
+    """
+    return {
+        "dense_mass": [population_sites(setup)] if dense_mass else False,
+        "inverse_mass_matrix": None if inverse_mass is None else dict(inverse_mass),
+        "adapt_mass_matrix": True,
+    }
+
+
 def run_nuts(
     setup: Setup,
     args: CellArgs,
@@ -77,20 +102,17 @@ def run_nuts(
     chain_method: str,
     dense_mass: bool = False,
     inverse_mass: Mapping[tuple[str, ...], Any] | None = None,
-    adapt_mass: bool = True,
 ) -> MCMC:
     """NUTS with ``chains`` chains of ``warmup`` adaptation + ``draws`` kept iterations;
     ``dense_mass``: one dense mass-matrix block for the population sites, diagonal elsewhere;
-    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None);
-    ``adapt_mass``: re-estimate it from the warm-up draws (the step size is always adapted)."""
+    ``inverse_mass``: the initial inverse mass matrix by site blocks (identity if None),
+    re-estimated from the warm-up draws like the step size (``mass_matrix_settings``)."""
     kernel = NUTS(
         partial(numpyro_model, setup),
         target_accept_prob=target_accept,
         max_tree_depth=max_tree_depth,
         init_strategy=init_near(values=init_values, scales=init_scales),
-        dense_mass=[population_sites(setup)] if dense_mass else False,
-        inverse_mass_matrix=None if inverse_mass is None else dict(inverse_mass),
-        adapt_mass_matrix=adapt_mass,
+        **mass_matrix_settings(setup, dense_mass, inverse_mass),
     )
     mcmc = MCMC(
         kernel,
