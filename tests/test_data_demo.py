@@ -6,6 +6,7 @@ import json
 
 import pandas as pd
 
+import stopwise.demo as demo_module
 from stopwise.cli import main
 from stopwise.data_schemas.validate import validate
 from stopwise.demo import demo_data, demo_design
@@ -63,7 +64,11 @@ def test_odd_number_of_subjects_forms_one_group_of_three() -> None:
     assert sorted(sizes.unique()) == [2, 3]
 
 
-def test_demo_command_writes_validates_and_describes(tmp_path, capsys) -> None:
+def test_demo_command_writes_validates_and_describes(tmp_path, capsys, monkeypatch) -> None:
+    # every step of the demo runs; only the Bayesian step draws fewer samples here (the
+    # demo's own 4 x 600 after 300 run in `make demo`)
+    monkeypatch.setattr(demo_module, "HIER_DRAWS", 100)
+    monkeypatch.setattr(demo_module, "HIER_WARMUP", 100)
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out), "--subjects", "12"]) == 0
     captured = capsys.readouterr()

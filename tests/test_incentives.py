@@ -57,7 +57,14 @@ def brute_force(max_bust: float | None, budget: float | None) -> pd.Series:
     return model[ok].sort_values("total_bank", ascending=False).iloc[0]
 
 
-@pytest.mark.parametrize(("max_bust", "budget"), [(None, None), (None, 9.0), (0.56, 12.0)])
+@pytest.mark.parametrize(
+    ("max_bust", "budget"),
+    [  # the case where both limits bind stays in the fast suite
+        pytest.param(None, None, marks=pytest.mark.slow),
+        pytest.param(None, 9.0, marks=pytest.mark.slow),
+        (0.56, 12.0),
+    ],
+)
 def test_search_on_a_small_grid_equals_brute_force_enumeration(max_bust, budget):
     result = design_incentives(
         FIT,
@@ -90,6 +97,7 @@ def test_the_limits_change_the_answer_on_that_grid():
     )
 
 
+@pytest.mark.slow
 def test_refinement_is_never_worse_than_the_grid_and_stays_admissible():
     kwargs = dict(players=(2,), schemes=("keep",), max_bust=0.56, grid_points=4)
     grid = design_incentives(FIT, "bust", (1.0, 10.0), refine_steps=0, **kwargs)

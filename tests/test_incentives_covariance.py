@@ -35,6 +35,7 @@ def total_bank(theta: dict[str, float]) -> float:
     return float(3 * (sigma / sigma.sum()) @ (t * 0.8**t))
 
 
+@pytest.mark.slow
 def test_correlation_changes_the_delta_method_se_and_monte_carlo_agrees():
     fit = {**FIT_BASE, "covariance": {"names": ["r", "precision"], "matrix": covariance(0.9)}}
     result = design_incentives(fit, "efficiency", (5.0, 5.0), **DESIGN)
