@@ -182,6 +182,12 @@ def test_recapped_models_keep_spec_and_options(spec):
     assert recapped.options["max_target"] == 40
 
     def settings(m):
-        return {k: v for k, v in m.options.items() if k not in ("prepare", "max_target")}
+        return {k: v for k, v in m.options.items() if k != "max_target" and not callable(v)}
 
     assert settings(recapped) == settings(model)
+    # the stored-program key names the cap, so the two models never share a compiled program
+    assert recapped.options["program_key"]() != model.options["program_key"]()
+    assert (
+        recapped.options["program_key"]()
+        == truncation.with_planner_cap(model, 40).options["program_key"]()
+    )
