@@ -5,6 +5,9 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-stamp
 DEMO_STAMP := $(VENV)/.demo-stamp
 PYTEST_ARGS ?=
+# the suite runs in parallel pytest processes (pytest-xdist): one per core, at most 4
+PYTEST_WORKERS ?= auto
+PYTEST_PARALLEL := -n $(PYTEST_WORKERS) --maxprocesses 4 --dist worksteal
 
 .PHONY: demo test test-slow bench lint format clean
 
@@ -26,10 +29,10 @@ demo: $(DEMO_STAMP)  ## write the demo data, fit and compare models, write demo_
 	$(BIN)/stopwise demo --out demo_output
 
 test: $(STAMP)  ## the whole fast suite (slow statistical checks: make test-slow)
-	$(BIN)/python -m pytest -m "not slow" $(PYTEST_ARGS)
+	$(BIN)/python -m pytest -m "not slow" $(PYTEST_PARALLEL) $(PYTEST_ARGS)
 
 test-slow: $(STAMP)  ## the slow statistical checks only
-	$(BIN)/python -m pytest -m slow $(PYTEST_ARGS)
+	$(BIN)/python -m pytest -m slow $(PYTEST_PARALLEL) $(PYTEST_ARGS)
 
 bench: $(STAMP)  ## speed against in-process baselines -> benchmarks/RESULTS.md
 	$(BIN)/python -m benchmarks.run

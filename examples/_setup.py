@@ -18,8 +18,10 @@ import numpy as np
 import pandas as pd
 
 # Bayesian chains run in parallel on one CPU device each; JAX reads this before it starts
-# (the stopwise command line does the same for --chains).
-os.environ.setdefault("XLA_FLAGS", "--xla_force_host_platform_device_count=4")
+# (the stopwise command line does the same for --chains); flags already set are kept.
+if "--xla_force_host_platform_device_count" not in os.environ.get("XLA_FLAGS", ""):
+    flags = os.environ.get("XLA_FLAGS", "")
+    os.environ["XLA_FLAGS"] = f"{flags} --xla_force_host_platform_device_count=4".strip()
 
 
 def arguments(description: str) -> argparse.Namespace:

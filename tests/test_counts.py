@@ -31,7 +31,7 @@ def _simulated(spec: str, theta: dict[str, float], seed: int = 5) -> pd.DataFram
     [
         ("crra+myopic+logit", {"r": 0.4, "precision": 3.0}),
         ("crra+planner+logit", {"r": 0.3, "precision": 2.0}),
-        ("pt+tk+target+logit", {}),
+        pytest.param("pt+tk+target+logit", {}, marks=pytest.mark.slow),
     ],
 )
 def test_count_loglik_equals_row_loglik(spec: str, theta: dict[str, float]) -> None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 
 import pandas as pd
+import pytest
 
 import stopwise.demo as demo_module
 from stopwise.cli import main
@@ -64,12 +65,8 @@ def test_odd_number_of_subjects_forms_one_group_of_three() -> None:
     assert sorted(sizes.unique()) == [2, 3]
 
 
-def test_demo_command_writes_validates_and_describes(tmp_path, capsys, monkeypatch) -> None:
-    # every step of the demo runs; only the Bayesian step draws fewer samples here (the
-    # demo's own 4 x 600 after 300 run in `make demo`)
-    monkeypatch.setattr(demo_module, "HIER_DRAWS", 100)
-    monkeypatch.setattr(demo_module, "HIER_WARMUP", 100)
-    out = tmp_path / "demo"
+def check_demo_command(out, capsys) -> None:
+    """Run ``stopwise demo --out OUT --subjects 12`` and check every output and heading."""
     assert main(["demo", "--out", str(out), "--subjects", "12"]) == 0
     captured = capsys.readouterr()
     printed = captured.out
@@ -85,6 +82,8 @@ def test_demo_command_writes_validates_and_describes(tmp_path, capsys, monkeypat
     fit = json.loads((out / "fit_solo.json").read_text())
     assert fit["model"] == "crra+planner+logit" and fit["converged"] is True
     assert [p["name"] for p in fit["params"]] == ["r", "r:treatment", "precision"]
+    compared = json.loads((out / "compare_solo.json").read_text())
+    assert sorted(m["model"] for m in compared["models"]) == sorted(demo_module.SOLO_SPECS)
     assert "hierarchical Bayesian crra+myopic+logit" in printed and "max R-hat" in printed
     hier = json.loads((out / "fit_hier.json").read_text())
     assert hier["method"] == "bayes" and hier["hierarchical"] is True
@@ -94,6 +93,20 @@ def test_demo_command_writes_validates_and_describes(tmp_path, capsys, monkeypat
     assert hier["thinned_draws"]["chains"] == 4 and hier["thinned_draws"]["params"]
     assert "<h2>Bayesian diagnostics</h2>" in page
     assert "Time per step on this machine" in printed
+
+
+def test_demo_command_writes_validates_and_describes(tmp_path, capsys, monkeypatch) -> None:
+    # every step of the demo runs; the solo comparison has two of its three models and the
+    # Bayesian step draws 100 + 100 per chain (the whole demo: the slow test below)
+    monkeypatch.setattr(demo_module, "SOLO_SPECS", demo_module.SOLO_SPECS[:2])
+    monkeypatch.setattr(demo_module, "HIER_DRAWS", 100)
+    monkeypatch.setattr(demo_module, "HIER_WARMUP", 100)
+    check_demo_command(tmp_path / "demo", capsys)
+
+
+@pytest.mark.slow
+def test_whole_demo_command_at_twelve_subjects(tmp_path, capsys) -> None:
+    check_demo_command(tmp_path / "demo", capsys)
 
 
 def test_demo_hides_library_deprecation_banners_but_not_ours() -> None:

@@ -127,7 +127,7 @@ def test_an_uncertified_candidate_is_never_chosen():
     assert chosen["score"] <= honest["score"]
 
 
-@pytest.mark.parametrize("scheme", ["winner", "keep"])
+@pytest.mark.parametrize("scheme", ["winner", pytest.param("keep", marks=pytest.mark.slow)])
 def test_nash_efficiency_of_each_scheme_equals_the_contest_solver(scheme):
     fit = {"model": "linear+qre", "params": {"precision": 1.0}, "max_target": 8}
     result = design_incentives(
@@ -337,16 +337,38 @@ def test_bootstrap_bands_cover_the_true_predictions_in_a_simulation(tmp_path):
     assert low <= 2 * true_row["expected_bank"] <= high
 
 
+DERIVATIVE_THETAS = {
+    "crra+qre": {"r": 0.3, "precision": 2.0},
+    "crra+levelk": {"r": 0.5, "precision": 2.0, "level": 0.5},
+    "crra+ch": {"r": 0.5, "precision": 2.0, "tau": 1.5},
+}
+# the fast suite: every concept, goal and scheme twice or more; the other 12 are slow
+FAST_DERIVATIVE_CASES = {
+    ("crra+qre", "efficiency", False),
+    ("crra+qre", "bust", True),
+    ("crra+levelk", "bust", False),
+    ("crra+levelk", "risk", True),
+    ("crra+ch", "risk", False),
+    ("crra+ch", "efficiency", True),
+}
+
+
 @pytest.mark.parametrize(
-    ("spec", "theta"),
+    ("spec", "theta", "goal", "keep"),
     [
-        ("crra+qre", {"r": 0.3, "precision": 2.0}),
-        ("crra+levelk", {"r": 0.5, "precision": 2.0, "level": 0.5}),
-        ("crra+ch", {"r": 0.5, "precision": 2.0, "tau": 1.5}),
+        pytest.param(
+            spec,
+            theta,
+            goal,
+            keep,
+            id=f"{keep}-{goal}-{spec}",
+            marks=() if (spec, goal, keep) in FAST_DERIVATIVE_CASES else pytest.mark.slow,
+        )
+        for spec, theta in DERIVATIVE_THETAS.items()
+        for goal in ("efficiency", "bust", "risk")
+        for keep in (False, True)
     ],
 )
-@pytest.mark.parametrize("goal", ["efficiency", "bust", "risk"])
-@pytest.mark.parametrize("keep", [False, True])
 def test_prize_derivative_matches_central_differences(spec, theta, goal, keep):
     # the bar: 1e-6 relative; the JAX goal must also equal counterfactual's value
     model = build_model(spec, max_target=8)

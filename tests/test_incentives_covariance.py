@@ -57,6 +57,7 @@ def test_correlation_changes_the_delta_method_se_and_monte_carlo_agrees():
 FIT_BASE = {"model": "crra+qre", "params": THETA, "max_target": 8}
 
 
+@pytest.mark.slow
 def test_a_saved_fits_unconstrained_covariance_equals_its_natural_image():
     # theta = to_natural(z): the natural covariance is D C_z D, D = diag(d theta / d z)
     # (delta method, common practice, no source); D by central differences here

@@ -82,6 +82,7 @@ def test_relabelling_undoes_any_permutation_of_types() -> None:
     )
 
 
+@pytest.mark.slow
 def test_bootstrap_share_se_close_to_the_sandwich_on_a_large_mixture() -> None:
     # Subject-level bootstrap and clustered-sandwich (delta-method) standard errors estimate
     # the same sampling spread in large samples, so they agree up to simulation noise

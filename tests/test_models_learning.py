@@ -159,6 +159,7 @@ def test_simulated_learners_validate_and_draw_more_as_they_learn():
     assert draws.iloc[10:].mean() > draws.iloc[:5].mean()
 
 
+@pytest.mark.slow
 def test_ignoring_learning_biases_risk_aversion_and_the_learning_model_removes_it():
     """Worked example of the bias (issue 20). Learners with a pessimistic prior (mean 0.6,
     strength 10) face a true survival chance of 0.9 with untold odds, r = 0.5; 30 subjects x

@@ -340,11 +340,15 @@ def test_likelihood_vmaps_over_subject_cells(stopping_data):
     model = build_model("crra+target+logit", max_p_survive=0.9)
     cells = split_into_cells(stopping_data, np.asarray(stopping_data.subject))
     theta_cells = {"r": jnp.array([0.2, 0.7]), "precision": jnp.array([1.5, 3.0])}
-    per_cell = np.asarray(loglik_cells(model.loglik_obs, theta_cells, cells))
+    # both sides compiled (as the engines call them): evaluated op by op, each of the
+    # model's primitives would be compiled on its own
+    per_cell_loglik = jax.jit(lambda thetas: loglik_cells(model.loglik_obs, thetas, cells))
+    per_cell = np.asarray(per_cell_loglik(theta_cells))
+    direct_loglik = jax.jit(model.loglik_obs)
     for c in range(cells.n_cells):
         rows = cells.rows[c][cells.rows[c] >= 0]
-        theta = {k: float(v[c]) for k, v in theta_cells.items()}
-        direct = np.asarray(model.loglik_obs(theta, stopping_data))[rows]
+        theta = {k: jnp.asarray(v[c]) for k, v in theta_cells.items()}
+        direct = np.asarray(direct_loglik(theta, stopping_data))[rows]
         np.testing.assert_allclose(per_cell[c][: len(rows)], direct, rtol=1e-12)
 
 

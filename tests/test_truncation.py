@@ -92,6 +92,7 @@ def test_a_generous_cap_passes_and_a_cap_at_the_horizon_is_flagged(planner_data)
     assert "max_target=1" in warning and "raise max_target" in warning
 
 
+@pytest.mark.slow
 def test_fit_bayes_reports_the_check(planner_data):
     cap = planner_data.horizon + 40
     post = bayes.fit_bayes(
