@@ -174,15 +174,18 @@ def run(
     scheduler: str | None = None,
     sampling: Sampling = Sampling(),
     stop_at: float | None = None,
+    saved: str | None = None,
 ) -> dict[str, Any]:
-    """The study of one model (module docstring): in-process with checkpoints, or every
-    replication a task of the runner."""
+    """The study of one model (module docstring): in-process with checkpoints in ``saved``
+    (default benchmarks/sbc_results_<model>.json, resumed from when it holds the same
+    study), or every replication a task of the runner."""
     options, make_design = MODELS[spec]
     study = Study(build_model(spec, **options), make_design(), sampling)
     keys = replication_keys(replications)
     t0, cpu0 = time.perf_counter(), time.process_time()
     if workers == 0 and scheduler is None:
-        outcomes, where = _in_process(spec, study, keys, stop_at, t0), "in-process"
+        path = saved or SAVED.format(slug(spec))
+        outcomes, where = _in_process(spec, study, keys, stop_at, t0, path), "in-process"
     else:
         inputs = [{"rep": r, "key": k} for r, k in enumerate(keys)]
         done = run_tasks(
@@ -202,12 +205,18 @@ def run(
 
 
 def _in_process(
-    spec: str, study: Study, keys: list[np.ndarray], stop_at: float | None, t0: float
+    spec: str,
+    study: Study,
+    keys: list[np.ndarray],
+    stop_at: float | None,
+    t0: float,
+    path: str,
 ) -> list[dict[str, Any] | None]:
     """Replications one after another; progress lines and an atomic checkpoint of the
-    results every CHECKPOINT replications; None for those not run before ``stop_at``."""
+    results in ``path`` every CHECKPOINT replications; None for those not run before
+    ``stop_at``."""
     cpu0 = time.process_time()
-    outcomes, earlier, earlier_cpu = resumed(spec, study.sampling, len(keys))
+    outcomes, earlier, earlier_cpu = resumed(spec, study.sampling, len(keys), path)
     t0 -= earlier
     cpu0 -= earlier_cpu
     for r, key in enumerate(keys):
@@ -229,7 +238,7 @@ def _in_process(
                 flush=True,
             )
             save_atomically(
-                SAVED.format(slug(spec)),
+                path,
                 {
                     "spec": spec,
                     "outcomes": outcomes[: r + 1],
@@ -243,12 +252,11 @@ def _in_process(
 
 
 def resumed(
-    spec: str, sampling: Sampling, n: int
+    spec: str, sampling: Sampling, n: int, path: str
 ) -> tuple[list[dict[str, Any] | None], float, float]:
     """Outcomes saved by an earlier run of the same study (same sampling), to go on from
     (replication r depends only on (SEED, r), so the results are those of one run), with
     that run's wall and CPU seconds; nothing when there is no such file."""
-    path = SAVED.format(slug(spec))
     if not os.path.exists(path):
         return [None] * n, 0.0, 0.0
     with open(path, encoding="utf-8") as fh:

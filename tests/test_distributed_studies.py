@@ -11,6 +11,7 @@ The check is serial against distributed on the same inputs: equal to 1e-12.
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import sys
@@ -171,9 +172,14 @@ def test_sbc_keys_follow_the_sequential_chain() -> None:
 
 
 @pytest.mark.slow
-def test_sbc_replications_on_a_cluster_equal_the_serial_run(address: str, deadline: None) -> None:
+def test_sbc_replications_on_a_cluster_equal_the_serial_run(
+    address: str, deadline: None, tmp_path
+) -> None:
+    # the in-process run checkpoints into tmp_path, never over the study's saved results
     tiny = study_sbc.Sampling(chains=1, warmup=30, draws=40, thin=2, kept=19)
-    serial = study_sbc.run("crra+logit", 2, workers=0, sampling=tiny)
+    saved = tmp_path / "sbc.json"
+    serial = study_sbc.run("crra+logit", 2, workers=0, sampling=tiny, saved=str(saved))
+    assert json.loads(saved.read_text())["sampling"] == tiny.__dict__
     remote = study_sbc.run("crra+logit", 2, scheduler=address, sampling=tiny)
     assert serial["failed"] == remote["failed"] == []
     assert serial["where"] == "in-process" and address in remote["where"]
