@@ -17,11 +17,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-# Bayesian chains run in parallel on one CPU device each; JAX reads this before it starts
-# (the stopwise command line does the same for --chains); flags already set are kept.
-if "--xla_force_host_platform_device_count" not in os.environ.get("XLA_FLAGS", ""):
-    flags = os.environ.get("XLA_FLAGS", "")
-    os.environ["XLA_FLAGS"] = f"{flags} --xla_force_host_platform_device_count=4".strip()
+from stopwise.cli import host_device_flags
+
+# Bayesian chains run in parallel on one CPU device each; JAX reads this before it starts.
+# The command line's own rule for --chains (flags already set are kept; stopwise.cli does
+# not import JAX).
+_device_flags = host_device_flags(os.environ.get("XLA_FLAGS"), chains=4)
+if _device_flags is not None:
+    os.environ["XLA_FLAGS"] = _device_flags
 
 
 def arguments(description: str) -> argparse.Namespace:
