@@ -56,6 +56,7 @@ MAX_ENTRIES = 256  # beyond this, the least recently used entries are deleted
 OFF_VALUES = ("", "0", "off", "none", "false", "no")
 COUNTS = {"loaded": 0, "built": 0, "rejected": 0, "direct": 0}
 _IN_PROCESS: dict[str, Callable[..., Any]] = {}
+_KEYS: dict[tuple[Any, ...], str] = {}  # call signature -> program_key text
 
 
 def store_folder(environ: Any = None) -> Path | None:
@@ -109,6 +110,15 @@ def leaf_spec(leaf: Any) -> jax.ShapeDtypeStruct:
     """Shape and dtype of one argument leaf (numpy, JAX or a Python scalar), no transfer."""
     dtype = leaf.dtype if hasattr(leaf, "dtype") else np.asarray(leaf).dtype
     return jax.ShapeDtypeStruct(np.shape(leaf), dtype)
+
+
+def leaf_signature(leaf: Any) -> tuple[tuple[int, ...], Any]:
+    """(shape, dtype) of one argument leaf, hashable: what its program depends on."""
+    return np.shape(leaf), leaf.dtype if hasattr(leaf, "dtype") else np.asarray(leaf).dtype
+
+
+def leaf_specs(leaves: list[Any]) -> list[jax.ShapeDtypeStruct]:
+    return [leaf_spec(leaf) for leaf in leaves]
 
 
 def program_key(name: str, rows_key: str, treedef: Any, specs: list[Any]) -> str:
@@ -241,10 +251,13 @@ def call_stored(name: str, program: Callable[..., Any], rows: Any, *args: Any) -
     if rows_key is None or any(isinstance(leaf, jax.core.Tracer) for leaf in leaves):
         COUNTS["direct"] += 1
         return program(rows, *args)
-    specs = [leaf_spec(leaf) for leaf in leaves]
-    key = program_key(name, rows_key, treedef, specs)
+    signature = (name, rows_key, treedef, tuple(leaf_signature(leaf) for leaf in leaves))
+    key = _KEYS.get(signature)
+    if key is None:  # the key's JSON (and its code fingerprint) once per signature
+        key = _KEYS[signature] = program_key(name, rows_key, treedef, leaf_specs(leaves))
     compiled = _IN_PROCESS.get(key)
     if compiled is None:
+        specs = leaf_specs(leaves)
         folder = ready_folder()
         if folder is None:
             COUNTS["direct"] += 1

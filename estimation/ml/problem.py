@@ -438,7 +438,8 @@ class Problem:
         jac = self.row_jacobian(z)
         jac = np.where(self.weights[:, None] > 0, jac * self.weights[:, None], 0.0)
         out = np.zeros((self.n_clusters, jac.shape[1]))
-        np.add.at(out, self.cluster, jac)
+        for j in range(jac.shape[1]):  # bincount adds in row order, as np.add.at did
+            out[:, j] = np.bincount(self.cluster, weights=jac[:, j], minlength=self.n_clusters)
         return out
 
     def cluster_weights(self, counts: np.ndarray) -> np.ndarray:

@@ -106,9 +106,10 @@ def stop_step_table(model: Any, theta: Mapping[str, Any], data: StoppingData) ->
 def _make_predictor(
     model: Any, layout: Layout, fit: Fit, fitted: Any, extra: Mapping[str, Any]
 ) -> Any:
-    z = jax.device_put(np.asarray(fit.z, dtype=np.float64))
+    z_fitted = np.array(fit.z, dtype=np.float64)  # a copy, as device_put made
 
     def predict(data: Any = None) -> dict[str, pd.DataFrame]:
+        z = jax.device_put(z_fitted)  # at the call: a fit that is never asked pays nothing
         data = fitted if data is None else data
         if "cells" in extra:
             if data is not fitted:  # Fit.predict routes new rows to estimation/ml/prediction.py

@@ -23,6 +23,9 @@ and hence every fit, stay as they were. Larger dimensions fall back to scipy its
 
 from __future__ import annotations
 
+from functools import lru_cache
+from typing import Any
+
 import numpy as np
 
 BITS = 30
@@ -76,7 +79,19 @@ def scrambled_directions(v: np.ndarray, lower: np.ndarray) -> np.ndarray:
 
 
 def scrambled_sobol(d: int, n: int, seed: int) -> np.ndarray:
-    """The first n scrambled Sobol points in [0, 1)^d, (n, d) (module docstring)."""
+    """The first n scrambled Sobol points in [0, 1)^d, (n, d) (module docstring); a fixed
+    integer seed gives the same points, so they are computed once per (d, n, seed)."""
+    if isinstance(seed, (int, np.integer)) and not isinstance(seed, bool):
+        return _sobol_once(int(d), int(n), int(seed)).copy()
+    return _sobol_points(d, n, seed)
+
+
+@lru_cache(maxsize=64)
+def _sobol_once(d: int, n: int, seed: int) -> np.ndarray:
+    return _sobol_points(d, n, seed)
+
+
+def _sobol_points(d: int, n: int, seed: Any) -> np.ndarray:
     if d > MAX_DIM:
         from scipy.stats import qmc  # many parameters: scipy's table of 21,201 dimensions
 
