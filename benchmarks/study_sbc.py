@@ -401,7 +401,8 @@ def section(r: dict[str, Any]) -> str:
         "",
         f"Replications: {r['replications']} ranked of {r['planned']} planned, "
         f"{len(r['failed'])} failed{' (indices ' + ', '.join(map(str, r['failed'][:20])) + ')' if r['failed'] else ''}, "
-        f"{r['not_run']} not run (the run was stopped at its deadline). Divergent transitions after warm-up: "
+        f"{r['not_run']} not run{' (the run was stopped at its deadline)' if r['not_run'] else ''}. "
+        "Divergent transitions after warm-up: "
         f"{r['divergent']} in all. Started from the identity, not the Laplace mass matrix: "
         f"{r['adapted']}. Thinning check, smallest bulk ESS over the parameters of the "
         f"{s['chains'] * s['draws']} unthinned draws: median {r['ess_median']:.0f}, 5% quantile "
