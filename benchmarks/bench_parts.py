@@ -215,7 +215,7 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
         f"Reports and estimates identical before and after: {same}. Validation "
         f"{'clean' if report.ok else 'FAILED'}; the fit "
         f"{'converged' if fit.converged else 'did NOT converge'} (max |gradient| "
-        f"{fit.optimizer['grad_norm']:.2g}), {{n: round(float(v), 4) for n, v in zip(fit.table.names, fit.table.estimate)}}.",
+        f"{fit.optimizer['grad_norm']:.2g}), {estimates_text(fit)}.",
         f"Peak memory: Python heap of validate + fit in this process (tracemalloc) "
         f"{heap:.0f} MiB; peak resident size of the command processes: validate "
         f"{cli_v.peak_mib:.0f} MiB, fit {cli_f.peak_mib:.0f} MiB (goal < 2 GiB: "
@@ -227,6 +227,11 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
         f"on {os.cpu_count()} cores.",
     ]
     return [*table, "", *notes]
+
+
+def estimates_text(fit: Any) -> str:
+    """The fit's estimates as name = value, rounded to 4 decimals."""
+    return ", ".join(f"{n} = {float(v):.4f}" for n, v in zip(fit.table.names, fit.table.estimate))
 
 
 def add(a: Timing, b: Timing) -> Timing:
