@@ -8,7 +8,8 @@ never depends on where or in which order it runs: serial and distributed runs ag
 Where the tasks run (``plan_for``), first match wins:
 
 1. ``scheduler="tcp://host:port"``: an existing Dask cluster;
-2. ``workers=0``: in-process, one task after another;
+2. ``workers=0``: in-process, one task after another (``run_in_threads``: in this process on
+   several threads, for callers whose tasks release the GIL);
 3. ``workers=N >= 1``: a LocalCluster of N worker processes (one thread each) that listens on
    127.0.0.1 only and is closed when the study ends; each worker process runs XLA, OpenMP,
    MKL and OpenBLAS single-threaded (``worker_environment``), so N workers use N cores and
@@ -32,6 +33,7 @@ import os
 import sys
 import traceback
 from collections.abc import Callable, Iterator, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import Any
@@ -165,6 +167,34 @@ def _error_text(exc: BaseException) -> str:
     return "".join(traceback.format_exception_only(type(exc), exc)).strip()
 
 
+def attempt_task(
+    func: Callable[..., Any], inputs: Mapping[str, Any], shared: Mapping[str, Any]
+) -> tuple[bool, Any]:
+    """(True, func(**inputs, **shared)), tried once more after an exception; (False, the
+    error's text) when the retry fails too."""
+    for attempt in range(RETRIES + 1):
+        try:
+            return True, func(**inputs, **shared)
+        except Exception as exc:  # a task's failure is reported, not fatal to the study
+            if attempt == RETRIES:
+                return False, _error_text(exc)
+    raise AssertionError("unreachable")
+
+
+def collect(
+    outcomes: Iterator[tuple[bool, Any]], inputs: Sequence[Mapping[str, Any]], where: str
+) -> StudyRun:
+    """A StudyRun from the tasks' outcomes, in task order."""
+    results: list[Any] = [None] * len(inputs)
+    failures = []
+    for i, (ok, value) in enumerate(outcomes):
+        if ok:
+            results[i] = value
+        else:
+            failures.append(TaskFailure(i, dict(inputs[i]), value))
+    return StudyRun(results, failures, where)
+
+
 def _run_in_process(
     func: Callable[..., Any],
     inputs: Sequence[Mapping[str, Any]],
@@ -172,17 +202,32 @@ def _run_in_process(
     progress: bool,
     desc: str,
 ) -> StudyRun:
-    results: list[Any] = [None] * len(inputs)
-    failures = []
-    for i in tqdm(range(len(inputs)), desc=desc, file=sys.stderr, disable=not progress):
-        for attempt in range(RETRIES + 1):
-            try:
-                results[i] = func(**inputs[i], **shared)
-                break
-            except Exception as exc:  # a task's failure is reported, not fatal to the study
-                if attempt == RETRIES:
-                    failures.append(TaskFailure(i, dict(inputs[i]), _error_text(exc)))
-    return StudyRun(results, failures, "in-process")
+    outcomes = (
+        attempt_task(func, inputs[i], shared)
+        for i in tqdm(range(len(inputs)), desc=desc, file=sys.stderr, disable=not progress)
+    )
+    return collect(outcomes, inputs, "in-process")
+
+
+def run_in_threads(
+    func: Callable[..., Any],
+    inputs: Sequence[Mapping[str, Any]],
+    threads: int,
+    progress: bool = False,
+    desc: str = "tasks",
+) -> StudyRun:
+    """The tasks in this process on ``threads`` threads (for tasks that spend their time in
+    code that releases the GIL: reading and checking Parquet parts with pyarrow and numpy).
+    Same retry and failure rules as in-process; results in task order, so they equal the
+    one-thread run's."""
+    if threads <= 1 or len(inputs) <= 1:
+        return _run_in_process(func, inputs, {}, progress, desc)
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        running = pool.map(lambda task: attempt_task(func, task, {}), inputs)
+        outcomes = tqdm(
+            running, total=len(inputs), desc=desc, file=sys.stderr, disable=not progress
+        )
+        return collect(iter(outcomes), inputs, f"in-process, {threads} threads")
 
 
 def batch_bounds(n_tasks: int, n_workers: int) -> list[tuple[int, int]]:
@@ -199,16 +244,7 @@ def run_batch(
 ) -> list[tuple[bool, Any]]:
     """Run func(**inputs, **shared) for each task of a batch, each tried once more after an
     exception: (True, result) or (False, the error's text) per task, in order."""
-    out: list[tuple[bool, Any]] = []
-    for inputs in batch:
-        for attempt in range(RETRIES + 1):
-            try:
-                out.append((True, func(**inputs, **shared)))
-                break
-            except Exception as exc:  # a task's failure is reported, not fatal to the batch
-                if attempt == RETRIES:
-                    out.append((False, _error_text(exc)))
-    return out
+    return [attempt_task(func, inputs, shared) for inputs in batch]
 
 
 def _run_on_client(
