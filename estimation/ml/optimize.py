@@ -59,21 +59,25 @@ def minimize_one(
     z_start: np.ndarray,
     max_iter: int = 200,
 ) -> OptimumRecord:
-    """scipy trust-exact with exact gradient and Hessian; never raises on a bad start."""
+    """scipy trust-exact with exact gradient and Hessian; never raises on a bad start, and
+    does not print numpy's overflow notes from scipy's arithmetic at such a start."""
 
     def safe_fun(z: np.ndarray) -> float:
         v = fun(np.clip(z, -Z_LIMIT, Z_LIMIT))
         return v if np.isfinite(v) else 1e300
 
     try:
-        res = sopt.minimize(
-            safe_fun,
-            z_start,
-            jac=grad,
-            hess=hess,
-            method="trust-exact",
-            options={"maxiter": max_iter, "gtol": 1e-8},
-        )
+        # a start far out (a gradient near 1e100) overflows inside scipy's trust-region
+        # arithmetic: the run is judged by its own gradient below, numpy's notes are not ours
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            res = sopt.minimize(
+                safe_fun,
+                z_start,
+                jac=grad,
+                hess=hess,
+                method="trust-exact",
+                options={"maxiter": max_iter, "gtol": 1e-8},
+            )
         z = np.asarray(res.x, dtype=np.float64)
         message, nit = str(res.message), int(res.nit)
     except (ValueError, np.linalg.LinAlgError, FloatingPointError) as exc:
