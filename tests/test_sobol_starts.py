@@ -54,3 +54,17 @@ def test_start_design_keeps_its_starts_and_does_not_load_scipy_stats() -> None:
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_points_kept_per_seed_are_copies_and_other_seeds_differ() -> None:
+    """The points of an integer seed are computed once and handed out as copies: changing a
+    returned array does not change the next call's points (compared with scipy's, reference
+    library); a generator as the seed still gives its own points."""
+    first = scrambled_sobol(3, 8, 11)
+    first[:] = -1.0
+    expected = qmc.Sobol(d=3, scramble=True, seed=11).random(8)
+    assert np.array_equal(scrambled_sobol(3, 8, 11), expected)
+    assert np.array_equal(scrambled_sobol(3, 8, np.int64(11)), expected)
+    assert not np.array_equal(scrambled_sobol(3, 8, 12), expected)
+    fresh = [scrambled_sobol(3, 8, np.random.default_rng(5)) for _ in range(2)]
+    assert np.array_equal(fresh[0], fresh[1])  # the same generator state gives the same points
