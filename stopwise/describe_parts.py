@@ -35,7 +35,7 @@ from stopwise.data_schemas.partitioned import (
 )
 from stopwise.describe import Description, describe_trials, trial_summary
 from stopwise.describe import describe as describe_one
-from stopwise.estimation.distributed import run_tasks
+from stopwise.validate_parts import run_over_parts
 
 
 def summarise_part(
@@ -69,23 +69,22 @@ def describe_parts(
             raise StopwiseInputError(
                 f"{path}: no column {by!r} to split by; the part has {', '.join(names)}"
             )
-    inputs = [
-        {"parts": parts, "index": k, "allow_censored": allow_censored, "by": by}
-        for k in range(len(parts))
-    ]
-    run = run_tasks(
-        summarise_part, inputs, workers=workers, scheduler=scheduler, progress=False, desc="parts"
+    results = run_over_parts(  # in-process: the parts on threads, as validate and fit
+        summarise_part,
+        parts,
+        {"allow_censored": allow_censored, "by": by},
+        workers=workers,
+        scheduler=scheduler,
+        progress=False,
     )
-    if not run.complete:
-        raise RuntimeError("not every part was described: " + run.summary_line("parts"))
-    refuse_invalid(merge_checks(str(source), [check for check, _, _ in run.results], 20))
-    refusals = [why for _, _, why in run.results if why]
+    refuse_invalid(merge_checks(str(source), [check for check, _, _ in results], 20))
+    refusals = [why for _, _, why in results if why]
     if refusals:
         raise StopwiseInputError(refusals[0])
-    if {check.data_format for check, _, _ in run.results} - {"decisions", None}:
+    if {check.data_format for check, _, _ in results} - {"decisions", None}:
         frame = load_parts(source, allow_censored=allow_censored)
         return describe_one(load(frame, allow_censored=allow_censored), by=by)
-    trials = pd.concat([t for _, t, _ in run.results if t is not None], ignore_index=True)
+    trials = pd.concat([t for _, t, _ in results if t is not None], ignore_index=True)
     present = set().union(*map(set, columns))
     return describe_trials(trials, str(source), present, by)
 

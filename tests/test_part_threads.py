@@ -15,6 +15,7 @@ import pytest
 from test_arrow_screen import _clean_frame, _set, _write
 
 import stopwise.validate_parts as VP
+from stopwise.describe_parts import describe_parts
 from stopwise.estimation.distributed import run_in_threads
 from stopwise.partitioned import count_parts, validate_parts
 
@@ -62,6 +63,19 @@ def test_threaded_counts_equal_the_one_thread_counts(tmp_path, monkeypatch) -> N
     assert len(tables) == len(tables_1) == 5
     for got, want in zip(tables, tables_1):
         pd.testing.assert_frame_equal(got, want)
+
+
+def test_threaded_description_equals_the_one_thread_description(tmp_path, monkeypatch) -> None:
+    frame = _clean_frame(n_subjects=10, n_trials=10)
+    folder = tmp_path / "clean"
+    _write(frame, folder, cuts=(0.2, 0.4, 0.6, 0.8))
+    threaded = describe_parts(folder, workers=0)
+    _one_thread(monkeypatch)
+    single = describe_parts(folder, workers=0)
+    assert str(threaded) == str(single) and str(single)
+    for name, table in vars(single).items():
+        if isinstance(table, pd.DataFrame):
+            pd.testing.assert_frame_equal(getattr(threaded, name), table)
 
 
 def test_threads_keep_task_order_retry_once_and_report_failures() -> None:
