@@ -8,8 +8,8 @@ never depends on where or in which order it runs: serial and distributed runs ag
 Where the tasks run (``plan_for``), first match wins:
 
 1. ``scheduler="tcp://host:port"``: an existing Dask cluster;
-2. ``workers=0``: in-process, one task after another (``run_in_threads``: in this process on
-   several threads, for callers whose tasks release the GIL);
+2. ``workers=0``: in-process, one task after another (or on ``threads`` threads, for
+   callers whose tasks release the GIL: ``run_in_threads``);
 3. ``workers=N >= 1``: a LocalCluster of N worker processes (one thread each) that listens on
    127.0.0.1 only and is closed when the study ends; each worker process runs XLA, OpenMP,
    MKL and OpenBLAS single-threaded (``worker_environment``), so N workers use N cores and
@@ -147,16 +147,19 @@ def run_tasks(
     desc: str = "tasks",
     timeout_s: float | None = None,
     shared: Mapping[str, Any] | None = None,
+    threads: int = 1,
 ) -> StudyRun:
     """Run ``func(**inputs[i], **shared)`` for every i where ``plan_for`` says; results in
     task order. ``func`` is sent to the workers (module-level functions travel by
     reference). ``shared`` values (a model, a design) are sent once to every worker and
     reused there by all its tasks, so compiled programs keyed on them are reused too.
-    ``timeout_s`` bounds the wait for a cluster's results (TimeoutError beyond it)."""
+    ``timeout_s`` bounds the wait for a cluster's results (TimeoutError beyond it).
+    ``threads``: when the plan is in-process, run the tasks on that many threads
+    (``run_in_threads``; for tasks that release the GIL)."""
     plan = plan_for(workers, scheduler, len(inputs))
     shared = dict(shared or {})
     if plan.kind == "in-process" or not inputs:
-        return _run_in_process(func, inputs, shared, progress, desc)
+        return run_in_threads(func, inputs, threads, progress, desc, shared)
     with dask_client(plan) as client:
         return _run_on_client(
             client, func, inputs, shared, progress, desc, plan.describe(), timeout_s
@@ -215,15 +218,17 @@ def run_in_threads(
     threads: int,
     progress: bool = False,
     desc: str = "tasks",
+    shared: Mapping[str, Any] | None = None,
 ) -> StudyRun:
     """The tasks in this process on ``threads`` threads (for tasks that spend their time in
-    code that releases the GIL: reading and checking Parquet parts with pyarrow and numpy).
-    Same retry and failure rules as in-process; results in task order, so they equal the
-    one-thread run's."""
+    code that releases the GIL: reading and checking Parquet parts with pyarrow and numpy);
+    one thread: one task after another in the caller's thread. Same retry and failure rules
+    either way; results in task order, so they equal the one-thread run's."""
+    shared = dict(shared or {})
     if threads <= 1 or len(inputs) <= 1:
-        return _run_in_process(func, inputs, {}, progress, desc)
+        return _run_in_process(func, inputs, shared, progress, desc)
     with ThreadPoolExecutor(max_workers=threads) as pool:
-        running = pool.map(lambda task: attempt_task(func, task, {}), inputs)
+        running = pool.map(lambda task: attempt_task(func, task, shared), inputs)
         outcomes = tqdm(
             running, total=len(inputs), desc=desc, file=sys.stderr, disable=not progress
         )

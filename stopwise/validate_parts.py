@@ -17,7 +17,7 @@ from stopwise.data_schemas.arrow_screen import check_part_summary
 from stopwise.data_schemas.partitioned import is_partitioned, list_parts, merge_checks
 from stopwise.data_schemas.report import ValidationReport
 from stopwise.data_schemas.validate import validate as validate_source
-from stopwise.estimation.distributed import run_in_threads, run_tasks
+from stopwise.estimation.distributed import run_tasks
 
 MAX_PART_THREADS = 4
 
@@ -39,17 +39,20 @@ def run_over_parts(
     progress: bool,
 ) -> list[Any]:
     """``task`` run once per part (inputs: the part list, the part's index and ``extra``) on the
-    study runner (``workers=0``: in this process, on ``part_threads`` threads; pyarrow's reads
+    study runner (in this process on ``part_threads`` threads; pyarrow's reads
     and numpy's whole-column checks release the GIL, so two threads check a folder about 1.5x
     faster on 2 cores); every part's result in part order, or an error when any part was
     lost."""
     inputs = [{"parts": parts, "index": k, **extra} for k in range(len(parts))]
-    if workers == 0 and not scheduler:  # in this process: parts on threads (part_threads)
-        run = run_in_threads(task, inputs, part_threads(len(parts)), progress, "parts")
-    else:
-        run = run_tasks(
-            task, inputs, workers=workers, scheduler=scheduler, progress=progress, desc="parts"
-        )
+    run = run_tasks(
+        task,
+        inputs,
+        workers=workers,
+        scheduler=scheduler,
+        progress=progress,
+        desc="parts",
+        threads=part_threads(len(parts)),
+    )
     if not run.complete:
         raise RuntimeError("not every part was checked: " + run.summary_line("parts"))
     return list(run.results)

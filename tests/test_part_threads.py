@@ -16,7 +16,7 @@ from test_arrow_screen import _clean_frame, _set, _write
 
 import stopwise.validate_parts as VP
 from stopwise.describe_parts import describe_parts
-from stopwise.estimation.distributed import run_in_threads
+from stopwise.estimation.distributed import run_in_threads, run_tasks
 from stopwise.partitioned import count_parts, validate_parts
 
 
@@ -99,6 +99,22 @@ def test_threads_keep_task_order_retry_once_and_report_failures() -> None:
     assert [(f.index, f.inputs) for f in run.failures] == [(5, {"index": 5})]
     assert "task 5 always fails" in run.failures[0].error
     assert run.n_done == 7 and "3 threads" in run.where
+
+
+def _offset_square(index: int, offset: int) -> int:
+    return offset + index * index
+
+
+def test_run_tasks_in_process_on_threads_passes_shared_and_keeps_order() -> None:
+    inputs = [{"index": i} for i in range(6)]
+    runs = [
+        run_tasks(
+            _offset_square, inputs, workers=0, progress=False, shared={"offset": 10}, threads=t
+        )
+        for t in (1, 3)
+    ]
+    assert runs[0].results == runs[1].results == [10, 11, 14, 19, 26, 35]
+    assert runs[0].where == "in-process" and "3 threads" in runs[1].where
 
 
 @pytest.mark.parametrize("threads", [0, 1])
