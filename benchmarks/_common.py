@@ -41,6 +41,13 @@ def machine() -> str:
     return f"{cpu}, {os.cpu_count()} cores{mem}, Python {platform.python_version()}"
 
 
+def timed(fn: Callable[..., Any], *args: Any) -> tuple[Any, float]:
+    """(fn(*args), wall-clock seconds of that one call)."""
+    t0 = time.perf_counter()
+    value = fn(*args)
+    return value, time.perf_counter() - t0
+
+
 def best_time(fn: Callable[[], Any], repeat: int = 5, number: int = 1) -> float:
     """Best wall-clock seconds per call over ``repeat`` rounds of ``number`` calls."""
     best = float("inf")

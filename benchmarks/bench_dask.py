@@ -25,7 +25,7 @@ import numpy as np
 import pyarrow.parquet as pq
 
 import stopwise
-from benchmarks._common import machine, peak_memory_mib
+from benchmarks._common import machine, peak_memory_mib, timed
 from benchmarks.bench_load import decision_rows
 from stopwise.data_schemas.partitioned import list_parts
 from stopwise.estimation.distributed import Plan, dask_client, run_tasks
@@ -69,12 +69,6 @@ def fit_folder(folder: Path) -> object:
 
 def validate_and_fit(folder: Path) -> tuple[object, object]:
     return validate(folder), fit_folder(folder)
-
-
-def timed(fn, *args):
-    t0 = time.perf_counter()
-    value = fn(*args)
-    return value, time.perf_counter() - t0
 
 
 def section_a() -> str:

@@ -9,14 +9,12 @@ Goals (issue 18): expected information within 10x of one loglik + gradient; the
 
 from __future__ import annotations
 
-import time
-
 import jax
 import jax.numpy as jnp
 import numpy as np
 
 import stopwise
-from benchmarks._common import best_time
+from benchmarks._common import best_time, timed
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import design_search as Q
 from stopwise.estimation import design_study as S
@@ -26,13 +24,6 @@ from stopwise.estimation.ml.recovery import stopping_design
 THETA = {"r": 0.4, "precision": 2.0}
 PLAN = S.Plan(p_survive=(0.6, 0.75, 0.9), trials=60, subjects=100)
 RECOVERIES, TIMED_REFITS = 200, 4
-
-
-def timed(fn):  # type: ignore[no-untyped-def]
-    """(value, wall-clock seconds) of one call."""
-    t0 = time.perf_counter()
-    value = fn()
-    return value, time.perf_counter() - t0
 
 
 def goal_sentence(vs_warm: float, vs_cold: float, search_s: float) -> str:

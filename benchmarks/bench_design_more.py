@@ -5,15 +5,13 @@ of the same model on simulated data of the same design, measured in this run."""
 
 from __future__ import annotations
 
-import time
-from collections.abc import Callable
 from typing import Any
 
 import jax
 import jax.numpy as jnp
 
 import stopwise
-from benchmarks._common import best_time
+from benchmarks._common import best_time, timed
 from stopwise.commands.simulate import contest_design
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.estimation import design_allocation as A
@@ -29,13 +27,6 @@ CONTEST_PLAN = S.Plan(
     p_survive=(0.6, 0.75), trials=60, subjects=100, contest=ContestScheme(2, 5.0, True)
 )
 CONTEST_CAP = 20
-
-
-def timed(fn: Callable[[], Any]) -> tuple[Any, float]:
-    """(value, wall-clock seconds) of one call."""
-    t0 = time.perf_counter()
-    value = fn()
-    return value, time.perf_counter() - t0
 
 
 def loglik_gradient_seconds(model: Any, theta: dict[str, float], frame: Any) -> float:

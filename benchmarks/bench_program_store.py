@@ -25,13 +25,12 @@ import subprocess
 import sys
 import tempfile
 import time
-from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 
 import stopwise
-from benchmarks._common import machine, write_section
+from benchmarks._common import machine, timed, write_section
 from benchmarks.fit_ratios import simulated_frame, stopwise_command
 from stopwise.estimation.distributed import Plan, dask_client
 
@@ -101,12 +100,6 @@ def recovery(workers: int | None, scheduler: str | None = None):
     return stopwise.recover(
         MODEL, TRUTH, n_reps=REPS, progress=False, workers=workers, scheduler=scheduler, **STUDY
     )
-
-
-def timed(run: Callable[[], object]) -> tuple[object, float]:
-    t0 = time.perf_counter()
-    out = run()
-    return out, time.perf_counter() - t0
 
 
 def on_cluster(store: str, rounds: int = 0) -> tuple[object, float, float, float, list]:
