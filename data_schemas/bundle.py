@@ -99,10 +99,11 @@ def _condition_fields(table: np.ndarray, sequential: bool) -> dict[str, np.ndarr
 def _seen_columns(
     config: np.ndarray, subject: np.ndarray, trial: np.ndarray, draw: np.ndarray, bust: np.ndarray
 ) -> np.ndarray:
-    """(n_obs, 2): per row, its trial's seen_success and seen_fail (data_schemas.streams)."""
+    """(n_obs, 2): per row, its trial's seen_success and seen_fail (data_schemas.streams);
+    zeros when every trial's odds are told (``seen_before`` is 0 for told trials)."""
     n_trials = int(trial.max()) + 1 if len(trial) else 0
-    if n_trials == 0:
-        return np.zeros((0, 2))
+    if n_trials == 0 or not (config[:, 10] == 0.0).any():
+        return np.zeros((len(trial), 2))
     first = np.full(n_trials, -1, dtype=np.int64)
     rows = np.arange(len(trial))[::-1]
     first[trial[rows]] = rows

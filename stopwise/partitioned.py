@@ -21,7 +21,6 @@ from typing import Any
 
 import pandas as pd
 
-from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.partitioned import (
     check_part,
     is_partitioned,
@@ -37,7 +36,7 @@ from stopwise.data_schemas.validate import check_source
 from stopwise.estimation.ml.counts import (
     EXACT_TOLERANCE,
     check_and_count_part,
-    counts_frame,
+    counts_bundle,
     counts_refusal,
     fit_counts,
     merge_counts,
@@ -155,9 +154,10 @@ def fit_parts(
         )
         return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
     counts = merge_counts(pieces)
-    warned = prepare(model, to_stopping_data(counts_frame(counts)))
+    bundle = counts_bundle(counts)
+    warned = prepare(model, bundle)
     options = {k: v for k, v in kw.items() if k in FIT_OPTIONS}
-    fit = fit_counts(model, counts, se=se, seed=seed, **options)
+    fit = fit_counts(model, counts, se=se, seed=seed, bundle=bundle, **options)
     fit.notes.append(
         f"count reduction certified on the first part: |ll_rows - ll_counts| <= "
         f"{EXACT_TOLERANCE:g} x |ll| at 3 parameter points; {len(parts)} Parquet parts"

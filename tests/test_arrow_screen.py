@@ -25,6 +25,7 @@ from stopwise.data_schemas.arrow_screen import screen_part
 from stopwise.data_schemas.partitioned import check_part, list_parts
 from stopwise.data_schemas.validate import check_source
 from stopwise.estimation.ml import counts as K
+from stopwise.estimation.ml.count_tables import MERGE_CHUNK
 from stopwise.partitioned import validate_parts
 
 CUTS = (0.23, 0.5, 0.77)  # part boundaries as shares of the rows (they fall inside trials)
@@ -389,7 +390,7 @@ def test_merging_many_count_tables_in_chunks_equals_one_merge() -> None:
     of them stacked (merge_once)."""
     frame = _clean_frame(n_subjects=10, n_trials=12, seed=4)
     pieces = [K.count_rows(frame.iloc[a : a + 7]) for a in range(0, len(frame), 7)]
-    assert len(pieces) > 2 * K.MERGE_CHUNK
+    assert len(pieces) > 2 * MERGE_CHUNK
     pd.testing.assert_frame_equal(K.merge_counts(pieces), K.merge_once(pieces))
     pd.testing.assert_frame_equal(
         K.merge_counts(iter(pieces)), K.merge_counts([K.count_rows(frame)])

@@ -29,18 +29,21 @@ from stopwise.data_schemas import columns as C
 from stopwise.data_schemas.arrow_screen import KeyArrays, screen_part
 from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.partitioned import PartCheck, check_part
+from stopwise.estimation.ml.count_tables import (
+    COUNT_COLUMN,
+    KEY_COLUMNS,
+    OUTCOME_LABELS,
+    CountTable,
+    merge_tables,
+)
 from stopwise.estimation.ml.mle import build_problem, run_fit, starts_from
 from stopwise.estimation.ml.results import Fit
 
-KEY_COLUMNS = ("subject", "p_survive", "gain", "start", "bust_keep", "step", "action", "outcome")
-COUNT_COLUMN = "n"
 EXACT_TOLERANCE = 1e-9  # on |ll_rows - ll_counts| / max(1, |ll_rows|)
 # Columns whose presence means rows carry more than the key (contest play, pools, odds,
 # sequential moves): such data are fitted on rows.
 ROW_ONLY_COLUMNS = ("group", "pool_size", "pool_bad", "odds_known", "order", "rival_bank")
 DEFAULTS = {"start": 0.0, "bust_keep": 0.0}
-OUTCOME_LABELS = np.asarray([*C.OUTCOMES, ""], dtype=object)  # by outcome code; "" = empty
-MERGE_CHUNK = 16  # count tables summed at a time (merge_counts)
 DENSE_CELLS_PER_ROW = 8  # count by np.bincount while the key space is at most this x rows
 
 
@@ -115,47 +118,40 @@ def count_cells(codes: Sequence[np.ndarray], dims: tuple[int, ...]) -> tuple[np.
     return (*np.unravel_index(distinct, dims), n.astype(np.int64))
 
 
-def count_keys(keys: KeyArrays) -> pd.DataFrame:
+def count_keys(keys: KeyArrays) -> CountTable:
     """n_u per key u (module docstring) from a screened part's arrays (data_schemas/
-    arrow_screen.py), without a frame of rows: the same table as ``count_rows`` on the part's
-    clean rows, up to the order of its rows (``merge_counts`` sorts them)."""
+    arrow_screen.py), without a frame of rows, as codes with the part's label tables: the
+    same counts as ``count_rows`` on the part's clean rows (``table_frame`` shows them)."""
     condition, design = condition_codes(keys)
     n_steps = int(keys.step.max()) + 1 if keys.n_rows else 1
-    labels = [
-        keys.subject_labels,
-        np.arange(len(design[0])),
-        np.arange(n_steps, dtype=np.int64),
-        np.asarray(C.ACTIONS, dtype=object),
-        OUTCOME_LABELS,
-    ]
+    sizes = (len(keys.subject_labels), len(design[0]), n_steps, len(C.ACTIONS), len(OUTCOME_LABELS))
     codes = [keys.subject_codes, condition, keys.step, keys.action, keys.outcome]
-    dims = tuple(max(len(u), 1) for u in labels)
-    subject, cond, step, action, outcome, n = count_cells(codes, dims)
-    out = {"subject": keys.subject_labels[subject]}
-    out.update({c: u[cond] for c, u in zip(KEY_COLUMNS[1:5], design)})
-    out.update({"step": step.astype(np.int64), "action": labels[3][action]})
-    out.update({"outcome": OUTCOME_LABELS[outcome], COUNT_COLUMN: n})
-    return pd.DataFrame(out)
+    subject, cond, step, action, outcome, n = count_cells(codes, tuple(max(d, 1) for d in sizes))
+    return CountTable(
+        subject_labels=np.asarray(keys.subject_labels),
+        design=np.column_stack(design).astype(np.float64).reshape(-1, 4),
+        subject=subject.astype(np.int64),
+        condition=cond.astype(np.int64),
+        step=step.astype(np.int64),
+        action=action.astype(np.int64),
+        outcome=outcome.astype(np.int64),
+        n=n,
+    )
 
 
 def merge_once(frames: Sequence[pd.DataFrame]) -> pd.DataFrame:
-    """Stack count tables and sum n_u per key, sorted by key."""
+    """Stack count frames and sum n_u per key, sorted by key: one pandas groupby over the
+    labels (the reference that ``merge_counts`` is tested against)."""
     stacked = pd.concat(list(frames), ignore_index=True)
     merged = stacked.groupby(list(KEY_COLUMNS), sort=True, observed=True)[COUNT_COLUMN].sum()
     return merged.reset_index()
 
 
-def merge_counts(parts: Iterable[pd.DataFrame]) -> pd.DataFrame:
-    """Sum the counts of several partitions (n_u adds over partitions), MERGE_CHUNK tables
-    at a time into a running total, so that the stacked copy stays small (at 10^8 rows in
-    200 parts, stacking every part's table at once took the fit's process past 2 GiB)."""
-    total: list[pd.DataFrame] = []
-    waiting: list[pd.DataFrame] = []
-    for frame in parts:
-        waiting.append(frame)
-        if len(waiting) == MERGE_CHUNK:
-            total, waiting = [merge_once([*total, *waiting])], []
-    return merge_once([*total, *waiting])
+def merge_counts(parts: Iterable[CountTable | pd.DataFrame]) -> pd.DataFrame:
+    """Sum the counts of several partitions (n_u adds over partitions), sorted by key, from
+    their codes (estimation/ml/count_tables.py ``merge_tables``; MERGE_CHUNK tables at a
+    time, so that the stacked copy stays small)."""
+    return merge_tables(parts)
 
 
 def counts_frame(counts: pd.DataFrame) -> pd.DataFrame:
@@ -166,9 +162,15 @@ def counts_frame(counts: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
-def counts_problem(model: Any, counts: pd.DataFrame) -> tuple[Any, Any, Any]:
-    """(Problem weighted by n_u, layout, bundle of the distinct keys)."""
-    bundle = to_stopping_data(counts_frame(counts))
+def counts_bundle(counts: pd.DataFrame) -> Any:
+    """The array bundle of the distinct keys, one one-row trial each (``counts_frame``)."""
+    return to_stopping_data(counts_frame(counts))
+
+
+def counts_problem(model: Any, counts: pd.DataFrame, bundle: Any = None) -> tuple[Any, Any, Any]:
+    """(Problem weighted by n_u, layout, bundle of the distinct keys); ``bundle``, when
+    given, is ``counts_bundle(counts)`` built already."""
+    bundle = counts_bundle(counts) if bundle is None else bundle
     problem, layout, _ = build_problem(model, bundle)
     weights = problem.weights.copy()
     weights[: bundle.n_obs] = counts[COUNT_COLUMN].to_numpy(dtype=np.float64)
@@ -214,9 +216,11 @@ def fit_counts(
     max_iter: int = 200,
     bootstrap_reps: int = 200,
     progress: bool = False,
+    bundle: Any = None,
 ) -> Fit:
-    """Pooled maximum-likelihood fit on the counts n_u (module docstring)."""
-    problem, layout, bundle = counts_problem(model, counts)
+    """Pooled maximum-likelihood fit on the counts n_u (module docstring); ``bundle`` as in
+    ``counts_problem``."""
+    problem, layout, bundle = counts_problem(model, counts, bundle)
     fit = run_fit(
         problem,
         model.name,
@@ -244,7 +248,7 @@ def check_and_count_part(
     max_per_kind: int = 20,
     count: bool = False,
     fast: bool = True,
-) -> tuple[PartCheck, pd.DataFrame | None]:
+) -> tuple[PartCheck, CountTable | pd.DataFrame | None]:
     """One task of an out-of-core pass: validate part ``index`` (with its seams,
     data_schemas/partitioned.py) and, if clean and ``count``, reduce it to counts n_u.
     With ``fast``, a part the Arrow screen vouches for (data_schemas/arrow_screen.py) is
