@@ -7,10 +7,15 @@ with code tables."""
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
+from test_arrow_screen import _clean_frame, _write
 
+from stopwise.data_schemas.arrow_screen import screen_part
+from stopwise.data_schemas.partitioned import check_part
 from stopwise.estimation.ml import count_tables as T
 from stopwise.estimation.ml import counts as K
 
@@ -79,3 +84,21 @@ def test_an_unknown_action_label_is_refused() -> None:
 def test_nothing_to_merge_is_an_error_not_an_empty_table() -> None:
     with pytest.raises(ValueError, match="no count tables"):
         K.merge_counts([])
+
+
+@pytest.mark.parametrize("drop", [(), ("start", "bust_keep")])
+def test_counts_of_a_part_with_constant_design_columns_equal_the_row_counts(
+    tmp_path: Path, drop: tuple[str, ...]
+) -> None:
+    """count_keys skips hashing a design column that is constant in the part (here start and
+    bust_keep all 0, present or absent); its counts equal count_rows' on the validated rows."""
+    frame = _clean_frame(n_subjects=8, n_trials=11, seed=2)
+    frame = frame[frame["start"].eq(0.0) & frame["bust_keep"].eq(0.0)].drop(columns=list(drop))
+    parts = _write(frame.reset_index(drop=True), tmp_path / "parts")
+    for k in range(len(parts)):
+        screened = screen_part(parts, k)
+        assert screened is not None
+        _, clean = check_part(parts, k)
+        pd.testing.assert_frame_equal(
+            K.merge_counts([K.count_keys(screened.keys)]), K.merge_counts([K.count_rows(clean)])
+        )

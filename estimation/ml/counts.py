@@ -86,28 +86,31 @@ def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({**out, COUNT_COLUMN: n})
 
 
-def condition_codes(keys: KeyArrays) -> tuple[np.ndarray, list[np.ndarray]]:
-    """(condition code per row, per design column its value per condition) for the design
+def _factorize(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(code per value, distinct values in order of appearance), as ``pd.factorize``; a
+    constant column (e.g. ``start`` absent, so 0 everywhere) without hashing it."""
+    if len(values) and values.min() == values.max() and not np.isnan(values[0]):
+        return np.zeros(len(values), dtype=np.int64), values[:1]
+    return pd.factorize(values)
+
+
+def condition_codes(keys: KeyArrays, firsts: np.ndarray) -> tuple[np.ndarray, list[np.ndarray]]:
+    """(condition code per trial, per design column its value per condition) for the design
     columns p_survive, gain, start and bust_keep, which are constant within each trial: the
-    distinct combinations are found among the trials' first rows, then spread over each
-    trial's rows."""
-    firsts = np.flatnonzero(keys.trial_start)
-    per_trial = [pd.factorize(getattr(keys, c)[firsts]) for c in KEY_COLUMNS[1:5]]
+    distinct combinations among the trials' first rows ``firsts``."""
+    per_trial = [_factorize(getattr(keys, c)[firsts]) for c in KEY_COLUMNS[1:5]]
     dims = tuple(max(len(u), 1) for _, u in per_trial)
     combined = np.ravel_multi_index(tuple(np.asarray(c) for c, _ in per_trial), dims)
     condition, distinct = pd.factorize(combined)
     positions = np.unravel_index(np.asarray(distinct), dims)
     labels = [np.asarray(u)[p] for (_, u), p in zip(per_trial, positions)]
-    trial_of_row = np.cumsum(keys.trial_start) - 1
-    return np.asarray(condition)[trial_of_row], labels
+    return np.asarray(condition, dtype=np.int64), labels
 
 
-def count_cells(codes: Sequence[np.ndarray], dims: tuple[int, ...]) -> tuple[np.ndarray, ...]:
-    """(distinct cells as one code array per key column, n per cell) of combined codes:
-    ``np.bincount`` when the key space is small against the rows, else ``np.unique``."""
-    if float(np.prod(np.asarray(dims, dtype=float))) >= 2.0**62:
-        raise ValueError(f"too many distinct keys to combine in one int64: {dims}")
-    combined = np.ravel_multi_index(tuple(codes), dims)
+def count_cells(combined: np.ndarray, dims: tuple[int, ...]) -> tuple[np.ndarray, ...]:
+    """(distinct cells as one code array per key column, n per cell) of keys combined by
+    ``np.ravel_multi_index`` over ``dims``: ``np.bincount`` when the key space is small
+    against the rows, else ``np.unique``."""
     size = int(np.prod(dims))
     if size <= DENSE_CELLS_PER_ROW * max(len(combined), 1):
         n = np.bincount(combined, minlength=size)
@@ -118,15 +121,38 @@ def count_cells(codes: Sequence[np.ndarray], dims: tuple[int, ...]) -> tuple[np.
     return (*np.unravel_index(distinct, dims), n.astype(np.int64))
 
 
+def row_keys(
+    keys: KeyArrays, sizes: tuple[int, ...], firsts: np.ndarray, condition: np.ndarray
+) -> np.ndarray:
+    """Per row its key (subject, condition, step, action, outcome) combined into one int64,
+    row-major over ``sizes`` as ``np.ravel_multi_index`` would: subject and condition are
+    constant within a trial (a new subject starts a new trial), so their part is formed per
+    trial and repeated over each trial's rows,
+
+        key = (((s * C + c) * S + step) * A + action) * O + outcome."""
+    if float(np.prod(np.asarray(sizes, dtype=float))) >= 2.0**62:
+        raise ValueError(f"too many distinct keys to combine in one int64: {sizes}")
+    _, n_conditions, n_steps, n_actions, n_outcomes = sizes
+    per_trial = keys.subject_codes[firsts].astype(np.int64) * n_conditions + condition
+    lengths = np.diff(np.append(firsts, keys.n_rows))
+    key = np.repeat(per_trial * (n_steps * n_actions * n_outcomes), lengths)
+    key += keys.step.astype(np.int64, copy=False) * (n_actions * n_outcomes)
+    key += keys.action.astype(np.int64) * n_outcomes
+    key += keys.outcome
+    return key
+
+
 def count_keys(keys: KeyArrays) -> CountTable:
     """n_u per key u (module docstring) from a screened part's arrays (data_schemas/
     arrow_screen.py), without a frame of rows, as codes with the part's label tables: the
     same counts as ``count_rows`` on the part's clean rows (``table_frame`` shows them)."""
-    condition, design = condition_codes(keys)
+    firsts = np.flatnonzero(keys.trial_start)
+    condition, design = condition_codes(keys, firsts)
     n_steps = int(keys.step.max()) + 1 if keys.n_rows else 1
     sizes = (len(keys.subject_labels), len(design[0]), n_steps, len(C.ACTIONS), len(OUTCOME_LABELS))
-    codes = [keys.subject_codes, condition, keys.step, keys.action, keys.outcome]
-    subject, cond, step, action, outcome, n = count_cells(codes, tuple(max(d, 1) for d in sizes))
+    sizes = tuple(max(d, 1) for d in sizes)
+    combined = row_keys(keys, sizes, firsts, condition)
+    subject, cond, step, action, outcome, n = count_cells(combined, sizes)
     return CountTable(
         subject_labels=np.asarray(keys.subject_labels),
         design=np.column_stack(design).astype(np.float64).reshape(-1, 4),
