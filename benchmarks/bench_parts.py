@@ -45,7 +45,7 @@ import pyarrow.parquet as pq
 import stopwise
 from benchmarks._common import peak_memory_mib
 from benchmarks.bench_dask import bare_read, write_parts
-from stopwise.api import prepare_model
+from stopwise.api import model_for_data, prepare_model
 from stopwise.data_schemas.partitioned import list_parts
 from stopwise.partitioned import count_parts, fit_parts, validate_parts
 
@@ -134,9 +134,8 @@ def run_command(argv: list[str], **env: str) -> tuple[int, Timing]:
 def fit_folder(folder: Path, fast: bool) -> Any:
     """The pooled count fit exactly as ``stopwise.fit(MODEL, folder, se="robust", starts=1,
     workers=0)`` runs it, with the screen on or off."""
-    model = stopwise.model(MODEL)
     parts = fit_parts(
-        model,
+        stopwise.model(MODEL),
         folder,
         method="mle",
         se="robust",
@@ -147,6 +146,7 @@ def fit_folder(folder: Path, fast: bool) -> Any:
         prepare=prepare_model,
         workers=0,
         fast=fast,
+        shared=lambda bundle: model_for_data(MODEL, None, bundle),
     )
     return parts.fit
 

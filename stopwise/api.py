@@ -227,6 +227,7 @@ def fit(
         parts = fit_parts(
             the_model, data, method=method, se=se, by=by, formulas=formulas, seed=seed,
             kw=kw, prepare=prepare_model, **cluster,
+            shared=lambda bundle: model_for_data(model, max_target, bundle),
         )  # fmt: skip
         if parts.fit is not None:
             return _attach(parts.fit, [], parts.warnings)

@@ -128,9 +128,14 @@ def fit_parts(
     workers: int | None = 0,
     scheduler: str | None = None,
     fast: bool = True,
+    shared: Callable[[Any], Any] | None = None,
 ) -> PartsFit:
     """A pooled fit on counts when the model and data allow it (module docstring); else the
-    rows in memory with a note saying why (``fast``: see ``count_parts``)."""
+    rows in memory with a note saying why (``fast``: see ``count_parts``). ``shared(bundle)``,
+    when given, is the model to fit on the counts' bundle instead of ``model`` (one shared
+    Model per spec string and data conditions, stopwise.api.model_for_data, so that a refit
+    in the same process reuses its compiled programs). The model is prepared on the counts'
+    bundle before the reduction is certified, so the certificate checks the model fitted."""
     parts = list_parts(source)
     header = part_columns(parts[0])
     why = counts_refusal(model, header, formulas)
@@ -146,6 +151,10 @@ def fit_parts(
         source, workers=workers, scheduler=scheduler, progress=progress, fast=fast
     )
     refuse_invalid(report)
+    counts = merge_counts(pieces)
+    bundle = counts_bundle(counts)
+    model = model if shared is None else shared(bundle)
+    warned = prepare(model, bundle)
     gap = _certify(model, parts, None)
     if gap > EXACT_TOLERANCE:
         why = (
@@ -153,9 +162,6 @@ def fit_parts(
             f"part (relative gap {gap:.2g} > {EXACT_TOLERANCE:g})"
         )
         return PartsFit(rows=load_parts(source), notes=[f"fitted on rows, not counts: {why}"])
-    counts = merge_counts(pieces)
-    bundle = counts_bundle(counts)
-    warned = prepare(model, bundle)
     options = {k: v for k, v in kw.items() if k in FIT_OPTIONS}
     fit = fit_counts(model, counts, se=se, seed=seed, bundle=bundle, **options)
     fit.notes.append(

@@ -63,7 +63,9 @@ def test_numpy_floating_point_warnings_become_one_note(
 
 @pytest.mark.slow
 def test_compare_shows_no_raw_runtime_warnings(tmp_path: Path) -> None:
-    """A real case: scipy's trust-region steps overflow while fitting these probit data."""
+    """A real case: scipy's trust-region steps overflow while fitting these probit data from a
+    far start; the overflow is silenced where it arises (estimation/ml/optimize.py
+    ``minimize_one``; the run is judged by its own gradient), so nothing reaches the user."""
     data = tmp_path / "probit.csv"
     simulate = ["simulate", "--model", "crra+myopic+probit", "--set", "r=0.5", "--set"]
     assert (
@@ -79,7 +81,8 @@ def test_compare_shows_no_raw_runtime_warnings(tmp_path: Path) -> None:
     )
     assert done.returncode == 0 and "Model comparison" in done.stdout
     assert "RuntimeWarning" not in done.stderr and "warnings.warn" not in done.stderr
-    assert "note: numpy reported" in done.stderr  # counted, not hidden
+    assert "numpy reported" not in done.stderr
+    assert "crra+myopic+probit" in done.stdout and "crra+myopic+logit" in done.stdout
 
 
 def test_fit_help_shows_95_percent_once(capsys: pytest.CaptureFixture[str]) -> None:

@@ -20,6 +20,7 @@ from stopwise.data_schemas.partitioned import is_partitioned, list_parts
 from stopwise.describe import describe as describe_rows
 from stopwise.describe_parts import describe as describe_any
 from stopwise.describe_parts import describe_parts
+from stopwise.estimation.ml import problem as engine
 from stopwise.estimation.ml.recovery import stopping_design
 from stopwise.partitioned import validate_parts
 
@@ -133,6 +134,20 @@ def test_fit_on_parts_uses_counts_and_matches_the_row_fit(tmp_path: Path) -> Non
     assert abs(by_parts.loglik - by_rows.loglik) < 1e-8
     np.testing.assert_allclose(by_parts.table.estimate, by_rows.table.estimate, rtol=1e-6)
     np.testing.assert_allclose(by_parts.table.se, by_rows.table.se, rtol=1e-5)
+
+
+def test_a_second_fit_of_a_folder_reuses_the_model_and_its_programs(tmp_path: Path) -> None:
+    """Refits of one folder by spec string share one Model (api.model_for_data), so the
+    second fit neither traces nor compiles again, and gives the same numbers."""
+    _write_parts(_rows(), tmp_path / "parts")
+    options = {"se": "robust", "starts": 1, "progress": False, "workers": 0}
+    first = stopwise.fit("crra+myopic+logit", tmp_path / "parts", **options)
+    step_programs = engine.value_grad_hess._cache_size()
+    again = stopwise.fit("crra+myopic+logit", tmp_path / "parts", **options)
+    assert engine.value_grad_hess._cache_size() == step_programs
+    assert again.extras["layout"].model is first.extras["layout"].model
+    np.testing.assert_array_equal(again.z, first.z)
+    np.testing.assert_array_equal(again.params["se"], first.params["se"])
 
 
 def test_fit_that_needs_rows_says_so_and_falls_back(tmp_path: Path) -> None:
