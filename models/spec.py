@@ -328,9 +328,19 @@ def _stopping_model(
             "prepare": prepare,
             "learning": learning,
             "program_key": program_key,
+            "horizon_invariant": horizon_invariant(policy, caps),
         },
         description=f"stopping model {name}",
     )
+
+
+def horizon_invariant(policy: str, caps: Caps) -> bool:
+    """Whether padding the data's horizon (more steps than any trial has) leaves every row's
+    log-likelihood unchanged: the myopic rule looks one step ahead; the planner without
+    ``max_target`` plans H = horizon + ceil(log(1e-15)/log p) steps, so a longer horizon adds
+    only terms below 1e-15. The target rule's set of targets and the planner's
+    max(horizon, max_target) extend to the horizon: padding it changes the model."""
+    return policy == "myopic" or (policy == "planner" and caps.max_target is None)
 
 
 def structure_key(name: str, opts: Mapping[str, Any], caps: str) -> str:

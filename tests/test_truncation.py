@@ -183,9 +183,11 @@ def test_recapped_models_keep_spec_and_options(spec):
     assert recapped.options["max_target"] == 40
 
     def settings(m):
-        return {k: v for k, v in m.options.items() if k != "max_target" and not callable(v)}
+        capped = ("max_target", "horizon_invariant")  # a planner with a cap plans to it
+        return {k: v for k, v in m.options.items() if k not in capped and not callable(v)}
 
     assert settings(recapped) == settings(model)
+    assert model.options["horizon_invariant"] and not recapped.options["horizon_invariant"]
     # the stored-program key names the cap, so the two models never share a compiled program
     assert recapped.options["program_key"]() != model.options["program_key"]()
     assert (

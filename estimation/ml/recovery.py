@@ -124,6 +124,16 @@ def replication_horizon(max_step: int) -> int:
     return HORIZON_BUCKET * -(-(max_step + 5) // HORIZON_BUCKET)
 
 
+def replication_bundle(model: Any, frame: pd.DataFrame, to_bundle: Callable[..., Any]) -> Any:
+    """The arrays a replication fits: the horizon bucketed (``replication_horizon``) only for
+    a model that declares its likelihood unchanged by a longer horizon (option
+    ``horizon_invariant``, models/spec.py); any other model (target rules, contest models,
+    a planner with max_target) gets the data's own horizon, as ``stopwise.fit`` would."""
+    if "step" in frame and (model.options or {}).get("horizon_invariant"):
+        return to_bundle(frame, replication_horizon(int(frame["step"].max())))
+    return to_bundle(frame)
+
+
 def run_replication(
     rep: int, seed: int, truth: Mapping[str, float], payload: RecoveryPayload
 ) -> tuple[list[dict[str, Any]], bool | None]:
@@ -133,10 +143,7 @@ def run_replication(
     model = payload.model
     key = jax.random.fold_in(jax.random.PRNGKey(seed), rep)
     frame = model.simulate(dict(truth), payload.design, key)
-    if "step" in frame:
-        data = payload.to_bundle(frame, replication_horizon(int(frame["step"].max())))
-    else:
-        data = payload.to_bundle(frame)
+    data = replication_bundle(model, frame, payload.to_bundle)
     fit = fit_mle(
         model, data, se=payload.se, starts=payload.starts, seed=seed + rep, progress=False
     )
