@@ -286,15 +286,18 @@ class CompiledSampler:
         return {k: np.asarray(v) for k, v in z.items()}, int(np.sum(divergent))
 
 
-def padded_shape(args: CellArgs, step: int = 32, horizon_step: int = 8) -> Shape:
+def padded_shape(
+    args: CellArgs, step: int = 32, horizon_step: int = 8, pad_horizon: bool = True
+) -> Shape:
     """The rows rounded up to a multiple of ``step`` and the horizon to one of
-    ``horizon_step``: a few shapes, hence a few compiled programs, serve a whole study."""
+    ``horizon_step``: a few shapes, hence a few compiled programs, serve a whole study.
+    ``pad_horizon`` False keeps the data's horizon (a model whose likelihood a longer
+    horizon changes: option ``horizon_invariant`` not set, estimation/ml/recovery.py)."""
     rows = int(np.shape(args.weight)[1])
     horizon = getattr(args.data, "horizon", None)
-    return Shape(
-        -(-rows // step) * step,
-        None if horizon is None else -(-int(horizon) // horizon_step) * horizon_step,
-    )
+    if horizon is not None and pad_horizon:
+        horizon = -(-int(horizon) // horizon_step) * horizon_step
+    return Shape(-(-rows // step) * step, None if horizon is None else int(horizon))
 
 
 _PROGRAMS: dict[tuple, CompiledSampler] = {}
