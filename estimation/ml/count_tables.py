@@ -9,8 +9,9 @@ five codes of a key into one int64 and sums n over equal keys:
     n_u(all partitions) = sum over partitions k of n_u(k),
 
 exact in integers. Only the label tables are hashed; the per-key work is integer arithmetic
-and one sort per MERGE_CHUNK tables, so a merge of 200 partitions costs a fraction of a
-groupby over their stacked label columns.
+and one ``np.bincount`` (or sort) per MERGE_CHUNK tables, so a merge of 200 partitions costs
+a fraction of a groupby over their stacked label columns (benchmarks/RESULTS.md,
+bench_parts: 2.97 s -> 0.25-0.45 s for 200 tables of 42,000 keys).
 """
 
 from __future__ import annotations
