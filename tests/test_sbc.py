@@ -192,3 +192,25 @@ def test_a_small_calibration_study_runs_every_replication_and_passes() -> None:
     assert result["max_residual"] <= 1e-9
     assert all(p["inside"] for p in result["params"].values()), result["params"]
     assert result["ess_median"] >= study_sbc.DRAWS * study_sbc.CHAINS / study_sbc.THIN
+
+
+@pytest.mark.slow  # a contest ML fit and its programs: about 20 s (the product's rule is
+# checked in the fast suite by tests/test_recovery_horizon.py)
+def test_the_harness_pads_the_horizon_only_where_the_likelihood_allows_it() -> None:
+    """A contest model's targets extend to the data's horizon (models/contest/build.py), so
+    the harness keeps the data's horizon for it; padding it (the solo models' shortcut)
+    changes the log-likelihood on replication 3 of the crra+ch study, which the harness's own
+    row-sum check caught before this rule."""
+    options, make_design = study_sbc.MODELS["crra+ch"]
+    model = build_model("crra+ch", **options)
+    assert not (model.options or {}).get("horizon_invariant")
+    k_truth, k_sim, _ = jax.random.split(jnp.asarray(study_sbc.replication_keys(4)[3]), 3)
+    truth = study_sbc.draw_truth(model, study_sbc.resolve_priors(model), k_truth)
+    frame = model.simulate(truth, make_design(), k_sim)
+    prepared = S.prepare_replication(model, stopwise.load(frame), ML_POINT_FITS)
+    kept = S.padded_shape(prepared.args, pad_horizon=False)
+    assert kept.horizon == int(prepared.args.data.horizon)
+    assert S.row_sum_residual(prepared, S.pad_args(prepared.args, kept)) <= 1e-9
+    padded = S.padded_shape(prepared.args)
+    assert padded.horizon > kept.horizon
+    assert S.row_sum_residual(prepared, S.pad_args(prepared.args, padded)) > 1e-6
