@@ -61,7 +61,7 @@ from stopwise.estimation.bayes.pooled_start import (
     start_sites,
 )
 from stopwise.estimation.bayes.prepare import as_bundle, prepare
-from stopwise.estimation.bayes.sampler import mass_matrix_settings
+from stopwise.estimation.bayes.sampler import mass_matrix_settings, release_compiled_programs
 from stopwise.estimation.bayes.support import sample_below_cliff
 
 TARGET_ACCEPT = 0.8  # fit_bayes's default
@@ -313,9 +313,39 @@ def sampler_for(
         _PROGRAMS[key] = CompiledSampler(
             prepared.setup, padded, prepared.laplace, chains, warmup, draws
         )
+        _BUILT[0] += 1
     return _PROGRAMS[key]
+
+
+_BUILT = [0]  # sampler programs built in this process, released ones included
+MAPPINGS_LIMIT = 40_000  # of Linux's default ceiling of 65,530 per process (vm.max_map_count)
 
 
 def compiled_programs() -> int:
     """How many sampler programs this process has compiled (reported beside the study)."""
-    return len(_PROGRAMS)
+    return _BUILT[0]
+
+
+def memory_mappings() -> int | None:
+    """The memory mappings this process holds (lines of /proc/self/maps; None elsewhere)."""
+    try:
+        with open("/proc/self/maps", encoding="ascii", errors="replace") as maps:
+            return sum(1 for _ in maps)
+    except OSError:
+        return None
+
+
+def release_when_crowded(limit: int = MAPPINGS_LIMIT) -> bool:
+    """Drop every compiled program (JAX's and NumPyro's caches, this module's samplers and
+    row sums) when the process holds more than ``limit`` memory mappings; True when it did.
+    Each compiled program keeps mappings of its own, and a study that compiles programs per
+    data shape (a contest model's ML start) reached Linux's ceiling after 170 replications
+    and died inside LLVM ("Unable to allocate section memory"). What runs next compiles
+    again."""
+    held = memory_mappings()
+    if held is None or held <= limit:
+        return False
+    release_compiled_programs()
+    _PROGRAMS.clear()
+    _ROW_SUMS.clear()
+    return True

@@ -137,6 +137,7 @@ def sbc_task(rep: int, key: np.ndarray, study: Study) -> dict[str, Any]:
     """Replication ``rep`` of the study with its key (one task of the runner); the cells and
     padding are checked against the plain row sum in replications 0..49 and every 10th."""
     check = rep < 50 or rep % 10 == 0
+    S.release_when_crowded()
     return one_replication(study.model, study.design, jax.numpy.asarray(key), study.sampling, check)
 
 

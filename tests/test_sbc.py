@@ -214,3 +214,18 @@ def test_the_harness_pads_the_horizon_only_where_the_likelihood_allows_it() -> N
     padded = S.padded_shape(prepared.args)
     assert padded.horizon > kept.horizon
     assert S.row_sum_residual(prepared, S.pad_args(prepared.args, padded)) > 1e-6
+
+
+def test_compiled_programs_are_released_when_the_process_holds_too_many_mappings() -> None:
+    """A long study drops its compiled programs before Linux's ceiling on memory mappings
+    (65,530 by default; a crra+ch study died in LLVM after 170 replications without this)."""
+    held = S.memory_mappings()
+    assert held is None or held > 0
+    S._PROGRAMS[("placeholder",)] = None  # type: ignore[assignment]
+    assert not S.release_when_crowded(limit=10**9)
+    assert ("placeholder",) in S._PROGRAMS
+    released = S.release_when_crowded(limit=0)
+    assert released is (held is not None)
+    if released:
+        assert not S._PROGRAMS and not S._ROW_SUMS
+    S._PROGRAMS.pop(("placeholder",), None)
