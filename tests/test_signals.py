@@ -61,6 +61,27 @@ def console_command(*argv: str) -> list[str]:
     )
 
 
+def wait_for_handler(pid: int, signum: int, timeout_s: float = 120.0) -> None:
+    """Wait until process ``pid`` has a handler for ``signum`` (Linux: the SigCgt mask of
+    /proc/PID/status), so that a signal sent next meets the launcher's or the command's
+    handler and not Python's start-up: on a loaded machine a fixed delay did not always
+    cover the interpreter's own start. Elsewhere: a fixed half second."""
+    status = Path(f"/proc/{pid}/status")
+    if not status.exists():
+        time.sleep(0.5)
+        return
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        try:
+            fields = dict(line.split(":", 1) for line in status.read_text().splitlines())
+        except (OSError, ValueError):
+            return  # the process has ended; its exit code tells
+        if int(fields["SigCgt"].strip(), 16) & (1 << (signum - 1)):
+            return
+        time.sleep(0.01)
+    raise AssertionError(f"no handler for signal {signum} after {timeout_s} s")
+
+
 def run_script(script: str, cwd: Path) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
         python_child(script), capture_output=True, text=True, timeout=300, cwd=cwd
@@ -106,6 +127,9 @@ def test_sigint_to_the_console_command_gives_130_and_one_line(tmp_path, data) ->
         stderr=subprocess.PIPE,
         text=True,
     )
+    # Python itself handles SIGINT from its start; the launcher's SIGTERM handler, set
+    # right after its SIGINT one, marks that the launcher is in charge
+    wait_for_handler(child.pid, signal.SIGTERM)
     time.sleep(0.2)
     child.send_signal(signal.SIGINT)
     _, err = child.communicate(timeout=300)
@@ -169,6 +193,7 @@ def test_sigterm_to_the_console_command_during_a_fit(tmp_path, data) -> None:
         stderr=subprocess.PIPE,
         text=True,
     )
+    wait_for_handler(child.pid, signal.SIGTERM)
     time.sleep(0.5)
     child.send_signal(signal.SIGTERM)
     _, err = child.communicate(timeout=300)
