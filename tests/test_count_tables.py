@@ -86,12 +86,16 @@ def test_nothing_to_merge_is_an_error_not_an_empty_table() -> None:
         K.merge_counts([])
 
 
+@pytest.mark.parametrize("dense", [True, False])
 @pytest.mark.parametrize("drop", [(), ("start", "bust_keep")])
 def test_counts_of_a_part_with_constant_design_columns_equal_the_row_counts(
-    tmp_path: Path, drop: tuple[str, ...]
+    tmp_path: Path, drop: tuple[str, ...], dense: bool, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """count_keys skips hashing a design column that is constant in the part (here start and
-    bust_keep all 0, present or absent); its counts equal count_rows' on the validated rows."""
+    bust_keep all 0, present or absent); its counts equal count_rows' on the validated rows,
+    counted by np.bincount or (dense False) by sorting."""
+    if not dense:
+        monkeypatch.setattr(T, "DENSE_CELLS_PER_ROW", 0)
     frame = _clean_frame(n_subjects=8, n_trials=11, seed=2)
     frame = frame[frame["start"].eq(0.0) & frame["bust_keep"].eq(0.0)].drop(columns=list(drop))
     parts = _write(frame.reset_index(drop=True), tmp_path / "parts")

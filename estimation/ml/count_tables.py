@@ -115,25 +115,43 @@ class _SharedCodes:
         return np.asarray(list(self.conditions), dtype=np.float64).reshape(-1, 4)
 
 
-def _sum_equal_keys(codes: list[np.ndarray], n: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
-    """The distinct rows of the code columns and n summed over each: the five codes combined
-    into one int64 by ``np.ravel_multi_index``, then summed by ``np.bincount`` while the key
-    space is at most DENSE_CELLS_PER_ROW x the rows (float sums of integers below 2^53, exact),
-    else sorted and reduced at each new key (integer sums)."""
-    dims = tuple(int(c.max()) + 1 if len(c) else 1 for c in codes)
+def check_key_space(dims: tuple[int, ...]) -> None:
+    """Refuse key columns whose combinations do not fit one int64 (product of ``dims``)."""
     if float(np.prod(np.asarray(dims, dtype=float))) >= 2.0**62:
         raise ValueError(f"too many distinct keys to combine in one int64: {dims}")
-    combined = np.ravel_multi_index(tuple(codes), dims)
+
+
+def sum_by_key(
+    combined: np.ndarray, dims: tuple[int, ...], weights: np.ndarray | None = None
+) -> tuple[np.ndarray, ...]:
+    """The distinct keys (combined by ``np.ravel_multi_index`` over ``dims``), in order, as
+    one code array per dimension, then per key the sum of ``weights`` (the number of rows
+    when None), as int64: by ``np.bincount`` while the key space is at most
+    DENSE_CELLS_PER_ROW x the rows (weighted: float sums of integers below 2^53, exact), else
+    by sorting (``np.unique``, or a reduction at each new key)."""
     size = int(np.prod(dims))
     if size <= DENSE_CELLS_PER_ROW * max(len(combined), 1):
-        totals = np.bincount(combined, weights=n, minlength=size)
+        totals = np.bincount(combined, weights=weights, minlength=size)
         distinct = np.flatnonzero(totals)
-        return list(np.unravel_index(distinct, dims)), totals[distinct].astype(np.int64)
-    order = np.argsort(combined, kind="stable")
-    ordered = combined[order]
-    starts = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]]) if len(ordered) else order
-    summed = np.add.reduceat(n[order], starts) if len(starts) else n[:0]
-    return list(np.unravel_index(ordered[starts], dims)), summed.astype(np.int64)
+        summed = totals[distinct]
+    elif weights is None:
+        distinct, summed = np.unique(combined, return_counts=True)
+    else:
+        order = np.argsort(combined, kind="stable")
+        ordered = combined[order]
+        starts = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]]) if len(order) else order
+        distinct = ordered[starts]
+        summed = np.add.reduceat(weights[order], starts) if len(starts) else weights[:0]
+    return (*np.unravel_index(distinct, dims), summed.astype(np.int64))
+
+
+def _sum_equal_keys(codes: list[np.ndarray], n: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
+    """The distinct rows of the code columns and n summed over each: the five codes combined
+    into one int64 by ``np.ravel_multi_index``, then ``sum_by_key`` (integer sums)."""
+    dims = tuple(int(c.max()) + 1 if len(c) else 1 for c in codes)
+    check_key_space(dims)
+    *distinct, summed = sum_by_key(np.ravel_multi_index(tuple(codes), dims), dims, n)
+    return distinct, summed
 
 
 def merge_tables(parts: Iterable[CountTable | pd.DataFrame]) -> pd.DataFrame:

@@ -34,7 +34,9 @@ from stopwise.estimation.ml.count_tables import (
     KEY_COLUMNS,
     OUTCOME_LABELS,
     CountTable,
+    check_key_space,
     merge_tables,
+    sum_by_key,
 )
 from stopwise.estimation.ml.mle import build_problem, run_fit, starts_from
 from stopwise.estimation.ml.results import Fit
@@ -44,7 +46,6 @@ EXACT_TOLERANCE = 1e-9  # on |ll_rows - ll_counts| / max(1, |ll_rows|)
 # sequential moves): such data are fitted on rows.
 ROW_ONLY_COLUMNS = ("group", "pool_size", "pool_bad", "odds_known", "order", "rival_bank")
 DEFAULTS = {"start": 0.0, "bust_keep": 0.0}
-DENSE_CELLS_PER_ROW = 8  # count by np.bincount while the key space is at most this x rows
 
 
 def counts_refusal(model: Any, frame_columns: Iterable[str], formulas: Any = None) -> str | None:
@@ -77,8 +78,7 @@ def count_rows(frame: pd.DataFrame) -> pd.DataFrame:
     (``np.ravel_multi_index``) and the distinct combinations counted (``np.unique``)."""
     codes, labels = zip(*(_key_codes(frame, c) for c in KEY_COLUMNS))
     dims = tuple(max(len(u), 1) for u in labels)
-    if float(np.prod(np.asarray(dims, dtype=float))) >= 2.0**62:
-        raise ValueError(f"too many distinct keys to combine in one int64: {dims}")
+    check_key_space(dims)
     combined = np.ravel_multi_index(codes, dims)
     distinct, n = np.unique(combined, return_counts=True)
     columns = np.unravel_index(distinct, dims)
@@ -107,20 +107,6 @@ def condition_codes(keys: KeyArrays, firsts: np.ndarray) -> tuple[np.ndarray, li
     return np.asarray(condition, dtype=np.int64), labels
 
 
-def count_cells(combined: np.ndarray, dims: tuple[int, ...]) -> tuple[np.ndarray, ...]:
-    """(distinct cells as one code array per key column, n per cell) of keys combined by
-    ``np.ravel_multi_index`` over ``dims``: ``np.bincount`` when the key space is small
-    against the rows, else ``np.unique``."""
-    size = int(np.prod(dims))
-    if size <= DENSE_CELLS_PER_ROW * max(len(combined), 1):
-        n = np.bincount(combined, minlength=size)
-        distinct = np.flatnonzero(n)
-        n = n[distinct]
-    else:
-        distinct, n = np.unique(combined, return_counts=True)
-    return (*np.unravel_index(distinct, dims), n.astype(np.int64))
-
-
 def row_keys(
     keys: KeyArrays, sizes: tuple[int, ...], firsts: np.ndarray, condition: np.ndarray
 ) -> np.ndarray:
@@ -130,8 +116,7 @@ def row_keys(
     trial and repeated over each trial's rows,
 
         key = (((s * C + c) * S + step) * A + action) * O + outcome."""
-    if float(np.prod(np.asarray(sizes, dtype=float))) >= 2.0**62:
-        raise ValueError(f"too many distinct keys to combine in one int64: {sizes}")
+    check_key_space(sizes)
     _, n_conditions, n_steps, n_actions, n_outcomes = sizes
     per_trial = keys.subject_codes[firsts].astype(np.int64) * n_conditions + condition
     lengths = np.diff(np.append(firsts, keys.n_rows))
@@ -152,7 +137,7 @@ def count_keys(keys: KeyArrays) -> CountTable:
     sizes = (len(keys.subject_labels), len(design[0]), n_steps, len(C.ACTIONS), len(OUTCOME_LABELS))
     sizes = tuple(max(d, 1) for d in sizes)
     combined = row_keys(keys, sizes, firsts, condition)
-    subject, cond, step, action, outcome, n = count_cells(combined, sizes)
+    subject, cond, step, action, outcome, n = sum_by_key(combined, sizes)
     return CountTable(
         subject_labels=np.asarray(keys.subject_labels),
         design=np.column_stack(design).astype(np.float64).reshape(-1, 4),
