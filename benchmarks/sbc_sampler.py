@@ -56,8 +56,8 @@ from stopwise.estimation.bayes.fit_steps import pointwise_unit, sampling_model
 from stopwise.estimation.bayes.initial import initial_natural, initial_values
 from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
+    laplace_start,
     ml_start,
-    start_inverse_mass,
     start_sites,
 )
 from stopwise.estimation.bayes.prepare import as_bundle, prepare
@@ -139,23 +139,24 @@ def canonical(setup: Setup) -> Setup:
 
 
 @partial(jax.jit, static_argnums=0)
-def prior_curvature(setup: Setup, flat: Any) -> Any:
-    """P = -d^2 log prior / dz^2 of the pooled population sites at ``flat`` (one scalar
-    intercept site per parameter, in ``population_sites`` order)."""
+def prior_terms(setup: Setup, flat: Any) -> tuple[Any, Any, Any]:
+    """(log p, d log p / dz, -d^2 log p / dz^2) of the pooled population sites at ``flat``
+    (one scalar intercept site per parameter, in ``population_sites`` order)."""
     sites = population_sites(setup)
 
-    def negative_log_prior(x: Any) -> Any:
-        return -pooled_log_prior(setup, dict(zip(sites, x)))
+    def log_prior(x: Any) -> Any:
+        return pooled_log_prior(setup, dict(zip(sites, x)))
 
-    return jax.hessian(negative_log_prior)(flat)
+    return log_prior(flat), jax.grad(log_prior)(flat), -jax.hessian(log_prior)(flat)
 
 
 def start_for(
     setup: Setup, natural: Any, pooled: PooledStart
 ) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], Any] | None]:
     """``sampler_start``'s pooled branch (estimation/bayes/fit_steps.py): values, jitter
-    scales and the Laplace inverse mass (H + P)^-1 the warm-up starts from, None where the
-    product starts from the identity (no positive definite ML Hessian). Pooled fits without formulas only."""
+    scales and the inverse mass the warm-up starts from, all from ``laplace_start`` (the mode
+    of the Laplace posterior), None where the product starts from the identity (no positive
+    definite ML Hessian). Pooled fits without formulas only."""
     sites = population_sites(setup)
     if any(not s.startswith("z_") for s in sites):
         raise ValueError("only pooled fits without formulas are supported")
@@ -165,10 +166,13 @@ def start_for(
     values, scales = start_sites(pooled, setup.names, setup.coef_names)
     if pooled.cov is None:
         return values, scales, None
-    flat = jnp.asarray([values[s] for s in sites], jnp.float64)
-    precision = np.asarray(prior_curvature(canonical(setup), flat))
-    inverse = start_inverse_mass(pooled, setup.names, setup.coef_names, sites, precision)
-    return values, scales, inverse
+    shared = canonical(setup)
+
+    def prior(z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        log_p, grad, precision = prior_terms(shared, jnp.asarray(z, jnp.float64))
+        return float(log_p), np.asarray(grad), np.asarray(precision)
+
+    return laplace_start(pooled, setup.names, setup.coef_names, sites, prior)
 
 
 def pad_rows(leaf: Any, rows: int, width: int) -> Any:

@@ -29,10 +29,10 @@ from stopwise.estimation.bayes.initial import (
     initial_values,
     jitter_scales,
 )
+from stopwise.estimation.bayes.laplace_mode import flat_sizes, prior_terms
 from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
-    prior_precision,
-    start_inverse_mass,
+    laplace_start,
     start_sites,
 )
 from stopwise.estimation.bayes.prepare import (
@@ -237,8 +237,8 @@ def sampler_start(
     dense_mass: bool | None,
     whiten: bool = False,
 ) -> SamplerStart:
-    """Pooled ML start: the ML point and the Laplace covariance as a dense inverse mass
-    matrix to start the warm-up's adaptation (estimation/bayes/pooled_start.py); hierarchical: the
+    """Pooled ML start: the mode of the Laplace posterior and its covariance as a dense
+    inverse mass matrix to start the warm-up's adaptation (estimation/bayes/pooled_start.py); hierarchical: the
     subjects' start (estimation/bayes/initial.py), with the subject sites whitened when
     ``whiten`` (estimation/bayes/whiten.py); else the natural start values."""
     values = initial_values(setup, natural)
@@ -247,9 +247,9 @@ def sampler_start(
         values, scales = start_sites(pooled, setup.names, setup.coef_names)
         if pooled.cov is not None:
             sites = population_sites(setup)
-            precision = prior_precision(partial(pooled_log_prior, setup), sites, values)
-            inverse_mass = start_inverse_mass(
-                pooled, setup.names, setup.coef_names, sites, precision
+            prior = prior_terms(partial(pooled_log_prior, setup), sites, flat_sizes(sites, values))
+            values, scales, inverse_mass = laplace_start(
+                pooled, setup.names, setup.coef_names, sites, prior
             )
             dense_mass = True if dense_mass is None else dense_mass
     if dense_mass is None:

@@ -9,8 +9,11 @@ short and its draws nearly independent; started from the identity it spends the 
 learning the scales and its first windows are poorly adapted (issue 16: bulk ESS 388 of
 1,000 draws for ``precision`` on 8,752 decisions).
 
-The chains start at z_hat + U(-1, 1) * sd_j per coefficient (sd_j = sqrt(H^-1_jj)): one
-posterior sd apart, so that R-hat still compares chains that did not start at one point.
+The chains start at the mode z* of the Laplace posterior N(z_hat, H^-1) x prior, z* + U(-1, 1)
+* sd_j per coefficient with sd_j the sd of (H + P(z*))^-1, P the prior's curvature
+(``laplace_start``, estimation/bayes/laplace_mode.py): one posterior sd apart, so that R-hat
+still compares chains that did not start at one point. With informative data this is z_hat
+and H^-1; where the likelihood is flat the prior sets the place and the width.
 
 The ML coefficients are ordered parameter by parameter in design-column order
 (estimation/ml/mle.py); the sampler's population sites are z_<k> (the intercept) and b_<k>
@@ -22,14 +25,14 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import jax
-import jax.numpy as jnp
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
+from stopwise.estimation.bayes.laplace_mode import PriorTerms, laplace_mode
 from stopwise.estimation.bayes.priors import resolve_priors
 from stopwise.estimation.loss_side import data_has_losses, loss_parameters
 from stopwise.estimation.point_fits import PointFits, require_point_fits
@@ -155,52 +158,27 @@ def start_sites(
     return values, scales
 
 
-def start_inverse_mass(
+def laplace_start(
     start: PooledStart,
     names: Sequence[str],
     coef_names: Mapping[str, Sequence[str]],
-    sites: tuple[str, ...],
-    prior_precision: np.ndarray | None = None,
-) -> dict[tuple[str, ...], np.ndarray]:
-    """NUTS's inverse mass matrix: one dense block over the population sites, rows and
-    columns in the sampler's site order, equal to the Laplace covariance of the posterior
-
-      (H + P)^-1,   H = (ML covariance)^-1,  P = -d^2 log prior / dz^2 at the ML estimate,
-
-    (H^-1 itself without ``prior_precision``). P matters where the data say little: a
-    direction the likelihood leaves flat gets the prior's width instead of a huge one."""
-    assert start.cov is not None
+    sites: Sequence[str],
+    prior: PriorTerms,
+) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], np.ndarray]]:
+    """The sampler's start from the ML fit and the prior: site values at the mode z* of the
+    Laplace posterior N(z_hat, C) x p(z) (estimation/bayes/laplace_mode.py), jitter one sd
+    of its covariance (H + P(z*))^-1 per coefficient, and that covariance as NUTS's initial
+    inverse mass matrix (one dense block over ``sites``, the sampler's site order). Where the
+    data are informative z* = z_hat and (H + P)^-1 = C; in a direction the likelihood leaves
+    flat the prior sets both the place and the width."""
+    assert start.coef is not None and start.cov is not None
     order = population_permutation(names, coef_names)
-    cov = start.cov[np.ix_(order, order)]
-    if prior_precision is None:
-        return {sites: cov}
-    return {sites: laplace_covariance(cov, prior_precision)}
-
-
-def laplace_covariance(ml_cov: np.ndarray, prior_precision: np.ndarray) -> np.ndarray:
-    """(ml_cov^-1 + P)^-1, with P's negative eigenvalues (a prior convex downwards there)
-    set to 0 so the result stays positive definite and no wider than ml_cov."""
-    values, vectors = np.linalg.eigh(0.5 * (prior_precision + prior_precision.T))
-    p = (vectors * np.maximum(values, 0.0)) @ vectors.T
-    h = np.linalg.inv(ml_cov)
-    out = np.linalg.inv(0.5 * (h + h.T) + p)
-    return 0.5 * (out + out.T)
-
-
-def prior_precision(
-    log_prior: Callable[[Mapping[str, Any]], Any], sites: Sequence[str], values: Mapping[str, Any]
-) -> np.ndarray:
-    """P = -d^2 log_prior / dz^2 at ``values`` over the flattened ``sites`` (in that order;
-    a site named z_<k> is a scalar, b_<k> a vector)."""
-    sizes = [int(np.size(values[s])) for s in sites]
-    flat = np.concatenate([np.ravel(np.asarray(values[s], np.float64)) for s in sites])
-
-    def negative_log_prior(x: Any) -> Any:
-        parts = jnp.split(x, np.cumsum(sizes)[:-1])
-        at = {s: (p[0] if s.startswith("z_") else p) for s, p in zip(sites, parts)}
-        return -log_prior(at)
-
-    return np.asarray(jax.hessian(negative_log_prior)(jnp.asarray(flat)))
+    found = laplace_mode(start.coef[order], start.cov[np.ix_(order, order)], prior)
+    coef, jitter = np.empty_like(start.coef), np.empty_like(start.coef)
+    coef[order] = found.mode
+    jitter[order] = np.sqrt(np.diag(found.cov))
+    values, scales = start_sites(replace(start, coef=coef, jitter=jitter), names, coef_names)
+    return values, scales, {tuple(sites): found.cov}
 
 
 FLAT_VARIANCE = 1e6  # stands in for the infinite ML variance of a direction the data leave flat
