@@ -123,3 +123,36 @@ def test_prior_terms_match_finite_differences():
                 f(x0 + e_i + e_j) - f(x0 + e_i - e_j) - f(x0 - e_i + e_j) + f(x0 - e_i - e_j)
             ) / (4 * h * h)
     np.testing.assert_allclose(precision, numeric, atol=1e-6)
+
+
+def test_an_overshooting_step_beyond_the_prior_range_is_halved_back():
+    # a heavy-tailed prior (log p = -log(1 + z^2) + log sqrt(1 - (z/50)^2) per coordinate,
+    # curving upwards for 1 < |z| << 50) that is undefined (NaN) beyond |z| = 50, three coordinates as in the crra+ch
+    # calibration study, and a likelihood that says almost nothing about the first (ML sd
+    # 636): from z_hat the full Newton step lands where the prior is NaN, and LAPACK's
+    # eigensolver fails on a NaN 3 x 3 matrix ("Eigenvalues did not converge", which ended
+    # a replication of that study). The search must halve back and find the mode.
+    z_hat = np.array([3.0, 0.5, -0.2])
+    ml_cov = np.diag([636.0**2, 0.04, 0.09])
+
+    def log_prior(at):
+        z = at["z"]
+        return jnp.sum(-jnp.log1p(z**2) + jnp.log(jnp.sqrt(1.0 - (z / 50.0) ** 2)))  # NaN, with its
+        # derivatives, beyond |z| = 50
+
+    prior = prior_terms(log_prior, ("z",), (3,))
+    h = np.linalg.inv(ml_cov)
+    _, grad, _ = prior(z_hat)
+    full_step = -np.linalg.solve(h, -grad)  # P+ is 0 along the first axis at z = 3
+    assert abs(z_hat[0] + full_step[0]) > 50.0  # the case is the one it claims to be
+    found = laplace_mode(z_hat, ml_cov, prior)
+
+    def f(z):  # the same objective in numpy, minimised by scipy (independent)
+        d = z - z_hat
+        return 0.5 * d @ h @ d + np.sum(np.log1p(z**2) - np.log(np.sqrt(1.0 - (z / 50.0) ** 2)))
+
+    reference = optimize.minimize(
+        f, np.zeros(3), method="Nelder-Mead", options={"xatol": 1e-10, "fatol": 1e-14}
+    )
+    assert np.all(np.isfinite(found.cov)) and np.all(np.linalg.eigvalsh(found.cov) > 0)
+    np.testing.assert_allclose(found.mode, reference.x, atol=1e-5)

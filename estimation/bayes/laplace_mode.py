@@ -14,8 +14,11 @@ the ML sd, diverged on every transition. Starting at z* with the jitter and mass
 (H + P(z*))^-1 puts the chains where the posterior is.
 
 Newton's method on f with the step Δ = -(H + P₊)^-1 ∇f, P₊ being P with its negative
-eigenvalues set to 0 (so the step always descends), halved until f falls by the Armijo
-fraction (Nocedal & Wright 2006, Algorithm 3.1, backtracking line search).
+eigenvalues set to 0 (so the step always descends), halved until f is finite and falls by
+the Armijo fraction (Nocedal & Wright 2006, Algorithm 3.1, backtracking line search). Where
+the prior curves upwards (P has a negative eigenvalue) and the data say little, the full
+step can overshoot by orders of magnitude (a replication of the calibration study asked for
+880 units in z_tau, where the prior's density underflows); the halving brings it back.
 """
 
 from __future__ import annotations
@@ -67,6 +70,9 @@ def laplace_mode(z_hat: np.ndarray, ml_cov: np.ndarray, prior: PriorTerms) -> La
 
     def terms(z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
         log_p, grad_log_p, precision = prior(z)
+        finite = np.isfinite(log_p) and np.all(np.isfinite(grad_log_p))
+        if not (finite and np.all(np.isfinite(precision))):  # beyond the prior's range
+            return np.inf, np.full_like(z, np.nan), np.full((z.size, z.size), np.nan)
         d = z - z_hat
         return 0.5 * d @ h @ d - log_p, h @ d - grad_log_p, h + positive_part(precision)
 
