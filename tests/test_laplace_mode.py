@@ -156,3 +156,16 @@ def test_an_overshooting_step_beyond_the_prior_range_is_halved_back():
     )
     assert np.all(np.isfinite(found.cov)) and np.all(np.linalg.eigvalsh(found.cov) > 0)
     np.testing.assert_allclose(found.mode, reference.x, atol=1e-5)
+
+
+def test_a_prior_undefined_at_the_ml_point_keeps_the_ml_start():
+    z_hat, ml_cov = np.array([60.0, 0.0]), np.diag([4.0, 1.0])
+
+    def log_prior(at):
+        z = at["z"]
+        return jnp.sum(jnp.log(jnp.sqrt(1.0 - (z / 50.0) ** 2)))
+
+    found = laplace_mode(z_hat, ml_cov, prior_terms(log_prior, ("z",), (2,)))
+    assert not found.converged and found.steps == 0
+    np.testing.assert_array_equal(found.mode, z_hat)
+    np.testing.assert_array_equal(found.cov, ml_cov)

@@ -42,7 +42,9 @@ STEP_TOLERANCE = 1e-9  # stop when the largest Newton step is below this (uncons
 @dataclass(frozen=True)
 class LaplaceMode:
     """The mode z* of the Laplace posterior, its covariance (H + P₊(z*))^-1, the Newton
-    steps taken and whether the last step fell below STEP_TOLERANCE."""
+    steps taken and whether the search ended at a stationary point (last Newton step below
+    STEP_TOLERANCE, or below 1e-6 where rounding stopped the line search). Where the prior
+    is undefined at z_hat: z_hat and the ML covariance, not converged."""
 
     mode: np.ndarray
     cov: np.ndarray
@@ -78,6 +80,8 @@ def laplace_mode(z_hat: np.ndarray, ml_cov: np.ndarray, prior: PriorTerms) -> La
 
     z = z_hat.copy()
     f, grad, curvature = terms(z)
+    if not np.isfinite(f):  # the prior is undefined at the ML point: keep the ML start
+        return LaplaceMode(z_hat, np.asarray(ml_cov, np.float64), 0, False)
     steps, converged = 0, False
     while steps < MAX_NEWTON_STEPS and np.isfinite(f):
         step = -np.linalg.solve(curvature, grad)
@@ -90,8 +94,8 @@ def laplace_mode(z_hat: np.ndarray, ml_cov: np.ndarray, prior: PriorTerms) -> La
             if np.isfinite(trial[0]) and trial[0] <= f + ARMIJO * t * (grad @ step):
                 break
             t *= 0.5
-        else:  # no decrease along a descent direction: z is a mode to working precision
-            converged = True
+        else:  # no decrease along a descent direction: rounding; stationary if the step is small
+            converged = bool(np.max(np.abs(step)) < 1e-6)
             break
         z = z + t * step
         f, grad, curvature = trial
