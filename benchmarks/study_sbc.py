@@ -2,7 +2,8 @@
 Bayesian fits: two solo models and one contest model.
 
 For each replication: draw the parameters from the default priors (truncated to the bounds),
-simulate a data set, run the product's pooled-fit start (ML estimate, Laplace mass matrix) and
+simulate a data set, run the product's pooled-fit start (the Laplace posterior's mode and
+covariance, estimation/bayes/laplace_mode.py) and
 NumPyro's NUTS on the product's density through one compiled program per data shape
 (benchmarks/sbc_sampler.py says what is the same as a user's fit and what differs), thin
 every chain to every THIN-th draw, keep the first KEPT = 99 and record the rank of the true
@@ -390,10 +391,11 @@ def section(r: dict[str, Any]) -> str:
         f"{s['thin']}th kept, the first {s['kept']} ranked), parameters from the default "
         f"priors, invented design: {DESIGNS[r['spec']]} (benchmarks/study_sbc.py), seed {SEED}, "
         f"run {r['where']}. "
-        "Sampler: the product's pooled start (ML estimate; the warm-up starts from the "
-        "Laplace inverse mass matrix, or the identity where the ML Hessian is not positive "
-        "definite, and adapts it, as in the product) and NumPyro's NUTS on the product's "
-        "density, one "
+        "Sampler: the product's pooled start (chains at the mode of the Laplace posterior "
+        "N(ML estimate, ML covariance) x prior, one sd of its covariance apart; the warm-up "
+        "starts from that covariance as inverse mass matrix, or from the ML point and the "
+        "identity where the ML Hessian is not positive definite, and adapts it, as in the "
+        "product) and NumPyro's NUTS on the product's density, one "
         "compiled program per padded data shape (benchmarks/sbc_sampler.py). "
         f"{BINS} bins; band: Bonferroni {R.LEVEL:.0%} simultaneous binomial band "
         "(benchmarks/sbc_ranks.py); Pearson chi-square (9 df) beside it. Figure: "
