@@ -7,7 +7,7 @@ DEMO_STAMP := $(VENV)/.demo-stamp
 PYTEST_ARGS ?=
 # the suite runs in parallel pytest processes (pytest-xdist): one per core, at most 4
 PYTEST_WORKERS ?= auto
-PYTEST_PARALLEL := -n $(PYTEST_WORKERS) --maxprocesses 4 --dist worksteal
+PYTEST_PARALLEL := -n $(PYTEST_WORKERS) --maxprocesses 4 --dist loadfile
 
 .PHONY: demo test test-slow bench lint format clean
 

@@ -90,15 +90,19 @@ def check_demo_command(out, capsys) -> None:
     assert hier["n_subjects"] == 12
     assert {"max_rhat", "min_ess_bulk", "divergences"} <= set(hier["diagnostics"])
     # thinned draws for the report's rank plots; the report draws them from the record
-    assert hier["thinned_draws"]["chains"] == 4 and hier["thinned_draws"]["params"]
+    assert hier["thinned_draws"]["chains"] == demo_module.HIER_CHAINS
+    assert hier["thinned_draws"]["params"]
     assert "<h2>Bayesian diagnostics</h2>" in page
     assert "Time per step on this machine" in printed
 
 
 def test_demo_command_writes_validates_and_describes(tmp_path, capsys, monkeypatch) -> None:
-    # every step of the demo runs; the solo comparison has two of its three models and the
-    # Bayesian step draws 100 + 100 per chain (the whole demo: the slow test below)
+    # every step of the demo runs; the solo comparison has two of its three models, the
+    # contest games are capped at 15 dives instead of 30 and the Bayesian step runs 2 chains
+    # of 100 + 100 (the whole demo: the slow test below)
     monkeypatch.setattr(demo_module, "SOLO_SPECS", demo_module.SOLO_SPECS[:2])
+    monkeypatch.setattr(demo_module, "CONTEST_MAX_TARGET", 15)
+    monkeypatch.setattr(demo_module, "HIER_CHAINS", 2)
     monkeypatch.setattr(demo_module, "HIER_DRAWS", 100)
     monkeypatch.setattr(demo_module, "HIER_WARMUP", 100)
     check_demo_command(tmp_path / "demo", capsys)
