@@ -60,6 +60,7 @@ from stopwise.estimation.bayes.density import (
 )
 from stopwise.estimation.bayes.fit_steps import pointwise_unit, sampling_model
 from stopwise.estimation.bayes.initial import initial_natural, initial_values
+from stopwise.estimation.bayes.laplace_mode import PriorTerms, prior_terms
 from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
     laplace_start,
@@ -144,16 +145,20 @@ def canonical(setup: Setup) -> Setup:
     return _CANONICAL.setdefault(signature(setup), setup)
 
 
-@partial(jax.jit, static_argnums=0)
-def prior_terms(setup: Setup, flat: Any) -> tuple[Any, Any, Any]:
-    """(log p, d log p / dz, -d^2 log p / dz^2) of the pooled population sites at ``flat``
-    (one scalar intercept site per parameter, in ``population_sites`` order)."""
-    sites = population_sites(setup)
+_PRIOR_TERMS: dict[tuple, PriorTerms] = {}
 
-    def log_prior(x: Any) -> Any:
-        return pooled_log_prior(setup, dict(zip(sites, x)))
 
-    return log_prior(flat), jax.grad(log_prior)(flat), -jax.hessian(log_prior)(flat)
+def shared_prior_terms(setup: Setup) -> PriorTerms:
+    """The product's ``prior_terms`` (estimation/bayes/laplace_mode.py) of the pooled
+    population sites, built once per setup signature so that every replication of a study
+    calls one compiled program instead of compiling its own, as a user's fit does."""
+    key = signature(setup)
+    if key not in _PRIOR_TERMS:
+        shared = canonical(setup)
+        sites = population_sites(shared)
+        log_prior = partial(pooled_log_prior, shared)
+        _PRIOR_TERMS[key] = prior_terms(log_prior, sites, [1] * len(sites))
+    return _PRIOR_TERMS[key]
 
 
 def start_for(
@@ -172,12 +177,7 @@ def start_for(
     values, scales = start_sites(pooled, setup.names, setup.coef_names)
     if pooled.cov is None:
         return values, scales, None
-    shared = canonical(setup)
-
-    def prior(z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
-        log_p, grad, precision = prior_terms(shared, jnp.asarray(z, jnp.float64))
-        return float(log_p), np.asarray(grad), np.asarray(precision)
-
+    prior = shared_prior_terms(setup)
     return laplace_start(pooled, setup.names, setup.coef_names, sites, prior)
 
 
