@@ -166,8 +166,9 @@ def start_for(
 ) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], Any] | None]:
     """``sampler_start``'s pooled branch (estimation/bayes/fit_steps.py): values, jitter
     scales and the inverse mass the warm-up starts from, all from ``laplace_start`` (the mode
-    of the Laplace posterior), None where the product starts from the identity (no positive
-    definite ML Hessian). Pooled fits without formulas only."""
+    of the Laplace posterior), None where the product starts from the identity (some
+    direction that neither the ML Hessian's positive part nor the prior curves). Pooled fits
+    without formulas only."""
     sites = population_sites(setup)
     if any(not s.startswith("z_") for s in sites):
         raise ValueError("only pooled fits without formulas are supported")
@@ -175,7 +176,7 @@ def start_for(
     if pooled.coef is None:
         return values, scales, None
     values, scales = start_sites(pooled, setup.names, setup.coef_names)
-    if pooled.cov is None:
+    if not pooled.has_curvature:
         return values, scales, None
     prior = shared_prior_terms(setup)
     return laplace_start(pooled, setup.names, setup.coef_names, sites, prior)

@@ -4,6 +4,8 @@ settings that converge (issue 16: bulk ESS >= 0.8 x draws, R-hat <= 1.01 at 2 x 
 
 from __future__ import annotations
 
+import dataclasses
+
 import jax.numpy as jnp
 import numpy as np
 import pytest
@@ -126,7 +128,8 @@ def test_pooled_default_converges_and_matches_statsmodels_logit(logistic_fit):
     data, post = logistic_fit
     assert (
         post.run["init"]
-        == "ML estimate, inverse mass matrix from the ML covariance (warm-up start, adapted)"
+        == "mode of the Laplace posterior (ML normal approximation x prior), inverse mass "
+        "matrix from its covariance (warm-up start, adapted)"
     )
     d = post.diagnostics
     assert d["min_ess_bulk"] >= ESS_GOAL, post.params
@@ -140,6 +143,48 @@ def test_pooled_default_converges_and_matches_statsmodels_logit(logistic_fit):
         mean, sd = post.params.loc[name, "estimate"], post.params.loc[name, "se"]
         assert abs(mean - ref.params[i]) < 0.15 * ref.bse[i], (name, mean, ref.params[i])
         assert sd == pytest.approx(ref.bse[i], rel=0.12), (name, sd, ref.bse[i])
+
+
+def test_collinear_columns_start_where_the_prior_fills_the_flat_direction():
+    # every decision at step 2: the data measure u = b0 + 2 b1 only, so the ML Hessian has
+    # rank 1 and no ML covariance exists (the former start kept the ML point with the
+    # identity mass matrix and a jitter of 0.1)
+    n = 2000
+    bundle = logistic_bundle(n, seed=3)
+    rng = np.random.default_rng(4)
+    draw = (rng.random(n) < 1.0 / (1.0 + np.exp(-0.5))).astype(float)
+    data = dataclasses.replace(bundle, step=np.full(n, 2, np.int32), draw=draw)
+    start = ml_start(STEP_LOGISTIC, data, None, ML_POINT_FITS)
+    assert start.cov is None and start.has_curvature
+    # independent: a logistic regression's information n p (1 - p) x x^T at the ML point,
+    # where p is the share of draws, x = (1, 2) (common practice, no source)
+    p_hat, x = float(draw.mean()), np.array([1.0, 2.0])
+    information = n * p_hat * (1.0 - p_hat) * np.outer(x, x)
+    np.testing.assert_allclose(start.precision, information, rtol=1e-6, atol=1e-6)
+    post = fit_bayes(
+        STEP_LOGISTIC,
+        data,
+        chains=2,
+        draws=500,
+        warmup=500,
+        seed=2,
+        progress=False,
+        point_fits=ML_POINT_FITS,
+    )
+    assert post.run["init"].startswith("mode of the Laplace posterior")
+    assert post.run["dense_mass"] is True
+    d = post.diagnostics
+    assert d["max_rhat"] <= RHAT_GOAL and d["divergences"] == 0, d
+    # with the prior Normal(0, 2.5) on each coefficient (estimation/bayes/priors.py) and a
+    # likelihood of u alone, the posterior along w = (2, -1) / sqrt(5) is that prior exactly:
+    # mean 0, sd 2.5 (conjugate normal algebra; common practice, no source)
+    b0, b1 = np.ravel(post.draws("b0")), np.ravel(post.draws("b1"))
+    along_w = (2.0 * b0 - b1) / np.sqrt(5.0)
+    assert abs(along_w.mean()) < 4.0 * 2.5 / np.sqrt(d["min_ess_bulk"]), along_w.mean()
+    assert along_w.std() == pytest.approx(2.5, rel=0.15)
+    # and u is near the logit of the share of draws (the prior on u, sd 2.5 sqrt(5), is weak)
+    u = b0 + 2.0 * b1
+    assert abs(u.mean() - np.log(p_hat / (1.0 - p_hat))) < 0.3 * u.std()
 
 
 @pytest.mark.slow

@@ -9,7 +9,11 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from stopwise.estimation.bayes.laplace_mode import laplace_mode, prior_terms
+from stopwise.estimation.bayes.laplace_mode import (
+    laplace_mode,
+    laplace_mode_from_precision,
+    prior_terms,
+)
 
 
 def logistic_prior(centre: np.ndarray, scale: np.ndarray):
@@ -169,3 +173,63 @@ def test_a_prior_undefined_at_the_ml_point_keeps_the_ml_start():
     assert not found.converged and found.steps == 0
     np.testing.assert_array_equal(found.mode, z_hat)
     np.testing.assert_array_equal(found.cov, ml_cov)
+
+
+def test_a_singular_likelihood_curvature_is_filled_by_the_prior():
+    # an ML Hessian of rank 1 (the data measure z_0 + 2 z_1 only; no ML covariance exists)
+    # with a Gaussian prior: the conjugate closed form still holds with H singular
+    # (common practice, no source): precision H + S^-1, mode (H + S^-1)^-1 (H z_hat + S^-1 m),
+    # computed with plain numpy. The former start kept z_hat and the identity here.
+    v = np.array([1.0, 2.0])
+    h = 40.0 * np.outer(v, v)
+    z_hat = np.array([1.5, -0.5])
+    m, s_inv = np.array([0.2, 0.1]), np.diag([1.0 / 6.25, 1.0 / 6.25])
+
+    def gaussian(z):
+        d = z - m
+        return -0.5 * d @ s_inv @ d, -s_inv @ d, s_inv
+
+    found = laplace_mode_from_precision(z_hat, h, gaussian)
+    expected_cov = np.linalg.inv(h + s_inv)
+    np.testing.assert_allclose(found.cov, expected_cov, rtol=1e-10)
+    np.testing.assert_allclose(found.mode, expected_cov @ (h @ z_hat + s_inv @ m), rtol=1e-9)
+    assert found.converged
+    flat = np.array([2.0, -1.0]) / np.sqrt(5.0)  # the direction the data leave flat
+    assert flat @ found.cov @ flat == pytest.approx(6.25, rel=1e-9)  # the prior's variance
+    assert abs(flat @ (found.mode - z_hat)) > 0.5  # the start moved along it
+
+
+def test_a_direction_flat_in_likelihood_and_prior_gives_no_laplace_start():
+    # rank-1 H and a prior that does not curve along the other direction: no covariance
+    h = 40.0 * np.outer([1.0, 2.0], [1.0, 2.0])
+
+    def flat_prior(z):
+        return 0.0, np.zeros(2), np.zeros((2, 2))
+
+    assert laplace_mode_from_precision(np.array([1.0, 0.0]), h, flat_prior) is None
+
+
+def test_an_ml_point_run_off_along_the_flat_direction_starts_the_search_at_the_prior_centre():
+    # the crra+logit calibration study's case: the data leave z_0 flat, the ML optimiser
+    # stopped at z_0 = -25, where the logistic prior's log density is linear to 1e-11 (its
+    # curvature 2 s(1 - s) is 3e-11), so H + P+ is singular there and Newton cannot step.
+    # Started at the prior's centre instead, the search must reach the same mode as scipy's
+    # optimiser on the same objective written in numpy (independent).
+    z_hat = np.array([-25.0, 0.3])
+    h = np.diag([0.0, 50.0])
+    prior, numpy_log_prior = logistic_prior(np.array([0.0, 0.0]), np.array([1.0, 1.0]))
+    assert laplace_mode_from_precision(z_hat, h, prior) is None
+    found = laplace_mode_from_precision(z_hat, h, prior, (np.zeros(2),))
+
+    def f(z):
+        d = z - z_hat
+        return 0.5 * d @ h @ d - numpy_log_prior(z)
+
+    reference = optimize.minimize(
+        f, np.zeros(2), method="Nelder-Mead", options={"xatol": 1e-10, "fatol": 1e-14}
+    )
+    assert found.converged
+    np.testing.assert_allclose(found.mode, reference.x, atol=1e-6)
+    assert abs(found.mode[0]) < 1e-6  # the prior's mode, 25 units from the ML point
+    # sd along the flat direction: the logistic prior's curvature 1/2 at its mode
+    assert found.cov[0, 0] == pytest.approx(2.0, rel=1e-6)

@@ -180,7 +180,7 @@ def fit_bayes(
             "chain_method": method,
             "target_accept": target_accept,
             "max_tree_depth": max_tree_depth,
-            "init": _init_text(init, pooled),
+            "init": _init_text(init, pooled, start.inverse_mass is not None),
             "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": start.dense_mass,
             "subject_whitening": start.whitening is not None,
@@ -255,11 +255,12 @@ def pooled_from_ml(hierarchical: bool, init: Any) -> bool:
     return not hierarchical and (init is None or (isinstance(init, str) and init == "mle"))
 
 
-def _init_text(init: Any, pooled: PooledStart | None = None) -> str:
+def _init_text(init: Any, pooled: PooledStart | None = None, laplace: bool = False) -> str:
     if pooled is not None:
-        if pooled.cov is not None:
+        if laplace:
             return (
-                "ML estimate, inverse mass matrix from the ML covariance (warm-up start, adapted)"
+                "mode of the Laplace posterior (ML normal approximation x prior), inverse "
+                "mass matrix from its covariance (warm-up start, adapted)"
             )
         return "ML estimate" if pooled.coef is not None else "model start values"
     if isinstance(init, Mapping):

@@ -245,13 +245,14 @@ def sampler_start(
     scales = inverse_mass = None
     if pooled is not None and pooled.coef is not None:
         values, scales = start_sites(pooled, setup.names, setup.coef_names)
-        if pooled.cov is not None:
+        if pooled.has_curvature:
             sites = population_sites(setup)
             prior = prior_terms(partial(pooled_log_prior, setup), sites, flat_sizes(sites, values))
             values, scales, inverse_mass = laplace_start(
                 pooled, setup.names, setup.coef_names, sites, prior
             )
-            dense_mass = True if dense_mass is None else dense_mass
+            if inverse_mass is not None:
+                dense_mass = True if dense_mass is None else dense_mass
     if dense_mass is None:
         dense_mass = hierarchical
     if subjects is not None:

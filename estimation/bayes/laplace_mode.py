@@ -19,6 +19,10 @@ the Armijo fraction (Nocedal & Wright 2006, Algorithm 3.1, backtracking line sea
 the prior curves upwards (P has a negative eigenvalue) and the data say little, the full
 step can overshoot by orders of magnitude (a replication of the calibration study asked for
 880 units in z_tau, where the prior's density underflows); the halving brings it back.
+
+Where the ML Hessian is not positive definite (a direction the data leave flat, so no ML
+covariance exists) the search takes H as that Hessian's positive part: the prior fills the
+flat directions as long as H + P₊ stays positive definite (``laplace_mode_from_precision``).
 """
 
 from __future__ import annotations
@@ -30,6 +34,8 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
+
+from stopwise.estimation.ml.covariance import is_positive_definite
 
 # (log p(z), d log p / dz, -d^2 log p / dz^2) at a flat z
 PriorTerms = Callable[[np.ndarray], tuple[float, np.ndarray, np.ndarray]]
@@ -66,22 +72,46 @@ def symmetric_inverse(matrix: np.ndarray) -> np.ndarray:
 
 def laplace_mode(z_hat: np.ndarray, ml_cov: np.ndarray, prior: PriorTerms) -> LaplaceMode:
     """Minimise f(z) = 1/2 (z - z_hat)^T H (z - z_hat) - log p(z), H = ml_cov^-1, by damped
-    Newton steps from z_hat; return z* and (H + P₊(z*))^-1."""
+    Newton steps from z_hat; return z* and (H + P₊(z*))^-1. Where the prior is undefined at
+    z_hat: z_hat and ml_cov, not converged."""
+    ml_cov = np.asarray(ml_cov, np.float64)
+    found = laplace_mode_from_precision(z_hat, symmetric_inverse(ml_cov), prior)
+    if found is None:
+        return LaplaceMode(np.asarray(z_hat, np.float64), ml_cov, 0, False)
+    return found
+
+
+def laplace_mode_from_precision(
+    z_hat: np.ndarray,
+    precision: np.ndarray,
+    prior: PriorTerms,
+    other_starts: Sequence[np.ndarray] = (),
+) -> LaplaceMode | None:
+    """The same search with the likelihood's curvature H given directly. H may be singular
+    (the positive part of an ML Hessian that is not positive definite: a direction the data
+    leave flat), as long as H + P₊ is positive definite along the way, the prior filling the
+    flat directions. The search starts at z_hat, or at the first of ``other_starts`` where
+    f is finite and H + P₊ positive definite: an ML point that ran off along the flat
+    direction lies where the prior's log density is nearly linear (P₊ = 0), and Newton
+    cannot step from there. None where no start qualifies."""
     z_hat = np.asarray(z_hat, np.float64)
-    h = symmetric_inverse(np.asarray(ml_cov, np.float64))
+    h = 0.5 * (np.asarray(precision, np.float64) + np.asarray(precision, np.float64).T)
 
     def terms(z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
-        log_p, grad_log_p, precision = prior(z)
+        log_p, grad_log_p, prior_precision = prior(z)
         finite = np.isfinite(log_p) and np.all(np.isfinite(grad_log_p))
-        if not (finite and np.all(np.isfinite(precision))):  # beyond the prior's range
+        if not (finite and np.all(np.isfinite(prior_precision))):  # beyond the prior's range
             return np.inf, np.full_like(z, np.nan), np.full((z.size, z.size), np.nan)
         d = z - z_hat
-        return 0.5 * d @ h @ d - log_p, h @ d - grad_log_p, h + positive_part(precision)
+        return 0.5 * d @ h @ d - log_p, h @ d - grad_log_p, h + positive_part(prior_precision)
 
-    z = z_hat.copy()
-    f, grad, curvature = terms(z)
-    if not np.isfinite(f):  # the prior is undefined at the ML point: keep the ML start
-        return LaplaceMode(z_hat, np.asarray(ml_cov, np.float64), 0, False)
+    for candidate in (z_hat, *other_starts):
+        z = np.asarray(candidate, np.float64).copy()
+        f, grad, curvature = terms(z)
+        if np.isfinite(f) and is_positive_definite(curvature):
+            break
+    else:
+        return None
     steps, converged = 0, False
     while steps < MAX_NEWTON_STEPS and np.isfinite(f):
         step = -np.linalg.solve(curvature, grad)
@@ -91,7 +121,11 @@ def laplace_mode(z_hat: np.ndarray, ml_cov: np.ndarray, prior: PriorTerms) -> La
         t = 1.0
         while t > 1e-12:
             trial = terms(z + t * step)
-            if np.isfinite(trial[0]) and trial[0] <= f + ARMIJO * t * (grad @ step):
+            if (
+                np.isfinite(trial[0])
+                and trial[0] <= f + ARMIJO * t * (grad @ step)
+                and is_positive_definite(trial[2])
+            ):
                 break
             t *= 0.5
         else:  # no decrease along a descent direction: rounding; stationary if the step is small

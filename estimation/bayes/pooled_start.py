@@ -32,7 +32,12 @@ import jax
 import numpy as np
 
 from stopwise.data_schemas.errors import StopwiseInputError
-from stopwise.estimation.bayes.laplace_mode import PriorTerms, laplace_mode
+from stopwise.estimation.bayes.laplace_mode import (
+    PriorTerms,
+    laplace_mode,
+    laplace_mode_from_precision,
+    positive_part,
+)
 from stopwise.estimation.bayes.priors import resolve_priors
 from stopwise.estimation.loss_side import data_has_losses, loss_parameters
 from stopwise.estimation.point_fits import PointFits, require_point_fits
@@ -41,13 +46,22 @@ from stopwise.estimation.point_fits import PointFits, require_point_fits
 @dataclass(frozen=True)
 class PooledStart:
     """Natural-scale ML estimates of the intercepts, the ML coefficients and covariance in
-    site order (None if unavailable), and notes saying what was done."""
+    ML coefficient order (None if unavailable), and notes saying what was done. Where the ML
+    Hessian is not positive definite ``cov`` is None and ``precision`` holds its positive
+    part (a flat direction has curvature 0 there), for the prior to fill."""
 
     natural: dict[str, float]
     coef: np.ndarray | None
     cov: np.ndarray | None
     notes: list[str] = field(default_factory=list)
     jitter: np.ndarray | None = None  # start jitter per coefficient (default: sqrt diag cov)
+    precision: np.ndarray | None = None  # positive part of a non-positive-definite ML Hessian
+    prior_centre: np.ndarray | None = None  # where the mode search may start instead of z_hat
+
+    @property
+    def has_curvature(self) -> bool:
+        """The likelihood's curvature is known: an ML covariance, or a Hessian's positive part."""
+        return self.coef is not None and (self.cov is not None or self.precision is not None)
 
     @property
     def usable(self) -> bool:
@@ -111,12 +125,36 @@ def ml_start(model: Any, data: Any, formulas: Any, point_fits: PointFits | None)
     if not fit.converged:
         notes.append("pooled start: the ML optimiser did not converge; its point is only a start")
     if cov is None or not np.all(np.isfinite(cov)):
-        notes.append(
-            "pooled start: the ML Hessian is not positive definite (a flat or unidentified "
-            "direction); the mass matrix starts at the identity"
+        notes.append(FLAT_HESSIAN_NOTE)
+        centre = prior_centre(model) if z.size == len(model.params) else None
+        return PooledStart(
+            natural, z, None, notes, precision=hessian_positive_part(fit), prior_centre=centre
         )
-        return PooledStart(natural, z, None, notes)
     return PooledStart(natural, z, cov, notes)
+
+
+FLAT_HESSIAN_NOTE = (
+    "pooled start: the ML Hessian is not positive definite (a flat or unidentified "
+    "direction); the start combines its positive part with the prior (the identity mass "
+    "matrix where both leave a direction flat)"
+)
+
+
+def prior_centre(model: Any) -> np.ndarray:
+    """Each parameter's default-prior median on the unconstrained scale (model order)."""
+    priors = resolve_priors(model)
+    return np.asarray(
+        [prior_median_and_sd(priors[spec.name], spec)[0] for spec in model.params], np.float64
+    )
+
+
+def hessian_positive_part(fit: Any) -> np.ndarray | None:
+    """The positive part of the ML fit's Hessian in z (negative eigenvalues set to 0), None
+    if the fit did not keep a finite one."""
+    hessian = getattr(fit, "extras", {}).get("hessian_z")
+    if hessian is None or not np.all(np.isfinite(hessian)):
+        return None
+    return positive_part(np.asarray(hessian, np.float64))
 
 
 def natural_intercepts(model: Any, fit: Any) -> dict[str, float]:
@@ -164,16 +202,29 @@ def laplace_start(
     coef_names: Mapping[str, Sequence[str]],
     sites: Sequence[str],
     prior: PriorTerms,
-) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], np.ndarray]]:
+) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], np.ndarray] | None]:
     """The sampler's start from the ML fit and the prior: site values at the mode z* of the
     Laplace posterior N(z_hat, C) x p(z) (estimation/bayes/laplace_mode.py), jitter one sd
     of its covariance (H + P(z*))^-1 per coefficient, and that covariance as NUTS's initial
     inverse mass matrix (one dense block over ``sites``, the sampler's site order). Where the
     data are informative z* = z_hat and (H + P)^-1 = C; in a direction the likelihood leaves
-    flat the prior sets both the place and the width."""
-    assert start.coef is not None and start.cov is not None
+    flat the prior sets both the place and the width. Without an ML covariance the
+    curvature is the Hessian's positive part (``start.precision``); where that and the
+    prior leave a direction flat: the ML point, jitter 0.1 and no mass block (the identity)."""
+    assert start.coef is not None
     order = population_permutation(names, coef_names)
-    found = laplace_mode(start.coef[order], start.cov[np.ix_(order, order)], prior)
+    if start.cov is not None:
+        found = laplace_mode(start.coef[order], start.cov[np.ix_(order, order)], prior)
+    elif start.precision is not None:
+        centre = () if start.prior_centre is None else (start.prior_centre[order],)
+        found = laplace_mode_from_precision(
+            start.coef[order], start.precision[np.ix_(order, order)], prior, centre
+        )
+    else:
+        found = None
+    if found is None:
+        values, scales = start_sites(start, names, coef_names)
+        return values, scales, None
     coef, jitter = np.empty_like(start.coef), np.empty_like(start.coef)
     coef[order] = found.mode
     jitter[order] = np.sqrt(np.diag(found.cov))
@@ -232,8 +283,19 @@ def start_without_losses(
     for n in free:
         coef[names.index(n)] = free_z[n]
     if ml_cov is None or not np.all(np.isfinite(ml_cov)):
-        flat = "pooled start: the ML Hessian is not positive definite; identity mass matrix"
-        return PooledStart(natural_intercepts(model, fit), coef, None, [note, flat])
+        free_part = hessian_positive_part(fit)
+        precision = None
+        if free_part is not None:
+            precision = np.diag(np.where(np.diag(cov) > 0, 1.0 / FLAT_VARIANCE, 0.0))
+            precision[np.ix_(rows, rows)] = free_part
+        return PooledStart(
+            natural_intercepts(model, fit),
+            coef,
+            None,
+            [note, FLAT_HESSIAN_NOTE],
+            precision=precision,
+            prior_centre=prior_centre(model),
+        )
     cov[np.ix_(rows, rows)] = ml_cov
     jitter[rows] = np.sqrt(np.diag(ml_cov))
     natural = {n: float(model.spec(n).to_natural(coef[names.index(n)])) for n in names}

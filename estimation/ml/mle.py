@@ -233,7 +233,7 @@ def run_fit(
     if account.note():
         notes.append(str(account.note()))
     clusters = None
-    extras: dict[str, Any] = {"problem": problem}
+    extras: dict[str, Any] = {"problem": problem, "hessian_z": np.asarray(h, np.float64)}
     se_label = se
     if se == "bootstrap":
         table, info, boot_warn = bootstrap_table(
