@@ -7,6 +7,7 @@ decisions about individual people.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -74,7 +75,7 @@ def _model_and_theta(fit_or_params: Any) -> tuple[Model, dict[str, float], int |
         if max_target is None and isinstance(model, Model):
             max_target = model.options.get("max_target")
     if isinstance(model, str):
-        model = build_model(model, **({} if max_target is None else {"max_target": max_target}))
+        model = counterfactual_model(model, None if max_target is None else int(max_target))
     if not isinstance(model, Model) or model.data_kind != "contest":
         raise StopwiseInputError(
             "counterfactual needs a contest model (e.g. 'crra+qre') and its parameter values"
@@ -84,6 +85,16 @@ def _model_and_theta(fit_or_params: Any) -> tuple[Model, dict[str, float], int |
     if missing:
         raise StopwiseInputError(f"parameter value(s) missing for {sorted(missing)}")
     return model, {k: float(params[k]) for k in model.param_names}, max_target
+
+
+@functools.lru_cache(maxsize=16)
+def counterfactual_model(spec: str, max_target: int | None) -> Model:
+    """One Model per (spec, max_target) for counterfactual play: its compiled programs (the
+    play's distribution, the incentive search's slopes) are keyed by the model object, so a
+    second call with the same spec reuses them instead of compiling again (measured on a
+    two-player linear+qre design with max_target 8: 6.9 s -> see benchmarks). The model is
+    never shown data here, so nothing in it is sized from one caller's data."""
+    return build_model(spec, **({} if max_target is None else {"max_target": max_target}))
 
 
 def _params_dict(params: Any) -> dict[str, float]:
