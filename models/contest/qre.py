@@ -108,6 +108,7 @@ def precision_schedule(precision: Any, scale: Any, steps: int) -> Any:
     return precision * jnp.exp(-span * (1.0 - k / steps))
 
 
+@partial(jax.jit, static_argnums=(0, 4, 5, 6))
 def _continuation(
     residual: Residual,
     x0: Any,
@@ -120,7 +121,9 @@ def _continuation(
 ) -> Any:
     """Follow the branch from lambda ~ 0 along ``precision_schedule`` (Newton in log space at
     each), then polish at the target precision through ``solve_root`` (which carries
-    gradients)."""
+    gradients). Compiled once per residual, step counts and shapes: called outside a traced
+    function (a fit's certificate, a counterfactual), its loops would otherwise compile anew
+    on every call (about 1-2 s each on 2 cores)."""
     frozen = jax.lax.stop_gradient((precision, *rest))
     schedule = precision_schedule(frozen[0], jax.lax.stop_gradient(scale), steps)
 
