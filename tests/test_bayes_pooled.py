@@ -108,10 +108,9 @@ def test_ml_coefficients_reach_the_right_sites_when_the_intercept_is_not_first()
     assert matrix[1, 1] == pytest.approx(cov[0, 0], rel=1e-9)
 
 
-@pytest.fixture(scope="module")
-def logistic_fit():
-    data = logistic_bundle(3000, seed=5)
-    post = fit_bayes(
+def default_pooled_fit(data):
+    """fit_bayes of STEP_LOGISTIC at issue 16's default settings (2 chains x 500 + 500)."""
+    return fit_bayes(
         STEP_LOGISTIC,
         data,
         chains=2,
@@ -121,6 +120,12 @@ def logistic_fit():
         progress=False,
         point_fits=ML_POINT_FITS,
     )
+
+
+@pytest.fixture(scope="module")
+def logistic_fit():
+    data = logistic_bundle(3000, seed=5)
+    post = default_pooled_fit(data)
     return data, post
 
 
@@ -161,16 +166,7 @@ def test_collinear_columns_start_where_the_prior_fills_the_flat_direction():
     p_hat, x = float(draw.mean()), np.array([1.0, 2.0])
     information = n * p_hat * (1.0 - p_hat) * np.outer(x, x)
     np.testing.assert_allclose(start.precision, information, rtol=1e-6, atol=1e-6)
-    post = fit_bayes(
-        STEP_LOGISTIC,
-        data,
-        chains=2,
-        draws=500,
-        warmup=500,
-        seed=2,
-        progress=False,
-        point_fits=ML_POINT_FITS,
-    )
+    post = default_pooled_fit(data)
     assert post.run["init"].startswith("mode of the Laplace posterior")
     assert post.run["dense_mass"] is True
     d = post.diagnostics
