@@ -35,7 +35,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from stopwise.estimation.ml.covariance import is_positive_definite
+from stopwise.estimation.matrices import (
+    is_positive_definite,
+    positive_part,
+    symmetric_inverse,
+)
 
 # (log p(z), d log p / dz, -d^2 log p / dz^2) at a flat z
 PriorTerms = Callable[[np.ndarray], tuple[float, np.ndarray, np.ndarray]]
@@ -56,18 +60,6 @@ class LaplaceMode:
     cov: np.ndarray
     steps: int
     converged: bool
-
-
-def positive_part(matrix: np.ndarray) -> np.ndarray:
-    """The symmetric part of ``matrix`` with its negative eigenvalues set to 0."""
-    values, vectors = np.linalg.eigh(0.5 * (matrix + matrix.T))
-    return (vectors * np.maximum(values, 0.0)) @ vectors.T
-
-
-def symmetric_inverse(matrix: np.ndarray) -> np.ndarray:
-    """The inverse of a symmetric positive definite matrix, symmetrised."""
-    out = np.linalg.inv(0.5 * (matrix + matrix.T))
-    return 0.5 * (out + out.T)
 
 
 def laplace_mode(z_hat: np.ndarray, ml_cov: np.ndarray, prior: PriorTerms) -> LaplaceMode:

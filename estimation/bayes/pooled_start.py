@@ -36,10 +36,10 @@ from stopwise.estimation.bayes.laplace_mode import (
     PriorTerms,
     laplace_mode,
     laplace_mode_from_precision,
-    positive_part,
 )
 from stopwise.estimation.bayes.priors import resolve_priors
 from stopwise.estimation.loss_side import data_has_losses, loss_parameters
+from stopwise.estimation.matrices import positive_part
 from stopwise.estimation.point_fits import PointFits, require_point_fits
 
 

@@ -18,17 +18,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
+from stopwise.estimation.matrices import is_positive_definite
 from stopwise.estimation.ml.problem import Problem, Reported, report_derivatives, report_values
 
 NORMAL_95 = float(special.ndtri(0.975))  # the normal quantile (scipy.stats loads slowly)
-
-
-def is_positive_definite(h: np.ndarray, rel_tol: float = 1e-10) -> bool:
-    """All eigenvalues of the symmetrised H above rel_tol * max |eigenvalue| (and finite)."""
-    if not np.all(np.isfinite(h)):
-        return False
-    eig = np.linalg.eigvalsh(0.5 * (h + h.T))
-    return bool(eig.min() > rel_tol * max(np.abs(eig).max(), 1e-300))
 
 
 def hessian_covariance(h: np.ndarray) -> np.ndarray | None:
