@@ -29,7 +29,7 @@ from stopwise.api import prepare_model, resolve_data, select_data
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import tables
-from stopwise.estimation.ml.response import stop_step_table
+from stopwise.estimation.ml.response import row_loglik, stop_step_table
 from stopwise.fit_record import bundle_fingerprint
 from stopwise.models.base import Model
 from stopwise.models.simulation import simulate
@@ -124,8 +124,7 @@ class SavedFit:
         """Recompute the log-likelihood at theta on the fitted data; refuse on a mismatch.
         Returns the relative difference."""
         saved = self.record.get("loglik")
-        values = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in theta.items()}
-        loglik = float(jnp.sum(model.loglik_obs(values, bundle)))
+        loglik = float(np.sum(row_loglik(model, theta, bundle)))
         if saved is None:
             raise StopwiseInputError(f"{self.source}: no saved log-likelihood to check against")
         gap = abs(loglik - float(saved)) / max(1.0, abs(float(saved)))
