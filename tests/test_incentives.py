@@ -376,6 +376,11 @@ def test_prize_derivative_matches_central_differences(spec, theta, goal, keep):
     slope = prize_derivative(model, theta, goal, design, 5.0, target_risk=3.0)
     assert slope["relative_gap"] <= 1e-6
     assert abs(slope["derivative"]) > 1e-5  # not a flat spot where any answer would pass
+    # and against central differences taken here, through goal_of_prize (a separate path
+    # from the compiled slopes program the derivative and its own check come from)
+    goal_at, h = goal_of_prize(model, theta, goal, design, 3.0), 5e-5
+    central = (float(goal_at(5.0 + h)) - float(goal_at(5.0 - h))) / (2 * h)
+    assert slope["derivative"] == pytest.approx(central, rel=1e-6)
     row = counterfactual(
         {"model": model, "params": theta, "max_target": 8},
         [{"players": 2, "prize": 5.0, "keep_bank": keep, "p_survive": 0.8}],
