@@ -21,7 +21,6 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
@@ -29,7 +28,7 @@ from stopwise.api import prepare_model, resolve_data, select_data
 from stopwise.data_schemas.arrays import LotteryData
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.estimation import tables
-from stopwise.estimation.ml.response import row_loglik, stop_step_table
+from stopwise.estimation.ml.response import stop_step_table
 from stopwise.fit_record import bundle_fingerprint
 from stopwise.models.base import Model
 from stopwise.models.simulation import simulate
@@ -124,7 +123,7 @@ class SavedFit:
         """Recompute the log-likelihood at theta on the fitted data; refuse on a mismatch.
         Returns the relative difference."""
         saved = self.record.get("loglik")
-        loglik = float(np.sum(row_loglik(model, theta, bundle)))
+        loglik = float(np.sum(row_logliks(model, theta, bundle)))
         if saved is None:
             raise StopwiseInputError(f"{self.source}: no saved log-likelihood to check against")
         gap = abs(loglik - float(saved)) / max(1.0, abs(float(saved)))
@@ -148,8 +147,7 @@ class SavedFit:
         )
         if isinstance(bundle, LotteryData):
             probe = replace(bundle, choice_b=np.ones_like(np.asarray(bundle.choice_b)))
-            values = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in theta.items()}
-            prob = np.exp(np.asarray(model.loglik_obs(values, probe)))
+            prob = np.exp(row_logliks(model, theta, probe))
             return {
                 "rows": pd.DataFrame(
                     {"subject": labels, "p_choose_b": prob, "chose_b": np.asarray(bundle.choice_b)}

@@ -59,22 +59,6 @@ def _compiled_response_probability(model: Any, theta: Mapping[str, Any], probe: 
     return jnp.exp(model.loglik_obs(theta, probe))
 
 
-@partial(jax.jit, static_argnums=0)
-def _compiled_row_loglik(model: Any, theta: Mapping[str, Any], rows: Any) -> Any:
-    """model.loglik_obs(theta, rows), compiled once per model and row shapes."""
-    return model.loglik_obs(theta, rows)
-
-
-def row_loglik(model: Any, theta: Mapping[str, Any], data: Any) -> np.ndarray:
-    """ll_i = log P(row i's observed response | theta) per row, through one compiled program
-    on the rows as given (no padding, so no row can touch another's value). The model must
-    have sized its caps from these rows first (stopwise.api.prepare_model), so that the
-    traced tables equal the eager ones. Evaluated eagerly instead, a stopping model's table
-    compiled about a hundred one-operation programs on first use (about 6 s on 2 cores)."""
-    theta = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in theta.items()}
-    return np.asarray(_compiled_row_loglik(model, theta, _strip(data)))
-
-
 def _response_probability(model: Any, theta: Mapping[str, Any], data: Any) -> np.ndarray:
     """P(modelled response) per row, compiled once per model and bucket of row counts (rows
     padded with copies of the first one): model.predict, else exp(ll) with the response set
