@@ -15,8 +15,9 @@ the sampler is NumPyro's NUTS (``numpyro.infer.hmc.hmc``, the functions its ``NU
 calls) with the product's settings: start at the mode z* of the Laplace posterior
 N(ML, C) x prior moved by U(-1, 1) x its sd per chain, the dense inverse mass matrix
 (H + P(z*))^-1 from the ML Hessian H and the prior's curvature P as the warm-up's starting
-metric (``laplace_start``), adapted in the warm-up like the step size (the product's ``mass_matrix_settings``, estimation/bayes/sampler.py, gives both the
-same keywords), target acceptance 0.8, maximum tree depth 10.
+metric (``laplace_start``), adapted in the warm-up like the step size (the product's
+``mass_matrix_settings``, estimation/bayes/sampler.py, gives both the same keywords),
+target acceptance 0.8, maximum tree depth 10.
 
 What differs (settings, stated): the chain counts and lengths (the study's ``Sampling``);
 the chains' starting jitter is drawn from the study's key instead of NumPyro's init-strategy
@@ -26,8 +27,8 @@ not redrawn (NumPyro's init strategy redraws up to 100 times, numpyro/infer/util
 reached about 2,000 in z on short contest data) chains of the crra+ch study started
 thousands of units out and diverged on every transition in 72 replications, while the
 product's own fit of replication 8 with that start did not diverge (4 seeds, 2026-12-03):
-the calibration study then measured the harness more than the product; the data are padded to one shape so one compiled program serves
-every replication: every leaf of the cell bundle whose second axis is the row axis is padded
+the calibration study then measured the harness more than the product. The data are
+padded to one shape so one compiled program serves every replication: every leaf of the cell bundle whose second axis is the row axis is padded
 by repeating its last row with weight 0 (the density sums weight x log-likelihood and zeroes
 weight-0 rows, estimation/bayes/density.py), and the stopping data's static ``horizon`` is
 rounded up (``padded_shape``: a few shapes per study). ``row_sum_residual`` compares the
