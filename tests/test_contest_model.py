@@ -20,7 +20,8 @@ from stopwise.data_schemas.bundle import to_stopping_data
 from stopwise.data_schemas.errors import StopwiseInputError
 from stopwise.models.contest.agent import agent_qre_log_probs
 from stopwise.models.contest.build import build_contest_model
-from stopwise.models.contest.game import make_game
+from stopwise.models.contest.game import make_game, resolve_utility
+from stopwise.models.contest.qre import fixed_point_residual
 
 CAP = 6
 
@@ -262,6 +263,35 @@ def test_likelihood_qre_reports_its_fixed_point_residual(simulated):
     assert np.all(residual[contest] <= 1e-8)
     residual = model.options["fixed_point_residual"]({"precision": 200.0}, data)
     assert np.all(residual[contest] > 1e-6)
+
+
+def test_residual_of_each_condition_equals_the_one_from_its_own_target_distribution():
+    # The compiled residual program (all conditions at once) against each condition solved
+    # on its own through target_distribution and make_game, a separate path; the residual
+    # max |x - log_softmax(lambda U(exp x))| is 0 at a QRE by definition (McKelvey & Palfrey
+    # 1995). Conditions differ in p, prize and keep-bank, and at precision 10 the schedule
+    # solves two of them and not the third, so a residual that mixed conditions up would show.
+    model = build_contest_model(["crra", "qre"], max_target=CAP)
+    frames = []
+    for k, (p, prize, keep) in enumerate(((0.8, 10.0, 0), (0.6, 4.0, 1), (0.9, 20.0, 0))):
+        block = _design(n_subjects=2, n_trials=3, p=p, prize=prize, keep_bank=keep)
+        frames.append(block.assign(trial=block["trial"] + 10 * k))
+    frame = model.simulate({"r": 0.2, "precision": 1.5}, pd.concat(frames), jax.random.PRNGKey(3))
+    data = to_stopping_data(frame)
+    conditions = list(
+        zip(*(np.asarray(getattr(data, f"cond_{name}")) for name in ("p_survive", "prize")))
+    )
+    keeps = np.asarray(data.cond_keep_bank)
+    for theta in ({"r": 0.2, "precision": 1.5}, {"r": -0.4, "precision": 10.0}):
+        residual = model.options["fixed_point_residual"](theta, data)
+        assert len(residual) == 3
+        for c, (p, prize) in enumerate(conditions):
+            sigma = model.options["target_distribution"](theta, p, 2, prize, keeps[c], CAP)
+            game = make_game(
+                p, 2.0, prize, keeps[c], CAP, utility=resolve_utility("crra"), theta=theta
+            )
+            alone = float(fixed_point_residual(jnp.log(sigma), theta["precision"], game))
+            assert residual[c] == pytest.approx(alone, rel=1e-9, abs=1e-12)
 
 
 def test_a_fit_whose_likelihood_qre_is_unsolved_is_marked_not_converged(simulated):

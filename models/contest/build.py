@@ -33,6 +33,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Mapping
 from functools import partial
+from types import SimpleNamespace
 from typing import Any
 
 import jax
@@ -64,6 +65,16 @@ from stopwise.models.utility import UTILITIES
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 QRE_SIMULATION_TOLERANCE = 1e-6  # largest fixed-point residual a simulation accepts
+CONDITION_FIELDS = (  # the per-condition arrays a condition's game is built from
+    "cond_p_survive",
+    "cond_gain",
+    "cond_start",
+    "cond_bust_keep",
+    "cond_n_players",
+    "cond_prize",
+    "cond_keep_bank",
+    "cond_contest",
+)
 
 _PRECISION = ParamSpec("precision", 0.0, np.inf, 1.0, "logit precision of responses")
 _TAU = ParamSpec("tau", 0.0, 8.0, 1.5, "cognitive-hierarchy mean thinking steps")
@@ -287,13 +298,20 @@ def build_contest_model(parts: list[str], **options: Any) -> Model:
         if concept != "qre":
             return np.full(np.asarray(data.cond_contest).shape, np.nan)
         cap = resolve_cap(data)
-        log_sigma = condition_log_probs(theta, data, cap)
-        residuals = np.asarray(
-            jax.vmap(lambda ls, g: fixed_point_residual(ls, theta["precision"], g))(
-                log_sigma, _condition_games(theta, data, cap)
-            )
-        )
+        values = {k: jnp.asarray(v, jnp.float64) for k, v in theta.items()}
+        conditions = {name: getattr(data, name) for name in CONDITION_FIELDS}
+        residuals = np.asarray(_residual_program(values, conditions, cap))
         return np.where(sequential_conditions(data), np.nan, residuals)  # no fixed point there
+
+    @partial(jax.jit, static_argnums=2)
+    def _residual_program(theta: Mapping[str, Any], conditions: Mapping[str, Any], cap: int) -> Any:
+        """fixed_point_residuals' computation as one compiled program per cap and number of
+        conditions (run eagerly it compiled about a hundred one-operation programs)."""
+        data = SimpleNamespace(**conditions)
+        log_sigma = condition_log_probs(theta, data, cap)
+        return jax.vmap(lambda ls, g: fixed_point_residual(ls, theta["precision"], g))(
+            log_sigma, _condition_games(theta, data, cap)
+        )
 
     def _condition_games(theta: Mapping[str, Any], data: Any, cap: int) -> ContestGame:
         contest = data.cond_contest > 0.5
