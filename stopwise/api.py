@@ -8,6 +8,7 @@ model builder and the estimation engines together.
 from __future__ import annotations
 
 import functools
+import hashlib
 import os
 import warnings
 from collections.abc import Mapping, Sequence
@@ -60,6 +61,15 @@ def preparation_key(bundle: Any) -> bytes:
     if bundle.cond_order is not None:  # sequential contests: their games size the model too
         conditions = np.concatenate([conditions, sequential_game_key(bundle)])
     return np.unique(conditions, axis=1).tobytes()
+
+
+def design_key(design: pd.DataFrame) -> bytes:
+    """A fingerprint of a study design (column names, dtypes, every value and the index):
+    studies of one design share a Model, and with it the compiled programs of their
+    replications; any other design gets a model of its own."""
+    digest = hashlib.sha256(repr([(str(c), str(t)) for c, t in design.dtypes.items()]).encode())
+    digest.update(pd.util.hash_pandas_object(design, index=True).to_numpy().tobytes())
+    return b"design:" + digest.digest()
 
 
 def model_for_data(model: str | Model, max_target: int | None, bundle: Any) -> Model:
@@ -411,12 +421,21 @@ def recover(
         if the_model.data_kind == "lottery":
             raise StopwiseInputError("a lottery model needs a design (the lottery list)")
         design = stopping_design(subjects, trials, p_survive, gain, seed)
+    if isinstance(model, str):  # another study of this design reuses its compiled programs
+        the_model = _shared_model(model, max_target, design_key(design))
 
     def to_bundle(frame: pd.DataFrame, horizon: int | None = None) -> Any:
         if the_model.data_kind == "lottery":
             return to_lottery_data(frame)
         return to_stopping_data(frame, horizon=horizon)
 
+    rivals = list(kw.get("rivals", ()))
     if "rivals" in kw:
-        kw["rivals"] = [resolve_model(r, max_target) for r in kw["rivals"]]
+        kw["rivals"] = [
+            _shared_model(r, max_target, design_key(design)) if isinstance(r, str) else r
+            for r in rivals
+        ]
+    if all(isinstance(m, str) for m in [model, *rivals]):
+        named = repr((model, max_target, rivals)).encode()
+        kw["share_key"] = hashlib.sha256(named).digest() + design_key(design)
     return run_recovery(the_model, truths, design, to_bundle, n_reps=n_reps, seed=seed, **kw)

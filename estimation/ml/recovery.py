@@ -18,6 +18,7 @@ listed in ``Recovery.run`` and the summary; they are never dropped silently.
 
 from __future__ import annotations
 
+from collections import OrderedDict
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -112,9 +113,27 @@ class RecoveryPayload:
     starts: int
     rivals: tuple[Any, ...]
     rival_starts: int
+    share_key: bytes | None = None  # equal keys: equal contents (``kept_payload``)
 
 
 HORIZON_BUCKET = 8
+KEPT_PAYLOADS = 8
+_KEPT: OrderedDict[bytes, RecoveryPayload] = OrderedDict()
+
+
+def kept_payload(payload: RecoveryPayload) -> RecoveryPayload:
+    """The first payload this process saw with ``payload.share_key`` (the last KEPT_PAYLOADS
+    keys are kept), else ``payload`` itself. A cluster worker unpickles a new model for every
+    study, and compiled programs are keyed by the model object, so without this each study
+    of the same model and design compiled its programs again on every worker."""
+    key = payload.share_key
+    if key is None:
+        return payload
+    kept = _KEPT.setdefault(key, payload)
+    _KEPT.move_to_end(key)
+    while len(_KEPT) > KEPT_PAYLOADS:
+        _KEPT.popitem(last=False)
+    return kept
 
 
 def replication_horizon(max_step: int) -> int:
@@ -140,6 +159,7 @@ def run_replication(
     """One replication: simulate with key fold_in(PRNGKey(seed), rep), refit with seed
     seed + rep (and each rival); returns its estimate records and whether AIC picked the
     generating model (None without rivals)."""
+    payload = kept_payload(payload)
     model = payload.model
     key = jax.random.fold_in(jax.random.PRNGKey(seed), rep)
     frame = model.simulate(dict(truth), payload.design, key)
@@ -188,15 +208,23 @@ def recover(
     workers: int | None = 0,
     scheduler: str | None = None,
     timeout_s: float | None = None,
+    share_key: bytes | None = None,
 ) -> Recovery:
     """Simulate ``n_reps`` data sets with model.simulate(truth, design, key), convert each with
     ``to_bundle(frame, horizon)``, refit and summarise (module docstring). ``workers`` and
     ``scheduler`` choose where the replications run (estimation/distributed.py); ``timeout_s``
-    bounds the wait for a cluster's results."""
+    bounds the wait for a cluster's results. ``share_key``: a key that names the model, the
+    rivals and the design completely (stopwise.recover gives one for spec strings), so that
+    later studies with the same key and refit settings reuse this one's models and their
+    compiled programs, also on cluster workers (``kept_payload``)."""
     for name in model.param_names:
         if isinstance(truths, Mapping) and name not in truths:
             raise ValueError(f"truths lack parameter {name!r} of {model.name}")
-    payload = RecoveryPayload(model, design, to_bundle, se, starts, tuple(rivals), rival_starts)
+    if share_key is not None:
+        share_key += repr((se, starts, rival_starts)).encode()
+    payload = RecoveryPayload(
+        model, design, to_bundle, se, starts, tuple(rivals), rival_starts, share_key
+    )
     inputs = [{"rep": rep, "seed": seed, "truth": _truth_for(truths, rep)} for rep in range(n_reps)]
     run = run_tasks(
         run_replication,
