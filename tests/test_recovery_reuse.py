@@ -11,6 +11,7 @@ import jax
 import pandas as pd
 
 import stopwise
+from stopwise.api import resolve_model
 from stopwise.estimation.ml import recovery
 from stopwise.estimation.ml.recovery import RecoveryPayload, kept_payload, stopping_design
 
@@ -45,7 +46,7 @@ def test_a_second_study_of_one_design_compiles_nothing_and_gives_the_same_number
 
 
 def payload(design: pd.DataFrame, key: bytes | None) -> RecoveryPayload:
-    model = stopwise.api.resolve_model("crra+myopic+logit")
+    model = resolve_model("crra+myopic+logit")
     return RecoveryPayload(model, design, lambda f, h=None: f, "auto", 1, (), 2, key)
 
 
