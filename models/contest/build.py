@@ -59,22 +59,17 @@ from stopwise.models.contest.play import (
 )
 from stopwise.models.contest.qre import fixed_point_residual
 from stopwise.models.contest.sequential_certify import sequential_check
-from stopwise.models.contest.sequential_likelihood import SequentialPart, sequential_conditions
+from stopwise.models.contest.sequential_likelihood import (
+    GAME_FIELDS,
+    SequentialPart,
+    sequential_conditions,
+)
 from stopwise.models.contest.sequential_simulate import simulate_sequential_design
 from stopwise.models.utility import UTILITIES
 
 CONCEPTS = ("nash", "qre", "aqre", "levelk", "ch")
 QRE_SIMULATION_TOLERANCE = 1e-6  # largest fixed-point residual a simulation accepts
-CONDITION_FIELDS = (  # the per-condition arrays a condition's game is built from
-    "cond_p_survive",
-    "cond_gain",
-    "cond_start",
-    "cond_bust_keep",
-    "cond_n_players",
-    "cond_prize",
-    "cond_keep_bank",
-    "cond_contest",
-)
+CONDITION_FIELDS = (*GAME_FIELDS, "cond_contest")  # what a condition's game is built from
 
 _PRECISION = ParamSpec("precision", 0.0, np.inf, 1.0, "logit precision of responses")
 _TAU = ParamSpec("tau", 0.0, 8.0, 1.5, "cognitive-hierarchy mean thinking steps")
