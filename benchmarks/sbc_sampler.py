@@ -28,13 +28,14 @@ reached about 2,000 in z on short contest data) chains of the crra+ch study star
 thousands of units out and diverged on every transition in 72 replications, while the
 product's own fit of replication 8 with that start did not diverge (4 seeds, 2026-12-03):
 the calibration study then measured the harness more than the product. The data are
-padded to one shape so one compiled program serves every replication: every leaf of the cell bundle whose second axis is the row axis is padded
-by repeating its last row with weight 0 (the density sums weight x log-likelihood and zeroes
-weight-0 rows, estimation/bayes/density.py), and the stopping data's static ``horizon`` is
-rounded up (``padded_shape``: a few shapes per study). ``row_sum_residual`` compares the
-padded cell sum with the plain sum of the model's row log-likelihoods over the data rows at
-the start point (relative difference), so a replication whose aggregation or padding
-changes the likelihood fails with a message instead of being ranked.
+padded to one shape so one compiled program serves every replication: every leaf of the
+cell bundle whose second axis is the row axis is padded by repeating its last row with
+weight 0 (the density sums weight x log-likelihood and zeroes weight-0 rows,
+estimation/bayes/density.py), and the stopping data's static ``horizon`` is rounded up
+(``padded_shape``: a few shapes per study). ``row_sum_residual`` compares the padded cell
+sum with the plain sum of the model's row log-likelihoods over the data rows at the start
+point (relative difference), so a replication whose aggregation or padding changes the
+likelihood fails with a message instead of being ranked.
 """
 
 from __future__ import annotations

@@ -421,8 +421,16 @@ def recover(
         if the_model.data_kind == "lottery":
             raise StopwiseInputError("a lottery model needs a design (the lottery list)")
         design = stopping_design(subjects, trials, p_survive, gain, seed)
-    if isinstance(model, str):  # another study of this design reuses its compiled programs
-        the_model = _shared_model(model, max_target, design_key(design))
+    key = design_key(design)
+
+    def shared(spec: str | Model) -> Model:
+        """Spec strings: one Model per design, so another study of this design reuses its
+        compiled programs; a Model is used as given."""
+        return (
+            _shared_model(spec, max_target, key) if isinstance(spec, str) else resolve_model(spec)
+        )
+
+    the_model = shared(model)
 
     def to_bundle(frame: pd.DataFrame, horizon: int | None = None) -> Any:
         if the_model.data_kind == "lottery":
@@ -431,11 +439,7 @@ def recover(
 
     rivals = list(kw.get("rivals", ()))
     if "rivals" in kw:
-        kw["rivals"] = [
-            _shared_model(r, max_target, design_key(design)) if isinstance(r, str) else r
-            for r in rivals
-        ]
+        kw["rivals"] = [shared(r) for r in rivals]
     if all(isinstance(m, str) for m in [model, *rivals]):
-        named = repr((model, max_target, rivals)).encode()
-        kw["share_key"] = hashlib.sha256(named).digest() + design_key(design)
+        kw["share_key"] = hashlib.sha256(repr((model, max_target, rivals)).encode()).digest() + key
     return run_recovery(the_model, truths, design, to_bundle, n_reps=n_reps, seed=seed, **kw)
