@@ -2,11 +2,13 @@
 
 ``import stopwise`` must not import JAX: the commands that never compute a likelihood
 (``--help``, ``--version``, ``validate``, ``describe``) would pay about a second for it. Yet
-everything stopwise computes needs three settings in place before JAX traces anything:
+everything stopwise computes needs four settings in place before JAX traces anything:
 
 * 64-bit floats (``jax_enable_x64``);
 * the persistent compilation cache folder (stopwise/_compile_cache.py);
-* the data bundles registered as pytrees (stopwise.data_schemas.arrays.register_pytrees).
+* the data bundles registered as pytrees (stopwise.data_schemas.arrays.register_pytrees);
+* stopwise's XLA flags added to ``XLA_FLAGS`` before JAX starts its CPU backend
+  (stopwise/_xla_flags.py: faster compilation).
 
 ``configure_when_jax_loads()`` applies them at once if JAX is already imported, else it puts
 a finder at the front of ``sys.meta_path`` that lets the normal finders locate JAX and wraps
@@ -18,18 +20,22 @@ from __future__ import annotations
 
 import importlib.abc
 import importlib.machinery
+import os
 import sys
 from types import ModuleType
 from typing import Any
 
 from stopwise._compile_cache import enable_compilation_cache
+from stopwise._xla_flags import add_stopwise_xla_flags, installed_jaxlib_version
 
 ARRAYS_MODULE = "stopwise.data_schemas.arrays"
 
 
 def configure_jax(jax: ModuleType) -> None:
-    """Float64, the compilation cache folder, and pytree registration of the data bundles
-    (when their module is loaded already; otherwise it registers itself on import)."""
+    """Float64, the compilation cache folder, stopwise's XLA flags, and pytree registration
+    of the data bundles (when their module is loaded already; otherwise it registers itself
+    on import)."""
+    add_stopwise_xla_flags(os.environ, installed_jaxlib_version())
     jax.config.update("jax_enable_x64", True)
     enable_compilation_cache(jax.config)
     arrays = sys.modules.get(ARRAYS_MODULE)
