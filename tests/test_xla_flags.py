@@ -38,7 +38,7 @@ def test_flags_only_for_jaxlib_versions_that_know_them(version: str, knows: bool
     assert xf.jaxlib_knows_flags(version) is knows
     environ = {"XLA_FLAGS": "--xla_force_host_platform_device_count=2"}
     xf.add_stopwise_xla_flags(environ, version)
-    added = [f for f in xf.STOPWISE_XLA_FLAGS]
+    added = list(xf.STOPWISE_XLA_FLAGS)
     expected = (
         ["--xla_force_host_platform_device_count=2", *added]
         if knows
