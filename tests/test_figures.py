@@ -102,3 +102,25 @@ def test_other_figures_use_the_palette():
     figs.append(contest.target_distribution_figure(plot, {"s": pd.Series([1.0], index=[1])}))
     for fig in figs:
         assert _colours(fig) <= PALETTE
+
+
+def test_bayes_panel_titles_stay_inside_the_figure() -> None:
+    # a long name (a between-subject correlation on the unconstrained scale) once ran off the
+    # left edge of the report's rank-plot panel; every title must lie within the figure
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from stopwise.figures.bayes import idata_from_draws, posterior_figure
+
+    rng = np.random.default_rng(3)
+    names = ["r, precision: between-subject correlation (unconstrained scale)", "r"]
+    draws = {name: rng.normal(size=(4, 100)) for name in names}
+    fig = posterior_figure(idata_from_draws(draws), names)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    width = fig.bbox.width
+    titles = [ax.title for ax in fig.axes if ax.get_title()]
+    assert len(titles) == 2 * len(names)
+    for title in titles:
+        box = title.get_window_extent(renderer)
+        assert box.x0 >= 0 and box.x1 <= width, title.get_text()

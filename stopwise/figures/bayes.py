@@ -3,6 +3,7 @@ densities of the population parameters, drawn on one Figure of our own."""
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -11,6 +12,14 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from stopwise.figures.palette import MODELS, new_figure
+
+TITLE_CHARACTERS = 56  # per line: a panel title at font size 9 fits half of a 9-inch figure
+
+
+def panel_title(name: str, what: str) -> str:
+    """``name: what``, wrapped onto lines of at most TITLE_CHARACTERS characters (a long
+    parameter name such as a between-subject correlation otherwise runs off the figure)."""
+    return textwrap.fill(f"{name}: {what}", TITLE_CHARACTERS)
 
 
 def idata_from_draws(draws: Mapping[str, np.ndarray]) -> Any:
@@ -38,7 +47,7 @@ def posterior_figure(idata: Any, var_names: Sequence[str]) -> Figure:
         axes[i, 0].set_xlabel("rank (all chains)", fontsize=8)
         axes[i, 0].set_ylabel("chain", fontsize=8)
         axes[i, 0].tick_params(labelsize=8)
-        axes[i, 0].set_title(f"{name}: rank plot by chain", fontsize=9)
-        axes[i, 1].set_title(f"{name}: posterior (95% HDI)", fontsize=9)
+        axes[i, 0].set_title(panel_title(name, "rank plot by chain"), fontsize=9)
+        axes[i, 1].set_title(panel_title(name, "posterior (95% HDI)"), fontsize=9)
     fig.suptitle("Bayesian fit: chain ranks and posterior densities")
     return fig
