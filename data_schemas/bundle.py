@@ -250,11 +250,11 @@ def _condition_table(config: np.ndarray, trial: np.ndarray) -> tuple[np.ndarray,
     per_trial = config[first]
     if n_trials == 0:
         return np.zeros(0, dtype=np.int64), np.zeros((0, config.shape[1]))
-    inverse, table = _unique_rows(per_trial)
+    inverse, table = unique_rows(per_trial)
     return inverse[trial], table
 
 
-def _unique_rows(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def unique_rows(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Distinct rows in lexicographic order and each row's index into them (one 1-d unique
     per column, then a mixed-radix key: faster than np.unique(axis=0) on many rows)."""
     key = np.zeros(len(values), dtype=np.int64)

@@ -113,13 +113,13 @@ def test_lottery_bundle_pads_outcomes() -> None:
 
 
 def test_unique_rows_matches_numpy() -> None:
-    from stopwise.data_schemas.bundle import _unique_rows
+    from stopwise.data_schemas.bundle import unique_rows
 
     values = np.random.default_rng(1).integers(0, 3, (500, 8)).astype(float)
-    inverse, table = _unique_rows(values)
+    inverse, table = unique_rows(values)
     reference, reference_inverse = np.unique(values, axis=0, return_inverse=True)
     np.testing.assert_array_equal(table, reference)
     np.testing.assert_array_equal(inverse, reference_inverse.reshape(-1))
     wide = np.random.default_rng(2).normal(size=(300, 8))  # too many values for one key
-    inverse, table = _unique_rows(wide)
+    inverse, table = unique_rows(wide)
     np.testing.assert_array_equal(table[inverse], wide)
