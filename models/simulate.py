@@ -162,44 +162,52 @@ def sample_trial_ends(
     return index // 2, (index % 2 == 1)
 
 
+ACTION_LABELS = np.array(["draw", "stop"], dtype=object)
+OUTCOME_LABELS = np.array(["success", "bust", np.nan], dtype=object)
+
+
 def expand_trials(design: pd.DataFrame, end_step: np.ndarray, busted: np.ndarray) -> pd.DataFrame:
-    """Decision rows for each trial: draws with outcome success, then a stop or a bust."""
+    """Decision rows for each trial: draws with outcome success, then a stop or a bust. The
+    numeric columns are read once per trial and repeated (``design`` is checked already)."""
     n_rows = end_step + 1
     trial_of_row = np.repeat(np.arange(len(design)), n_rows)
     first_row = np.concatenate([[0], np.cumsum(n_rows)[:-1]])
     step = np.arange(int(n_rows.sum())) - np.repeat(first_row, n_rows)
     last = step == end_step[trial_of_row]
     bust_row = last & busted[trial_of_row]
-    action = np.where(last & ~bust_row, "stop", "draw").astype(object)
-    outcome = np.where(bust_row, "bust", np.where(last, "", "success")).astype(object)
-    outcome[outcome == ""] = np.nan
+    # object columns by indexing small label arrays (shares the label objects; converting
+    # a unicode array with astype(object) builds one string per row, a tenth of the study)
+    action = ACTION_LABELS[(last & ~bust_row).astype(np.int64)]
+    outcome = OUTCOME_LABELS[np.where(bust_row, 1, np.where(last, 2, 0))]
     rows = design.iloc[trial_of_row].reset_index(drop=True)
-    start = _numeric_column(rows, "start", 0.0)
+    start = _numeric_column(design, "start", 0.0)[trial_of_row]
+    gain = _numeric_column(design, "gain")[trial_of_row]
     front = pd.DataFrame(
         {
             "subject": rows["subject"].to_numpy(),
             "trial": rows["trial"].to_numpy(),
             "step": step.astype(np.int64),
-            "p_survive": _row_chances(rows, step),
-            "gain": _numeric_column(rows, "gain"),
+            "p_survive": _row_chances(design, trial_of_row, step),
+            "gain": gain,
             "action": action,
             "outcome": outcome,
-            "bank": start + step * _numeric_column(rows, "gain"),
+            "bank": start + step * gain,
             "start": start,
-            "bust_keep": _numeric_column(rows, "bust_keep", 0.0),
+            "bust_keep": _numeric_column(design, "bust_keep", 0.0)[trial_of_row],
         }
     )
     extra = rows.drop(columns=[c for c in front.columns if c in rows.columns])
     return pd.concat([front, extra], axis=1)
 
 
-def _row_chances(rows: pd.DataFrame, step: np.ndarray) -> np.ndarray:
-    """p_survive of each decision row: (G - s) / (N - s) in a pool, else the trial's."""
-    size, bad = _pool_columns(rows)
+def _row_chances(design: pd.DataFrame, trial_of_row: np.ndarray, step: np.ndarray) -> np.ndarray:
+    """p_survive of each decision row (trial ``trial_of_row``, step ``step``): (G - s) / (N - s)
+    in a pool of N with G good, else the trial's p_survive."""
+    size, bad = (column[trial_of_row] for column in _pool_columns(design))
     pool = size > 0
     with np.errstate(divide="ignore", invalid="ignore"):
         chance = (size - bad - step) / (size - step)
-    return np.where(pool, chance, _numeric_column(rows, "p_survive"))
+    return np.where(pool, chance, _numeric_column(design, "p_survive")[trial_of_row])
 
 
 def simulate_stopping(
