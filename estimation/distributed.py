@@ -13,7 +13,7 @@ Where the tasks run (``plan_for``), first match wins:
 3. ``workers=N >= 1``: a LocalCluster of N worker processes (one thread each) that listens on
    127.0.0.1 only and is closed when the study ends; each worker process runs XLA, OpenMP,
    MKL and OpenBLAS single-threaded (``worker_environment``), so N workers use N cores and
-   do not fight over them;
+   do not fight over them, and glibc's malloc keeps its defaults (``pre_spawn_environment``);
 4. the environment variable ``STOPWISE_SCHEDULER``: an existing Dask cluster;
 5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
    core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process.
@@ -51,6 +51,11 @@ BATCHES_PER_WORKER = 4  # tasks go to a cluster in about this many batches per w
 # XLA's CPU flags for one thread per worker: no multithreaded Eigen, one intra-op thread.
 SINGLE_THREAD_XLA_FLAGS = ("--xla_cpu_multi_thread_eigen=false", "intra_op_parallelism_threads=1")
 SINGLE_THREAD_LIBRARIES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
+# Dask's nannies set glibc's MALLOC_TRIM_THRESHOLD_ before a worker starts. Setting it turns
+# off glibc's dynamic mmap threshold (mallopt(3)), so every allocation above 128 KiB is a fresh
+# mmap and munmap: a recovery replication cost 1.4-1.8x more CPU in such a worker
+# (benchmarks/RESULTS.md, issue 17 (b)). The clusters we start leave it unset.
+MALLOC_SETTINGS = ("MALLOC_TRIM_THRESHOLD_",)
 
 
 @dataclass(frozen=True)
@@ -314,6 +319,13 @@ def worker_environment(parent: Mapping[str, str]) -> dict[str, str]:
     return env
 
 
+def pre_spawn_environment(configured: Mapping[str, Any]) -> dict[str, Any]:
+    """Dask's ``distributed.nanny.pre-spawn-environ`` for the clusters we start: as configured,
+    less MALLOC_SETTINGS (a value in the user's own environment still reaches the workers,
+    which inherit it)."""
+    return {name: value for name, value in configured.items() if name not in MALLOC_SETTINGS}
+
+
 @contextmanager
 def dask_client(plan: Plan) -> Iterator[Any]:
     """A Dask client for ``plan``: a LocalCluster on the loopback interface (closed on exit)
@@ -327,6 +339,9 @@ def dask_client(plan: Plan) -> Iterator[Any]:
     settings = {"distributed.scheduler.allowed-failures": RETRIES}
     if plan.kind == "local":
         settings["distributed.worker.profile.enabled"] = False
+        settings["distributed.nanny.pre-spawn-environ"] = pre_spawn_environment(
+            dask.config.get("distributed.nanny.pre-spawn-environ", {})
+        )
     with dask.config.set(settings):
         if plan.kind == "remote":
             client = Client(plan.address, timeout=CONNECT_TIMEOUT_S)

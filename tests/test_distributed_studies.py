@@ -58,11 +58,16 @@ def deadline() -> Iterator[None]:
 
 @pytest.fixture(scope="module")
 def address() -> Iterator[str]:
-    """A two-worker LocalCluster on the loopback interface, as the runner starts it."""
-    with D.dask_client(D.Plan("local", workers=2)) as client:
-        address = client.scheduler.address
-        assert address.startswith(f"tcp://{D.LOOPBACK}:")
-        yield address
+    """A two-worker LocalCluster on the loopback interface, as the runner starts it, from a
+    parent environment without glibc's malloc settings (a cluster another test module starts
+    with Dask's defaults leaves them in this process's environment)."""
+    with pytest.MonkeyPatch.context() as patch:
+        for name in D.MALLOC_SETTINGS:
+            patch.delenv(name, raising=False)
+        with D.dask_client(D.Plan("local", workers=2)) as client:
+            address = client.scheduler.address
+            assert address.startswith(f"tcp://{D.LOOPBACK}:")
+            yield address
 
 
 def test_worker_environment_adds_single_thread_flags_to_the_parents() -> None:
@@ -78,6 +83,11 @@ def test_worker_environment_adds_single_thread_flags_to_the_parents() -> None:
     assert D.worker_environment({})["XLA_FLAGS"].split() == list(D.SINGLE_THREAD_XLA_FLAGS)
 
 
+def test_pre_spawn_environment_drops_only_the_malloc_settings() -> None:
+    configured = {"MALLOC_TRIM_THRESHOLD_": 65536, "OMP_NUM_THREADS": 1, "MY_SETTING": "x"}
+    assert D.pre_spawn_environment(configured) == {"OMP_NUM_THREADS": 1, "MY_SETTING": "x"}
+
+
 def _environment_seen(name: str) -> str:
     """A worker's value of environment variable ``name``."""
     return os.environ.get(name, "")
@@ -85,6 +95,7 @@ def _environment_seen(name: str) -> str:
 
 def test_cluster_workers_run_single_threaded(address: str, deadline: None) -> None:
     names = ["XLA_FLAGS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"]
+    names += list(D.MALLOC_SETTINGS)
     run = D.run_tasks(
         _environment_seen, [{"name": n} for n in names], scheduler=address, progress=False
     )
@@ -92,6 +103,11 @@ def test_cluster_workers_run_single_threaded(address: str, deadline: None) -> No
     assert set(D.SINGLE_THREAD_XLA_FLAGS) <= set(seen["XLA_FLAGS"].split())
     assert seen["OMP_NUM_THREADS"] == seen["MKL_NUM_THREADS"] == "1"
     assert seen["OPENBLAS_NUM_THREADS"] == "1"
+    # glibc keeps its dynamic mmap threshold in the workers (Dask's nanny would set
+    # MALLOC_TRIM_THRESHOLD_, which turns it off: mallopt(3), Linux man-pages), and starting
+    # the cluster did not write the setting into this process's environment either
+    assert all(seen[name] == "" for name in D.MALLOC_SETTINGS)
+    assert not any(name in os.environ for name in D.MALLOC_SETTINGS)
 
 
 def _frame() -> pd.DataFrame:
