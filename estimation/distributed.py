@@ -16,7 +16,13 @@ Where the tasks run (``plan_for``), first match wins:
    do not fight over them, and glibc's malloc keeps its defaults (``pre_spawn_environment``);
 4. the environment variable ``STOPWISE_SCHEDULER``: an existing Dask cluster;
 5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
-   core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process.
+   core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process. An "auto"
+   cluster is started only when the study's work pays for it (``run_then_spread``): the
+   tasks run in-process one after another until the time of the ones run so far (the first
+   excluded: it compiles) times the number left reaches ``AUTO_CLUSTER_MIN_S``; the rest
+   then goes to the cluster. A study of a few seconds of work never waits for workers to
+   start and compile (a 200-replication recovery study, 3 s of work, took 0.8-0.9x the
+   in-process time on 2 fresh workers; benchmarks/RESULTS.md, issue 17 (b)).
 
 On a cluster the tasks travel in consecutive batches, about ``BATCHES_PER_WORKER`` per
 worker (``batch_bounds``), so short tasks do not pay Dask's per-task overhead one by one.
@@ -31,6 +37,7 @@ from __future__ import annotations
 import math
 import os
 import sys
+import time
 import traceback
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -43,6 +50,11 @@ from tqdm import tqdm
 
 SCHEDULER_ENV = "STOPWISE_SCHEDULER"
 AUTO_MIN_TASKS = 16
+# "auto" starts a LocalCluster only for the rest of a study estimated at this many seconds or
+# more on one core: about 3x what starting 2 fresh workers and compiling on them cost here
+# (7 s; benchmarks/RESULTS.md, issue 17 (b)), so the cluster's start is repaid with a margin.
+AUTO_CLUSTER_MIN_S = 20.0
+AUTO_TIMED_TASKS = 3  # rounds of tasks timed in-process (after the first) before "auto" decides
 LOOPBACK = "127.0.0.1"
 CONNECT_TIMEOUT_S = 30
 CLUSTER_START_S = 120  # a LocalCluster's workers must be up within this many seconds
@@ -66,6 +78,7 @@ class Plan:
     kind: str
     workers: int = 0
     address: str | None = None
+    auto: bool = False  # a "local" plan chosen by rule 5: started only if the work pays for it
 
     def describe(self) -> str:
         if self.kind == "in-process":
@@ -138,7 +151,7 @@ def plan_for(workers: int | None, scheduler: str | None, n_tasks: int) -> Plan:
         return Plan("remote", address=env)
     cores = os.cpu_count() or 1
     if cores > 1 and n_tasks >= AUTO_MIN_TASKS:
-        return Plan("local", workers=min(cores, n_tasks))
+        return Plan("local", workers=min(cores, n_tasks), auto=True)
     return Plan("in-process")
 
 
@@ -159,12 +172,14 @@ def run_tasks(
     reference). ``shared`` values (a model, a design) are sent once to every worker and
     reused there by all its tasks, so compiled programs keyed on them are reused too.
     ``timeout_s`` bounds the wait for a cluster's results (TimeoutError beyond it).
-    ``threads``: when the plan is in-process, run the tasks on that many threads
-    (``run_in_threads``; for tasks that release the GIL)."""
+    ``threads``: when the plan is in-process (or "auto", for the tasks it runs in-process),
+    run the tasks on that many threads (``run_in_threads``; for tasks that release the GIL)."""
     plan = plan_for(workers, scheduler, len(inputs))
     shared = dict(shared or {})
     if plan.kind == "in-process" or not inputs:
         return run_in_threads(func, inputs, threads, progress, desc, shared)
+    if plan.auto:
+        return run_then_spread(func, inputs, shared, plan, progress, desc, timeout_s, threads)
     with dask_client(plan) as client:
         return _run_on_client(
             client, func, inputs, shared, progress, desc, plan.describe(), timeout_s
@@ -240,6 +255,72 @@ def run_in_threads(
         return collect(iter(outcomes), inputs, f"in-process, {threads} threads")
 
 
+def worth_spreading(warm_seconds: Sequence[float], tasks_left: int) -> bool:
+    """True when at least AUTO_TIMED_TASKS rounds were timed after the first
+    (``warm_seconds``: each round's wall time per task) and the tasks left, each taking their
+    median, add up to AUTO_CLUSTER_MIN_S or more: median(warm) * tasks_left >= that. The
+    median, because a task that meets a new data shape compiles again (the second replication
+    of a recovery study took 0.1-0.5 s against 15 ms for the others)."""
+    if len(warm_seconds) < AUTO_TIMED_TASKS or tasks_left <= 0:
+        return False
+    return float(np.median(warm_seconds)) * tasks_left >= AUTO_CLUSTER_MIN_S
+
+
+def attempt_round(
+    func: Callable[..., Any],
+    tasks: Sequence[Mapping[str, Any]],
+    shared: Mapping[str, Any],
+    threads: int,
+) -> list[tuple[bool, Any]]:
+    """``attempt_task`` for each task, on ``threads`` threads (one: in the caller's thread)."""
+    if threads <= 1 or len(tasks) <= 1:
+        return [attempt_task(func, task, shared) for task in tasks]
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        return list(pool.map(lambda task: attempt_task(func, task, shared), tasks))
+
+
+def run_then_spread(
+    func: Callable[..., Any],
+    inputs: Sequence[Mapping[str, Any]],
+    shared: Mapping[str, Any],
+    plan: Plan,
+    progress: bool,
+    desc: str,
+    timeout_s: float | None,
+    threads: int = 1,
+) -> StudyRun:
+    """An "auto" plan (module docstring, rule 5): the tasks in-process, in rounds of
+    ``threads`` tasks (one thread each; one round at a time), until ``worth_spreading`` says
+    the rest pays for starting ``plan``'s cluster; the rest there. Results in task order,
+    equal to the in-process run's (every task is seeded by its index)."""
+    outcomes: list[tuple[bool, Any]] = []
+    warm_seconds: list[float] = []
+    size = max(1, threads)
+    with tqdm(total=len(inputs), desc=desc, file=sys.stderr, disable=not progress) as bar:
+        for a in range(0, len(inputs), size):
+            tasks = inputs[a : a + size]
+            started = time.perf_counter()
+            outcomes += attempt_round(func, tasks, shared, threads)
+            if a:
+                warm_seconds.append((time.perf_counter() - started) / len(tasks))
+            bar.update(len(tasks))
+            if worth_spreading(warm_seconds, len(inputs) - len(outcomes)):
+                break
+    first = len(outcomes)
+    head = collect(iter(outcomes), inputs[:first], "in-process")
+    if first == len(inputs):
+        return StudyRun(
+            head.results, head.failures, "in-process: too little work to pay for starting workers"
+        )
+    where = f"tasks 0-{first - 1} in-process, the rest on {plan.describe()}"
+    with dask_client(plan) as client:
+        tail = _run_on_client(
+            client, func, inputs, shared, progress, desc, where, timeout_s, first=first
+        )
+    results = head.results + tail.results[first:]
+    return StudyRun(results, head.failures + tail.failures, where)
+
+
 def batch_bounds(n_tasks: int, n_workers: int) -> list[tuple[int, int]]:
     """Consecutive task ranges [a, b) sent to a worker as one Dask task: about
     BATCHES_PER_WORKER batches per worker, so a study of many short tasks pays Dask's
@@ -266,13 +347,16 @@ def _run_on_client(
     desc: str,
     where: str,
     timeout_s: float | None = None,
+    first: int = 0,
 ) -> StudyRun:
-    """Send the tasks in batches (``batch_bounds``); a batch whose worker dies is moved to
-    another worker once by the scheduler (allowed-failures), then its tasks are reported."""
+    """Send tasks ``first``.. in batches (``batch_bounds``); a batch whose worker dies is moved
+    to another worker once by the scheduler (allowed-failures), then its tasks are reported.
+    The results list has every task's place (None before ``first``)."""
     from dask.distributed import as_completed
 
     sent = client.scatter(dict(shared), broadcast=True, hash=False) if shared else {}
-    bounds = batch_bounds(len(inputs), len(client.scheduler_info()["workers"]))
+    n_workers = len(client.scheduler_info()["workers"])
+    bounds = [(first + a, first + b) for a, b in batch_bounds(len(inputs) - first, n_workers)]
     futures = [
         client.submit(
             run_batch,
@@ -288,7 +372,8 @@ def _run_on_client(
     range_of = {f.key: ab for f, ab in zip(futures, bounds)}
     results: list[Any] = [None] * len(inputs)
     failures = []
-    with tqdm(total=len(inputs), desc=desc, file=sys.stderr, disable=not progress) as bar:
+    bar = tqdm(total=len(inputs), initial=first, desc=desc, file=sys.stderr, disable=not progress)
+    with bar:
         for future in as_completed(futures, timeout=timeout_s):
             a, b = range_of[future.key]
             if future.status == "finished":

@@ -10,6 +10,8 @@ from __future__ import annotations
 import json
 import os
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -17,7 +19,7 @@ import cloudpickle
 import dask
 import pandas as pd
 import pytest
-from dask.distributed import LocalCluster
+from dask.distributed import Client, LocalCluster
 from test_arrow_screen import _clean_frame, _write
 
 import stopwise
@@ -45,9 +47,82 @@ def test_plan_follows_the_documented_order(monkeypatch: pytest.MonkeyPatch) -> N
     monkeypatch.delenv(D.SCHEDULER_ENV)
     monkeypatch.setattr(os, "cpu_count", lambda: 4)
     assert D.plan_for(None, None, D.AUTO_MIN_TASKS - 1).kind == "in-process"
-    assert D.plan_for(None, None, D.AUTO_MIN_TASKS) == D.Plan("local", workers=4)
+    assert D.plan_for(None, None, D.AUTO_MIN_TASKS) == D.Plan("local", workers=4, auto=True)
     with pytest.raises(ValueError):
         D.plan_for(-1, None, 3)
+
+
+def test_auto_spreads_when_the_work_left_reaches_the_threshold() -> None:
+    limit, timed = D.AUTO_CLUSTER_MIN_S, D.AUTO_TIMED_TASKS
+    tenth = [limit / 10] * timed
+    assert D.worth_spreading(tenth, 10)  # 10 tasks of limit/10 left
+    assert not D.worth_spreading(tenth, 9)
+    assert not D.worth_spreading(tenth[1:], 1000)  # too few tasks timed yet
+    assert not D.worth_spreading([limit] * timed, 0)  # nothing left
+    # one task that compiled again does not decide it: the median does
+    assert not D.worth_spreading([limit] + [limit / 1000] * (timed - 1), 100)
+
+
+def _tagged(index: int) -> tuple[int, int]:
+    """(10 * index, the process that ran the task); tasks 1 and 6 always fail."""
+    if index in (1, 6):
+        raise ValueError(f"bad input for task {index}")
+    return 10 * index, os.getpid()
+
+
+def _auto_run(monkeypatch: pytest.MonkeyPatch, n_tasks: int, threads: int = 1) -> D.StudyRun:
+    monkeypatch.delenv(D.SCHEDULER_ENV, raising=False)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    assert D.plan_for(None, None, n_tasks).auto
+    return D.run_tasks(
+        _tagged,
+        [{"index": i} for i in range(n_tasks)],
+        workers=None,
+        progress=False,
+        timeout_s=STUDY_TIMEOUT_S,
+        threads=threads,
+    )
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_auto_keeps_a_short_study_in_process(monkeypatch: pytest.MonkeyPatch, threads: int) -> None:
+    def no_cluster(plan: D.Plan) -> Any:
+        raise AssertionError("a study of milliseconds started a cluster")
+
+    monkeypatch.setattr(D, "dask_client", no_cluster)
+    run = _auto_run(monkeypatch, D.AUTO_MIN_TASKS + 4, threads)
+    assert run.where.startswith("in-process")
+    assert [f.index for f in run.failures] == [1, 6]
+    assert [r[0] for r in run.results if r] == [10 * i for i in range(20) if i not in (1, 6)]
+    assert {r[1] for r in run.results if r} == {os.getpid()}
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_auto_sends_the_rest_of_a_long_study_to_the_cluster(
+    cluster: Any, monkeypatch: pytest.MonkeyPatch, threads: int
+) -> None:
+    """With the threshold at 0 s the first AUTO_TIMED_TASKS + 1 rounds of ``threads`` tasks
+    run here (all but the first round timed) and the rest on the cluster (the module's,
+    standing in for the one auto starts)."""
+    started: list[D.Plan] = []
+
+    @contextmanager
+    def module_cluster(plan: D.Plan) -> Iterator[Any]:
+        started.append(plan)
+        with Client(cluster.scheduler_address, timeout=D.CONNECT_TIMEOUT_S) as client:
+            yield client
+
+    monkeypatch.setattr(D, "dask_client", module_cluster)
+    monkeypatch.setattr(D, "AUTO_CLUSTER_MIN_S", 0.0)
+    run = _auto_run(monkeypatch, D.AUTO_MIN_TASKS + 4, threads)
+    assert started == [D.Plan("local", workers=2, auto=True)]
+    head = (D.AUTO_TIMED_TASKS + 1) * threads
+    assert run.where.startswith(f"tasks 0-{head - 1} in-process, the rest on a LocalCluster of 2")
+    assert run.n_tasks == 20 and [f.index for f in run.failures] == [1, 6]
+    assert "bad input for task 6" in run.failures[1].error
+    assert [r[0] for r in run.results if r] == [10 * i for i in range(20) if i not in (1, 6)]
+    here = [i for i, r in enumerate(run.results) if r and r[1] == os.getpid()]
+    assert here == [i for i in range(head) if i not in (1, 6)]  # the rest ran on workers
 
 
 def test_task_seeds_depend_only_on_study_seed_and_index() -> None:

@@ -32,7 +32,8 @@ def add_cluster_options(parser: argparse.ArgumentParser) -> None:
         metavar="N",
         help="run the tasks on a Dask LocalCluster of N worker processes on 127.0.0.1; 0 runs "
         "them in-process (default: a cluster sized to the machine for studies of 16 tasks "
-        f"or more, else in-process; ${SCHEDULER_ENV} names an existing cluster instead)",
+        "or more once the tasks run in-process show 20 s of work or more left, else "
+        f"in-process; ${SCHEDULER_ENV} names an existing cluster instead)",
     )
     parser.add_argument(
         "--scheduler",
