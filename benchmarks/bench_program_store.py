@@ -10,7 +10,9 @@ item 3b and issue 17 item 4b, each a ratio against a baseline measured in this r
 (b17) a recovery study (``REPS`` replications of crra+myopic+logit, ``STUDY`` per
       replication) on a 2-worker LocalCluster (127.0.0.1) against the same study in-process,
       with the store off and on in the workers (each cluster started fresh; the in-process
-      run first fills both caches).
+      run first fills both caches); then whole ``stopwise recover`` commands of the same
+      study: in-process, the default ("auto": a cluster only when the work pays for it) and
+      2 fresh workers.
 
 ``python -m benchmarks.bench_program_store`` writes the section ``bench_program_store`` of
 benchmarks/RESULTS.md.
@@ -138,6 +140,59 @@ def recovery_study(folder: Path) -> dict:
     return out
 
 
+RECOVER_RUNS = (
+    ("in-process (--workers 0, baseline)", ["--workers", "0"]),
+    ("default (auto)", []),
+    ("2 fresh workers (--workers 2)", ["--workers", "2"]),
+)
+
+
+def recover_commands(folder: Path) -> dict:
+    """Whole ``stopwise recover`` processes of the same study, the caches filled by one
+    unmeasured run first (a user's later session): best wall seconds of REPEAT interleaved
+    rounds per setting, where the JSON says the replications ran, and whether every
+    setting's JSON equals the in-process one's (its replication count and place aside)."""
+    truth = [arg for name, value in TRUTH.items() for arg in ("--set", f"{name}={value}")]
+    cmd = [*stopwise_command(), "recover", "--model", MODEL, *truth, "--reps", str(REPS)]
+    cmd += ["--subjects", str(STUDY["subjects"]), "--trials", str(STUDY["trials"])]
+    cmd += ["--seed", str(STUDY["seed"]), "--no-progress"]
+    # a user's setting: the default program store inside the cache folder, no scheduler named
+    dropped = ("JAX_COMPILATION_CACHE_DIR", "STOPWISE_PROGRAM_DIR", "STOPWISE_SCHEDULER")
+    env = {k: v for k, v in os.environ.items() if k not in dropped}
+    env["STOPWISE_CACHE_DIR"] = str(folder / "recover-cache")
+    child_run([*cmd, "--workers", "0"], env)
+    walls: dict[str, list[float]] = {label: [] for label, _ in RECOVER_RUNS}
+    saved: dict[str, dict] = {}
+    for _ in range(REPEAT):
+        for k, (label, extra) in enumerate(RECOVER_RUNS):
+            out = folder / f"recover-{k}.json"
+            walls[label].append(child_run([*cmd, *extra, "--json", str(out)], env)[0])
+            saved[label] = json.loads(out.read_text())
+    where = {label: saved[label].pop("replications")["where"] for label in saved}
+    baseline = saved[RECOVER_RUNS[0][0]]
+    same = {label: saved[label] == baseline for label in saved}
+    return {"best": {k: min(v) for k, v in walls.items()}, "where": where, "same": same}
+
+
+def recover_rows(runs: dict) -> list[str]:
+    base = runs["best"][RECOVER_RUNS[0][0]]
+    rows = [
+        "",
+        f"Whole `stopwise recover` commands of the same study (caches filled by one unmeasured "
+        f"run; best of {REPEAT} interleaved rounds):",
+        "",
+        "| command | wall s (best) | speed-up | where the replications ran | JSON equal |",
+        "|---|---|---|---|---|",
+    ]
+    for label, _ in RECOVER_RUNS:
+        wall = runs["best"][label]
+        rows.append(
+            f"| {label} | {wall:.2f} | {base / wall:.2f}x | {runs['where'][label]} | "
+            f"{runs['same'][label]} |"
+        )
+    return rows
+
+
 def section(fit: dict, study: dict, load: tuple) -> str:
     plain_w, plain_c = fit["best"]["plain"]
     rows = [
@@ -203,6 +258,7 @@ def section(fit: dict, study: dict, load: tuple) -> str:
             f"**{serial_med / cluster_med:.2f}x** (ratio of the medians) | |"
         )
         rows.append(f"| median of the rounds' speed-ups (paired) | | | **{paired:.2f}x** | |")
+    rows += recover_rows(study["commands"])
     rows += [
         "",
         f"Goal >= 1.6x on 2 cores. Load average (1, 5, 15 min) at start {load[0]}, at end "
@@ -216,6 +272,7 @@ def main() -> str:
     with tempfile.TemporaryDirectory(prefix="stopwise-store-") as tmp:
         fit = whole_process_fit(Path(tmp))
         study = recovery_study(Path(tmp))
+        study["commands"] = recover_commands(Path(tmp))
     load_end = tuple(round(x, 1) for x in os.getloadavg())
     return section(fit, study, (load_start, load_end))
 
