@@ -18,9 +18,10 @@ Where the tasks run (``plan_for``), first match wins:
 5. ``workers=None`` ("auto"): a LocalCluster sized to the machine when it has more than one
    core and the study has at least ``AUTO_MIN_TASKS`` tasks, else in-process. An "auto"
    cluster is started only when the study's work pays for it (``run_then_spread``): the
-   tasks run in-process one after another until the time of the ones run so far (the first
-   excluded: it compiles) times the number left reaches ``AUTO_CLUSTER_MIN_S``; the rest
-   then goes to the cluster. A study of a few seconds of work never waits for workers to
+   tasks run in-process (in rounds of ``threads`` tasks) until the median time per task of
+   the rounds timed so far (the first round excluded: it compiles; at least
+   ``AUTO_TIMED_TASKS`` rounds) times the number left reaches ``AUTO_CLUSTER_MIN_S``; the
+   rest then goes to the cluster. A study of a few seconds of work never waits for workers to
    start and compile (a 200-replication recovery study, 3 s of work, took 0.8-0.9x the
    in-process time on 2 fresh workers; benchmarks/RESULTS.md, issue 17 (b)).
 
@@ -51,7 +52,7 @@ from tqdm import tqdm
 SCHEDULER_ENV = "STOPWISE_SCHEDULER"
 AUTO_MIN_TASKS = 16
 # "auto" starts a LocalCluster only for the rest of a study estimated at this many seconds or
-# more on one core: about 3x what starting 2 fresh workers and compiling on them cost here
+# more in-process: about 3x what starting 2 fresh workers and compiling on them cost here
 # (7 s; benchmarks/RESULTS.md, issue 17 (b)), so the cluster's start is repaid with a margin.
 AUTO_CLUSTER_MIN_S = 20.0
 AUTO_TIMED_TASKS = 3  # rounds of tasks timed in-process (after the first) before "auto" decides
