@@ -14,6 +14,7 @@ from stopwise.estimation.bayes.laplace_mode import (
     laplace_mode_from_precision,
     prior_terms,
 )
+from stopwise.estimation.bayes.pooled_start import lazy_start
 
 
 def logistic_prior(centre: np.ndarray, scale: np.ndarray):
@@ -233,3 +234,21 @@ def test_an_ml_point_run_off_along_the_flat_direction_starts_the_search_at_the_p
     assert abs(found.mode[0]) < 1e-6  # the prior's mode, 25 units from the ML point
     # sd along the flat direction: the logistic prior's curvature 1/2 at its mode
     assert found.cov[0, 0] == pytest.approx(2.0, rel=1e-6)
+
+
+def test_the_other_starts_are_computed_only_when_the_ml_point_cannot_start_the_search():
+    # the prior's centre costs seconds of compilation on a first call: the pooled start hands
+    # it over lazily (estimation/bayes/pooled_start.py, ``lazy_start``)
+    h = np.diag([0.0, 50.0])
+    prior, _ = logistic_prior(np.array([0.0, 0.0]), np.array([1.0, 1.0]))
+    asked: list[str] = []
+
+    def centre() -> np.ndarray:
+        asked.append("centre")
+        return np.zeros(2)
+
+    near = laplace_mode_from_precision(np.array([0.5, 0.3]), h, prior, lazy_start(centre, [0, 1]))
+    assert near is not None and near.converged and asked == []
+    far = laplace_mode_from_precision(np.array([-25.0, 0.3]), h, prior, lazy_start(centre, [0, 1]))
+    assert far is not None and far.converged and asked == ["centre"]
+    assert abs(far.mode[0]) < 1e-6  # the case of the test above, reached through the lazy start

@@ -27,7 +27,8 @@ flat directions as long as H + P₊ stays positive definite (``laplace_mode_from
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+import itertools
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -77,7 +78,7 @@ def laplace_mode_from_precision(
     z_hat: np.ndarray,
     precision: np.ndarray,
     prior: PriorTerms,
-    other_starts: Sequence[np.ndarray] = (),
+    other_starts: Iterable[np.ndarray] = (),
 ) -> LaplaceMode | None:
     """The same search with the likelihood's curvature H given directly. H may be singular
     (the positive part of an ML Hessian that is not positive definite: a direction the data
@@ -85,7 +86,8 @@ def laplace_mode_from_precision(
     flat directions. The search starts at z_hat, or at the first of ``other_starts`` where
     f is finite and H + P₊ positive definite: an ML point that ran off along the flat
     direction lies where the prior's log density is nearly linear (P₊ = 0), and Newton
-    cannot step from there. None where no start qualifies."""
+    cannot step from there. ``other_starts`` is read lazily: a start after the first that
+    qualifies is never computed. None where no start qualifies."""
     z_hat = np.asarray(z_hat, np.float64)
     h = 0.5 * (np.asarray(precision, np.float64) + np.asarray(precision, np.float64).T)
 
@@ -97,7 +99,7 @@ def laplace_mode_from_precision(
         d = z - z_hat
         return 0.5 * d @ h @ d - log_p, h @ d - grad_log_p, h + positive_part(prior_precision)
 
-    for candidate in (z_hat, *other_starts):
+    for candidate in itertools.chain((z_hat,), other_starts):
         z = np.asarray(candidate, np.float64).copy()
         f, grad, curvature = terms(z)
         if np.isfinite(f) and is_positive_definite(curvature):
