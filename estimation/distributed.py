@@ -22,8 +22,8 @@ Where the tasks run (``plan_for``), first match wins:
    the rounds timed so far (the first round excluded: it compiles; at least
    ``AUTO_TIMED_TASKS`` rounds) times the number left reaches ``AUTO_CLUSTER_MIN_S``; the
    rest then goes to the cluster. A study of a few seconds of work never waits for workers to
-   start and compile (a 200-replication recovery study, 3 s of work, took 0.8-0.9x the
-   in-process time on 2 fresh workers; benchmarks/RESULTS.md, issue 17 (b)).
+   start and compile (a 200-replication recovery study, 3 s of work, ran at 0.6-0.9x
+   the in-process speed on 2 fresh workers; benchmarks/RESULTS.md, issue 17 (b)).
 
 On a cluster the tasks travel in consecutive batches, about ``BATCHES_PER_WORKER`` per
 worker (``batch_bounds``), so short tasks do not pay Dask's per-task overhead one by one.
@@ -261,7 +261,7 @@ def worth_spreading(warm_seconds: Sequence[float], tasks_left: int) -> bool:
     (``warm_seconds``: each round's wall time per task) and the tasks left, each taking their
     median, add up to AUTO_CLUSTER_MIN_S or more: median(warm) * tasks_left >= that. The
     median, because a task that meets a new data shape compiles again (the second replication
-    of a recovery study took 0.1-0.5 s against 15 ms for the others)."""
+    of a recovery study took more than 0.1 s against 15 ms for the others)."""
     if len(warm_seconds) < AUTO_TIMED_TASKS or tasks_left <= 0:
         return False
     return float(np.median(warm_seconds)) * tasks_left >= AUTO_CLUSTER_MIN_S
