@@ -15,7 +15,8 @@ the sampler is NumPyro's NUTS (``numpyro.infer.hmc.hmc``, the functions its ``NU
 calls) with the product's settings: start at the mode z* of the Laplace posterior
 N(ML, C) x prior moved by U(-1, 1) x its sd per chain, the dense inverse mass matrix
 (H + P(z*))^-1 from the ML Hessian H and the prior's curvature P as the warm-up's starting
-metric (``laplace_start``), adapted in the warm-up like the step size (the product's
+metric (``laplace_start``; where that start is more than ten prior sds wide, the exact
+posterior mode, estimation/bayes/mode_start.py), adapted in the warm-up like the step size (the product's
 ``mass_matrix_settings``, estimation/bayes/sampler.py, gives both the same keywords),
 target acceptance 0.8, maximum tree depth 10.
 
@@ -63,9 +64,9 @@ from stopwise.estimation.bayes.density import (
 from stopwise.estimation.bayes.fit_steps import pointwise_unit, sampling_model
 from stopwise.estimation.bayes.initial import initial_natural, initial_values
 from stopwise.estimation.bayes.laplace_mode import PriorTerms, prior_terms
+from stopwise.estimation.bayes.mode_start import checked_pooled_start
 from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
-    laplace_start,
     ml_start,
     start_sites,
 )
@@ -128,8 +129,8 @@ def prepare_replication(model: Any, data: Any, point_fits: Any) -> Prepared:
         aggregate=model.data_kind != "contest",
         centred=(),
     )
-    values, scales, inverse_mass = start_for(setup, natural, pooled)
-    return Prepared(setup, args, values, scales, inverse_mass, data, tuple(notes))
+    values, scales, inverse_mass, start_notes = start_for(setup, args, natural, pooled)
+    return Prepared(setup, args, values, scales, inverse_mass, data, (*notes, *start_notes))
 
 
 def signature(setup: Setup) -> tuple:
@@ -164,24 +165,25 @@ def shared_prior_terms(setup: Setup) -> PriorTerms:
 
 
 def start_for(
-    setup: Setup, natural: Any, pooled: PooledStart
-) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], Any] | None]:
+    setup: Setup, args: CellArgs, natural: Any, pooled: PooledStart
+) -> tuple[dict[str, Any], dict[str, Any], dict[tuple[str, ...], Any] | None, tuple[str, ...]]:
     """``sampler_start``'s pooled branch (estimation/bayes/fit_steps.py): values, jitter
-    scales and the inverse mass the warm-up starts from, all from ``laplace_start`` (the mode
-    of the Laplace posterior), None where the product starts from the identity (some
-    direction that neither the ML Hessian's positive part nor the prior curves). Pooled fits
-    without formulas only."""
+    scales and the inverse mass the warm-up starts from, all from ``checked_pooled_start``
+    (the mode of the Laplace posterior, or where that is refused the exact posterior mode,
+    estimation/bayes/mode_start.py), None where the product starts from the identity (some
+    direction that neither the ML Hessian's positive part nor the prior curves), and the
+    notes of a refused start. Pooled fits without formulas only."""
     sites = population_sites(setup)
     if any(not s.startswith("z_") for s in sites):
         raise ValueError("only pooled fits without formulas are supported")
     values, scales = initial_values(setup, natural), {}
     if pooled.coef is None:
-        return values, scales, None
+        return values, scales, None, ()
     values, scales = start_sites(pooled, setup.names, setup.coef_names)
     if not pooled.has_curvature:
-        return values, scales, None
-    prior = shared_prior_terms(setup)
-    return laplace_start(pooled, setup.names, setup.coef_names, sites, prior)
+        return values, scales, None, ()
+    checked = checked_pooled_start(setup, args, pooled, shared_prior_terms(setup))
+    return checked.values, checked.scales, checked.inverse_mass, checked.notes
 
 
 def pad_rows(leaf: Any, rows: int, width: int) -> Any:

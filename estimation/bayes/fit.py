@@ -144,6 +144,7 @@ def fit_bayes(
     start = sampler_start(
         setup, args, natural, pooled, subjects, hierarchical, dense_mass, whiten_subjects
     )
+    notes += start.notes
     method = choose_chain_method(chain_method, chains)
     run = sample_and_check(
         setup,
@@ -180,7 +181,7 @@ def fit_bayes(
             "chain_method": method,
             "target_accept": target_accept,
             "max_tree_depth": max_tree_depth,
-            "init": _init_text(init, pooled, start.inverse_mass is not None),
+            "init": start.origin or _init_text(init, pooled),
             "parametrisation": describe_parametrisation(setup.names, form) if form else None,
             "dense_mass": start.dense_mass,
             "subject_whitening": start.whitening is not None,
@@ -255,13 +256,8 @@ def pooled_from_ml(hierarchical: bool, init: Any) -> bool:
     return not hierarchical and (init is None or (isinstance(init, str) and init == "mle"))
 
 
-def _init_text(init: Any, pooled: PooledStart | None = None, laplace: bool = False) -> str:
+def _init_text(init: Any, pooled: PooledStart | None = None) -> str:
     if pooled is not None:
-        if laplace:
-            return (
-                "mode of the Laplace posterior (ML normal approximation x prior), inverse "
-                "mass matrix from its covariance (warm-up start, adapted)"
-            )
         return "ML estimate" if pooled.coef is not None else "model start values"
     if isinstance(init, Mapping):
         return "user values"

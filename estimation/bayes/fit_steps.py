@@ -30,9 +30,9 @@ from stopwise.estimation.bayes.initial import (
     jitter_scales,
 )
 from stopwise.estimation.bayes.laplace_mode import flat_sizes, prior_terms
+from stopwise.estimation.bayes.mode_start import checked_pooled_start
 from stopwise.estimation.bayes.pooled_start import (
     PooledStart,
-    laplace_start,
     start_sites,
 )
 from stopwise.estimation.bayes.prepare import (
@@ -225,6 +225,8 @@ class SamplerStart:
     inverse_mass: Mapping[tuple[str, ...], Any] | None
     dense_mass: bool
     whitening: SubjectWhitening | None = None  # hierarchical: subject sites drawn as w
+    origin: str | None = None  # pooled, checked start: what it is (estimation/bayes/mode_start.py)
+    notes: tuple[str, ...] = ()  # a refused start and its replacement
 
 
 def sampler_start(
@@ -242,15 +244,16 @@ def sampler_start(
     subjects' start (estimation/bayes/initial.py), with the subject sites whitened when
     ``whiten`` (estimation/bayes/whiten.py); else the natural start values."""
     values = initial_values(setup, natural)
-    scales = inverse_mass = None
+    scales = inverse_mass = origin = None
+    notes: tuple[str, ...] = ()
     if pooled is not None and pooled.coef is not None:
         values, scales = start_sites(pooled, setup.names, setup.coef_names)
         if pooled.has_curvature:
             sites = population_sites(setup)
             prior = prior_terms(partial(pooled_log_prior, setup), sites, flat_sizes(sites, values))
-            values, scales, inverse_mass = laplace_start(
-                pooled, setup.names, setup.coef_names, sites, prior
-            )
+            checked = checked_pooled_start(setup, args, pooled, prior)
+            values, scales, inverse_mass = checked.values, checked.scales, checked.inverse_mass
+            origin, notes = checked.origin, checked.notes
             if inverse_mass is not None:
                 dense_mass = True if dense_mass is None else dense_mass
     if dense_mass is None:
@@ -264,6 +267,8 @@ def sampler_start(
         scales=scales,
         inverse_mass=inverse_mass,
         dense_mass=bool(dense_mass),
+        origin=origin if subjects is None else None,
+        notes=notes,
     )
     if subjects is not None and whiten:
         return whitened_start(setup, subjects, start)

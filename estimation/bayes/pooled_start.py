@@ -13,7 +13,9 @@ The chains start at the mode z* of the Laplace posterior N(z_hat, H^-1) x prior,
 * sd_j per coefficient with sd_j the sd of (H + P(z*))^-1, P the prior's curvature
 (``laplace_start``, estimation/bayes/laplace_mode.py): one posterior sd apart, so that R-hat
 still compares chains that did not start at one point. With informative data this is z_hat
-and H^-1; where the likelihood is flat the prior sets the place and the width.
+and H^-1; where the likelihood is flat the prior sets the place and the width. The start is
+checked before the chains use it: one wider than ten prior sds in some coordinate is
+refused and replaced by the exact posterior mode (estimation/bayes/mode_start.py).
 
 The ML coefficients are ordered parameter by parameter in design-column order
 (estimation/ml/mle.py); the sampler's population sites are z_<k> (the intercept) and b_<k>
