@@ -22,7 +22,9 @@ of the study runner (estimation/distributed.py). A replication that fails is cou
 reported with its index, never hidden.
 
 Run ``python -m benchmarks.study_sbc [replications] [model ...] [--stop-at HH:MM]``;
-``--report`` draws the figure and the RESULTS.md section from the saved results.
+``--report`` draws the figure and the RESULTS.md section from the saved results; ``--seed N``
+runs a second study of the same design with other replication keys (its own results file,
+figure and section).
 """
 
 from __future__ import annotations
@@ -173,6 +175,7 @@ def one_replication(
         "divergent": divergent,
         "min_ess": min(ess),
         "laplace": prepared.laplace,
+        "refused": any("Laplace start was refused" in n for n in prepared.notes),
         "residual": residual,
         "checked": check,
     }
@@ -186,17 +189,20 @@ def run(
     sampling: Sampling = Sampling(),
     stop_at: float | None = None,
     saved: str | None = None,
+    seed: int = SEED,
 ) -> dict[str, Any]:
     """The study of one model (module docstring): in-process with checkpoints in ``saved``
-    (default benchmarks/sbc_results_<model>.json, resumed from when it holds the same
-    study), or every replication a task of the runner."""
+    (default benchmarks/sbc_results_<model>.json, with _seed<seed> for a replication seed
+    other than SEED; resumed from when it holds the same study), or every replication a
+    task of the runner. ``seed`` draws the replications' keys; the design is the same."""
     options, make_design = MODELS[spec]
     study = Study(build_model(spec, **options), make_design(), sampling)
-    keys = replication_keys(replications)
+    keys = replication_keys(replications, seed)
     t0, cpu0 = time.perf_counter(), time.process_time()
     if workers == 0 and scheduler is None:
-        path = saved or SAVED.format(slug(spec))
-        outcomes, where = _in_process(spec, study, keys, stop_at, t0, path), "in-process"
+        path = saved or SAVED.format(study_slug(spec, seed))
+        outcomes = _in_process(spec, study, keys, stop_at, t0, path, seed)
+        where = "in-process"
     else:
         inputs = [{"rep": r, "key": k} for r, k in enumerate(keys)]
         done = run_tasks(
@@ -212,7 +218,20 @@ def run(
             {"error": failures[i]} if i in failures else got for i, got in enumerate(done.results)
         ]
         where = done.where
-    return summarise(spec, replications, outcomes, sampling, where, t0, cpu0)
+        if saved:  # the command line keeps the results of a distributed study too
+            save_atomically(
+                saved,
+                {
+                    "spec": spec,
+                    "seed": seed,
+                    "outcomes": outcomes,
+                    "sampling": sampling.__dict__,
+                    "seconds": time.perf_counter() - t0,
+                    "cpu": time.process_time() - cpu0,
+                    "programs": S.compiled_programs(),
+                },
+            )
+    return summarise(spec, replications, outcomes, sampling, where, t0, cpu0, seed)
 
 
 def _in_process(
@@ -222,12 +241,13 @@ def _in_process(
     stop_at: float | None,
     t0: float,
     path: str,
+    seed: int = SEED,
 ) -> list[dict[str, Any] | None]:
     """Replications one after another; progress lines and an atomic checkpoint of the
     results in ``path`` every CHECKPOINT replications; None for those not run before
     ``stop_at``."""
     cpu0 = time.process_time()
-    outcomes, earlier, earlier_cpu = resumed(spec, study.sampling, len(keys), path)
+    outcomes, earlier, earlier_cpu = resumed(spec, study.sampling, len(keys), path, seed)
     t0 -= earlier
     cpu0 -= earlier_cpu
     for r, key in enumerate(keys):
@@ -252,6 +272,7 @@ def _in_process(
                 path,
                 {
                     "spec": spec,
+                    "seed": seed,
                     "outcomes": outcomes[: r + 1],
                     "sampling": study.sampling.__dict__,
                     "seconds": elapsed,
@@ -263,7 +284,7 @@ def _in_process(
 
 
 def resumed(
-    spec: str, sampling: Sampling, n: int, path: str
+    spec: str, sampling: Sampling, n: int, path: str, seed: int = SEED
 ) -> tuple[list[dict[str, Any] | None], float, float]:
     """Outcomes saved by an earlier run of the same study (same sampling), to go on from
     (replication r depends only on (SEED, r), so the results are those of one run), with
@@ -272,7 +293,8 @@ def resumed(
         return [None] * n, 0.0, 0.0
     with open(path, encoding="utf-8") as fh:
         saved = json.load(fh)
-    if saved.get("sampling") != sampling.__dict__ or saved.get("spec") != spec:
+    same = saved.get("spec") == spec and saved.get("seed", SEED) == seed
+    if saved.get("sampling") != sampling.__dict__ or not same:
         return [None] * n, 0.0, 0.0
     done = saved["outcomes"][:n]
     print(f"{spec}: resuming after {len(done)} saved replications", flush=True)
@@ -281,6 +303,11 @@ def resumed(
 
 def slug(spec: str) -> str:
     return spec.replace("+", "_")
+
+
+def study_slug(spec: str, seed: int = SEED) -> str:
+    """The model's slug, with _seed<seed> for a replication seed other than SEED."""
+    return slug(spec) if seed == SEED else f"{slug(spec)}_seed{seed}"
 
 
 def save_atomically(path: str, payload: dict[str, Any]) -> None:
@@ -305,6 +332,7 @@ def summarise(
     where: str,
     t0: float,
     cpu0: float,
+    seed: int = SEED,
 ) -> dict[str, Any]:
     """Bin counts, band and tests per parameter from the replications that ran."""
     ranked = [o for o in outcomes if o is not None and "error" not in o]
@@ -330,6 +358,9 @@ def summarise(
         "errors": sorted({o["error"] for o in outcomes if o is not None and "error" in o}),
         "divergent": int(sum(o["divergent"] for o in ranked)),
         "adapted": int(sum(not o["laplace"] for o in ranked)),
+        "refused": [i for i, o in enumerate(outcomes) if o is not None and o.get("refused")],
+        "refusal_recorded": int(sum("refused" in o for o in ranked)),
+        "seed": seed,
         "ess_median": float(np.median(ess)),
         "ess_low": float(np.quantile(ess, 0.05)),
         "max_residual": float(max((o["residual"] for o in ranked), default=0.0)),
@@ -383,25 +414,29 @@ def draw_figure(result: dict[str, Any], path: str) -> None:
 def section(r: dict[str, Any]) -> str:
     s = r["sampling"]
     per = r["seconds"] / max(1, r["replications"] + len(r["failed"]))
+    seed = r.get("seed", SEED)
+    title = "" if seed == SEED else f" (replication seed {seed}, a second study)"
     lines = [
-        f"## Bayes: simulation-based calibration, pooled {r['spec']}",
+        f"## Bayes: simulation-based calibration, pooled {r['spec']}{title}",
         "",
         f"Talts et al. (2018) ranks of the true value among {s['kept']} thinned posterior "
         f"draws ({s['chains']} chains x {s['draws']} draws after {s['warmup']} warm-up, every "
         f"{s['thin']}th kept, the first {s['kept']} ranked), parameters from the default "
-        f"priors, invented design: {DESIGNS[r['spec']]} (benchmarks/study_sbc.py), seed {SEED}, "
+        f"priors, invented design: {DESIGNS[r['spec']]} (benchmarks/study_sbc.py), seed {seed}, "
         f"run {r['where']}. "
         "Sampler: the product's pooled start (chains at the mode of the Laplace posterior "
         "N(ML estimate, ML covariance) x prior, one sd of its covariance apart; the warm-up "
         "starts from that covariance as inverse mass matrix and adapts it; where the ML "
         "Hessian is not positive definite its positive part stands in for the ML precision, "
         "and only where it and the prior leave a direction flat do the chains start at the ML "
-        "point with the identity, as in the product) and NumPyro's NUTS on the product's "
+        "point with the identity, as in the product; a start wider than ten prior sds is "
+        "refused and the chains start at the exact posterior mode, "
+        "estimation/bayes/mode_start.py) and NumPyro's NUTS on the product's "
         "density, one "
         "compiled program per padded data shape (benchmarks/sbc_sampler.py). "
         f"{BINS} bins; band: Bonferroni {R.LEVEL:.0%} simultaneous binomial band "
         "(benchmarks/sbc_ranks.py); Pearson chi-square (9 df) beside it. Figure: "
-        f"benchmarks/sbc_ranks_{slug(r['spec'])}.png.",
+        f"benchmarks/sbc_ranks_{study_slug(r['spec'], seed)}.png.",
         "",
         "| parameter | N | bin counts | band | inside band? | chi-square p |",
         "|---|---|---|---|---|---|",
@@ -418,7 +453,11 @@ def section(r: dict[str, Any]) -> str:
         f"{r['not_run']} not run{' (the run was stopped at its deadline)' if r['not_run'] else ''}. "
         "Divergent transitions after warm-up: "
         f"{r['divergent']} in all. Started from the identity, not the Laplace mass matrix: "
-        f"{r['adapted']}. Thinning check, smallest bulk ESS over the parameters of the "
+        f"{r['adapted']}. Laplace start refused (wider than ten prior sds; exact posterior "
+        f"mode instead): {len(r.get('refused', []))} of the {r.get('refusal_recorded', 0)} "
+        "replications that record it"
+        f"{' (' + ', '.join(map(str, r['refused'][:20])) + ')' if r.get('refused') else ''}. "
+        "Thinning check, smallest bulk ESS over the parameters of the "
         f"{s['chains'] * s['draws']} unthinned draws: median {r['ess_median']:.0f}, 5% quantile "
         f"{r['ess_low']:.0f} (draws {s['thin']} apart are near-independent when ESS >= "
         f"{s['chains'] * s['draws'] // s['thin']}). Aggregation and padding check (relative "
@@ -438,16 +477,17 @@ def section(r: dict[str, Any]) -> str:
 
 def report(spec: str, result: dict[str, Any]) -> str:
     """Figure, RESULTS.md section and the printed text of one finished study."""
-    draw_figure(result, FIGURE.format(slug(spec)))
+    seed = result.get("seed", SEED)
+    draw_figure(result, FIGURE.format(study_slug(spec, seed)))
     text = section(result)
-    write_section(f"study_sbc {spec}", text)
+    write_section(f"study_sbc {spec}" + ("" if seed == SEED else f" seed {seed}"), text)
     return text
 
 
-def from_saved(spec: str, planned: int) -> dict[str, Any]:
+def from_saved(spec: str, planned: int, seed: int = SEED) -> dict[str, Any]:
     """The summary of a study from its checkpoint file (``--report``): replications after
     the last checkpoint of a stopped run count as not run."""
-    with open(SAVED.format(slug(spec)), encoding="utf-8") as fh:
+    with open(SAVED.format(study_slug(spec, seed)), encoding="utf-8") as fh:
         saved = json.load(fh)
     outcomes = saved["outcomes"] + [None] * max(0, planned - len(saved["outcomes"]))
     result = summarise(
@@ -458,6 +498,7 @@ def from_saved(spec: str, planned: int) -> dict[str, Any]:
         "in-process",
         time.perf_counter() - saved["seconds"],
         time.process_time() - saved["cpu"],
+        seed,
     )
     result["programs"] = saved.get("programs", result["programs"])
     return result
@@ -476,6 +517,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("models", nargs="*", default=[], help=", ".join(MODELS))
     parser.add_argument("--stop-at", default=None, metavar="HH:MM", help="UTC deadline")
     parser.add_argument("--report", action="store_true", help="report the saved results")
+    parser.add_argument(
+        "--seed", type=int, default=SEED, help=f"replication seed (default {SEED}; same design)"
+    )
     add_cluster_options(parser)
     parser.set_defaults(workers=0)  # in-process unless asked
     args = parser.parse_args(sys.argv[1:] if argv is None else argv)
@@ -485,9 +529,16 @@ def main(argv: list[str] | None = None) -> int:
     stop_at = utc_today_at(args.stop_at) if args.stop_at else None
     for spec in args.models or list(DEFAULT_MODELS):  # one section and figure per model
         if args.report:
-            result = from_saved(spec, args.replications)
+            result = from_saved(spec, args.replications, args.seed)
         else:
-            result = run(spec, args.replications, stop_at=stop_at, **cluster_kwargs(args))
+            result = run(
+                spec,
+                args.replications,
+                stop_at=stop_at,
+                seed=args.seed,
+                saved=SAVED.format(study_slug(spec, args.seed)),
+                **cluster_kwargs(args),
+            )
         print(report(spec, result), flush=True)
     return 0
 

@@ -87,6 +87,21 @@ def test_ranks_are_binned_and_thinned_as_stated() -> None:
         R.thinned(x, 5, 5)
 
 
+def test_a_second_study_has_its_own_keys_file_and_resumes_only_itself(tmp_path) -> None:
+    first, second = study_sbc.replication_keys(3), study_sbc.replication_keys(3, seed=7)
+    assert not any(np.array_equal(a, b) for a in first for b in second)
+    assert study_sbc.study_slug("crra+ch") == "crra_ch"
+    assert study_sbc.study_slug("crra+ch", 7) == "crra_ch_seed7"
+    sampling = study_sbc.Sampling()
+    path = tmp_path / "saved.json"
+    outcome = {"ranks": {"r": 3}, "divergent": 0, "min_ess": 100.0, "laplace": True}
+    payload = {"spec": "crra+ch", "seed": 7, "outcomes": [outcome], "sampling": sampling.__dict__}
+    study_sbc.save_atomically(str(path), {**payload, "seconds": 1.0, "cpu": 1.0})
+    mine, _, _ = study_sbc.resumed("crra+ch", sampling, 2, str(path), seed=7)
+    other, _, _ = study_sbc.resumed("crra+ch", sampling, 2, str(path))
+    assert mine == [outcome, None] and other == [None, None]
+
+
 # ---------------------------------------------------------------------------------------
 # The compiled sampler against the product.
 
