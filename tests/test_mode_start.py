@@ -11,6 +11,7 @@ import pytest
 from scipy import optimize
 
 import stopwise
+from stopwise.estimation.bayes import mode_start
 from stopwise.estimation.bayes.density import pooled_log_prior, population_sites
 from stopwise.estimation.bayes.fit import fit_bayes
 from stopwise.estimation.bayes.laplace_mode import (
@@ -21,6 +22,7 @@ from stopwise.estimation.bayes.laplace_mode import (
 from stopwise.estimation.bayes.mode_start import (
     EXACT_ORIGIN,
     LAPLACE_ORIGIN,
+    PRIOR_ORIGIN,
     SPREAD_LIMIT,
     SPREAD_TRIGGER,
     PriorScale,
@@ -167,6 +169,29 @@ def test_the_refused_start_is_the_exact_posterior_mode(tiny_start) -> None:
     np.testing.assert_allclose(
         [checked.scales[s] for s in sites], np.sqrt(np.diag(cov)), rtol=1e-12
     )
+
+
+def test_where_the_exact_mode_is_not_found_the_chains_start_at_the_prior(
+    tiny_start, monkeypatch
+) -> None:
+    _, _, pooled, setup, args, sites, prior = tiny_start
+
+    def nowhere(*_):  # an exact posterior that is nowhere finite: the search cannot start
+        return lambda z: (-np.inf, np.full(z.size, np.nan), np.full((z.size, z.size), np.nan))
+
+    monkeypatch.setattr(mode_start, "exact_posterior_terms", nowhere)
+    checked = checked_pooled_start(setup, args, pooled, prior)
+    assert checked.origin == PRIOR_ORIGIN and "prior's centre" in checked.notes[-1]
+    j = list(sites).index("z_precision")
+    # precision's default prior is LogNormal(log 1, 1.5) (estimation/bayes/priors.py): on
+    # z = log(precision) it is Normal(0, 1.5), median 0 and curvature sd 1.5 exactly
+    # (change of variables; common practice, no source); the median is taken from 2,001
+    # draws, whose sampling sd is about 1.25 x 1.5 / sqrt(2001) = 0.04
+    assert checked.values["z_precision"] == pytest.approx(0.0, abs=0.12)
+    assert checked.scales["z_precision"] == pytest.approx(1.5, rel=1e-6)
+    mass = checked.inverse_mass[tuple(sites)]
+    np.testing.assert_allclose(mass, np.diag(np.diag(mass)))
+    assert mass[j, j] == pytest.approx(1.5**2, rel=1e-6)
 
 
 def test_the_products_fit_on_tiny_data_starts_at_the_exact_mode_and_moves() -> None:

@@ -188,13 +188,12 @@ def checked_pooled_start(
     args: Any,
     pooled: PooledStart,
     prior: PriorTerms,
-    posterior: Callable[[], PriorTerms] | None = None,
 ) -> CheckedStart:
     """The Laplace start (``laplace_start``) if ``refused_coordinates`` accepts it, else the
     exact posterior mode (``posterior_mode`` from the prior's centre), else the prior's
     centre and variances (module docstring). ``prior`` gives the pooled log prior's terms;
-    ``posterior`` builds the exact posterior's (default ``exact_posterior_terms``), called
-    only when the Laplace start is refused. Starts without a mass block (a direction that
+    the exact posterior's (``exact_posterior_terms``, a compilation of the likelihood's
+    Hessian) are built only when the Laplace start is refused. Starts without a mass block (a direction that
     neither the data nor the prior curve) are returned as ``laplace_start`` gives them."""
     sites = population_sites(setup)
     values, scales, inverse_mass = laplace_start(
@@ -223,10 +222,7 @@ def checked_pooled_start(
         f"pooled start: the Laplace start was refused (its sd in {what}, more than "
         f"{SPREAD_LIMIT:g} prior sds: the ML point lies where the likelihood is flat)"
     ]
-    terms = (
-        posterior() if posterior is not None else exact_posterior_terms(setup, args, sites, sizes)
-    )
-    found = posterior_mode(terms, scale().centre)
+    found = posterior_mode(exact_posterior_terms(setup, args, sites, sizes), scale().centre)
     if found is not None and not refused_coordinates(np.sqrt(np.diag(found[1])), scale):
         mode, cov = found
         notes.append(
