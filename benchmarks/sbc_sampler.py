@@ -22,9 +22,9 @@ target acceptance 0.8, maximum tree depth 10.
 
 What differs (settings, stated): the chain counts and lengths (the study's ``Sampling``);
 the chains' starting jitter is drawn from the study's key instead of NumPyro's init-strategy
-key (same distribution), and a start where the potential or its gradient is not finite is
-not redrawn (NumPyro's init strategy redraws up to 100 times, numpyro/infer/util.py,
-``find_valid_initial_params``). With the former start (ML point, jitter of one ML sd, which
+key (same distribution); a chain whose start has a potential or gradient that is not finite
+is drawn again up to 100 times, as NumPyro's init strategy does (numpyro/infer/util.py,
+``find_valid_initial_params``; the harness did not redraw before the fifteenth session). With the former start (ML point, jitter of one ML sd, which
 reached about 2,000 in z on short contest data) chains of the crra+ch study started
 thousands of units out and diverged on every transition in 72 replications, while the
 product's own fit of replication 8 with that start did not diverge (4 seeds, 2026-12-03):
@@ -280,6 +280,13 @@ class CompiledSampler:
 
         self._run = jax.jit(jax.vmap(chain, in_axes=(0, 0, None, None)))
 
+        def finite_start(z0: Any, args: CellArgs) -> Any:
+            energy, grad = jax.value_and_grad(info.potential_fn(args))(z0)
+            leaves = [jnp.all(jnp.isfinite(g)) for g in jax.tree_util.tree_leaves(grad)]
+            return jnp.isfinite(energy) & jnp.all(jnp.stack(leaves))
+
+        self._finite = jax.jit(jax.vmap(finite_start, in_axes=(0, None)))
+
     def start_points(self, key: Any, prepared: Prepared) -> dict[str, Any]:
         """Per chain: start value + U(-1, 1) x scale per site (init_near's rule)."""
         out = {}
@@ -291,14 +298,44 @@ class CompiledSampler:
             out[name] = value + scale * u
         return out
 
-    def draw(self, key: Any, prepared: Prepared, padded: CellArgs) -> tuple[dict, int]:
+    def finite_start_points(
+        self, key: Any, prepared: Prepared, padded: CellArgs
+    ) -> tuple[dict[str, Any], int]:
+        """``start_points``, with every chain whose potential or gradient is not finite
+        there drawn again (key fold_in(key, attempt)) up to MAX_REDRAWS times, as NumPyro's
+        init strategy does for a user's fit (numpyro/infer/util.py,
+        ``find_valid_initial_params``); the chains' starts and the number of redraws. A
+        chain still not finite after them is left to NUTS, whose transitions then diverge
+        (counted)."""
+        z0 = self.start_points(key, prepared)
+        redraws = 0
+        for attempt in range(1, MAX_REDRAWS + 1):
+            ok = np.asarray(self._finite(z0, padded))
+            if ok.all():
+                break
+            fresh = self.start_points(jax.random.fold_in(key, attempt), prepared)
+            z0 = {k: keep_where(ok, v, fresh[k]) for k, v in z0.items()}
+            redraws += int(np.sum(~ok))
+        return z0, redraws
+
+    def draw(self, key: Any, prepared: Prepared, padded: CellArgs) -> tuple[dict, int, int]:
+        """Post-warm-up draws per site, divergent transitions and start redraws."""
         k_start, k_run = jax.random.split(key)
-        z0 = self.start_points(k_start, prepared)
+        z0, redraws = self.finite_start_points(k_start, prepared, padded)
         if prepared.laplace != self.laplace:
             raise ValueError("this program was compiled for the other mass-matrix start")
         mass = dict(prepared.inverse_mass) if prepared.laplace else None
         z, divergent = self._run(jax.random.split(k_run, self.chains), z0, mass, padded)
-        return {k: np.asarray(v) for k, v in z.items()}, int(np.sum(divergent))
+        return {k: np.asarray(v) for k, v in z.items()}, int(np.sum(divergent)), redraws
+
+
+MAX_REDRAWS = 100  # NumPyro's init strategy tries up to 100 starts (find_valid_initial_params)
+
+
+def keep_where(ok: np.ndarray, kept: Any, fresh: Any) -> Any:
+    """Per chain (leading axis): ``kept`` where ``ok``, else ``fresh``."""
+    mask = jnp.asarray(ok).reshape((-1,) + (1,) * (jnp.ndim(kept) - 1))
+    return jnp.where(mask, kept, fresh)
 
 
 def padded_shape(

@@ -162,7 +162,7 @@ def one_replication(
     sampler = S.sampler_for(
         prepared, padded, shape, sampling.chains, sampling.warmup, sampling.draws
     )
-    z, divergent = sampler.draw(k_run, prepared, padded)
+    z, divergent, redraws = sampler.draw(k_run, prepared, padded)
     ranks, ess = {}, []
     for spec in prepared.setup.specs:
         x = np.asarray(spec.to_natural(z[f"z_{spec.name}"]))
@@ -176,6 +176,7 @@ def one_replication(
         "min_ess": min(ess),
         "laplace": prepared.laplace,
         "refused": any("Laplace start was refused" in n for n in prepared.notes),
+        "redraws": redraws,
         "residual": residual,
         "checked": check,
     }
@@ -358,6 +359,8 @@ def summarise(
         "errors": sorted({o["error"] for o in outcomes if o is not None and "error" in o}),
         "divergent": int(sum(o["divergent"] for o in ranked)),
         "adapted": int(sum(not o["laplace"] for o in ranked)),
+        "redraws": int(sum(o.get("redraws", 0) for o in ranked)),
+        "redraw_recorded": int(sum("redraws" in o for o in ranked)),
         "refused": [i for i, o in enumerate(outcomes) if o is not None and o.get("refused")],
         "refusal_recorded": int(sum("refused" in o for o in ranked)),
         "seed": seed,
@@ -457,6 +460,8 @@ def section(r: dict[str, Any]) -> str:
         f"mode instead): {len(r.get('refused', []))} of the {r.get('refusal_recorded', 0)} "
         "replications that record it"
         f"{' (' + ', '.join(map(str, r['refused'][:20])) + ')' if r.get('refused') else ''}. "
+        f"Chain starts drawn again because the density or its gradient was not finite there: "
+        f"{r.get('redraws', 0)} in the {r.get('redraw_recorded', 0)} replications that record it. "
         "Thinning check, smallest bulk ESS over the parameters of the "
         f"{s['chains'] * s['draws']} unthinned draws: median {r['ess_median']:.0f}, 5% quantile "
         f"{r['ess_low']:.0f} (draws {s['thin']} apart are near-independent when ESS >= "

@@ -27,8 +27,10 @@ from stopwise.estimation.bayes.mode_start import (
     SPREAD_TRIGGER,
     PriorScale,
     checked_pooled_start,
+    flatten_sites,
     posterior_mode,
     refused_coordinates,
+    unflatten_sites,
 )
 from stopwise.estimation.bayes.pooled_start import laplace_start, ml_start
 from stopwise.estimation.bayes.prepare import as_bundle, prepare
@@ -70,6 +72,16 @@ def test_a_start_wider_than_the_limit_is_refused_coordinate_by_coordinate() -> N
     limit = SPREAD_LIMIT * prior.sd[0]
     assert refused_coordinates(np.array([limit, 1.0, 1.0]), lambda: prior) == []
     assert refused_coordinates(np.array([limit * 1.01, 1.0, 1.0]), lambda: prior) == [0]
+
+
+def test_sites_flatten_in_site_order_and_back() -> None:
+    values = {"z_r": 0.5, "b_r": np.array([1.0, -2.0]), "z_precision": 3.0}
+    sites, sizes = ("z_r", "b_r", "z_precision"), (1, 2, 1)
+    flat = flatten_sites(values, sites)
+    assert flat.tolist() == [0.5, 1.0, -2.0, 3.0]
+    back = unflatten_sites(flat, sites, sizes)
+    assert back["z_r"] == 0.5 and back["z_precision"] == 3.0
+    np.testing.assert_array_equal(back["b_r"], [1.0, -2.0])
 
 
 def cauchy_times_normal():

@@ -87,6 +87,26 @@ def test_ranks_are_binned_and_thinned_as_stated() -> None:
         R.thinned(x, 5, 5)
 
 
+def test_chains_that_start_where_the_density_is_not_finite_are_drawn_again() -> None:
+    sampler = object.__new__(S.CompiledSampler)
+    sampler.chains = 6
+    # a stand-in for the potential's check: finite only inside |z| < 1
+    sampler._finite = lambda z0, _: jnp.abs(z0["z_r"]) < 1.0
+    prepared = S.Prepared(None, None, {"z_r": 0.0}, {"z_r": 2.0}, None, None, ())
+    key = jax.random.PRNGKey(3)
+    first = sampler.start_points(key, prepared)["z_r"]
+    assert np.any(np.abs(first) >= 1.0) and np.any(np.abs(first) < 1.0)
+    z0, redraws = sampler.finite_start_points(key, prepared, None)
+    assert np.all(np.abs(z0["z_r"]) < 1.0) and redraws >= int(np.sum(np.abs(first) >= 1.0))
+    kept = np.abs(first) < 1.0
+    np.testing.assert_array_equal(np.asarray(z0["z_r"])[kept], np.asarray(first)[kept])
+    # where every start is finite, nothing is drawn again and the starts are the first ones
+    sampler._finite = lambda z0, _: jnp.ones(6, bool)
+    z0, redraws = sampler.finite_start_points(key, prepared, None)
+    assert redraws == 0
+    np.testing.assert_array_equal(z0["z_r"], first)
+
+
 def test_a_second_study_has_its_own_keys_file_and_resumes_only_itself(tmp_path) -> None:
     first, second = study_sbc.replication_keys(3), study_sbc.replication_keys(3, seed=7)
     assert not any(np.array_equal(a, b) for a in first for b in second)
@@ -187,7 +207,7 @@ def test_the_compiled_sampler_reproduces_the_quadrature_posterior() -> None:
     shape = S.padded_shape(prepared.args)
     padded = S.pad_args(prepared.args, shape)
     sampler = S.CompiledSampler(prepared.setup, padded, True, chains=2, warmup=200, draws=1000)
-    z, divergent = sampler.draw(jax.random.PRNGKey(0), prepared, padded)
+    z, divergent, _ = sampler.draw(jax.random.PRNGKey(0), prepared, padded)
     assert divergent == 0
     for site, (mean, sd) in quadrature_moments(prepared).items():
         x = z[site].reshape(-1)
