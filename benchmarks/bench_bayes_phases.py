@@ -8,7 +8,9 @@ empty compilation-cache folder (STOPWISE_CACHE_DIR, stopwise/_compile_cache.py):
 1. cold: nothing cached (what bench_bayes measures; the cache is filled on the way);
 2. warm: the same fit again, as a researcher's second run of the same model on data of the
    same shape (the ``stopwise`` command line keeps the cache by default);
-3. warm, shorter: the same with fewer warm-up and kept iterations (``SHORT`` below).
+3. warm, shorter: the same with fewer warm-up and kept iterations (``SHORT`` below);
+4. cold, shorter: ``SHORT`` in a fresh process with its own empty cache folder (a first fit
+   at the shorter settings).
 
 Each process reports its wall time and CPU seconds (getrusage, user + system, all threads),
 the seconds XLA spent compiling (JAX's monitoring event
@@ -17,7 +19,7 @@ compilation included), the start (per-subject ML fits), min bulk ESS, max R-hat,
 steps per kept draw and the four population posterior means. Equal settings and seed give
 the same draws whether or not programs come from the cache: the table shows it.
 
-Run ``python -m benchmarks.run bench_bayes_phases`` (about 3 fits' time).
+Run ``python -m benchmarks.run bench_bayes_phases`` (about 4 fits' time).
 """
 
 from __future__ import annotations
@@ -128,6 +130,9 @@ def main() -> str:
             ("warm (cache filled by the cold run)", run_child(FULL, cache)),
             ("warm, shorter run", run_child(SHORT, cache)),
         ]
+    with tempfile.TemporaryDirectory(prefix="stopwise-bench-cache-") as cache:
+        os.chmod(cache, 0o700)
+        runs.append(("cold, shorter run (its own empty cache)", run_child(SHORT, cache)))
     head = (
         "| run | chains x draws (warm-up) | process wall s | process CPU s | fit wall s | "
         "of which NUTS s | XLA compile s (all programs) | start s | steps/draw | min bulk ESS "
