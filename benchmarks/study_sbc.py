@@ -58,6 +58,7 @@ from stopwise.models.spec import build_model
 
 CHAINS, WARMUP, DRAWS, THIN = 2, 200, 250, 5  # 2 x 50 thinned draws, first 99 kept
 KEPT = 99
+FROZEN_ESS = 5.0  # a smallest bulk ESS under this: chains that did not move (reported by index)
 BINS = R.BINS
 SEED = 20181001
 CHECKPOINT = 10
@@ -360,6 +361,11 @@ def summarise(
         "divergent": int(sum(o["divergent"] for o in ranked)),
         "adapted": int(sum(not o["laplace"] for o in ranked)),
         "redraws": int(sum(o.get("redraws", 0) for o in ranked)),
+        "frozen": [
+            i
+            for i, o in enumerate(outcomes)
+            if o and "error" not in o and o["min_ess"] < FROZEN_ESS
+        ],
         "redraw_recorded": int(sum("redraws" in o for o in ranked)),
         "refused": [i for i, o in enumerate(outcomes) if o is not None and o.get("refused")],
         "refusal_recorded": int(sum("refused" in o for o in ranked)),
@@ -462,6 +468,9 @@ def section(r: dict[str, Any]) -> str:
         f"{' (' + ', '.join(map(str, r['refused'][:20])) + ')' if r.get('refused') else ''}. "
         f"Chain starts drawn again because the density or its gradient was not finite there: "
         f"{r.get('redraws', 0)} in the {r.get('redraw_recorded', 0)} replications that record it. "
+        f"Replications whose chains did not move (smallest bulk ESS under {FROZEN_ESS:g}): "
+        f"{len(r.get('frozen', []))}"
+        f"{' (' + ', '.join(map(str, r['frozen'][:20])) + ')' if r.get('frozen') else ''}. "
         "Thinning check, smallest bulk ESS over the parameters of the "
         f"{s['chains'] * s['draws']} unthinned draws: median {r['ess_median']:.0f}, 5% quantile "
         f"{r['ess_low']:.0f} (draws {s['thin']} apart are near-independent when ESS >= "
