@@ -58,7 +58,7 @@ from stopwise.models.spec import build_model
 
 CHAINS, WARMUP, DRAWS, THIN = 2, 200, 250, 5  # 2 x 50 thinned draws, first 99 kept
 KEPT = 99
-FROZEN_ESS = 5.0  # a smallest bulk ESS under this: chains that did not move (reported by index)
+FROZEN_ESS = 5.0  # a smallest bulk ESS under this: chains that hardly moved (reported by index)
 BINS = R.BINS
 SEED = 20181001
 CHECKPOINT = 10
@@ -226,6 +226,7 @@ def run(
                 {
                     "spec": spec,
                     "seed": seed,
+                    "where": where,
                     "outcomes": outcomes,
                     "sampling": sampling.__dict__,
                     "seconds": time.perf_counter() - t0,
@@ -468,7 +469,7 @@ def section(r: dict[str, Any]) -> str:
         f"{' (' + ', '.join(map(str, r['refused'][:20])) + ')' if r.get('refused') else ''}. "
         f"Chain starts drawn again because the density or its gradient was not finite there: "
         f"{r.get('redraws', 0)} in the {r.get('redraw_recorded', 0)} replications that record it. "
-        f"Replications whose chains did not move (smallest bulk ESS under {FROZEN_ESS:g}): "
+        f"Replications whose chains hardly moved (smallest bulk ESS under {FROZEN_ESS:g}): "
         f"{len(r.get('frozen', []))}"
         f"{' (' + ', '.join(map(str, r['frozen'][:20])) + ')' if r.get('frozen') else ''}. "
         "Thinning check, smallest bulk ESS over the parameters of the "
@@ -509,7 +510,7 @@ def from_saved(spec: str, planned: int, seed: int = SEED) -> dict[str, Any]:
         len(outcomes),
         outcomes,
         Sampling(**saved["sampling"]),
-        "in-process",
+        saved.get("where", "in-process"),
         time.perf_counter() - saved["seconds"],
         time.process_time() - saved["cpu"],
         seed,

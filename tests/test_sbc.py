@@ -107,7 +107,7 @@ def test_chains_that_start_where_the_density_is_not_finite_are_drawn_again() -> 
     np.testing.assert_array_equal(z0["z_r"], first)
 
 
-def test_replications_whose_chains_did_not_move_are_reported_by_index() -> None:
+def test_replications_whose_chains_hardly_moved_are_reported_by_index() -> None:
     def outcome(ess: float) -> dict:
         return {"ranks": {"r": 1}, "divergent": 0, "min_ess": ess, "laplace": True, "residual": 0}
 
@@ -116,7 +116,7 @@ def test_replications_whose_chains_did_not_move_are_reported_by_index() -> None:
         "crra+logit", 5, outcomes, study_sbc.Sampling(), "in-process", 0.0, 0.0
     )
     assert result["frozen"] == [1]  # ESS 2.05: 500 identical draws per chain
-    assert "did not move (smallest bulk ESS under 5): 1 (1)" in study_sbc.section(result)
+    assert "hardly moved (smallest bulk ESS under 5): 1 (1)" in study_sbc.section(result)
 
 
 def test_a_second_study_has_its_own_keys_file_and_resumes_only_itself(tmp_path) -> None:
