@@ -24,6 +24,7 @@ Run ``python -m benchmarks.run bench_bayes_phases`` (about 4 fits' time).
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import resource
@@ -31,6 +32,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Iterator
 
 FULL = (2, 600, 400)  # chains, draws, warm-up: bench_bayes's settings
 SHORT = (2, 450, 250)
@@ -122,16 +124,22 @@ def run_child(settings: tuple[int, int, int], cache: str) -> dict:
     return row
 
 
-def main() -> str:
+@contextlib.contextmanager
+def empty_cache_folder() -> Iterator[str]:
+    """A new, empty compilation-cache folder (owner-only, as stopwise wants it), removed after."""
     with tempfile.TemporaryDirectory(prefix="stopwise-bench-cache-") as cache:
         os.chmod(cache, 0o700)
+        yield cache
+
+
+def main() -> str:
+    with empty_cache_folder() as cache:
         runs = [
             ("cold (empty cache)", run_child(FULL, cache)),
             ("warm (cache filled by the cold run)", run_child(FULL, cache)),
             ("warm, shorter run", run_child(SHORT, cache)),
         ]
-    with tempfile.TemporaryDirectory(prefix="stopwise-bench-cache-") as cache:
-        os.chmod(cache, 0o700)
+    with empty_cache_folder() as cache:
         runs.append(("cold, shorter run (its own empty cache)", run_child(SHORT, cache)))
     head = (
         "| run | chains x draws (warm-up) | process wall s | process CPU s | fit wall s | "

@@ -267,7 +267,7 @@ def sampler_start(
         scales=scales,
         inverse_mass=inverse_mass,
         dense_mass=bool(dense_mass),
-        origin=origin if subjects is None else None,
+        origin=origin,
         notes=notes,
     )
     if subjects is not None and whiten:

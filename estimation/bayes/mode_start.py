@@ -31,6 +31,7 @@ as jitter and its variance as a diagonal inverse mass. Each replacement adds a n
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -193,8 +194,9 @@ def checked_pooled_start(
     exact posterior mode (``posterior_mode`` from the prior's centre), else the prior's
     centre and variances (module docstring). ``prior`` gives the pooled log prior's terms;
     the exact posterior's (``exact_posterior_terms``, a compilation of the likelihood's
-    Hessian) are built only when the Laplace start is refused. Starts without a mass block (a direction that
-    neither the data nor the prior curve) are returned as ``laplace_start`` gives them."""
+    Hessian) are built only when the Laplace start is refused. Starts without a mass block
+    (a direction that neither the data nor the prior curve) are returned as
+    ``laplace_start`` gives them."""
     sites = population_sites(setup)
     values, scales, inverse_mass = laplace_start(
         pooled, setup.names, setup.coef_names, sites, prior
@@ -202,18 +204,13 @@ def checked_pooled_start(
     if inverse_mass is None:  # no curvature in some direction: the ML point, identity mass
         return CheckedStart(values, scales, None, "ML estimate")
     sizes = flat_sizes(sites, values)
-    scale_cache: list[PriorScale] = []
-
-    def scale() -> PriorScale:
-        if not scale_cache:
-            scale_cache.append(prior_scale(setup, sites, sizes))
-        return scale_cache[0]
-
-    refused = refused_coordinates(flatten_sites(scales, sites), scale)
+    # the prior's centre and sds, computed on first use only (about 2 s on a first call)
+    scale = functools.cache(functools.partial(prior_scale, setup, sites, sizes))
+    laplace_sd = flatten_sites(scales, sites)
+    refused = refused_coordinates(laplace_sd, scale)
     if not refused:
         return CheckedStart(values, scales, inverse_mass, LAPLACE_ORIGIN)
     flat_names = [f"{s}[{i}]" if n > 1 else s for s, n in zip(sites, sizes) for i in range(n)]
-    laplace_sd = flatten_sites(scales, sites)
     what = ", ".join(
         f"{flat_names[j]} {laplace_sd[j]:,.3g} against the prior's {scale().sd[j]:.3g}"
         for j in refused
@@ -223,8 +220,8 @@ def checked_pooled_start(
         f"{SPREAD_LIMIT:g} prior sds: the ML point lies where the likelihood is flat)"
     ]
     found = posterior_mode(exact_posterior_terms(setup, args, sites, sizes), scale().centre)
-    if found is not None and not refused_coordinates(np.sqrt(np.diag(found[1])), scale):
-        mode, cov = found
+    mode, cov = found if found is not None else (None, None)
+    if cov is not None and not refused_coordinates(np.sqrt(np.diag(cov)), scale):
         notes.append(
             "pooled start: the chains start at the exact posterior mode, found from the "
             "prior's centre, jittered by one sd of its inverse curvature"
